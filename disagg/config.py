@@ -1,0 +1,362 @@
+"""Site TOML file -> typed, validated settings.
+
+Paths inside the TOML are resolved against the TOML's own folder. Every problem raises
+:class:`ConfigError` naming the file, the table and key, the bad value and what was expected.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import tomllib
+import zoneinfo
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from disagg.errors import ConfigError
+
+METER_UNITS = ("kWh", "Wh", "kW")
+STAMPS = ("end", "start")
+ALLOWED_INTERVALS_MIN = (1, 5, 10, 15, 30, 60)
+RUNLOG_LAYOUTS = ("events", "samples", "runtime")
+BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
+CONTROLS = ("on-off", "variable")
+WEEKDAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
+
+# Motor output to input: 1 hp = 0.746 kW (US DOE, "Determining Electric Motor Load and
+# Efficiency", which uses 0.7457).
+KW_PER_HP = 0.746
+# A running draw guessed from a nameplate: 80 % of full-load input, standard deviation 30 % of
+# full-load input. Common practice, no source: motors and compressors mostly run between
+# 60 % and 100 % of full load.
+NAMEPLATE_RUNNING_FRACTION = 0.8
+NAMEPLATE_SD_FRACTION = 0.3
+# draw_kw given without draw_sd_kw: standard deviation 25 % of draw_kw (common practice, no source).
+DRAW_ONLY_SD_FRACTION = 0.25
+
+
+@dataclass(frozen=True)
+class MeterSettings:
+    """Where the utility interval meter export is and how to read it."""
+
+    file: Path
+    time_column: str
+    value_column: str
+    unit: str  # kWh, Wh, or kW (mean demand over the interval)
+    stamp: str  # which edge of the interval the time marks: end or start
+    interval_min: int | None  # None: inferred from the data
+
+
+@dataclass(frozen=True)
+class RunlogSettings:
+    """Where the building automation run log is and which layout it has."""
+
+    file: Path
+    layout: str  # events, samples or runtime
+    time_column: str
+    equipment_column: str | None = None  # events, runtime
+    state_column: str | None = None  # events
+    minutes_column: str | None = None  # runtime
+    max_hold_min: float | None = None  # samples: longest a sample holds
+    stamp: str = "start"  # runtime: which edge of its interval the time marks
+    interval_min: int | None = None  # runtime: length of its intervals, None = inferred
+
+
+@dataclass(frozen=True)
+class Spell:
+    """A weekly occupied spell: days 0=Mon..6=Sun, minutes after local midnight."""
+
+    days: tuple[int, ...]
+    start_min: int
+    end_min: int  # may be 1440 for 24:00
+
+
+@dataclass(frozen=True)
+class BaseloadSettings:
+    """Shape of the load that no run log explains (lights, plugs, controls)."""
+
+    profile: str = "constant"
+    spells: tuple[Spell, ...] = ()
+    spell_text: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class Prior:
+    """The engineer's prior knowledge of a running draw: mean +- sd [kW], or none."""
+
+    draw_kw: float | None
+    sd_kw: float | None
+    source: str  # how it was derived, in words
+
+    @property
+    def informative(self) -> bool:
+        return self.draw_kw is not None and self.sd_kw is not None
+
+
+@dataclass(frozen=True)
+class Equipment:
+    """One logged load."""
+
+    id: str
+    name: str
+    kind: str
+    control: str  # on-off or variable
+    exponent: float  # power ~ status ** exponent for variable control
+    prior: Prior
+    full_load_kw: float | None  # from the nameplate, if any
+
+
+@dataclass(frozen=True)
+class SiteConfig:
+    """Everything a run needs to know about one site."""
+
+    path: Path
+    name: str
+    timezone: str
+    meter: MeterSettings
+    runlog: RunlogSettings
+    baseload: BaseloadSettings
+    equipment: tuple[Equipment, ...]
+    extra: dict = field(default_factory=dict)
+
+    def equipment_ids(self) -> list[str]:
+        return [e.id for e in self.equipment]
+
+
+class _Table:
+    """A TOML table with the file and table name kept for error messages."""
+
+    def __init__(self, path: Path, name: str, data: object):
+        self.path = path
+        self.name = name
+        if not isinstance(data, dict):
+            raise ConfigError(f"{path}: [{name}] must be a table, found {type(data).__name__}")
+        self.data = data
+
+    def where(self, key: str) -> str:
+        return f"{self.path}: [{self.name}] {key}"
+
+    def get(self, key: str, kind: type | tuple, required: bool = True, default=None):
+        if key not in self.data:
+            if required:
+                raise ConfigError(f"{self.where(key)} is missing; add it to the file")
+            return default
+        value = self.data[key]
+        kinds = kind if isinstance(kind, tuple) else (kind,)
+        if float in kinds and isinstance(value, int) and not isinstance(value, bool):
+            value = float(value)
+        if not isinstance(value, kinds) or isinstance(value, bool) and bool not in kinds:
+            names = " or ".join(k.__name__.replace("str", "text").replace("float", "number")
+                                for k in kinds)
+            raise ConfigError(f"{self.where(key)} = {value!r}: expected {names}")
+        return value
+
+    def choice(self, key: str, choices: tuple, required: bool = True, default=None):
+        value = self.get(key, str, required, default)
+        if value is not None and value not in choices:
+            raise ConfigError(
+                f"{self.where(key)} = {value!r}: expected one of {', '.join(choices)}")
+        return value
+
+    def positive(self, key: str, required: bool = False, upper: float | None = None):
+        value = self.get(key, float, required)
+        if value is None:
+            return None
+        if not math.isfinite(value) or value <= 0 or (upper is not None and value > upper):
+            bound = f" and at most {upper:g}" if upper is not None else ""
+            raise ConfigError(f"{self.where(key)} = {value!r}: expected a number above 0{bound}")
+        return value
+
+    def file(self, key: str) -> Path:
+        text = self.get(key, str)
+        return (self.path.parent / text).resolve()
+
+
+def _interval(table: _Table, key: str) -> int | None:
+    value = table.get(key, int, required=False)
+    if value is not None and value not in ALLOWED_INTERVALS_MIN:
+        raise ConfigError(f"{table.where(key)} = {value!r}: expected one of "
+                          f"{', '.join(map(str, ALLOWED_INTERVALS_MIN))} minutes")
+    return value
+
+
+_SPELL = re.compile(r"^\s*([A-Za-z]{3})(?:\s*-\s*([A-Za-z]{3}))?\s+(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*$")
+
+
+def parse_spell(text: str) -> Spell:
+    """Parse a weekly spell such as ``"Mon-Fri 07:00-19:00"`` or ``"Sat 09:00-13:00"``.
+
+    Raises:
+        ValueError: the text is not of that form.
+    """
+    m = _SPELL.match(text)
+    if not m:
+        raise ValueError("expected a spell such as \"Mon-Fri 07:00-19:00\"")
+    day_names = [d.capitalize() for d in (m.group(1), m.group(2) or m.group(1))]
+    for d in day_names:
+        if d not in WEEKDAYS:
+            raise ValueError(f"unknown day {d!r}; expected one of {', '.join(WEEKDAYS)}")
+    d0, d1 = (WEEKDAYS.index(d) for d in day_names)
+    days = tuple((d0 + i) % 7 for i in range((d1 - d0) % 7 + 1))
+    h0, m0, h1, m1 = (int(m.group(i)) for i in (3, 4, 5, 6))
+    start, end = h0 * 60 + m0, h1 * 60 + m1
+    if m0 > 59 or m1 > 59 or start >= 1440 or end > 1440 or end <= start:
+        raise ValueError("times must be HH:MM with the end after the start, at most 24:00")
+    return Spell(days=days, start_min=start, end_min=end)
+
+
+def _prior(t: _Table, eq_id: str) -> tuple[Prior, float | None]:
+    """The running-draw prior and the full-load input power from what is known of the size."""
+    full_load_kw = None
+    size_source = ""
+    rated_kw = t.positive("rated_kw")
+    hp = t.positive("hp")
+    volts = t.positive("volts")
+    if rated_kw is not None:
+        full_load_kw, size_source = rated_kw, f"rated_kw {rated_kw:g}"
+    elif hp is not None:
+        eff = t.positive("efficiency", required=True, upper=1.0)
+        # US DOE, "Determining Electric Motor Load and Efficiency": input = hp x 0.746 / eff.
+        full_load_kw = hp * KW_PER_HP / eff
+        size_source = f"{hp:g} hp x 0.746 / efficiency {eff:g}"
+    elif volts is not None:
+        amps = t.positive("amps", required=True)
+        pf = t.positive("power_factor", required=True, upper=1.0)
+        phases = t.get("phases", int)
+        if phases not in (1, 3):
+            raise ConfigError(f"{t.where('phases')} = {phases!r}: expected 1 or 3")
+        # US DOE, same fact sheet, Eq. 1: P = sqrt(3) x V x I x PF / 1000 for three phases.
+        factor = math.sqrt(3.0) if phases == 3 else 1.0
+        full_load_kw = factor * volts * amps * pf / 1000.0
+        size_source = (f"{'sqrt(3) x ' if phases == 3 else ''}{volts:g} V x {amps:g} A"
+                       f" x PF {pf:g} / 1000")
+
+    draw_kw = t.positive("draw_kw")
+    sd_kw = t.positive("draw_sd_kw")
+    if sd_kw is not None and draw_kw is None:
+        raise ConfigError(f"{t.where('draw_sd_kw')} is given without draw_kw for "
+                          f"equipment {eq_id!r}; add draw_kw or remove draw_sd_kw")
+    if draw_kw is not None:
+        if sd_kw is None:
+            sd_kw = DRAW_ONLY_SD_FRACTION * draw_kw
+            return Prior(draw_kw, sd_kw, "draw_kw; sd 25 % of draw_kw (common practice)"), full_load_kw
+        return Prior(draw_kw, sd_kw, "draw_kw +- draw_sd_kw"), full_load_kw
+    if full_load_kw is not None:
+        return (Prior(NAMEPLATE_RUNNING_FRACTION * full_load_kw,
+                      NAMEPLATE_SD_FRACTION * full_load_kw,
+                      f"80 % +- 30 % of full-load input {full_load_kw:.3g} kW ({size_source})"),
+                full_load_kw)
+    return Prior(None, None, "none (no size or draw given)"), None
+
+
+def _equipment(path: Path, index: int, data: object, seen: set[str]) -> Equipment:
+    t = _Table(path, f"[equipment] #{index + 1}", data)
+    t.name = f"equipment #{index + 1}"
+    eq_id = t.get("id", str).strip()
+    if not eq_id or any(c in eq_id for c in "+;,\n"):
+        raise ConfigError(f"{t.where('id')} = {eq_id!r}: expected a non-empty id without "
+                          "'+', ';', ',' or line breaks")
+    if eq_id in seen or eq_id in ("baseload", "unexplained"):
+        raise ConfigError(f"{t.where('id')} = {eq_id!r}: ids must be unique and not "
+                          "'baseload' or 'unexplained'")
+    seen.add(eq_id)
+    t.name = f"equipment {eq_id}"
+    name = t.get("name", str, required=False, default=eq_id)
+    kind = t.get("kind", str, required=False, default="")
+    control = t.choice("control", CONTROLS, required=False, default="on-off")
+    exponent = 1.0
+    if control == "variable":
+        exponent = t.positive("exponent", upper=4.0) or 1.0
+    elif "exponent" in t.data:
+        raise ConfigError(f"{t.where('exponent')}: only used with control = \"variable\"")
+    prior, full_load_kw = _prior(t, eq_id)
+    return Equipment(eq_id, name, kind, control, exponent, prior, full_load_kw)
+
+
+def load_site(path: str | Path) -> SiteConfig:
+    """Read and check a site TOML file.
+
+    Args:
+        path: the site file.
+
+    Returns:
+        The settings, with file paths resolved against the TOML's folder.
+
+    Raises:
+        ConfigError: the file is missing, is not TOML, or a setting is missing or invalid.
+    """
+    path = Path(path).resolve()
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: no such site file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: cannot read the site file ({exc})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+
+    for key in ("site", "meter", "runlog"):
+        if key not in data:
+            raise ConfigError(f"{path}: the [{key}] table is missing; add it to the file")
+    site = _Table(path, "site", data["site"])
+    name = site.get("name", str)
+    tz = site.get("timezone", str)
+    try:
+        zoneinfo.ZoneInfo(tz)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(f"{site.where('timezone')} = {tz!r}: expected an IANA time zone "
+                          "name such as \"America/Chicago\"") from None
+
+    m = _Table(path, "meter", data["meter"])
+    meter = MeterSettings(
+        file=m.file("file"),
+        time_column=m.get("time_column", str),
+        value_column=m.get("value_column", str),
+        unit=m.choice("unit", METER_UNITS),
+        stamp=m.choice("stamp", STAMPS, required=False, default="end"),
+        interval_min=_interval(m, "interval_minutes"),
+    )
+
+    r = _Table(path, "runlog", data["runlog"])
+    layout = r.choice("layout", RUNLOG_LAYOUTS)
+    runlog = RunlogSettings(
+        file=r.file("file"),
+        layout=layout,
+        time_column=r.get("time_column", str),
+        equipment_column=r.get("equipment_column", str) if layout != "samples" else None,
+        state_column=r.get("state_column", str) if layout == "events" else None,
+        minutes_column=r.get("minutes_column", str) if layout == "runtime" else None,
+        max_hold_min=r.positive("max_hold_minutes", required=True) if layout == "samples" else None,
+        stamp=r.choice("stamp", STAMPS, required=False, default="start") if layout == "runtime" else "start",
+        interval_min=_interval(r, "interval_minutes") if layout == "runtime" else None,
+    )
+
+    b = _Table(path, "baseload", data.get("baseload", {}))
+    profile = b.choice("profile", BASELOAD_PROFILES, required=False, default="constant")
+    spells: list[Spell] = []
+    spell_text: list[str] = []
+    if profile == "occupied":
+        raw = b.get("occupied", list)
+        if not raw:
+            raise ConfigError(f"{b.where('occupied')}: expected at least one spell such as "
+                              "\"Mon-Fri 07:00-19:00\"")
+        for i, s in enumerate(raw):
+            if not isinstance(s, str):
+                raise ConfigError(f"{b.where('occupied')}[{i}] = {s!r}: expected text")
+            try:
+                spells.append(parse_spell(s))
+            except ValueError as exc:
+                raise ConfigError(f"{b.where('occupied')}[{i}] = {s!r}: {exc}") from None
+            spell_text.append(s)
+    baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text))
+
+    raw_eq = data.get("equipment", [])
+    if not isinstance(raw_eq, list) or not raw_eq:
+        raise ConfigError(f"{path}: no [[equipment]] tables; add one per logged load")
+    seen: set[str] = set()
+    equipment = tuple(_equipment(path, i, e, seen) for i, e in enumerate(raw_eq))
+    known = {"site", "meter", "runlog", "baseload", "equipment"}
+    extra = {k: v for k, v in data.items() if k not in known}
+    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra)

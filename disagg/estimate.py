@@ -1,0 +1,360 @@
+"""Aligned intervals -> fitted draws, with what cannot be told apart and honest intervals.
+
+Steps: build the design from the intervals used; find equipment that cannot be separated
+from other equipment or from the baseload schedule; combine such equipment when no prior can
+split it, flag it when one can; fit; then widen each interval where the estimate moves with
+the time period (delete-a-block jackknife) or with a more flexible baseload profile, and flag
+`unstable` where that widening is large.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import polars as pl
+
+from disagg.align import Aligned, baseload_columns
+from disagg.config import BaseloadSettings, SiteConfig
+from disagg.model import Fit, collinearity, fit_model, fit_quality, jackknife_cov, quantile
+
+# Two equipment hour series correlated at or above this cannot be told apart; the same
+# bound on R^2 against the baseload columns, and on R^2 against everything (VIF >= 20).
+# Common practice, no source (VIF 10-20 is the usual range of rule-of-thumb cut-offs).
+INSEPARABLE_R = 0.95
+INSEPARABLE_R2 = INSEPARABLE_R**2
+# An estimate whose posterior precision comes at least half from its prior is prior-driven.
+PRIOR_DRIVEN_WEIGHT = 0.5
+# An interval widened by at least this factor by the stability checks is unstable.
+UNSTABLE_WIDENING = 1.5
+# "Weak" prior for equipment and baseload columns without one: mean 0, sd 10 x the peak
+# metered demand. It only keeps the solve well posed; prior_weight reports when it mattered.
+WEAK_SD_FACTOR = 10.0
+JACKKNIFE_BLOCKS = 10
+MORE_FLEXIBLE = {"constant": ("occupied", "hour-of-week"), "occupied": ("hour-of-week",),
+                 "hour-of-week": ()}
+
+
+@dataclass
+class Term:
+    """One fitted draw: a piece of equipment, or a combined group that cannot be split."""
+
+    id: str
+    members: list[str]
+    name: str
+    prior_kw: float | None
+    prior_sd_kw: float | None
+    prior_source: str
+    flags: list[str] = field(default_factory=list)
+    column: int | None = None  # column in the design, None when not fitted
+
+
+@dataclass
+class Estimates:
+    """Fitted draws and everything the breakdown and fit.json need.
+
+    hours: (n_used, n_terms) equipment-hours of each term [h] in the intervals used;
+    base: (n_used, m) baseload columns [h]; y: (n_used,) metered energy [kWh].
+    kw, kw_low, kw_high, se_kw: (n_terms,) [kW], NaN for terms not fitted.
+    cov_base: (m, m) covariance of the baseload kW [kW^2], widened like the draws.
+    """
+
+    terms: list[Term]
+    base_names: list[str]
+    base_id: str
+    frame: pl.DataFrame  # used intervals: start_utc, end_utc, energy_kwh, interval_h
+    hours: np.ndarray
+    base: np.ndarray
+    y: np.ndarray
+    fitted: np.ndarray
+    kw: np.ndarray
+    kw_low: np.ndarray
+    kw_high: np.ndarray
+    se_kw: np.ndarray
+    se_hac_kw: np.ndarray
+    se_jackknife_kw: np.ndarray
+    base_kw: np.ndarray
+    cov_base: np.ndarray
+    critical: float
+    confidence: float
+    fit: Fit
+    quality: dict
+    identifiability: dict
+    variants: dict
+    warnings: list[str]
+
+
+class _UnionFind:
+    def __init__(self, n: int):
+        self.parent = list(range(n))
+
+    def find(self, i: int) -> int:
+        while self.parent[i] != i:
+            self.parent[i] = self.parent[self.parent[i]]
+            i = self.parent[i]
+        return i
+
+    def union(self, i: int, j: int) -> None:
+        self.parent[self.find(i)] = self.find(j)
+
+
+def _local_days(frame: pl.DataFrame, tz: str) -> np.ndarray:
+    """Consecutive integer label of each row's local calendar day."""
+    d = frame["start_utc"].dt.convert_time_zone(tz).dt.date()
+    return d.rank("dense").to_numpy().astype(np.int64)
+
+
+def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95) -> Estimates:
+    """Fit every draw on the intervals used and decide what can be told apart.
+
+    Raises:
+        ValueError: too few usable intervals to fit.
+    """
+    use = aligned.use
+    frame = aligned.frame.filter(pl.Series(use))
+    n = frame.height
+    H_all = aligned.hours[use]
+    eq_by_id = {e.id: e for e in site.equipment}
+    ids = aligned.equipment_ids
+    y = frame["energy_kwh"].to_numpy().astype(float)
+    start_ns = frame["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+    end_ns = frame["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+
+    def base_for(profile: str) -> tuple[np.ndarray, list[str]]:
+        settings = site.baseload if profile == site.baseload.profile else BaseloadSettings(
+            profile, site.baseload.spells, site.baseload.spell_text)
+        return baseload_columns(settings, site.timezone, frame["start_utc"], start_ns, end_ns)
+
+    B, base_names = base_for(site.baseload.profile)
+    if n < len(ids) + B.shape[1] + 2:
+        raise ValueError(f"only {n} usable meter intervals for {len(ids) + B.shape[1]} "
+                         "unknowns; widen the date range or fix the gaps reported by check")
+    warnings: list[str] = []
+    interval_h = frame["interval_h"].to_numpy()
+    peak_kw = float(np.max(y / interval_h))
+    weak_sd = WEAK_SD_FACTOR * max(peak_kw, 1.0)
+
+    # --- what can be told apart -------------------------------------------------------
+    run_total = H_all.sum(axis=0)
+    active = [j for j in range(len(ids)) if run_total[j] > 0]
+    diag = collinearity(H_all[:, active], B) if active else None
+    r2_base = {ids[j]: float(diag["r2_base"][a]) for a, j in enumerate(active)} if diag else {}
+    vif = {ids[j]: float(diag["vif"][a]) for a, j in enumerate(active)} if diag else {}
+    corr = diag["corr"] if diag else np.zeros((0, 0))
+    has_prior = {e.id: e.prior.informative for e in site.equipment}
+
+    folded: list[str] = []  # no prior and inseparable from the baseload: joins the baseload row
+    base_flagged: list[str] = []
+    for j in active:
+        if r2_base[ids[j]] >= INSEPARABLE_R2:
+            (base_flagged if has_prior[ids[j]] else folded).append(ids[j])
+    pool = [j for j in active if ids[j] not in folded]
+    uf = _UnionFind(len(ids))
+    pos = {j: a for a, j in enumerate(active)}
+    for x in range(len(pool)):
+        for z in range(x + 1, len(pool)):
+            i, j = pool[x], pool[z]
+            if abs(corr[pos[i], pos[j]]) >= INSEPARABLE_R:
+                uf.union(i, j)
+    # Several loads that together mirror another (a = b + c) show only in the VIF: join a
+    # with the loads that carry its regression on everything else.
+    for j in pool:
+        if vif[ids[j]] >= 1.0 / (1.0 - INSEPARABLE_R2) and r2_base[ids[j]] < INSEPARABLE_R2:
+            others = [i for i in pool if i != j]
+            Z = np.column_stack([B] + [H_all[:, i] for i in others])
+            coef = np.linalg.lstsq(Z, H_all[:, j], rcond=None)[0][B.shape[1]:]
+            sd_j = H_all[:, j].std()
+            for i, c in zip(others, coef):
+                if sd_j > 0 and abs(c) * H_all[:, i].std() / sd_j >= 0.25:
+                    uf.union(i, j)
+    groups: dict[int, list[int]] = {}
+    for j in pool:
+        groups.setdefault(uf.find(j), []).append(j)
+
+    terms: list[Term] = []
+    columns: list[np.ndarray] = []
+    for j in range(len(ids)):
+        eq = eq_by_id[ids[j]]
+        if j not in active:
+            terms.append(Term(eq.id, [eq.id], eq.name, eq.prior.draw_kw, eq.prior.sd_kw,
+                              eq.prior.source, ["not-run"]))
+            continue
+        if eq.id in folded:
+            continue
+        members = groups[uf.find(j)]
+        if len(members) > 1 and not any(has_prior[ids[i]] for i in members):
+            if j != members[0]:
+                continue  # the group's row is made at its first member
+            gid = "+".join(ids[i] for i in members)
+            terms.append(Term(gid, [ids[i] for i in members],
+                              " + ".join(eq_by_id[ids[i]].name for i in members),
+                              None, None, "none (no size or draw given)", ["combined"]))
+            columns.append(H_all[:, members].mean(axis=1))
+            warnings.append(f"{', '.join(ids[i] for i in members)} run together and have no "
+                            f"prior that could split them: reported as one row {gid!r}")
+            continue
+        flags = [f"inseparable:{ids[i]}" for i in members if i != j]
+        if eq.id in base_flagged:
+            flags.append("inseparable:baseload")
+        if flags:
+            warnings.append(f"{eq.id} cannot be told apart from "
+                            f"{', '.join(f.split(':', 1)[1] for f in flags)} by the data: "
+                            "its estimate leans on its prior")
+        if eq.control == "variable":
+            flags.append("variable")
+        terms.append(Term(eq.id, [eq.id], eq.name, eq.prior.draw_kw, eq.prior.sd_kw,
+                          eq.prior.source, flags))
+        columns.append(H_all[:, j])
+    base_id = "+".join(["baseload"] + folded)
+    if folded:
+        warnings.append(f"{', '.join(folded)} run on the baseload schedule and have no prior: "
+                        f"their energy is reported in the row {base_id!r}")
+    fitted_terms = [t for t in terms if "not-run" not in t.flags]
+    for c, t in enumerate(fitted_terms):
+        t.column = c
+    k = len(fitted_terms)
+    Hf = np.column_stack(columns) if columns else np.zeros((n, 0))
+
+    # --- fit ----------------------------------------------------------------------------
+    def priors(m: int) -> tuple[np.ndarray, np.ndarray]:
+        mean = np.array([t.prior_kw if t.prior_kw is not None else 0.0 for t in fitted_terms]
+                        + [0.0] * m)
+        sd = np.array([t.prior_sd_kw if t.prior_sd_kw is not None else weak_sd
+                       for t in fitted_terms] + [weak_sd] * m)
+        return mean, sd
+
+    X = np.column_stack([Hf, B])
+    p_mean, p_sd = priors(B.shape[1])
+    lower = np.zeros(X.shape[1])
+    days = _local_days(frame, site.timezone)
+    fit = fit_model(X, y, p_mean, p_sd, lower, block=days)
+    coef = fit.coef
+    se_hac = fit.se
+    cov = fit.cov.copy()
+    df = max(fit.n_blocks - 1, 1)
+
+    # --- stability: time blocks and more flexible baseload profiles -------------------
+    n_days = int(days.max())
+    se_jack = np.full(X.shape[1], np.nan)
+    cov_jack = np.zeros_like(cov)
+    if n_days >= 4:
+        K = min(JACKKNIFE_BLOCKS, n_days)
+        blocks = np.minimum((days - 1) * K // n_days, K - 1)
+        cov_jack, _ = jackknife_cov(X, y, p_mean, fit.penalty, lower, blocks)
+        se_jack = np.sqrt(np.maximum(np.diag(cov_jack), 0.0))
+        df_jack = K - 1
+    else:
+        warnings.append("fewer than 4 days of data: intervals are not checked for stability")
+        df_jack = df
+    q_hac = quantile(confidence, df)
+    q_jack = quantile(confidence, df_jack)
+    half_hac = q_hac * se_hac
+    half_jack = np.nan_to_num(q_jack * se_jack, nan=0.0)
+    use_jack = half_jack > half_hac
+    half = np.maximum(half_hac, half_jack)
+    se_final = np.where(use_jack, half_jack / q_hac, se_hac)
+    low = coef - half
+    high = coef + half
+    variants: dict[str, dict] = {}
+    for profile in MORE_FLEXIBLE[site.baseload.profile]:
+        if profile == "occupied" and not site.baseload.spells:
+            continue
+        Bv, names_v = base_for(profile)
+        Xv = np.column_stack([Hf, Bv])
+        mv, sv = priors(Bv.shape[1])
+        fv = fit_model(Xv, y, mv, sv, np.zeros(Xv.shape[1]), block=days)
+        dv = collinearity(Hf, Bv) if k else None
+        entry = {}
+        for t in fitted_terms:
+            c = t.column
+            separable = dv is not None and dv["r2_base"][c] < INSEPARABLE_R2
+            entry[t.id] = {"kw": float(fv.coef[c]), "se_kw": float(fv.se[c]),
+                           "separable": bool(separable)}
+            if separable:
+                qv = q_hac * fv.se[c]
+                low[c] = min(low[c], fv.coef[c] - qv)
+                high[c] = max(high[c], fv.coef[c] + qv)
+        variants[profile] = entry
+    low = np.maximum(low, 0.0)
+    width_hac = (coef + half_hac) - np.maximum(coef - half_hac, 0.0)
+
+    # --- per-term flags and results -------------------------------------------------------
+    nt = len(terms)
+    kw = np.full(nt, np.nan)
+    kw_low = np.full(nt, np.nan)
+    kw_high = np.full(nt, np.nan)
+    se_kw = np.full(nt, np.nan)
+    se_h = np.full(nt, np.nan)
+    se_j = np.full(nt, np.nan)
+    hours = np.zeros((n, nt))
+    for i, t in enumerate(terms):
+        if t.column is None:
+            if t.prior_kw is not None:
+                kw[i] = t.prior_kw
+            continue
+        c = t.column
+        hours[:, i] = Hf[:, c]
+        kw[i], kw_low[i], kw_high[i] = coef[c], low[c], high[c]
+        se_kw[i], se_h[i], se_j[i] = se_final[c], se_hac[c], se_jack[c]
+        if fit.prior_weight[c] >= PRIOR_DRIVEN_WEIGHT:
+            t.flags.append("prior-driven")
+            if t.prior_kw is None:
+                warnings.append(f"{t.id}: the data cannot determine its draw and it has no "
+                                "prior; its kW is not meaningful")
+        if width_hac[c] > 0 and (high[c] - low[c]) >= UNSTABLE_WIDENING * width_hac[c]:
+            t.flags.append("unstable")
+        if coef[c] <= 1e-9:
+            t.flags.append("at-zero")
+    base_slice = slice(k, X.shape[1])
+    cov_base = cov[base_slice, base_slice]
+    if n_days >= 4:
+        cov_base = _wider(cov[base_slice, base_slice], cov_jack[base_slice, base_slice] *
+                          (q_jack / q_hac) ** 2)
+    fitted = X @ coef
+
+    quality = {"interval": fit_quality(y, fitted, X.shape[1])}
+    hourly = (frame.select("start_utc").with_columns(y=pl.Series(y), f=pl.Series(fitted),
+                                                     h=pl.Series(interval_h))
+              .group_by(pl.col("start_utc").dt.truncate("1h")).agg(
+                  pl.col("y").sum(), pl.col("f").sum(), pl.col("h").sum()))
+    hourly = hourly.filter((pl.col("h") - 1.0).abs() < 1e-9)
+    if hourly.height > X.shape[1] + 1:
+        quality["hourly"] = fit_quality(hourly["y"].to_numpy(), hourly["f"].to_numpy(), X.shape[1])
+    monthly = (frame.select("start_utc").with_columns(y=pl.Series(y), f=pl.Series(fitted))
+               .group_by(pl.col("start_utc").dt.convert_time_zone(site.timezone)
+                         .dt.strftime("%Y-%m").alias("m")).agg(pl.col("y").sum(), pl.col("f").sum()))
+    quality["monthly"] = {"months": monthly.height,
+                          "nmbe_pct": float(100 * (monthly["y"].sum() - monthly["f"].sum())
+                                            / monthly["y"].sum()) if monthly["y"].sum() else float("nan")}
+
+    ident = {
+        "correlation_bound": INSEPARABLE_R,
+        "prior_driven_weight": PRIOR_DRIVEN_WEIGHT,
+        "equipment": {
+            ids[j]: {
+                "r2_with_baseload": r2_base.get(ids[j]),
+                "vif": vif.get(ids[j]),
+                "most_correlated": (None if ids[j] not in vif or len(active) < 2 else
+                                    _partner(ids, active, corr, j)),
+            } for j in range(len(ids))},
+        "folded_into_baseload": folded,
+    }
+    return Estimates(
+        terms=terms, base_names=base_names, base_id=base_id, frame=frame, hours=hours, base=B,
+        y=y, fitted=fitted, kw=kw, kw_low=kw_low, kw_high=kw_high, se_kw=se_kw,
+        se_hac_kw=se_h, se_jackknife_kw=se_j, base_kw=coef[base_slice], cov_base=cov_base,
+        critical=q_hac, confidence=confidence, fit=fit, quality=quality, identifiability=ident,
+        variants=variants, warnings=warnings)
+
+
+def _partner(ids: list[str], active: list[int], corr: np.ndarray, j: int) -> dict:
+    a = active.index(j)
+    row = np.abs(corr[a]).copy()
+    row[a] = -1
+    b = int(np.argmax(row))
+    return {"id": ids[active[b]], "correlation": float(corr[a, b])}
+
+
+def _wider(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """The covariance with the larger total variance (for sums of baseload columns)."""
+    return a if np.trace(a) >= np.trace(b) else b

@@ -1,0 +1,185 @@
+"""The one place that writes files, and the text summaries printed to the terminal.
+
+Every run writes all its files into a hidden temporary folder inside the output folder and
+then renames them into place, so a failed or interrupted run leaves no half-written file.
+An output never replaces an input file.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+
+import polars as pl
+
+from disagg.errors import OutputError
+from disagg.pipeline import CAUTION, BreakdownResult, CheckResult
+
+# Cells starting with these can run as formulas when a spreadsheet opens a CSV; OWASP
+# ("CSV Injection" page, from memory) recommends a leading single quote.
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
+    """Prefix a single quote to text cells that a spreadsheet would read as a formula."""
+    text_cols = [c for c, t in frame.schema.items() if t == pl.String]
+    return frame.with_columns(
+        pl.when(pl.col(c).str.starts_with(s) for s in _FORMULA_START)
+        .then(pl.lit("'") + pl.col(c)).otherwise(pl.col(c)).alias(c)
+        for c in text_cols) if text_cols else frame
+
+
+def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
+                     inputs: list[Path]) -> list[Path]:
+    """Write several files into out_dir all at once.
+
+    Args:
+        out_dir: destination folder (created if missing).
+        files: file name -> function writing that file at the given path.
+        inputs: the run's input files, which must never be overwritten.
+
+    Returns:
+        The paths written.
+
+    Raises:
+        OutputError: the folder cannot be created or written, or a name would replace an input.
+    """
+    out_dir = Path(out_dir).resolve()
+    targets = [out_dir / name for name in files]
+    resolved_inputs = {p.resolve() for p in inputs}
+    for t in targets:
+        if t.resolve() in resolved_inputs:
+            raise OutputError(f"{t}: writing here would replace an input file; choose another --out")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=out_dir))
+    except OSError as exc:
+        raise OutputError(f"{out_dir}: cannot create the output folder ({exc.strerror})") from None
+    try:
+        for name, write in files.items():
+            write(tmp / name)
+        for name in files:
+            os.replace(tmp / name, out_dir / name)
+    except OSError as exc:
+        raise OutputError(f"{out_dir}: cannot write the outputs ({exc.strerror})") from None
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return targets
+
+
+def _clean(value):
+    """JSON-ready: non-finite floats become null."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    return value
+
+
+def to_json(data: dict) -> str:
+    return json.dumps(_clean(data), indent=2, ensure_ascii=False) + "\n"
+
+
+def write_breakdown(result: BreakdownResult, out_dir: Path) -> list[Path]:
+    """Write breakdown.csv, breakdown.parquet and fit.json into out_dir."""
+    table = result.breakdown
+    site = result.site
+    files = {
+        "breakdown.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
+        "breakdown.parquet": lambda p: table.write_parquet(p),
+        "fit.json": lambda p: p.write_text(to_json(result.fit), encoding="utf-8"),
+    }
+    return write_atomically(out_dir, files, [site.path, site.meter.file, site.runlog.file])
+
+
+def _fmt(x: float | None, digits: int = 1) -> str:
+    return "-" if x is None or not math.isfinite(x) else f"{x:,.{digits}f}"
+
+
+def breakdown_summary(result: BreakdownResult) -> str:
+    """A short readable table of the whole range, the fit quality, warnings and the caution."""
+    t = result.breakdown
+    totals = (t.group_by("equipment", maintain_order=True)
+              .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(), pl.col("kwh_low").sum(),
+                   pl.col("kwh_high").sum(), pl.col("flags").first(),
+                   pl.col("kwh_low").null_count().alias("nolow")))
+    metered = float(result.estimates.y.sum())
+    draws = {d["equipment"]: d for d in result.fit["draws"]}
+    periods = t["period"].unique().sort()
+    lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
+             f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
+             "",
+             f"{'equipment':<22} {'run h':>8} {'kW':>8} {'kW range':>17} {'kWh':>11} "
+             f"{'share':>6}  flags"]
+    for r in totals.iter_rows(named=True):
+        d = draws.get(r["equipment"])
+        kw = _fmt(d["kw"]) if d else "-"
+        rng = (f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}" if d and d["kw_low"] is not None
+               else "-")
+        if not d:
+            kw = _fmt(r["kwh"] / r["run_hours"] if r["run_hours"] else None)
+        lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>8} {kw:>8} {rng:>17} "
+                     f"{_fmt(r['kwh'], 0):>11} {100 * r['kwh'] / metered if metered else 0:>5.1f}%"
+                     f"  {r['flags'] or ''}")
+    q = result.fit["fit_quality"]
+    hq = q.get("hourly")
+    if hq:
+        meets = "meets" if q["ashrae_guideline_14"]["hourly_meets"] else "does not meet"
+        lines += ["", f"Hourly fit: CV(RMSE) {hq['cv_rmse_pct']:.1f} %, NMBE {hq['nmbe_pct']:.2f} %,"
+                      f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
+                      "30 % / 10 %)"]
+    lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
+    for w in result.fit["warnings"]:
+        lines.append(f"Note: {w}")
+    lines += ["", f"Caution: {CAUTION}"]
+    return "\n".join(lines)
+
+
+def check_summary(result: CheckResult) -> str:
+    r = result.report
+    c = r["intervals"]
+    lines = [f"{r['site']}: {r['period']['start_utc']} to {r['period']['end_utc']} (UTC), "
+             f"{r['interval_min']}-minute meter intervals",
+             f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
+             f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
+    for e, h in r["run_hours"].items():
+        lines.append(f"  {e:<20} {h:>10,.1f} run h")
+    for a, b, rho in r["inseparable_pairs"]:
+        lines.append(f"cannot be told apart: {a} and {b} (correlation of hours {rho:.3f})")
+    for e in r["inseparable_from_baseload"]:
+        lines.append(f"cannot be told apart from the baseload schedule: {e}")
+    for e in r["not_run"]:
+        lines.append(f"never ran in this period: {e}")
+    lines += [f"Note: {n}" for n in r["notes"]]
+    return "\n".join(lines)
+
+
+def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | None = None) -> Path:
+    """Simulate the demo building and write meter.csv, runlog.csv, truth.csv,
+    truth_monthly.csv (in folder) and demo.toml (in toml_folder, default folder).
+
+    Returns:
+        The site TOML path.
+    """
+    from disagg import demo
+
+    folder = Path(folder).resolve()
+    toml_folder = Path(toml_folder).resolve() if toml_folder else folder
+    data = demo.simulate(demo.SEED if seed is None else seed)
+    rel = Path(os.path.relpath(folder, toml_folder))
+    text = demo.site_toml((rel / "meter.csv").as_posix(), (rel / "runlog.csv").as_posix())
+    write_atomically(folder, {
+        "meter.csv": lambda p: data["meter"].write_csv(p),
+        "runlog.csv": lambda p: data["events"].write_csv(p),
+        "truth.csv": lambda p: data["truth"].write_csv(p, float_precision=4),
+        "truth_monthly.csv": lambda p: data["truth_monthly"].write_csv(p, float_precision=4),
+    }, [])
+    write_atomically(toml_folder, {"demo.toml": lambda p: p.write_text(text, encoding="utf-8")}, [])
+    return toml_folder / "demo.toml"
