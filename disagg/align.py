@@ -94,10 +94,12 @@ def spell_segments(spells: tuple[Spell, ...], tz: str, first_ns: int, last_ns: i
 def _local_to_ns(day: dt.date, minute: int, zone: zoneinfo.ZoneInfo) -> int:
     naive = dt.datetime.combine(day, dt.time()) + dt.timedelta(minutes=minute)
     local = naive.replace(tzinfo=zone, fold=0)
-    # A skipped local time does not survive the round trip through UTC: move forward.
-    back = local.astimezone(dt.timezone.utc).astimezone(zone).replace(tzinfo=None)
-    if back != naive:
-        local = (naive + dt.timedelta(hours=1)).replace(tzinfo=zone, fold=0)
+    # A skipped local time does not survive the round trip through UTC. The first valid time
+    # after it is the moment of the clock change; changes fall on whole minutes.
+    probe = naive
+    while local.astimezone(dt.timezone.utc).astimezone(zone).replace(tzinfo=None) != probe:
+        probe += dt.timedelta(minutes=1)
+        local = probe.replace(tzinfo=zone, fold=0)
     return int(local.timestamp() * 1_000_000) * 1000
 
 
@@ -118,7 +120,9 @@ def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
         occ, _ = overlap_hours(seg, start_ns, end_ns)
         return np.column_stack([occ, length_h - occ]), ["baseload_occupied_kw", "baseload_unoccupied_kw"]
     local = start_utc.dt.convert_time_zone(tz)
-    how = ((local.dt.weekday() - 1) * 24 + local.dt.hour()).to_numpy().astype(np.int64)
+    # weekday() and hour() are Int8: widen before the arithmetic, or Sat 08:00 (128) wraps.
+    how = ((local.dt.weekday().cast(pl.Int64) - 1) * 24
+           + local.dt.hour().cast(pl.Int64)).to_numpy()
     cols = np.zeros((len(length_h), 168))
     cols[np.arange(len(length_h)), how] = length_h
     names = [f"baseload_how{h:03d}_kw" for h in range(168)]

@@ -16,6 +16,8 @@ import polars as pl
 
 from disagg.align import Aligned, baseload_columns
 from disagg.config import BaseloadSettings, SiteConfig
+from scipy.special import chdtri
+
 from disagg.model import Fit, collinearity, fit_model, fit_quality, jackknife_cov, quantile
 
 # Two equipment hour series correlated at or above this cannot be told apart; the same
@@ -25,8 +27,8 @@ INSEPARABLE_R = 0.95
 INSEPARABLE_R2 = INSEPARABLE_R**2
 # An estimate whose posterior precision comes at least half from its prior is prior-driven.
 PRIOR_DRIVEN_WEIGHT = 0.5
-# An interval widened by at least this factor by the stability checks is unstable.
-UNSTABLE_WIDENING = 1.5
+# An interval that the stability checks widened by at least this factor is unstable.
+UNSTABLE_WIDENING = 1.25
 # "Weak" prior for equipment and baseload columns without one: mean 0, sd 10 x the peak
 # metered demand. It only keeps the solve well posed; prior_weight reports when it mattered.
 WEAK_SD_FACTOR = 10.0
@@ -249,12 +251,32 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     q_hac = quantile(confidence, df)
     q_jack = quantile(confidence, df_jack)
     half_hac = q_hac * se_hac
-    half_jack = np.nan_to_num(q_jack * se_jack, nan=0.0)
-    use_jack = half_jack > half_hac
-    half = np.maximum(half_hac, half_jack)
-    se_final = np.where(use_jack, half_jack / q_hac, se_hac)
+    # Widen to the jackknife only where it is significantly larger than the HAC standard
+    # error: (se_J / se_HAC)^2 against the chi-square(K-1)/(K-1) upper quantile.
+    ratio_bound = chdtri(df_jack, 1.0 - confidence) / df_jack
+    with np.errstate(invalid="ignore", divide="ignore"):
+        use_jack = np.nan_to_num(np.square(se_jack / se_hac), nan=0.0) > ratio_bound
+    half = np.where(use_jack, np.maximum(half_hac, q_jack * np.nan_to_num(se_jack)), half_hac)
+    se_final = half / q_hac
     low = coef - half
     high = coef + half
+    widened = use_jack.copy()
+    z_bound = quantile(confidence)
+
+    def widen_with(c: int, b_v: float, se_v: float, what: str) -> None:
+        """Take the variant's interval into the hull when it differs significantly
+        (Hausman 1978: var(b_v - b) = se_v^2 - se^2 for nested fits; floored at
+        (se_v / 4)^2, common practice, no source)."""
+        var_d = max(se_v**2 - se_hac[c] ** 2, (0.25 * se_v) ** 2)
+        if abs(b_v - coef[c]) > z_bound * np.sqrt(var_d):
+            low[c] = min(low[c], b_v - q_hac * se_v)
+            high[c] = max(high[c], b_v + q_hac * se_v)
+            widened[c] = True
+            t = fitted_terms[c]
+            warnings.append(f"{t.id}: {coef[c]:.3g} kW with the declared {site.baseload.profile} "
+                            f"baseload but {b_v:.3g} kW with {what}; the interval spans both "
+                            "(check the declared baseload schedule)")
+
     variants: dict[str, dict] = {}
     for profile in MORE_FLEXIBLE[site.baseload.profile]:
         if profile == "occupied" and not site.baseload.spells:
@@ -263,18 +285,52 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         Xv = np.column_stack([Hf, Bv])
         mv, sv = priors(Bv.shape[1])
         fv = fit_model(Xv, y, mv, sv, np.zeros(Xv.shape[1]), block=days)
-        dv = collinearity(Hf, Bv) if k else None
         entry = {}
         for t in fitted_terms:
             c = t.column
-            separable = dv is not None and dv["r2_base"][c] < INSEPARABLE_R2
+            # Near-collinearity with the variant's baseload shows in its standard error;
+            # only an estimate its (weak) prior decided says nothing about the draw.
+            separable = fv.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
             entry[t.id] = {"kw": float(fv.coef[c]), "se_kw": float(fv.se[c]),
+                           "prior_weight": float(fv.prior_weight[c]),
                            "separable": bool(separable)}
             if separable:
-                qv = q_hac * fv.se[c]
-                low[c] = min(low[c], fv.coef[c] - qv)
-                high[c] = max(high[c], fv.coef[c] + qv)
+                widen_with(c, float(fv.coef[c]), float(fv.se[c]), profile)
         variants[profile] = entry
+    # By-day variant: the baseload's level may change from one local day to the next
+    # (closures, holidays, events) in ways no weekly profile knows. Profile out a separate
+    # baseload level for each day (occupied and unoccupied separately when spells are
+    # declared) by Frisch-Waugh-Lovell projection, and refit the draws on what is left.
+    if k and n_days >= 7:
+        if site.baseload.profile == "occupied":
+            C = B  # occupied and unoccupied hours, one level each per day
+            rest = np.zeros((n, 0))
+        else:
+            C = interval_h[:, None]
+            rest = B if site.baseload.profile == "hour-of-week" else np.zeros((n, 0))
+        Xd = _project_out_days(np.column_stack([Hf, rest, y]), C, days)
+        yd = Xd[:, -1]
+        Xd = Xd[:, :-1]
+        md, sdd = priors(rest.shape[1])
+        fd = fit_model(Xd, yd, md, sdd, np.concatenate([np.zeros(k), np.full(rest.shape[1], -np.inf)]),
+                       block=days)
+        entry = {}
+        for t in fitted_terms:
+            c = t.column
+            tss = float(np.sum((Hf[:, c] - Hf[:, c].mean()) ** 2))
+            r2_day = 1.0 - float(np.sum(Xd[:, c] ** 2)) / tss if tss > 0 else 1.0
+            separable = fd.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
+            entry[t.id] = {"kw": float(fd.coef[c]), "se_kw": float(fd.se[c]),
+                           "prior_weight": float(fd.prior_weight[c]),
+                           "separable": bool(separable), "r2_with_daily_baseload": r2_day}
+            if separable:
+                widen_with(c, float(fd.coef[c]), float(fd.se[c]), "daily baseload levels")
+            else:
+                t.flags.append("schedule-bound")
+                warnings.append(f"{t.id} runs on the same days and hours as the baseload "
+                                "schedule: its draw holds only if the baseload follows its "
+                                "declared schedule on every day")
+        variants[f"{site.baseload.profile}-by-day"] = entry
     low = np.maximum(low, 0.0)
     width_hac = (coef + half_hac) - np.maximum(coef - half_hac, 0.0)
 
@@ -301,7 +357,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
             if t.prior_kw is None:
                 warnings.append(f"{t.id}: the data cannot determine its draw and it has no "
                                 "prior; its kW is not meaningful")
-        if width_hac[c] > 0 and (high[c] - low[c]) >= UNSTABLE_WIDENING * width_hac[c]:
+        if widened[c] and width_hac[c] > 0 and (high[c] - low[c]) >= UNSTABLE_WIDENING * width_hac[c]:
             t.flags.append("unstable")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
@@ -345,6 +401,22 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         se_hac_kw=se_h, se_jackknife_kw=se_j, base_kw=coef[base_slice], cov_base=cov_base,
         critical=q_hac, confidence=confidence, fit=fit, quality=quality, identifiability=ident,
         variants=variants, warnings=warnings)
+
+
+def _project_out_days(V: np.ndarray, C: np.ndarray, days: np.ndarray) -> np.ndarray:
+    """Residuals of V's columns after least squares on C's columns separately within each day.
+
+    Args:
+        V: (n, q) columns to residualize; C: (n, c) per-day nuisance columns; days: (n,)
+        non-decreasing day labels.
+    """
+    out = np.empty_like(V)
+    edges = np.flatnonzero(np.diff(days)) + 1
+    for rows in np.split(np.arange(len(days)), edges):
+        c = C[rows]
+        coef = np.linalg.lstsq(c, V[rows], rcond=None)[0]
+        out[rows] = V[rows] - c @ coef
+    return out
 
 
 def _partner(ids: list[str], active: list[int], corr: np.ndarray, j: int) -> dict:

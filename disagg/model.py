@@ -181,7 +181,7 @@ def fit_model(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray, prior_sd: np
     sigma2 = float(np.sum(u**2) / max(n - edf, 1.0))
     xtx = X.T @ X
     A = xtx + np.diag(pen)
-    A_inv = linalg.pinvh(A)
+    A_inv = _pinv_scaled(A)
     scores = X * u[:, None]
     if block is not None:
         scores = block_sums(scores, block)
@@ -195,10 +195,20 @@ def fit_model(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray, prior_sd: np
     return Fit(b, cov, u, sigma2, prior_weight, edf, L, g, pen)
 
 
+def _pinv_scaled(A: np.ndarray) -> np.ndarray:
+    """Pseudo-inverse of a symmetric positive semi-definite matrix, computed on D A D with
+    D = diag(A)^-1/2 so that the rank cut-off does not depend on the columns' units: a plain
+    ``pinvh`` of Longley's X'X (condition 2e19) drops a direction that is only badly scaled.
+    A zero column stays a zero row and column."""
+    d = np.diag(A)
+    s = np.where(d > 0, 1.0 / np.sqrt(np.where(d > 0, d, 1.0)), 1.0)
+    return s[:, None] * linalg.pinvh(s[:, None] * A * s[None, :]) * s[None, :]
+
+
 def _edf(X: np.ndarray, pen: np.ndarray) -> float:
     """Effective number of parameters trace((X'X + P)^-1 X'X)."""
     xtx = X.T @ X
-    return float(np.trace(linalg.pinvh(xtx + np.diag(pen)) @ xtx))
+    return float(np.trace(_pinv_scaled(xtx + np.diag(pen)) @ xtx))
 
 
 def quantile(confidence: float, df: float | None = None) -> float:

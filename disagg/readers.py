@@ -60,8 +60,8 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
 
     Text with a UTC offset (``2025-03-09T03:15:00-05:00``) is converted directly. Naive text
     is local time in ``tz``. A time in the hour that occurs twice when clocks go back is the
-    first occurrence until the times step backwards inside that hour (in file order, within
-    each ``by`` group such as an equipment id), and the second occurrence after that. A time
+    first occurrence until the times step backwards or repeat inside that hour (in file order,
+    within each ``by`` group such as an equipment id), and the second occurrence after that. A time
     that does not exist (clocks skip it) is an error.
 
     Raises:
@@ -102,7 +102,9 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
     df = pl.DataFrame({"t": naive, "e": early, "l": late,
                        "g": by if by is not None else pl.repeat("", len(naive), eager=True)})
     amb = pl.col("e") != pl.col("l")
-    df = df.with_columns(back=(amb & (pl.col("t") < pl.col("t").shift(1).over("g"))).fill_null(False))
+    # A repeat of the previous time also starts the second pass: hourly exports show the
+    # repeated hour as the same clock time twice (01:00 CDT, then 01:00 CST).
+    df = df.with_columns(back=(amb & (pl.col("t") <= pl.col("t").shift(1).over("g"))).fill_null(False))
     second = amb & (pl.col("back").cum_sum().over("g", pl.col("t").dt.date()) >= 1)
     local = df.select(pl.when(second).then(pl.col("l")).otherwise(pl.col("e"))).to_series()
     return local.dt.convert_time_zone("UTC")

@@ -1,0 +1,609 @@
+"""Tests for disagg.readers: meter and run-log files -> UTC frames and state segments.
+
+Every file here is small and invented, written into tmp_path next to a site TOML that is
+read with disagg.config.load_site, so paths in messages are the resolved paths the user sees.
+Error messages are checked in full: they start with the file path, then the CSV line (the
+header is line 1) or the Parquet row, the column, the bad value and what was expected.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+from pathlib import Path
+
+import polars as pl
+import pytest
+
+from disagg.config import load_site
+from disagg.errors import InputError
+from disagg.readers import read_meter, read_runlog
+
+UTC = dt.timezone.utc
+NS_PER_MIN = 60_000_000_000
+
+EQUIPMENT_TOML = """
+[[equipment]]
+id = "CH-1"
+
+[[equipment]]
+id = "AHU-1"
+control = "variable"
+exponent = 2.0
+
+[[equipment]]
+id = "P-1"
+"""
+
+
+def _write_site(tmp_path: Path, *, meter_file: str = "meter.csv", meter_extra: str = "",
+                runlog_file: str = "log.csv", runlog: str | None = None,
+                timezone: str = "America/Chicago", unit: str = "kWh") -> Path:
+    """Write site.toml into tmp_path; meter columns `time` and `kwh`."""
+    if runlog is None:
+        runlog = ('layout = "events"\ntime_column = "time"\nequipment_column = "point"\n'
+                  'state_column = "state"')
+    text = f"""
+[site]
+name = "Reader test site"
+timezone = "{timezone}"
+
+[meter]
+file = "{meter_file}"
+time_column = "time"
+value_column = "kwh"
+unit = "{unit}"
+{meter_extra}
+
+[runlog]
+file = "{runlog_file}"
+{runlog}
+{EQUIPMENT_TOML}"""
+    path = tmp_path / "site.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def _csv(path: Path, header: str, rows: list[str]) -> None:
+    path.write_text(header + "\n" + "\n".join(rows) + "\n", encoding="utf-8")
+
+
+def _meter(tmp_path: Path, rows: list[str], header: str = "time,kwh", **site_kw):
+    """Write meter.csv and the site file; return (settings of the site, meter file path)."""
+    _csv(tmp_path / site_kw.get("meter_file", "meter.csv"), header, rows)
+    site = load_site(_write_site(tmp_path, **site_kw))
+    return site, site.meter.file
+
+
+def _utc(*args) -> dt.datetime:
+    return dt.datetime(*args, tzinfo=UTC)
+
+
+def _message(exc_info) -> str:
+    return str(exc_info.value)
+
+
+# ---------------------------------------------------------------------------------------
+# Meter: times
+
+
+def test_meter_times_with_utc_offsets_across_the_spring_change(tmp_path):
+    # Chicago springs forward at 2025-03-09 02:00 CST (-06:00) -> 03:00 CDT (-05:00);
+    # with offsets in the file the readings are contiguous in UTC.
+    site, _ = _meter(tmp_path, [
+        "2025-03-09T01:45:00-06:00,1.0",
+        "2025-03-09T03:00:00-05:00,2.0",
+        "2025-03-09T03:15:00-05:00,3.0",
+        "2025-03-09T03:30:00-05:00,4.0",
+    ])
+    m = read_meter(site.meter, site.timezone)
+    assert m.interval_min == 15
+    assert m.frame["end_utc"].to_list() == [_utc(2025, 3, 9, 7, 45), _utc(2025, 3, 9, 8, 0),
+                                            _utc(2025, 3, 9, 8, 15), _utc(2025, 3, 9, 8, 30)]
+    assert m.frame["start_utc"].to_list() == [_utc(2025, 3, 9, 7, 30), _utc(2025, 3, 9, 7, 45),
+                                              _utc(2025, 3, 9, 8, 0), _utc(2025, 3, 9, 8, 15)]
+    assert m.frame["energy_kwh"].to_list() == [1.0, 2.0, 3.0, 4.0]
+    assert m.rows_read == 4
+    assert m.duplicates_dropped == 0
+
+
+def test_meter_naive_times_fall_back_hour_resolved_by_order(tmp_path):
+    # 2025-11-02 in Chicago: 01:00-01:59 happens twice, first CDT (-05:00) then CST (-06:00).
+    local = ["00:45", "01:00", "01:15", "01:30", "01:45",  # first pass, CDT
+             "01:00", "01:15", "01:30", "01:45",           # second pass, CST
+             "02:00"]
+    site, _ = _meter(tmp_path, [f"2025-11-02 {t}:00,{i + 1}" for i, t in enumerate(local)])
+    m = read_meter(site.meter, site.timezone)
+    # Stamp "end" (the default): 00:45 CDT = 05:45 UTC, then 15-minute steps to 02:00 CST
+    # = 08:00 UTC without a gap or a repeat.
+    expected_end = [_utc(2025, 11, 2, 5, 45) + dt.timedelta(minutes=15 * i) for i in range(10)]
+    assert m.frame["end_utc"].to_list() == expected_end
+    assert m.frame["energy_kwh"].to_list() == [float(i + 1) for i in range(10)]
+    assert m.duplicates_dropped == 0
+
+
+def test_meter_naive_hourly_times_fall_back_hour_written_twice(tmp_path):
+    # An hourly export shows the repeated hour as the same clock time twice: 01:00 CDT
+    # (06:00 UTC) then 01:00 CST (07:00 UTC). Different readings are not a conflict.
+    site, _ = _meter(tmp_path, ["2025-11-02 00:00:00,1", "2025-11-02 01:00:00,2",
+                                "2025-11-02 01:00:00,3", "2025-11-02 02:00:00,4"])
+    m = read_meter(site.meter, site.timezone)
+    assert m.interval_min == 60
+    assert m.frame["end_utc"].to_list() == [_utc(2025, 11, 2, 5), _utc(2025, 11, 2, 6),
+                                            _utc(2025, 11, 2, 7), _utc(2025, 11, 2, 8)]
+    assert m.frame["energy_kwh"].to_list() == [1.0, 2.0, 3.0, 4.0]
+
+
+def test_meter_naive_skipped_spring_forward_time_is_an_error_naming_the_row(tmp_path):
+    site, path = _meter(tmp_path, [
+        "2025-03-09 01:30:00,1.0",
+        "2025-03-09 01:45:00,1.0",
+        "2025-03-09 02:30:00,1.0",  # clocks jump from 02:00 to 03:00: this time never happens
+        "2025-03-09 03:15:00,1.0",
+    ])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: line 4, column 'time': local time 2025-03-09 02:30:00 does not exist in "
+        "America/Chicago (clocks skip it); remove the row or export times with a UTC offset")
+
+
+def test_meter_naive_times_across_the_spring_change_without_the_skipped_hour(tmp_path):
+    site, _ = _meter(tmp_path, ["2025-03-09 01:45:00,1.0", "2025-03-09 03:00:00,1.0",
+                                "2025-03-09 03:15:00,1.0"])
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["end_utc"].to_list() == [_utc(2025, 3, 9, 7, 45), _utc(2025, 3, 9, 8, 0),
+                                            _utc(2025, 3, 9, 8, 15)]
+
+
+def test_meter_unparseable_time_names_the_line_and_the_first_rows_form(tmp_path):
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,1.0",
+                                   "6 Jan 2025 00:45,1.0"])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: line 4, column 'time': cannot read time '6 Jan 2025 00:45'; expected the "
+        "same form as the first row ('2025-01-06 00:15:00')")
+
+
+@pytest.mark.parametrize("stamp, first_start, first_end", [
+    ("end", _utc(2025, 1, 6, 6, 0), _utc(2025, 1, 6, 6, 15)),
+    ("start", _utc(2025, 1, 6, 6, 15), _utc(2025, 1, 6, 6, 30)),
+])
+def test_meter_stamp_marks_the_end_or_the_start_of_the_interval(tmp_path, stamp, first_start,
+                                                                 first_end):
+    # 00:15 local in January is 06:15 UTC (CST, -06:00).
+    site, _ = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,2.0",
+                                "2025-01-06 00:45:00,3.0"],
+                     meter_extra=f'stamp = "{stamp}"')
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["start_utc"][0] == first_start
+    assert m.frame["end_utc"][0] == first_end
+    gaps = (m.frame["end_utc"] - m.frame["start_utc"]).dt.total_minutes().to_list()
+    assert gaps == [15, 15, 15]
+
+
+# ---------------------------------------------------------------------------------------
+# Meter: units, interval, values
+
+
+@pytest.mark.parametrize("unit, reading, expected_kwh", [
+    ("kWh", 2.5, 2.5),
+    ("Wh", 2500.0, 2.5),
+    ("kW", 10.0, 2.5),  # mean demand 10 kW over a 15-minute interval = 10 x 0.25 h
+])
+def test_meter_units_become_kwh(tmp_path, unit, reading, expected_kwh):
+    site, _ = _meter(tmp_path, [f"2025-01-06 00:{mm}:00,{reading}" for mm in ("15", "30", "45")],
+                     unit=unit)
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["energy_kwh"].to_list() == pytest.approx([expected_kwh] * 3, rel=1e-12)
+
+
+def test_meter_kw_reading_uses_the_interval_length_in_hours(tmp_path):
+    # Hourly mean demand: 10 kW for 60 minutes is 10 kWh.
+    site, _ = _meter(tmp_path, [f"2025-01-06 {hh:02d}:00:00,10" for hh in range(1, 5)], unit="kW")
+    m = read_meter(site.meter, site.timezone)
+    assert m.interval_min == 60
+    assert m.frame["energy_kwh"].to_list() == pytest.approx([10.0] * 4, rel=1e-12)
+
+
+def test_meter_interval_inferred_as_the_most_common_spacing(tmp_path):
+    # 15-minute data with one missing reading (a 30-minute gap) is still 15-minute data.
+    times = ["00:15", "00:30", "00:45", "01:15", "01:30", "01:45"]
+    site, _ = _meter(tmp_path, [f"2025-01-06 {t}:00,1.0" for t in times])
+    m = read_meter(site.meter, site.timezone)
+    assert m.interval_min == 15
+    assert m.frame.height == 6
+
+
+def test_meter_interval_not_allowed_is_an_error(tmp_path):
+    rows = [(dt.datetime(2025, 1, 6) + dt.timedelta(minutes=7 * i)).isoformat() + ",1.0"
+            for i in range(1, 6)]
+    site, path = _meter(tmp_path, rows)
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (f"{path}: the meter interval is 7 minutes; expected one of "
+                             "1, 5, 10, 15, 30, 60 minutes")
+
+
+def test_meter_interval_from_the_site_file_wins_over_the_data(tmp_path):
+    # Two readings an hour apart with interval_minutes = 15: the intervals are 15 minutes long.
+    site, _ = _meter(tmp_path, ["2025-01-06 01:00:00,1.0", "2025-01-06 02:00:00,1.0"],
+                     meter_extra="interval_minutes = 15")
+    m = read_meter(site.meter, site.timezone)
+    assert m.interval_min == 15
+    assert m.frame["start_utc"].to_list() == [_utc(2025, 1, 6, 6, 45), _utc(2025, 1, 6, 7, 45)]
+
+
+def test_meter_identical_duplicate_rows_are_dropped_and_counted(tmp_path):
+    site, _ = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,2.0",
+                                "2025-01-06 00:30:00,2.0", "2025-01-06 00:45:00,3.0",
+                                "2025-01-06 00:15:00,1.0"])
+    m = read_meter(site.meter, site.timezone)
+    assert m.rows_read == 5
+    assert m.duplicates_dropped == 2
+    assert m.frame["energy_kwh"].to_list() == [1.0, 2.0, 3.0]
+    assert m.notes == ["2 repeated meter rows with identical readings were dropped"]
+
+
+def test_meter_conflicting_duplicates_are_an_error_naming_both_lines(tmp_path):
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,2.0",
+                                   "2025-01-06 00:45:00,3.0", "2025-01-06 00:30:00,2.5"])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    # 00:30 CST = 06:30 UTC; the message gives the time in UTC.
+    assert _message(exc) == (
+        f"{path}: line 5, column 'time': time 2025-01-06 06:30:00+00:00 repeats line 3 with a "
+        "different reading; expected one reading per interval")
+
+
+def test_meter_negative_reading_is_an_error(tmp_path):
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,-0.5",
+                                   "2025-01-06 00:45:00,-2"])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (f"{path}: line 3, column 'kwh': negative reading -0.5; expected "
+                             "energy of 0 or more")
+
+
+def test_meter_non_numeric_reading_is_an_error(tmp_path):
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,1,5",
+                                   "2025-01-06 00:45:00,n/a"], header="time,kwh,note")
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (f"{path}: line 4, column 'kwh': 'n/a' is not a number; expected "
+                             "energy in kWh")
+
+
+def test_meter_empty_reading_is_no_reading_not_an_error(tmp_path):
+    site, _ = _meter(tmp_path, ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,",
+                                "2025-01-06 00:45:00,3.0"])
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["energy_kwh"].to_list() == [1.0, None, 3.0]
+
+
+def test_meter_missing_column_lists_the_files_columns(tmp_path):
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"], header="time,energy")
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == f"{path}: column 'kwh' not found; the file has 'time', 'energy'"
+
+
+def test_meter_missing_file_names_the_path(tmp_path):
+    site = load_site(_write_site(tmp_path, meter_file="nowhere.csv"))
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (f"{tmp_path.resolve() / 'nowhere.csv'}: no such meter file; "
+                             "check the path in the site file")
+
+
+def test_meter_parquet_with_a_naive_datetime_column(tmp_path):
+    # Naive datetimes are local site time, as in a CSV; the fall-back hour is taken by order.
+    local = [dt.datetime(2025, 11, 2, 0, 45), dt.datetime(2025, 11, 2, 1, 0),
+             dt.datetime(2025, 11, 2, 1, 15), dt.datetime(2025, 11, 2, 1, 0),
+             dt.datetime(2025, 11, 2, 1, 15)]
+    # 1:00 first pass to 1:15 second pass is not 15-minute spacing in the file, so say it.
+    pl.DataFrame({"time": local, "kwh": [1.0, 2.0, 3.0, 4.0, 5.0]}).write_parquet(
+        tmp_path / "meter.parquet")
+    site = load_site(_write_site(tmp_path, meter_file="meter.parquet",
+                                 meter_extra="interval_minutes = 15"))
+    m = read_meter(site.meter, site.timezone)
+    # 00:45 CDT = 05:45 UTC; 01:00, 01:15 CDT = 06:00, 06:15; 01:00, 01:15 CST = 07:00, 07:15.
+    assert m.frame["end_utc"].to_list() == [_utc(2025, 11, 2, 5, 45), _utc(2025, 11, 2, 6, 0),
+                                            _utc(2025, 11, 2, 6, 15), _utc(2025, 11, 2, 7, 0),
+                                            _utc(2025, 11, 2, 7, 15)]
+    assert m.frame["energy_kwh"].to_list() == [1.0, 2.0, 3.0, 4.0, 5.0]
+
+
+def test_meter_parquet_with_a_utc_datetime_column_and_row_numbers_in_messages(tmp_path):
+    ends = [_utc(2025, 1, 6, 6, 15) + dt.timedelta(minutes=15 * i) for i in range(4)]
+    pl.DataFrame({"time": ends, "kwh": [1.0, 2.0, -3.0, 4.0]},
+                 schema={"time": pl.Datetime("ms", "UTC"), "kwh": pl.Float64}).write_parquet(
+        tmp_path / "meter.parquet")
+    site = load_site(_write_site(tmp_path, meter_file="meter.parquet"))
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (f"{site.meter.file}: row 3, column 'kwh': negative reading -3; "
+                             "expected energy of 0 or more")
+    pl.DataFrame({"time": ends, "kwh": [1.0, 2.0, 3.0, 4.0]},
+                 schema={"time": pl.Datetime("ms", "UTC"), "kwh": pl.Float64}).write_parquet(
+        tmp_path / "meter.parquet")
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["end_utc"].to_list() == ends
+    assert m.frame["start_utc"][0] == _utc(2025, 1, 6, 6, 0)
+
+
+def test_meter_unknown_extension_is_an_error(tmp_path):
+    (tmp_path / "meter.xlsx").write_text("not a table", encoding="utf-8")
+    site = load_site(_write_site(tmp_path, meter_file="meter.xlsx"))
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (f"{site.meter.file}: unknown file type '.xlsx'; expected .csv or "
+                             ".parquet")
+
+
+# ---------------------------------------------------------------------------------------
+# Run log: events
+
+
+def _runlog(tmp_path: Path, header: str, rows: list[str], runlog: str | None = None,
+            runlog_file: str = "log.csv"):
+    """Write a run log and a site file (with a one-row meter); return (site, log path)."""
+    _csv(tmp_path / "meter.csv", "time,kwh", ["2025-01-06 00:15:00,1.0"])
+    _csv(tmp_path / runlog_file, header, rows)
+    site = load_site(_write_site(tmp_path, runlog=runlog, runlog_file=runlog_file))
+    return site, site.runlog.file
+
+
+def _segments(log, eq: str) -> list[tuple[dt.datetime, dt.datetime, float]]:
+    seg = log.segments[eq]
+    to_dt = lambda ns: dt.datetime.fromtimestamp(int(ns) // 1_000_000_000, UTC)  # noqa: E731
+    return [(to_dt(a), to_dt(b), float(v)) for a, b, v in zip(seg.start_ns, seg.end_ns, seg.value)]
+
+
+def test_events_state_words_numbers_and_fractions(tmp_path):
+    # Local times in January are UTC-6. Each state holds until the next event of the same
+    # equipment; the last state holds until the log's last time (02:00 local = 08:00 UTC).
+    site, _ = _runlog(tmp_path, "time,point,state", [
+        "2025-01-06 00:00:00,CH-1,on",
+        "2025-01-06 00:00:00,AHU-1,0.5",
+        "2025-01-06 00:00:00,P-1,TRUE",
+        "2025-01-06 00:30:00,CH-1,Off",
+        "2025-01-06 00:45:00,AHU-1,1",
+        "2025-01-06 01:00:00,P-1,false",
+        "2025-01-06 01:00:00,CH-1,1",
+        "2025-01-06 01:10:00,AHU-1,0",
+        "2025-01-06 01:20:00,AHU-1,0.25",
+        "2025-01-06 02:00:00,CH-1,0",
+    ])
+    log = read_runlog(site.runlog, site)
+    assert log.rows_read == 10
+    assert log.notes == []
+    t = lambda h, m: _utc(2025, 1, 6, h, m)  # noqa: E731
+    assert _segments(log, "CH-1") == [(t(6, 0), t(6, 30), 1.0), (t(6, 30), t(7, 0), 0.0),
+                                      (t(7, 0), t(8, 0), 1.0)]
+    assert _segments(log, "AHU-1") == [(t(6, 0), t(6, 45), 0.5), (t(6, 45), t(7, 10), 1.0),
+                                       (t(7, 10), t(7, 20), 0.0), (t(7, 20), t(8, 0), 0.25)]
+    assert _segments(log, "P-1") == [(t(6, 0), t(7, 0), 1.0), (t(7, 0), t(8, 0), 0.0)]
+
+
+def test_events_equipment_without_events_is_unknown_and_noted(tmp_path):
+    site, _ = _runlog(tmp_path, "time,point,state", ["2025-01-06 00:00:00,CH-1,on",
+                                                     "2025-01-06 01:00:00,CH-1,off"])
+    log = read_runlog(site.runlog, site)
+    assert len(log.segments["AHU-1"].start_ns) == 0
+    assert len(log.segments["P-1"].start_ns) == 0
+    assert log.notes == ["no run-log events for AHU-1, P-1: left out as unknown"]
+
+
+@pytest.mark.parametrize("state", ["maybe", "1.5", "-0.1", "yes"])
+def test_events_state_that_is_not_a_state_is_an_error(tmp_path, state):
+    site, path = _runlog(tmp_path, "time,point,state", [
+        "2025-01-06 00:00:00,CH-1,on", f"2025-01-06 00:15:00,P-1,{state}"])
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 3, column 'state': state {state!r}; expected "
+                             "on/off, 1/0, true/false or a number from 0 to 1")
+
+
+def test_events_unknown_equipment_id_names_the_id_and_the_configured_ids(tmp_path):
+    site, path = _runlog(tmp_path, "time,point,state", [
+        "2025-01-06 00:00:00,CH-1,on", "2025-01-06 00:05:00,CH-2,on"])
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 3, column 'point': unknown equipment id 'CH-2'; "
+                             "expected one of the site file's ids (CH-1, AHU-1, P-1)")
+
+
+def test_events_two_states_for_one_equipment_at_one_time_is_an_error(tmp_path):
+    site, path = _runlog(tmp_path, "time,point,state", [
+        "2025-01-06 00:00:00,P-1,on",
+        "2025-01-06 00:10:00,CH-1,on",
+        "2025-01-06 00:10:00,P-1,off",
+        "2025-01-06 00:10:00,CH-1,off",
+    ])
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 3: equipment 'CH-1' has different states at the "
+                             "same time 2025-01-06 06:10:00+00:00; expected one state")
+
+
+def test_events_same_state_twice_at_one_time_is_one_event(tmp_path):
+    site, _ = _runlog(tmp_path, "time,point,state", [
+        "2025-01-06 00:00:00,CH-1,on", "2025-01-06 00:00:00,CH-1,1",
+        "2025-01-06 00:20:00,CH-1,off"])
+    log = read_runlog(site.runlog, site)
+    assert _segments(log, "CH-1") == [(_utc(2025, 1, 6, 6, 0), _utc(2025, 1, 6, 6, 20), 1.0)]
+
+
+def test_events_missing_column_lists_the_files_columns(tmp_path):
+    site, path = _runlog(tmp_path, "time,point,value", ["2025-01-06 00:00:00,CH-1,on"])
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == f"{path}: column 'state' not found; the file has 'time', 'point', 'value'"
+
+
+def test_events_fall_back_hour_resolved_by_order_per_equipment(tmp_path):
+    # Interleaved equipment: each one's times step back into the repeated hour on its own.
+    site, _ = _runlog(tmp_path, "time,point,state", [
+        "2025-11-02 01:10:00,CH-1,on",    # CDT -> 06:10 UTC
+        "2025-11-02 01:40:00,P-1,on",     # CDT -> 06:40 UTC
+        "2025-11-02 01:20:00,CH-1,off",   # CDT -> 06:20 UTC (later than CH-1's last: first pass)
+        "2025-11-02 01:05:00,P-1,off",    # steps back: CST -> 07:05 UTC
+        "2025-11-02 01:05:00,CH-1,on",    # steps back: CST -> 07:05 UTC
+        "2025-11-02 01:30:00,CH-1,off",   # second pass continues: CST -> 07:30 UTC
+    ])
+    log = read_runlog(site.runlog, site)
+    t = lambda h, m: _utc(2025, 11, 2, h, m)  # noqa: E731
+    assert _segments(log, "CH-1") == [(t(6, 10), t(6, 20), 1.0), (t(6, 20), t(7, 5), 0.0),
+                                      (t(7, 5), t(7, 30), 1.0)]
+    assert _segments(log, "P-1") == [(t(6, 40), t(7, 5), 1.0), (t(7, 5), t(7, 30), 0.0)]
+
+
+def test_events_parquet_with_boolean_states(tmp_path):
+    _csv(tmp_path / "meter.csv", "time,kwh", ["2025-01-06 00:15:00,1.0"])
+    pl.DataFrame({
+        "time": [dt.datetime(2025, 1, 6, 0, 0), dt.datetime(2025, 1, 6, 0, 30)],
+        "point": ["P-1", "P-1"],
+        "state": [True, False],
+    }).write_parquet(tmp_path / "log.parquet")
+    site = load_site(_write_site(tmp_path, runlog_file="log.parquet"))
+    log = read_runlog(site.runlog, site)
+    # The last event (off at 00:30) is the log's last time: it closes the on segment only.
+    assert _segments(log, "P-1") == [(_utc(2025, 1, 6, 6, 0), _utc(2025, 1, 6, 6, 30), 1.0)]
+
+
+# ---------------------------------------------------------------------------------------
+# Run log: samples
+
+SAMPLES = 'layout = "samples"\ntime_column = "time"\nmax_hold_minutes = 20'
+
+
+def test_samples_hold_until_the_next_sample_but_no_longer_than_max_hold(tmp_path):
+    # Samples every 10 minutes, then a 40-minute silence: the 00:20 sample holds 20 minutes
+    # (max_hold_minutes) and 00:40-01:00 is unknown, not off. An empty cell is unknown.
+    site, _ = _runlog(tmp_path, "time,CH-1,AHU-1,P-1", [
+        "2025-01-06 00:00:00,on,0.5,1",
+        "2025-01-06 00:10:00,off,,1",
+        "2025-01-06 00:20:00,on,0.75,0",
+        "2025-01-06 01:00:00,off,1,0",
+    ], runlog=SAMPLES)
+    log = read_runlog(site.runlog, site)
+    t = lambda h, m: _utc(2025, 1, 6, h, m)  # noqa: E731
+    ch = _segments(log, "CH-1")
+    assert ch[:3] == [(t(6, 0), t(6, 10), 1.0), (t(6, 10), t(6, 20), 0.0),
+                      (t(6, 20), t(6, 40), 1.0)]
+    assert ch[3][:1] == (t(7, 0),) and ch[3][2] == 0.0
+    ahu = _segments(log, "AHU-1")
+    # 00:10 is empty: the 00:00 sample holds only until that (unknown) sample.
+    assert ahu[:2] == [(t(6, 0), t(6, 10), 0.5), (t(6, 20), t(6, 40), 0.75)]
+    assert ahu[2][0] == t(7, 0) and ahu[2][2] == 1.0
+    covered_to_6_40 = [s for s in _segments(log, "P-1") if s[0] < t(6, 40)]
+    assert covered_to_6_40 == [(t(6, 0), t(6, 10), 1.0), (t(6, 10), t(6, 20), 1.0),
+                               (t(6, 20), t(6, 40), 0.0)]
+    assert log.notes == []
+
+
+def test_samples_column_that_is_not_an_equipment_id_is_an_error(tmp_path):
+    site, path = _runlog(tmp_path, "time,CH-1,CH-9", ["2025-01-06 00:00:00,on,off"],
+                         runlog=SAMPLES)
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: column 'CH-9' is not a configured equipment id; "
+                             "expected the time column and columns named CH-1, AHU-1, P-1")
+
+
+def test_samples_missing_equipment_column_is_unknown_and_noted(tmp_path):
+    site, _ = _runlog(tmp_path, "time,CH-1", ["2025-01-06 00:00:00,on",
+                                             "2025-01-06 00:10:00,off"], runlog=SAMPLES)
+    log = read_runlog(site.runlog, site)
+    assert log.notes == ["no run-log column for AHU-1, P-1: left out as unknown"]
+    assert len(log.segments["P-1"].start_ns) == 0
+
+
+def test_samples_bad_state_names_the_line_and_column(tmp_path):
+    site, path = _runlog(tmp_path, "time,CH-1,P-1", ["2025-01-06 00:00:00,on,off",
+                                                    "2025-01-06 00:10:00,on,auto"],
+                         runlog=SAMPLES)
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 3, column 'P-1': state 'auto'; expected on/off, "
+                             "1/0, true/false or a number from 0 to 1")
+
+
+# ---------------------------------------------------------------------------------------
+# Run log: runtime
+
+RUNTIME = 'layout = "runtime"\ntime_column = "time"\nequipment_column = "point"\n' \
+          'minutes_column = "run_min"'
+
+
+def test_runtime_minutes_are_spread_evenly_over_the_interval(tmp_path):
+    # Stamp "start" (the default for run logs): 00:00 covers 00:00-00:15 local.
+    site, _ = _runlog(tmp_path, "time,point,run_min", [
+        "2025-01-06 00:00:00,CH-1,15",
+        "2025-01-06 00:15:00,CH-1,6",
+        "2025-01-06 00:30:00,CH-1,0",
+        "2025-01-06 00:00:00,P-1,7.5",
+    ], runlog=RUNTIME)
+    log = read_runlog(site.runlog, site)
+    t = lambda h, m: _utc(2025, 1, 6, h, m)  # noqa: E731
+    assert _segments(log, "CH-1") == [(t(6, 0), t(6, 15), 1.0), (t(6, 15), t(6, 30), 0.4),
+                                      (t(6, 30), t(6, 45), 0.0)]
+    assert _segments(log, "P-1") == [(t(6, 0), t(6, 15), 0.5)]
+
+
+def test_runtime_stamp_end_marks_the_end_of_the_log_interval(tmp_path):
+    site, _ = _runlog(tmp_path, "time,point,run_min", [
+        "2025-01-06 00:15:00,CH-1,3", "2025-01-06 00:30:00,CH-1,12"],
+        runlog=RUNTIME + '\nstamp = "end"')
+    log = read_runlog(site.runlog, site)
+    t = lambda h, m: _utc(2025, 1, 6, h, m)  # noqa: E731
+    assert _segments(log, "CH-1") == [(t(6, 0), t(6, 15), 0.2), (t(6, 15), t(6, 30), 0.8)]
+
+
+def test_runtime_minutes_above_the_interval_length_is_an_error(tmp_path):
+    site, path = _runlog(tmp_path, "time,point,run_min", [
+        "2025-01-06 00:00:00,CH-1,15",
+        "2025-01-06 00:15:00,CH-1,16",
+        "2025-01-06 00:30:00,CH-1,3",
+    ], runlog=RUNTIME)
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 3, column 'run_min': 16 run minutes; expected 0 to "
+                             "15 per interval")
+
+
+def test_runtime_negative_minutes_after_an_empty_cell_names_the_right_line(tmp_path):
+    site, path = _runlog(tmp_path, "time,point,run_min", [
+        "2025-01-06 00:00:00,CH-1,",
+        "2025-01-06 00:15:00,CH-1,5",
+        "2025-01-06 00:30:00,CH-1,-1",
+    ], runlog=RUNTIME)
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 4, column 'run_min': -1 run minutes; expected 0 to "
+                             "15 per interval")
+
+
+def test_runtime_unknown_equipment_id_is_an_error(tmp_path):
+    site, path = _runlog(tmp_path, "time,point,run_min", ["2025-01-06 00:00:00,FAN-7,5"],
+                         runlog=RUNTIME)
+    with pytest.raises(InputError) as exc:
+        read_runlog(site.runlog, site)
+    assert _message(exc) == (f"{path}: line 2, column 'point': unknown equipment id 'FAN-7'; "
+                             "expected one of the site file's ids (CH-1, AHU-1, P-1)")
+
+
+def test_messages_start_with_the_resolved_file_path(tmp_path):
+    # The site file names the meter relative to itself; the message names the real file.
+    sub = tmp_path / "data"
+    sub.mkdir()
+    _csv(sub / "m.csv", "time,kwh", ["2025-01-06 00:15:00,x"])
+    site = load_site(_write_site(tmp_path, meter_file="data/m.csv"))
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    msg = _message(exc)
+    assert msg.startswith(str((sub / "m.csv").resolve()) + ": line 2, column 'kwh': ")
+    assert re.search(r"'x' is not a number; expected energy in kWh$", msg)
+    assert "\n" not in msg  # one line
