@@ -261,6 +261,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     low = coef - half
     high = coef + half
     widened = use_jack.copy()
+    moved: dict[int, list[str]] = {}  # column -> how its estimate moved under the variants
     z_bound = quantile(confidence)
 
     def widen_with(c: int, b_v: float, se_v: float, what: str) -> None:
@@ -272,10 +273,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
             low[c] = min(low[c], b_v - q_hac * se_v)
             high[c] = max(high[c], b_v + q_hac * se_v)
             widened[c] = True
-            t = fitted_terms[c]
-            warnings.append(f"{t.id}: {coef[c]:.3g} kW with the declared {site.baseload.profile} "
-                            f"baseload but {b_v:.3g} kW with {what}; the interval spans both "
-                            "(check the declared baseload schedule)")
+            moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
 
     variants: dict[str, dict] = {}
     for profile in MORE_FLEXIBLE[site.baseload.profile]:
@@ -359,6 +357,13 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                                 "prior; its kW is not meaningful")
         if widened[c] and width_hac[c] > 0 and (high[c] - low[c]) >= UNSTABLE_WIDENING * width_hac[c]:
             t.flags.append("unstable")
+            why = [f"{coef[c]:.3g} kW with the declared {site.baseload.profile} baseload"]
+            why += moved.get(c, [])
+            if use_jack[c]:
+                why.append(f"leaving out single time blocks moves it by +-{se_jack[c]:.2g} kW (1 sd)")
+            warnings.append(f"{t.id} is unstable: {'; '.join(why)}. Its interval "
+                            f"{low[c]:.3g}-{high[c]:.3g} kW spans these; check the declared "
+                            "baseload schedule and whether its draw changes over the period")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
     base_slice = slice(k, X.shape[1])
