@@ -45,6 +45,10 @@ def _guard(fn):
         _fail(str(exc).replace("\n", " "))
     except typer.Exit:
         raise
+    except BrokenPipeError:
+        # The reader of our output went away (e.g. `| head`): not an error of ours.
+        sys.stderr.close()
+        raise typer.Exit(0) from None
     except Exception as exc:  # noqa: BLE001 - the last line of defence for users
         if _state["debug"]:
             raise
@@ -88,8 +92,9 @@ def breakdown(
 
     def run():
         result = breakdown_site(site, d0, d1, confidence)
+        summary = breakdown_summary(result)
         paths = write_breakdown(result, out)
-        typer.echo(breakdown_summary(result))
+        typer.echo(summary)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 
     _guard(run)
@@ -119,8 +124,9 @@ def demo(
         toml = write_demo_site(out / "demo_site")
         typer.echo(f"Demo site written to {toml.parent} (all data invented).")
         result = breakdown_site(toml, confidence=confidence)
+        summary = breakdown_summary(result)
         paths = write_breakdown(result, out)
-        typer.echo(breakdown_summary(result))
+        typer.echo(summary)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 
     _guard(run)

@@ -184,15 +184,19 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         if eq.id in folded:
             continue
         members = groups[uf.find(j)]
-        if len(members) > 1 and not any(has_prior[ids[i]] for i in members):
-            if j != members[0]:
+        # Members without an informative prior cannot be split by anything: one row for them.
+        # Members with a prior stay separate; the prior splits them, and they say so.
+        no_prior = [i for i in members if not has_prior[ids[i]]]
+        if len(no_prior) > 1 and j in no_prior:
+            if j != no_prior[0]:
                 continue  # the group's row is made at its first member
-            gid = "+".join(ids[i] for i in members)
-            terms.append(Term(gid, [ids[i] for i in members],
-                              " + ".join(eq_by_id[ids[i]].name for i in members),
-                              None, None, "none (no size or draw given)", ["combined"]))
-            columns.append(H_all[:, members].mean(axis=1))
-            warnings.append(f"{', '.join(ids[i] for i in members)} run together and have no "
+            gid = "+".join(ids[i] for i in no_prior)
+            flags = ["combined"] + [f"inseparable:{ids[i]}" for i in members if i not in no_prior]
+            terms.append(Term(gid, [ids[i] for i in no_prior],
+                              " + ".join(eq_by_id[ids[i]].name for i in no_prior),
+                              None, None, "none (no size or draw given)", flags))
+            columns.append(H_all[:, no_prior].mean(axis=1))
+            warnings.append(f"{', '.join(ids[i] for i in no_prior)} run together and have no "
                             f"prior that could split them: reported as one row {gid!r}")
             continue
         flags = [f"inseparable:{ids[i]}" for i in members if i != j]

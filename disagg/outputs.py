@@ -107,27 +107,40 @@ def breakdown_summary(result: BreakdownResult) -> str:
     """A short readable table of the whole range, the fit quality, warnings and the caution."""
     t = result.breakdown
     totals = (t.group_by("equipment", maintain_order=True)
-              .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(), pl.col("kwh_low").sum(),
-                   pl.col("kwh_high").sum(), pl.col("flags").first(),
-                   pl.col("kwh_low").null_count().alias("nolow")))
+              .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(),
+                   pl.col("flags")))
     metered = float(result.estimates.y.sum())
     draws = {d["equipment"]: d for d in result.fit["draws"]}
+    order = {e: i for i, e in enumerate(draws)}
+    last = len(order) + 1
+    totals = totals.with_columns(
+        pl.col("equipment").replace_strict(order, default=len(order), return_dtype=pl.Int64)
+        .alias("o")).with_columns(
+        pl.when(pl.col("equipment").str.starts_with("baseload")).then(last)
+        .when(pl.col("equipment") == "unexplained").then(last + 1)
+        .otherwise(pl.col("o")).alias("o")).sort("o", maintain_order=True)
     periods = t["period"].unique().sort()
+    own = any(m.get("own_fit") for m in result.fit.get("months", {}).values())
     lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
              f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
              "",
+             "kW: fitted over the whole range" + ("; kWh: each month's own fit, summed" if own
+                                                    else ""),
              f"{'equipment':<22} {'run h':>8} {'kW':>8} {'kW range':>17} {'kWh':>11} "
-             f"{'share':>6}  flags"]
+             f"{'share':>6}  flags (whole range; each month's in the CSV)"]
     for r in totals.iter_rows(named=True):
         d = draws.get(r["equipment"])
-        kw = _fmt(d["kw"]) if d else "-"
-        rng = (f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}" if d and d["kw_low"] is not None
-               else "-")
-        if not d:
+        if d:
+            kw = _fmt(d["kw"])
+            rng = f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}" if d["kw_low"] is not None else "-"
+        else:
             kw = _fmt(r["kwh"] / r["run_hours"] if r["run_hours"] else None)
+            rng = "-"
+        flags = ";".join(d["flags"]) if d else ";".join(dict.fromkeys(
+            f for cell in r["flags"] for f in (cell or "").split(";") if f))
         lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>8} {kw:>8} {rng:>17} "
                      f"{_fmt(r['kwh'], 0):>11} {100 * r['kwh'] / metered if metered else 0:>5.1f}%"
-                     f"  {r['flags'] or ''}")
+                     f"  {flags}")
     q = result.fit["fit_quality"]
     hq = q.get("hourly")
     if hq:
@@ -136,6 +149,11 @@ def breakdown_summary(result: BreakdownResult) -> str:
                       f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
                       "30 % / 10 %)"]
     lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
+    months = result.fit.get("months", {})
+    if months:
+        n_own = sum(1 for m in months.values() if m.get("own_fit"))
+        lines.append(f"{n_own} of {len(months)} months fitted on their own data; their draws, "
+                     "flags and notes are in fit.json (months).")
     for w in result.fit["warnings"]:
         lines.append(f"Note: {w}")
     lines += ["", f"Caution: {CAUTION}"]

@@ -6,6 +6,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import math
 from dataclasses import dataclass
@@ -77,18 +78,67 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
         est = estimate_draws(site, aligned, confidence)
     except ValueError as exc:
         raise InputError(f"{site.meter.file}: {exc}") from None
-    table = monthly_breakdown(est, site.timezone)
-    return BreakdownResult(site, table, fit_summary(site, aligned, est), est, aligned)
+    table, months = monthly_fits(site, aligned, est, confidence)
+    fit = fit_summary(site, aligned, est)
+    fit["months"] = months
+    return BreakdownResult(site, table, fit, est, aligned)
+
+
+# A month with fewer local days of usable intervals than this takes the whole range's draws
+# (flag `range-draw`) rather than a fit of its own (common practice, no source: a week covers
+# every day type once).
+MIN_MONTH_DAYS = 7
+
+
+def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
+                 confidence: float) -> tuple[pl.DataFrame, dict]:
+    """Breakdown rows with each month's own fit, so a month's kWh follows that month's draws.
+
+    A range of one month is the whole-range fit. A month with fewer than MIN_MONTH_DAYS days
+    of usable intervals, or too few to fit, takes the whole range's draws, flagged `range-draw`.
+
+    Returns:
+        (the breakdown table, per-month draws for fit.json).
+    """
+    tz = site.timezone
+    whole_table = monthly_breakdown(whole, tz)
+    local = aligned.frame["start_utc"].dt.convert_time_zone(tz)
+    month = local.dt.strftime("%Y-%m").to_numpy()
+    day = local.dt.date().to_numpy()
+    periods = sorted(set(month[aligned.use]))
+    if len(periods) <= 1:
+        return whole_table, {}
+    tables, months = [], {}
+    for period in periods:
+        mask = aligned.use & (month == period)
+        est = None
+        if len(set(day[mask])) >= MIN_MONTH_DAYS:
+            try:
+                est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+            except ValueError:
+                est = None
+        if est is None:
+            rows = whole_table.filter(pl.col("period") == period)
+            own = ~pl.col("equipment").is_in([whole.base_id, "unexplained"])
+            tables.append(rows.with_columns(
+                pl.when(own).then(pl.concat_str([pl.col("flags"), pl.lit("range-draw")],
+                                                separator=";").str.strip_chars(";"))
+                .otherwise(pl.col("flags")).alias("flags")))
+            months[period] = {"own_fit": False, "reason": f"fewer than {MIN_MONTH_DAYS} days of "
+                              "usable intervals: the whole range's draws are used"}
+            continue
+        tables.append(monthly_breakdown(est, tz))
+        months[period] = {"own_fit": True, "draws": draw_list(est), "baseload_row": est.base_id,
+                          "fit_quality": est.quality, "warnings": est.warnings}
+    return pl.concat(tables), months
 
 
 def _num(x: float | None) -> float | None:
     return None if x is None or not math.isfinite(x) else float(x)
 
 
-def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
-    """Everything behind the breakdown as plain JSON-ready data."""
-    start = est.frame["start_utc"].min()
-    end = est.frame["end_utc"].max()
+def draw_list(est: Estimates) -> list[dict]:
+    """The fitted draws as JSON-ready rows."""
     draws = []
     for i, t in enumerate(est.terms):
         c = t.column
@@ -103,6 +153,14 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
             "run_hours": float(est.hours[:, i].sum()),
             "flags": t.flags,
         })
+    return draws
+
+
+def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
+    """Everything behind the breakdown as plain JSON-ready data."""
+    start = est.frame["start_utc"].min()
+    end = est.frame["end_utc"].max()
+    draws = draw_list(est)
     base_se = np.sqrt(np.maximum(np.diag(est.cov_base), 0))
     quality = dict(est.quality)
     quality["ashrae_guideline_14"] = {
