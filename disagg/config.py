@@ -133,6 +133,13 @@ class _Table:
             raise ConfigError(f"{path}: [{name}] must be a table, found {type(data).__name__}")
         self.data = data
 
+    def only(self, allowed: set[str]) -> None:
+        """Refuse keys the table does not use: a misspelt key must not be ignored silently."""
+        for key in self.data:
+            if key not in allowed:
+                raise ConfigError(f"{self.where(key)}: unknown setting; expected one of "
+                                  f"{', '.join(sorted(allowed))}")
+
     def where(self, key: str) -> str:
         return f"{self.path}: [{self.name}] {key}"
 
@@ -146,8 +153,9 @@ class _Table:
         if float in kinds and isinstance(value, int) and not isinstance(value, bool):
             value = float(value)
         if not isinstance(value, kinds) or isinstance(value, bool) and bool not in kinds:
-            names = " or ".join(k.__name__.replace("str", "text").replace("float", "number")
-                                for k in kinds)
+            words = {"str": "text", "float": "a number", "int": "a whole number",
+                     "list": "a list", "bool": "true or false"}
+            names = " or ".join(words.get(k.__name__, k.__name__) for k in kinds)
             raise ConfigError(f"{self.where(key)} = {value!r}: expected {names}")
         return value
 
@@ -261,6 +269,8 @@ def _equipment(path: Path, index: int, data: object, seen: set[str]) -> Equipmen
                           "'baseload' or 'unexplained'")
     seen.add(eq_id)
     t.name = f"equipment {eq_id}"
+    t.only({"id", "name", "kind", "control", "exponent", "rated_kw", "hp", "efficiency", "volts",
+            "amps", "phases", "power_factor", "draw_kw", "draw_sd_kw"})
     name = t.get("name", str, required=False, default=eq_id)
     kind = t.get("kind", str, required=False, default="")
     control = t.choice("control", CONTROLS, required=False, default="on-off")
@@ -301,6 +311,7 @@ def load_site(path: str | Path) -> SiteConfig:
         if key not in data:
             raise ConfigError(f"{path}: the [{key}] table is missing; add it to the file")
     site = _Table(path, "site", data["site"])
+    site.only({"name", "timezone"})
     name = site.get("name", str)
     tz = site.get("timezone", str)
     try:
@@ -310,6 +321,7 @@ def load_site(path: str | Path) -> SiteConfig:
                           "name such as \"America/Chicago\"") from None
 
     m = _Table(path, "meter", data["meter"])
+    m.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"})
     meter = MeterSettings(
         file=m.file("file"),
         time_column=m.get("time_column", str),
@@ -321,6 +333,10 @@ def load_site(path: str | Path) -> SiteConfig:
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
+    r.only({"file", "layout", "time_column"} | {
+        "events": {"equipment_column", "state_column"},
+        "samples": {"max_hold_minutes"},
+        "runtime": {"equipment_column", "minutes_column", "stamp", "interval_minutes"}}[layout])
     runlog = RunlogSettings(
         file=r.file("file"),
         layout=layout,
@@ -335,6 +351,7 @@ def load_site(path: str | Path) -> SiteConfig:
 
     b = _Table(path, "baseload", data.get("baseload", {}))
     profile = b.choice("profile", BASELOAD_PROFILES, required=False, default="constant")
+    b.only({"profile", "occupied"} if profile == "occupied" else {"profile"})
     spells: list[Spell] = []
     spell_text: list[str] = []
     if profile == "occupied":

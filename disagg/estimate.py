@@ -33,6 +33,12 @@ UNSTABLE_WIDENING = 1.25
 # metered demand. It only keeps the solve well posed; prior_weight reports when it mattered.
 WEAK_SD_FACTOR = 10.0
 JACKKNIFE_BLOCKS = 10
+# A baseload variant is refitted only with at least this many intervals per fitted column
+# (common practice, no source): fewer, and it fits the noise.
+MIN_ROWS_PER_COLUMN = 10
+# Differences in kW smaller than this fraction of the draw (or of 1 kW) are rounding, not a
+# change: they neither widen an interval nor flag it.
+NUMERICAL_TOL = 1e-6
 MORE_FLEXIBLE = {"constant": ("occupied", "hour-of-week"), "occupied": ("hour-of-week",),
                  "hour-of-week": ()}
 
@@ -132,6 +138,10 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         raise ValueError(f"only {n} usable meter intervals for {len(ids) + B.shape[1]} "
                          "unknowns; widen the date range or fix the gaps reported by check")
     warnings: list[str] = []
+    if site.baseload.profile == "hour-of-week" and n < MIN_ROWS_PER_COLUMN * B.shape[1]:
+        warnings.append(f"the hour-of-week baseload has 168 levels but only {n} intervals "
+                        f"(under {MIN_ROWS_PER_COLUMN} per level): its shape is poorly known; "
+                        "use occupied or constant for short ranges")
     interval_h = frame["interval_h"].to_numpy()
     peak_kw = float(np.max(y / interval_h))
     weak_sd = WEAK_SD_FACTOR * max(peak_kw, 1.0)
@@ -259,7 +269,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     # error: (se_J / se_HAC)^2 against the chi-square(K-1)/(K-1) upper quantile.
     ratio_bound = chdtri(df_jack, 1.0 - confidence) / df_jack
     with np.errstate(invalid="ignore", divide="ignore"):
-        use_jack = np.nan_to_num(np.square(se_jack / se_hac), nan=0.0) > ratio_bound
+        use_jack = ((np.nan_to_num(np.square(se_jack / se_hac), nan=0.0) > ratio_bound)
+                    & (np.nan_to_num(se_jack) > NUMERICAL_TOL * np.maximum(np.abs(coef), 1.0)))
     half = np.where(use_jack, np.maximum(half_hac, q_jack * np.nan_to_num(se_jack)), half_hac)
     se_final = half / q_hac
     low = coef - half
@@ -273,7 +284,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         (Hausman 1978: var(b_v - b) = se_v^2 - se^2 for nested fits; floored at
         (se_v / 4)^2, common practice, no source)."""
         var_d = max(se_v**2 - se_hac[c] ** 2, (0.25 * se_v) ** 2)
-        if abs(b_v - coef[c]) > z_bound * np.sqrt(var_d):
+        tiny = NUMERICAL_TOL * max(abs(coef[c]), 1.0)
+        if abs(b_v - coef[c]) > max(z_bound * np.sqrt(var_d), tiny):
             low[c] = min(low[c], b_v - q_hac * se_v)
             high[c] = max(high[c], b_v + q_hac * se_v)
             widened[c] = True
@@ -284,6 +296,10 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         if profile == "occupied" and not site.baseload.spells:
             continue
         Bv, names_v = base_for(profile)
+        if n < MIN_ROWS_PER_COLUMN * (k + Bv.shape[1]):
+            variants[profile] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
+                                            "fitted column"}
+            continue
         Xv = np.column_stack([Hf, Bv])
         mv, sv = priors(Bv.shape[1])
         fv = fit_model(Xv, y, mv, sv, np.zeros(Xv.shape[1]), block=days)
@@ -303,7 +319,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     # (closures, holidays, events) in ways no weekly profile knows. Profile out a separate
     # baseload level for each day (occupied and unoccupied separately when spells are
     # declared) by Frisch-Waugh-Lovell projection, and refit the draws on what is left.
-    if k and n_days >= 7:
+    n_day_cols = n_days * (B.shape[1] if site.baseload.profile == "occupied" else 1)
+    if k and n_days >= 7 and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + k):
         if site.baseload.profile == "occupied":
             C = B  # occupied and unoccupied hours, one level each per day
             rest = np.zeros((n, 0))
@@ -359,7 +376,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
             if t.prior_kw is None:
                 warnings.append(f"{t.id}: the data cannot determine its draw and it has no "
                                 "prior; its kW is not meaningful")
-        if widened[c] and width_hac[c] > 0 and (high[c] - low[c]) >= UNSTABLE_WIDENING * width_hac[c]:
+        grew = (high[c] - low[c]) - UNSTABLE_WIDENING * width_hac[c]
+        if widened[c] and grew > NUMERICAL_TOL * max(abs(coef[c]), 1.0):
             t.flags.append("unstable")
             why = [f"{coef[c]:.3g} kW with the declared {site.baseload.profile} baseload"]
             why += moved.get(c, [])

@@ -29,7 +29,7 @@ def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
     """Prefix a single quote to text cells that a spreadsheet would read as a formula."""
     text_cols = [c for c, t in frame.schema.items() if t == pl.String]
     return frame.with_columns(
-        pl.when(pl.col(c).str.starts_with(s) for s in _FORMULA_START)
+        pl.when(pl.any_horizontal(pl.col(c).str.starts_with(s) for s in _FORMULA_START))
         .then(pl.lit("'") + pl.col(c)).otherwise(pl.col(c)).alias(c)
         for c in text_cols) if text_cols else frame
 
@@ -108,7 +108,8 @@ def breakdown_summary(result: BreakdownResult) -> str:
     t = result.breakdown
     totals = (t.group_by("equipment", maintain_order=True)
               .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(),
-                   pl.col("flags")))
+                   pl.col("kwh_low").sum(), pl.col("kwh_high").sum(),
+                   pl.col("kwh_low").null_count().alias("no_range"), pl.col("flags")))
     metered = float(result.estimates.y.sum())
     draws = {d["equipment"]: d for d in result.fit["draws"]}
     order = {e: i for i, e in enumerate(draws)}
@@ -124,23 +125,31 @@ def breakdown_summary(result: BreakdownResult) -> str:
     lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
              f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
              "",
-             "kW: fitted over the whole range" + ("; kWh: each month's own fit, summed" if own
-                                                    else ""),
-             f"{'equipment':<22} {'run h':>8} {'kW':>8} {'kW range':>17} {'kWh':>11} "
-             f"{'share':>6}  flags (whole range; each month's in the CSV)"]
+             ("kWh: sum of each month's own fit; " if own else "")
+             + "kW: the draw fitted over the whole range; run h [h], kWh [kWh], kW [kW]",
+             f"{'equipment':<22} {'run h':>7} {'kWh':>10} {'kWh range':>19} {'share':>6} "
+             f"{'kW':>7} {'kW range':>13}  flags"]
+    any_variable = False
     for r in totals.iter_rows(named=True):
         d = draws.get(r["equipment"])
-        if d:
+        kw, kw_rng = "-", "-"
+        if d and d["kw"] is not None:
             kw = _fmt(d["kw"])
-            rng = f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}" if d["kw_low"] is not None else "-"
-        else:
-            kw = _fmt(r["kwh"] / r["run_hours"] if r["run_hours"] else None)
-            rng = "-"
+            if d["kw_low"] is not None:
+                kw_rng = f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}"
+        kwh_rng = "-" if r["no_range"] else f"{_fmt(r['kwh_low'], 0)}-{_fmt(r['kwh_high'], 0)}"
         flags = ";".join(d["flags"]) if d else ";".join(dict.fromkeys(
             f for cell in r["flags"] for f in (cell or "").split(";") if f))
-        lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>8} {kw:>8} {rng:>17} "
-                     f"{_fmt(r['kwh'], 0):>11} {100 * r['kwh'] / metered if metered else 0:>5.1f}%"
-                     f"  {flags}")
+        any_variable |= "variable" in flags
+        kwh = r["kwh"] + 0.0 if abs(r["kwh"]) >= 0.5 else 0.0  # no "-0"
+        share = 100 * kwh / metered if metered else 0.0
+        lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>7} {_fmt(kwh, 0):>10} "
+                     f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {flags}")
+    lines.append("flags: whole-range fit; each month's are in breakdown.csv. baseload and "
+                 "unexplained run h: interval hours.")
+    if any_variable:
+        lines.append("run h of variable equipment: equivalent full-load hours "
+                     "(integral of status ** exponent).")
     q = result.fit["fit_quality"]
     hq = q.get("hourly")
     if hq:

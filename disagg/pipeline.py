@@ -16,7 +16,7 @@ import numpy as np
 import polars as pl
 
 from disagg import __version__
-from disagg.align import Aligned, align
+from disagg.align import Aligned, align, baseload_columns
 from disagg.breakdown import monthly_breakdown
 from disagg.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
@@ -74,14 +74,37 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     if not 0.5 <= confidence < 1.0:
         raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
     site, aligned = load_inputs(site_path, date_from, date_to)
+    require_usable(site, aligned)
     try:
         est = estimate_draws(site, aligned, confidence)
     except ValueError as exc:
-        raise InputError(f"{site.meter.file}: {exc}") from None
+        raise InputError(f"{_short_data_source(site, aligned)}: {exc}") from None
     table, months = monthly_fits(site, aligned, est, confidence)
     fit = fit_summary(site, aligned, est)
     fit["months"] = months
     return BreakdownResult(site, table, fit, est, aligned)
+
+
+def require_usable(site: SiteConfig, aligned: Aligned) -> None:
+    """Raise InputError when too few intervals have both a reading and every state known."""
+    used = int(aligned.use.sum())
+    n_unknowns = len(aligned.equipment_ids) + {"constant": 1, "occupied": 2,
+                                                 "hour-of-week": 168}[site.baseload.profile]
+    if used == 0:
+        raise InputError(f"{_short_data_source(site, aligned)}: no interval has both a meter "
+                         "reading and a known state for every equipment")
+    if used < n_unknowns + 2:
+        raise InputError(f"{_short_data_source(site, aligned)}: only {used} usable meter "
+                         f"intervals for {n_unknowns} unknowns; a fit needs at least "
+                         f"{n_unknowns + 2}")
+
+
+def _short_data_source(site: SiteConfig, aligned: Aligned) -> str:
+    """Which file to blame when too few intervals are usable, with the counts."""
+    c = aligned.counts
+    culprit = site.runlog.file if c["log_unknown"] >= c["no_reading"] else site.meter.file
+    return (f"{culprit} ({c['intervals']} meter intervals: {c['no_reading']} without a reading, "
+            f"{c['log_unknown']} with a run-log state unknown)")
 
 
 # A month with fewer local days of usable intervals than this takes the whole range's draws
@@ -108,6 +131,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
     periods = sorted(set(month[aligned.use]))
     if len(periods) <= 1:
         return whole_table, {}
+    combined = {t.id: t.members for t in whole.terms if len(t.members) > 1}
     tables, months = [], {}
     for period in periods:
         mask = aligned.use & (month == period)
@@ -127,7 +151,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
             months[period] = {"own_fit": False, "reason": f"fewer than {MIN_MONTH_DAYS} days of "
                               "usable intervals: the whole range's draws are used"}
             continue
-        tables.append(monthly_breakdown(est, tz))
+        tables.append(_same_names(monthly_breakdown(est, tz), combined))
         months[period] = {"own_fit": True, "draws": draw_list(est), "baseload_row": est.base_id,
                           "fit_quality": est.quality, "warnings": est.warnings}
     return pl.concat(tables), months
@@ -154,6 +178,20 @@ def draw_list(est: Estimates) -> list[dict]:
             "flags": t.flags,
         })
     return draws
+
+
+def _same_names(table: pl.DataFrame, combined: dict[str, list[str]]) -> pl.DataFrame:
+    """Report a month's not-run members of a whole-range group as that group's one row, so
+    a load keeps one name across the months."""
+    for gid, members in combined.items():
+        rows = table.filter(pl.col("equipment").is_in(members))
+        if rows.height == len(members) and (rows["flags"] == "not-run").all():
+            first = rows.head(1).with_columns(pl.lit(gid).alias("equipment"),
+                                              pl.lit(None, pl.Float64).alias("kw"))
+            keep = table.filter(~pl.col("equipment").is_in(members))
+            at = table["equipment"].to_list().index(members[0])
+            table = pl.concat([keep.head(at), first, keep.slice(at)])
+    return table
 
 
 def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
@@ -223,10 +261,8 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
     site, aligned = load_inputs(site_path, date_from, date_to)
     frame = aligned.frame
     used = aligned.use
-    if not used.any():
-        raise InputError(f"{site.meter.file}: no interval has both a meter reading and a known "
-                         f"state for every equipment; check the run log {site.runlog.file}")
-    from disagg.align import baseload_columns
+    require_usable(site, aligned)
+
 
     f = frame.filter(pl.Series(used))
     B, _ = baseload_columns(site.baseload, site.timezone, f["start_utc"],

@@ -338,6 +338,10 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig) -> RunLog:
             r = clash.row(0, named=True)
             raise InputError(f"{path}: {_row_label(path, r['row'])}: equipment {r['eq']!r} has "
                              f"different states at the same time {r['t']}; expected one state")
+        if df.height == 0:
+            notes.append(f"{path}: the run log has no rows: every state is unknown")
+            return RunLog(_to_segments(df.with_columns(end=pl.col("t")), ids, "end"), path,
+                          raw.height, notes)
         log_end = df["t"].max()
         df = (df.unique(subset=["eq", "t"], keep="first").sort("eq", "t")
               .with_columns(end=pl.col("t").shift(-1).over("eq"))

@@ -436,3 +436,35 @@ def test_demo_writes_the_demo_site_and_its_breakdown(tmp_path):
     assert sorted(csv["period"].unique()) == [f"2025-{m:02d}" for m in range(1, 13)]
     assert sorted(p.name for p in out.iterdir()) == sorted(OUTPUT_FILES + ["demo_site"])
     assert CAUTION_LINE in result.stdout.splitlines()
+
+
+# ---------------------------------------------------------------------------------------
+# inputs that read but cannot be fitted
+
+
+def test_a_header_only_run_log_is_an_error_line_not_a_crash(tmp_path):
+    s = write_site(tmp_path / "data", days=3, seed=5)
+    s["runlog"].write_text("time,point,state\n")
+    for command in (["check", str(s["site"])],
+                    ["breakdown", str(s["site"]), "--out", str(tmp_path / "out")]):
+        result = runner.invoke(app, command)
+        assert result.exit_code == 1, result.output
+        assert result.stderr == (
+            f"Error: {s['runlog']} (288 meter intervals: 0 without a reading, 288 with a "
+            "run-log state unknown): no interval has both a meter reading and a known state "
+            "for every equipment\n")
+        assert "Traceback" not in result.output
+    assert not (tmp_path / "out").exists()
+
+
+def test_check_exits_1_when_too_few_intervals_to_fit(tmp_path):
+    s = write_site(tmp_path / "data", days=3, seed=5)
+    lines = s["meter"].read_text().splitlines()
+    s["meter"].write_text("\n".join(lines[:4]) + "\n")  # 3 readings for 4 unknowns
+    text = s["site"].read_text().replace('stamp = "end"', 'stamp = "end"\ninterval_minutes = 15')
+    s["site"].write_text(text)
+    result = runner.invoke(app, ["check", str(s["site"])])
+    assert result.exit_code == 1, result.output
+    assert result.stderr == (f"Error: {s['runlog']} (3 meter intervals: 0 without a reading, 0 "
+                             "with a run-log state unknown): only 3 usable meter intervals for 4 "
+                             "unknowns; a fit needs at least 6\n")

@@ -207,3 +207,18 @@ def test_efficiency_as_percent_is_rejected(tmp_path):
     msg, path = _error(tmp_path, text)
     assert msg == (f"{path}: [equipment AC-1] efficiency = 91.7: expected a number above 0 "
                    "and at most 1")
+
+
+def test_a_misspelt_setting_is_an_error_not_ignored(tmp_path):
+    # A typo in draw_sd_kw must not silently drop the engineer's prior.
+    text = SITE_HEAD + '\n[[equipment]]\nid = "AC-1"\ndraw_kw = 7.0\ndraw_sd_Kw = 1.0\n'
+    msg, path = _error(tmp_path, text)
+    assert msg == (f"{path}: [equipment AC-1] draw_sd_Kw: unknown setting; expected one of "
+                   "amps, control, draw_kw, draw_sd_kw, efficiency, exponent, hp, id, kind, "
+                   "name, phases, power_factor, rated_kw, volts")
+
+
+def test_a_whole_number_setting_given_as_decimal_says_whole_number(tmp_path):
+    text = SITE_HEAD.replace('unit = "kWh"', 'unit = "kWh"\ninterval_minutes = 15.0') + EQ
+    msg, path = _error(tmp_path, text)
+    assert msg == f"{path}: [meter] interval_minutes = 15.0: expected a whole number"

@@ -45,6 +45,8 @@ def test_exact_recovery_without_noise_or_prior():
     for i, t in enumerate(e.terms):
         assert e.kw[i] == pytest.approx(s.true_kw[t.id], rel=1e-7)
     np.testing.assert_allclose(e.base_kw, [30.0, 15.0], rtol=1e-7)
+    # Exact data: nothing moves under the stability checks, so nothing is flagged unstable.
+    assert not any("unstable" in t.flags for t in e.terms)
 
 
 def test_coverage_well_specified():
