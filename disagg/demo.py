@@ -20,7 +20,6 @@ from __future__ import annotations
 import datetime as dt
 import zoneinfo
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import polars as pl

@@ -295,7 +295,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     for profile in MORE_FLEXIBLE[site.baseload.profile]:
         if profile == "occupied" and not site.baseload.spells:
             continue
-        Bv, names_v = base_for(profile)
+        Bv, _ = base_for(profile)
         if n < MIN_ROWS_PER_COLUMN * (k + Bv.shape[1]):
             variants[profile] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
