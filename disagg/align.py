@@ -103,6 +103,10 @@ def _local_to_ns(day: dt.date, minute: int, zone: zoneinfo.ZoneInfo) -> int:
     return int(local.timestamp() * 1_000_000) * 1000
 
 
+# Number of design columns (fitted baseload levels) of each profile.
+BASELOAD_COLUMN_COUNT = {"constant": 1, "occupied": 2, "hour-of-week": 168}
+
+
 def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
                      start_ns: np.ndarray, end_ns: np.ndarray) -> tuple[np.ndarray, list[str]]:
     """Design columns for the baseload profile [h]: the baseload kW multiply these.

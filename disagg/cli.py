@@ -66,6 +66,20 @@ def _date(value: str | None, option: str) -> dt.date | None:
     return None
 
 
+def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
+                         confidence: float) -> None:
+    """Fit, write the files, then print the summary (built before writing, so a summary
+    failure leaves no files)."""
+    from disagg.outputs import breakdown_summary, write_breakdown
+    from disagg.pipeline import breakdown_site
+
+    result = breakdown_site(site, d0, d1, confidence)
+    summary = breakdown_summary(result)
+    paths = write_breakdown(result, out)
+    typer.echo(summary)
+    typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+
+
 SiteArg = Annotated[Path, typer.Argument(help="The site TOML file.", show_default=False)]
 FromOpt = Annotated[Optional[str], typer.Option("--from", help="First local date to use "
                                                 "(YYYY-MM-DD); default: the meter's first.")]
@@ -85,19 +99,9 @@ def breakdown(
     confidence: ConfOpt = 0.95,
 ) -> None:
     """Monthly kWh per equipment with intervals; writes breakdown.csv/.parquet and fit.json."""
-    from disagg.outputs import breakdown_summary, write_breakdown
-    from disagg.pipeline import breakdown_site
-
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
-    def run():
-        result = breakdown_site(site, d0, d1, confidence)
-        summary = breakdown_summary(result)
-        paths = write_breakdown(result, out)
-        typer.echo(summary)
-        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
-
-    _guard(run)
+    _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence))
 
 
 @app.command()
@@ -117,17 +121,12 @@ def demo(
     confidence: ConfOpt = 0.95,
 ) -> None:
     """Write the fictional demo building's year of data and run the breakdown on it."""
-    from disagg.outputs import breakdown_summary, write_breakdown, write_demo_site
-    from disagg.pipeline import breakdown_site
+    from disagg.outputs import write_demo_site
 
     def run():
         toml = write_demo_site(out / "demo_site")
         typer.echo(f"Demo site written to {toml.parent} (all data invented).")
-        result = breakdown_site(toml, confidence=confidence)
-        summary = breakdown_summary(result)
-        paths = write_breakdown(result, out)
-        typer.echo(summary)
-        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+        _breakdown_and_write(toml, out, None, None, confidence)
 
     _guard(run)
 

@@ -106,6 +106,36 @@ class _UnionFind:
         self.parent[self.find(i)] = self.find(j)
 
 
+def inseparable(H: np.ndarray, B: np.ndarray) -> dict:
+    """Which loads the data cannot tell apart, from each other or from the baseload.
+
+    Args:
+        H: (n, k) equipment-hours of the intervals used; B: (n, m) baseload columns.
+
+    Returns:
+        active: indices of the loads with run-hours; corr: correlation of the active loads'
+        hours (in the order of active); r2_base, vif: index -> figure for active loads;
+        pairs: (i, j, r) for active loads with |r| >= INSEPARABLE_R; with_baseload: indices
+        whose R^2 against the baseload columns is at least INSEPARABLE_R2.
+    """
+    run_total = H.sum(axis=0)
+    active = [j for j in range(H.shape[1]) if run_total[j] > 0]
+    if not active:
+        return {"active": [], "corr": np.zeros((0, 0)), "r2_base": {}, "vif": {}, "pairs": [],
+                "with_baseload": []}
+    d = collinearity(H[:, active], B)
+    pairs = [(active[a], active[b], float(d["corr"][a, b]))
+             for a in range(len(active)) for b in range(a + 1, len(active))
+             if abs(d["corr"][a, b]) >= INSEPARABLE_R]
+    return {
+        "active": active, "corr": d["corr"],
+        "r2_base": {j: float(d["r2_base"][a]) for a, j in enumerate(active)},
+        "vif": {j: float(d["vif"][a]) for a, j in enumerate(active)},
+        "pairs": pairs,
+        "with_baseload": [j for a, j in enumerate(active) if d["r2_base"][a] >= INSEPARABLE_R2],
+    }
+
+
 def _local_days(frame: pl.DataFrame, tz: str) -> np.ndarray:
     """Consecutive integer label of each row's local calendar day."""
     d = frame["start_utc"].dt.convert_time_zone(tz).dt.date()
@@ -147,27 +177,21 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     weak_sd = WEAK_SD_FACTOR * max(peak_kw, 1.0)
 
     # --- what can be told apart -------------------------------------------------------
-    run_total = H_all.sum(axis=0)
-    active = [j for j in range(len(ids)) if run_total[j] > 0]
-    diag = collinearity(H_all[:, active], B) if active else None
-    r2_base = {ids[j]: float(diag["r2_base"][a]) for a, j in enumerate(active)} if diag else {}
-    vif = {ids[j]: float(diag["vif"][a]) for a, j in enumerate(active)} if diag else {}
-    corr = diag["corr"] if diag else np.zeros((0, 0))
+    sep = inseparable(H_all, B)
+    active = sep["active"]
+    r2_base = {ids[j]: r for j, r in sep["r2_base"].items()}
+    vif = {ids[j]: v for j, v in sep["vif"].items()}
     has_prior = {e.id: e.prior.informative for e in site.equipment}
 
     folded: list[str] = []  # no prior and inseparable from the baseload: joins the baseload row
     base_flagged: list[str] = []
-    for j in active:
-        if r2_base[ids[j]] >= INSEPARABLE_R2:
-            (base_flagged if has_prior[ids[j]] else folded).append(ids[j])
+    for j in sep["with_baseload"]:
+        (base_flagged if has_prior[ids[j]] else folded).append(ids[j])
     pool = [j for j in active if ids[j] not in folded]
     uf = _UnionFind(len(ids))
-    pos = {j: a for a, j in enumerate(active)}
-    for x in range(len(pool)):
-        for z in range(x + 1, len(pool)):
-            i, j = pool[x], pool[z]
-            if abs(corr[pos[i], pos[j]]) >= INSEPARABLE_R:
-                uf.union(i, j)
+    for i, j, _ in sep["pairs"]:
+        if i in pool and j in pool:
+            uf.union(i, j)
     # Several loads that together mirror another (a = b + c) show only in the VIF: join a
     # with the loads that carry its regression on everything else.
     for j in pool:
@@ -418,7 +442,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                 "r2_with_baseload": r2_base.get(ids[j]),
                 "vif": vif.get(ids[j]),
                 "most_correlated": (None if ids[j] not in vif or len(active) < 2 else
-                                    _partner(ids, active, corr, j)),
+                                    _partner(ids, active, sep["corr"], j)),
             } for j in range(len(ids))},
         "folded_into_baseload": folded,
     }

@@ -16,12 +16,11 @@ import numpy as np
 import polars as pl
 
 from disagg import __version__
-from disagg.align import Aligned, align, baseload_columns
+from disagg.align import BASELOAD_COLUMN_COUNT, Aligned, align, baseload_columns
 from disagg.breakdown import monthly_breakdown
 from disagg.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import INSEPARABLE_R, INSEPARABLE_R2, Estimates, estimate_draws
-from disagg.model import collinearity
+from disagg.estimate import Estimates, estimate_draws, inseparable
 from disagg.readers import read_meter, read_runlog
 
 CAUTION = ("Estimates are not measurements. Any work on electrical equipment must follow local "
@@ -88,8 +87,7 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
 def require_usable(site: SiteConfig, aligned: Aligned) -> None:
     """Raise InputError when too few intervals have both a reading and every state known."""
     used = int(aligned.use.sum())
-    n_unknowns = len(aligned.equipment_ids) + {"constant": 1, "occupied": 2,
-                                                 "hour-of-week": 168}[site.baseload.profile]
+    n_unknowns = len(aligned.equipment_ids) + BASELOAD_COLUMN_COUNT[site.baseload.profile]
     if used == 0:
         raise InputError(f"{_short_data_source(site, aligned)}: no interval has both a meter "
                          "reading and a known state for every equipment")
@@ -262,25 +260,16 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
     frame = aligned.frame
     used = aligned.use
     require_usable(site, aligned)
-
-
     f = frame.filter(pl.Series(used))
     B, _ = baseload_columns(site.baseload, site.timezone, f["start_utc"],
                             f["start_utc"].dt.epoch("ns").to_numpy(),
                             f["end_utc"].dt.epoch("ns").to_numpy())
     H = aligned.hours[used]
     run = H.sum(axis=0)
-    active = [j for j in range(H.shape[1]) if run[j] > 0]
-    pairs, with_base = [], []
-    if active:
-        d = collinearity(H[:, active], B)
-        for a in range(len(active)):
-            if d["r2_base"][a] >= INSEPARABLE_R2:
-                with_base.append(aligned.equipment_ids[active[a]])
-            for b in range(a + 1, len(active)):
-                if abs(d["corr"][a, b]) >= INSEPARABLE_R:
-                    pairs.append([aligned.equipment_ids[active[a]],
-                                  aligned.equipment_ids[active[b]], float(d["corr"][a, b])])
+    ids = aligned.equipment_ids
+    sep = inseparable(H, B)
+    pairs = [[ids[i], ids[j], r] for i, j, r in sep["pairs"]]
+    with_base = [ids[j] for j in sep["with_baseload"]]
     report = {
         "site": site.name,
         "period": {"start_utc": frame["start_utc"].min().isoformat(),
