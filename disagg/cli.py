@@ -131,6 +131,55 @@ def demo(
     _guard(run)
 
 
+@app.command()
+def drift(
+    site: SiteArg,
+    out: Annotated[Path, typer.Option("--out", help="Folder for drift.csv and drift.json.")],
+    memory: Annotated[float, typer.Option("--memory", help="Tracker memory in days; converted "
+                                          "to the step size.")] = 30.0,
+    step: Annotated[Optional[float], typer.Option("--step", help="Normalized LMS step size "
+                                                  "instead of --memory (0 < step < 2).")] = None,
+    reference: Annotated[Optional[str], typer.Option("--reference", help="Reference period "
+                                                     "FROM:TO (local dates); default the first "
+                                                     "90 days.")] = None,
+    threshold: Annotated[float, typer.Option("--threshold", help="Relative change that "
+                                             "matters, a fraction.")] = 0.10,
+    state: Annotated[Optional[Path], typer.Option("--state", help="Tracker state file: "
+                                                  "continue from it if it exists, and save "
+                                                  "the new state to it.")] = None,
+    date_from: FromOpt = None,
+    date_to: ToOpt = None,
+    confidence: ConfOpt = 0.95,
+) -> None:
+    """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
+    import json
+
+    from disagg.drift import drift_site, parse_period
+    from disagg.errors import InputError
+    from disagg.outputs import drift_summary, write_drift
+
+    d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
+
+    def run():
+        ref = parse_period(reference, "--reference") if reference else None
+        saved = None
+        if state is not None and state.exists():
+            try:
+                saved = json.loads(state.read_text(encoding="utf-8"))
+            except (OSError, ValueError) as exc:
+                raise InputError(f"{state}: cannot read the tracker state ({exc})") from None
+        result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1)
+        text = drift_summary(result)
+        from disagg.config import load_site
+
+        cfg = load_site(site)
+        paths = write_drift(result, out, [cfg.path, cfg.meter.file, cfg.runlog.file], state)
+        typer.echo(text)
+        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+
+    _guard(run)
+
+
 def main() -> None:  # pragma: no cover - console entry point
     app()
 

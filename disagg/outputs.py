@@ -18,6 +18,7 @@ from pathlib import Path
 import polars as pl
 
 from disagg.errors import OutputError
+from disagg.drift import DriftResult
 from disagg.pipeline import CAUTION, BreakdownResult, CheckResult
 
 # Cells starting with these can run as formulas when a spreadsheet opens a CSV; OWASP
@@ -210,3 +211,48 @@ def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | N
     }, [])
     write_atomically(toml_folder, {"demo.toml": lambda p: p.write_text(text, encoding="utf-8")}, [])
     return toml_folder / "demo.toml"
+
+
+def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
+                state_path: Path | None = None) -> list[Path]:
+    """Write drift.csv and drift.json into out_dir, and the tracker state to state_path."""
+    table = result.table
+    paths = write_atomically(out_dir, {
+        "drift.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
+        "drift.json": lambda p: p.write_text(to_json(result.summary), encoding="utf-8"),
+    }, inputs)
+    if state_path is not None:
+        state_path = Path(state_path).resolve()
+        paths += write_atomically(state_path.parent, {
+            state_path.name: lambda p: p.write_text(to_json(result.state), encoding="utf-8")},
+            inputs)
+    return paths
+
+
+def drift_summary(result: DriftResult) -> str:
+    """Step size, per-equipment latest tracked draw and change, alarms, notes, caution."""
+    s = result.summary
+    t = result.table
+    lines = [f"{s['site']}: step size mu = {s['step_size_mu']:.4g} "
+             f"(stable range {s['stable_range']}), reference {s['reference']['from']} to "
+             f"{s['reference']['to']}, threshold {100 * s['threshold']:g} %",
+             "",
+             f"{'equipment':<22} {'reference kW':>12} {'latest kW':>10} {'change':>8} "
+             f"{'memory d':>9}  alarm"]
+    alarmed = {a["equipment"]: a for a in s["alarms"]}
+    for eq in t["equipment"].unique(maintain_order=True):
+        rows = t.filter(pl.col("equipment") == eq)
+        last = rows.row(-1, named=True)
+        mem = s["memory_days_per_equipment"].get(eq)
+        change = last["change"]
+        lines.append(f"{eq[:22]:<22} {last['kw_reference']:>12.2f} {last['kw_tracked']:>10.2f} "
+                     f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
+                     f"{'-' if mem is None else f'{mem:.0f}':>9}  "
+                     + (f"since {alarmed[eq]['first_alarm_date']}" if eq in alarmed else ""))
+    for a in s["alarms"]:
+        lines.append(f"Alarm: {a['equipment']} from {a['first_alarm_date']}: draw "
+                     f"{100 * a['change']:+.1f} % ({100 * a['change_low']:+.1f} to "
+                     f"{100 * a['change_high']:+.1f} %) as of {a['as_of']}")
+    lines += [f"Note: {n}" for n in s["notes"]]
+    lines += ["", f"Caution: {CAUTION}"]
+    return "\n".join(lines)
