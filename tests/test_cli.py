@@ -151,11 +151,14 @@ def _commands() -> dict:
     return typer.main.get_command(app).commands  # type: ignore[attr-defined]
 
 
-def test_the_app_registers_the_three_commands():
-    assert sorted(_commands()) == ["breakdown", "check", "demo"]
+COMMANDS = ["breakdown", "check", "demo", "drift"]
 
 
-@pytest.mark.parametrize("command", ["breakdown", "check", "demo"])
+def test_the_app_registers_the_documented_commands():
+    assert sorted(_commands()) == COMMANDS
+
+
+@pytest.mark.parametrize("command", COMMANDS)
 def test_each_command_has_help_text(command):
     cmd = _commands()[command]
     result = runner.invoke(app, [command, "--help"])
