@@ -19,6 +19,9 @@ from disagg.config import BaseloadSettings, SiteConfig, Spell
 from disagg.readers import MeterData, RunLog, Segments
 
 NS_PER_H = 3_600_000_000_000
+# An interval whose midpoint is further than this from every temperature reading has no
+# known temperature [h] (common practice, no source: hourly weather data with a gap or two).
+MAX_WEATHER_GAP_H = 3.0
 # Unknown time shorter than this is float noise, not a gap [h] (about 4 microseconds).
 _UNKNOWN_TOL_H = 1e-9
 
@@ -61,10 +64,32 @@ def overlap_hours(seg: Segments, start_ns: np.ndarray, end_ns: np.ndarray,
     return v1 - v0, np.maximum(length_h - (c1 - c0), 0.0)
 
 
-def spell_segments(spells: tuple[Spell, ...], tz: str, first_ns: int, last_ns: int) -> Segments:
+def interval_temperature(weather: pl.DataFrame, start_ns: np.ndarray,
+                         end_ns: np.ndarray) -> np.ndarray:
+    """Outdoor temperature at each interval's midpoint by linear interpolation [degC].
+
+    NaN where the midpoint is further than MAX_WEATHER_GAP_H from the nearest reading
+    (before the first or after the last reading, the nearest reading's value holds).
+    """
+    t = weather["t"].dt.epoch("ns").to_numpy().astype(np.int64)
+    v = weather["temp_c"].to_numpy().astype(float)
+    mid = start_ns + (end_ns - start_ns) // 2
+    if len(t) == 0:
+        return np.full(len(mid), np.nan)
+    out = np.interp(mid.astype(float), t.astype(float), v)
+    j = np.searchsorted(t, mid)
+    left = t[np.clip(j - 1, 0, len(t) - 1)]
+    right = t[np.clip(j, 0, len(t) - 1)]
+    nearest = np.minimum(np.abs(mid - left), np.abs(right - mid))
+    out[nearest > MAX_WEATHER_GAP_H * NS_PER_H] = np.nan  # np.interp holds the end values
+    return out
+
+
+def spell_segments(spells: tuple[Spell, ...], tz: str, first_ns: int, last_ns: int,
+                   closed: tuple[dt.date, ...] = ()) -> Segments:
     """Weekly local-time spells -> UTC segments covering [first_ns, last_ns] (status 1).
 
-    A spell edge in a skipped local hour moves to the first valid time after it; an edge in
+    Local dates in `closed` (holidays, closures) have no spell. A spell edge in a skipped local hour moves to the first valid time after it; an edge in
     a repeated hour takes the first occurrence.
     """
     zone = zoneinfo.ZoneInfo(tz)
@@ -73,8 +98,9 @@ def spell_segments(spells: tuple[Spell, ...], tz: str, first_ns: int, last_ns: i
     d1 = dt.datetime.fromtimestamp(last_ns / 1e9, utc).astimezone(zone).date() + dt.timedelta(days=1)
     edges: list[tuple[int, int]] = []
     day = d0
+    skip = set(closed)
     while day <= d1:
-        for sp in spells:
+        for sp in spells if day not in skip else ():
             if day.weekday() in sp.days:
                 a = _local_to_ns(day, sp.start_min, zone)
                 b = _local_to_ns(day, sp.end_min, zone)
@@ -120,7 +146,7 @@ def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
     if base.profile == "constant":
         return length_h[:, None], ["baseload_kw"]
     if base.profile == "occupied":
-        seg = spell_segments(base.spells, tz, int(start_ns.min()), int(end_ns.max()))
+        seg = spell_segments(base.spells, tz, int(start_ns.min()), int(end_ns.max()), base.closed)
         occ, _ = overlap_hours(seg, start_ns, end_ns)
         return np.column_stack([occ, length_h - occ]), ["baseload_occupied_kw", "baseload_unoccupied_kw"]
     local = start_utc.dt.convert_time_zone(tz)
@@ -150,10 +176,12 @@ class Aligned:
     counts: dict[str, int] = field(default_factory=dict)
     unknown_by_equipment: dict[str, int] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    temp_c: np.ndarray | None = None  # (n,) outdoor temperature [degC], NaN where unknown
 
 
 def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
-          date_from: dt.date | None = None, date_to: dt.date | None = None) -> Aligned:
+          date_from: dt.date | None = None, date_to: dt.date | None = None,
+          weather: pl.DataFrame | None = None) -> Aligned:
     """Equipment-hours in every meter interval whose local start date is in [from, to].
 
     Raises:
@@ -181,6 +209,13 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
         known &= ~unk
     reading = frame["energy_kwh"].is_not_null().to_numpy()
     use = reading & known
+    temp_c = None
+    weather_unknown = 0
+    if weather is not None:
+        temp_c = interval_temperature(weather, start_ns, end_ns)
+        if any(e.weather for e in site.equipment):
+            weather_unknown = int((use & np.isnan(temp_c)).sum())
+            use &= ~np.isnan(temp_c)
     frame = frame.with_columns(interval_h=pl.Series((end_ns - start_ns) / NS_PER_H))
     span_h = float((end_ns.max() - start_ns.min()) / NS_PER_H) if frame.height else 0.0
     counts = {
@@ -189,6 +224,7 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
         "used": int(use.sum()),
         "no_reading": int((~reading).sum()),
         "log_unknown": int((reading & ~known).sum()),
+        "weather_unknown": weather_unknown,
     }
     notes = []
     if counts["absent"]:
@@ -200,4 +236,7 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
         who = ", ".join(f"{k} {v}" for k, v in unknown_by.items() if v)
         notes.append(f"{counts['log_unknown']} intervals have a run-log state that is unknown "
                      f"for some equipment (intervals per equipment: {who}): left out")
-    return Aligned(frame, ids, hours, use, meter.interval_min, counts, unknown_by, notes)
+    if weather_unknown:
+        notes.append(f"{weather_unknown} intervals have no outdoor temperature within "
+                     f"{MAX_WEATHER_GAP_H:g} h: left out")
+    return Aligned(frame, ids, hours, use, meter.interval_min, counts, unknown_by, notes, temp_c)

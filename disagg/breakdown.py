@@ -41,6 +41,16 @@ def monthly_breakdown(est: Estimates, tz: str) -> pl.DataFrame:
             if t.column is None:
                 kwh = kwh_lo = kwh_hi = 0.0
                 lo = hi = float("nan")
+            elif i in est.weather and run_h > 0:
+                # Draw varies with outdoor temperature: energy = b0 x run_h + slope x
+                # sum(run_h x degrees beyond balance), interval from their covariance.
+                w = est.weather[i]
+                deg_h = float(est.weather_hours[m, i].sum())
+                a = np.array([run_h, deg_h])
+                kwh = w["kw_at_balance"] * run_h + w["slope_kw_per_degc"] * deg_h
+                half = est.critical * float(np.sqrt(max(a @ w["cov"] @ a, 0.0)))
+                kwh_lo, kwh_hi = max(kwh - half, 0.0), kwh + half
+                kw, lo, hi = kwh / run_h, kwh_lo / run_h, kwh_hi / run_h
             else:
                 kwh = kw * run_h
                 lo, hi = float(est.kw_low[i]), float(est.kw_high[i])

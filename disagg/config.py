@@ -6,6 +6,7 @@ Paths inside the TOML are resolved against the TOML's own folder. Every problem 
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 import re
 import tomllib
@@ -21,6 +22,8 @@ ALLOWED_INTERVALS_MIN = (1, 5, 10, 15, 30, 60)
 RUNLOG_LAYOUTS = ("events", "samples", "runtime")
 BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
 CONTROLS = ("on-off", "variable")
+WEATHER_MODES = ("cooling", "heating")
+TEMP_UNITS = ("F", "C")
 WEEKDAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
 
 # Motor output to input: 1 hp = 0.746 kW (US DOE, "Determining Electric Motor Load and
@@ -78,6 +81,7 @@ class BaseloadSettings:
     profile: str = "constant"
     spells: tuple[Spell, ...] = ()
     spell_text: tuple[str, ...] = ()
+    closed: tuple[dt.date, ...] = ()  # local dates on which no occupied spell applies
 
 
 @dataclass(frozen=True)
@@ -104,6 +108,24 @@ class Equipment:
     exponent: float  # power ~ status ** exponent for variable control
     prior: Prior
     full_load_kw: float | None  # from the nameplate, if any
+    weather: str | None = None  # cooling or heating: the draw varies with outdoor temperature
+    balance_temp_c: float | None = None  # change point of that variation [degC]
+
+
+@dataclass(frozen=True)
+class WeatherSettings:
+    """Outdoor temperature file; temperatures are converted to degC on reading."""
+
+    file: Path
+    time_column: str
+    temp_column: str
+    unit: str  # F or C, as in the file (balance and reference temperatures use it too)
+    reference_temp_c: float | None  # drift and comparison are stated at this temperature
+
+
+def to_celsius(value: float, unit: str) -> float:
+    """A temperature in the weather file's unit -> degC."""
+    return (value - 32.0) * 5.0 / 9.0 if unit == "F" else value
 
 
 @dataclass(frozen=True)
@@ -118,6 +140,7 @@ class SiteConfig:
     baseload: BaseloadSettings
     equipment: tuple[Equipment, ...]
     extra: dict = field(default_factory=dict)
+    weather: WeatherSettings | None = None
 
     def equipment_ids(self) -> list[str]:
         return [e.id for e in self.equipment]
@@ -257,7 +280,8 @@ def _prior(t: _Table, eq_id: str) -> tuple[Prior, float | None]:
     return Prior(None, None, "none (no size or draw given)"), None
 
 
-def _equipment(path: Path, index: int, data: object, seen: set[str]) -> Equipment:
+def _equipment(path: Path, index: int, data: object, seen: set[str],
+               weather: WeatherSettings | None = None) -> Equipment:
     t = _Table(path, f"[equipment] #{index + 1}", data)
     t.name = f"equipment #{index + 1}"
     eq_id = t.get("id", str).strip()
@@ -270,7 +294,7 @@ def _equipment(path: Path, index: int, data: object, seen: set[str]) -> Equipmen
     seen.add(eq_id)
     t.name = f"equipment {eq_id}"
     t.only({"id", "name", "kind", "control", "exponent", "rated_kw", "hp", "efficiency", "volts",
-            "amps", "phases", "power_factor", "draw_kw", "draw_sd_kw"})
+            "amps", "phases", "power_factor", "draw_kw", "draw_sd_kw", "weather", "balance_temp"})
     name = t.get("name", str, required=False, default=eq_id)
     kind = t.get("kind", str, required=False, default="")
     control = t.choice("control", CONTROLS, required=False, default="on-off")
@@ -280,7 +304,20 @@ def _equipment(path: Path, index: int, data: object, seen: set[str]) -> Equipmen
     elif "exponent" in t.data:
         raise ConfigError(f"{t.where('exponent')}: only used with control = \"variable\"")
     prior, full_load_kw = _prior(t, eq_id)
-    return Equipment(eq_id, name, kind, control, exponent, prior, full_load_kw)
+    mode = t.choice("weather", WEATHER_MODES, required=False)
+    balance_c = None
+    if mode is not None:
+        if weather is None:
+            raise ConfigError(f"{t.where('weather')} = {mode!r}: needs a [weather] table with "
+                              "the outdoor temperature file")
+        balance = t.get("balance_temp", float)
+        if not math.isfinite(balance):
+            raise ConfigError(f"{t.where('balance_temp')} = {balance!r}: expected a temperature")
+        balance_c = to_celsius(balance, weather.unit)
+    elif "balance_temp" in t.data:
+        raise ConfigError(f"{t.where('balance_temp')}: only used with weather = \"cooling\" or "
+                          "\"heating\"")
+    return Equipment(eq_id, name, kind, control, exponent, prior, full_load_kw, mode, balance_c)
 
 
 def load_site(path: str | Path) -> SiteConfig:
@@ -351,7 +388,7 @@ def load_site(path: str | Path) -> SiteConfig:
 
     b = _Table(path, "baseload", data.get("baseload", {}))
     profile = b.choice("profile", BASELOAD_PROFILES, required=False, default="constant")
-    b.only({"profile", "occupied"} if profile == "occupied" else {"profile"})
+    b.only({"profile", "occupied", "closed"} if profile == "occupied" else {"profile"})
     spells: list[Spell] = []
     spell_text: list[str] = []
     if profile == "occupied":
@@ -367,13 +404,29 @@ def load_site(path: str | Path) -> SiteConfig:
             except ValueError as exc:
                 raise ConfigError(f"{b.where('occupied')}[{i}] = {s!r}: {exc}") from None
             spell_text.append(s)
-    baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text))
+    closed: list[dt.date] = []
+    for i, d in enumerate(b.get("closed", list, required=False, default=[])):
+        try:
+            closed.append(d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)))
+        except ValueError:
+            raise ConfigError(f"{b.where('closed')}[{i}] = {d!r}: expected a date such as "
+                              "2025-12-25") from None
+    baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text), tuple(closed))
 
+    weather = None
+    if "weather" in data:
+        w = _Table(path, "weather", data["weather"])
+        w.only({"file", "time_column", "temp_column", "unit", "reference_temp"})
+        unit = w.choice("unit", TEMP_UNITS)
+        ref_t = w.get("reference_temp", float, required=False)
+        weather = WeatherSettings(w.file("file"), w.get("time_column", str),
+                                  w.get("temp_column", str), unit,
+                                  None if ref_t is None else to_celsius(ref_t, unit))
     raw_eq = data.get("equipment", [])
     if not isinstance(raw_eq, list) or not raw_eq:
         raise ConfigError(f"{path}: no [[equipment]] tables; add one per logged load")
     seen: set[str] = set()
-    equipment = tuple(_equipment(path, i, e, seen) for i, e in enumerate(raw_eq))
-    known = {"site", "meter", "runlog", "baseload", "equipment"}
+    equipment = tuple(_equipment(path, i, e, seen, weather) for i, e in enumerate(raw_eq))
+    known = {"site", "meter", "runlog", "baseload", "equipment", "weather"}
     extra = {k: v for k, v in data.items() if k not in known}
-    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra)
+    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra, weather)

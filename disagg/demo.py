@@ -40,7 +40,8 @@ class _Load:
 
 
 LOADS = [
-    _Load("CH-1", "Chiller, air-cooled screw", "cooling", ""),
+    _Load("CH-1", "Chiller, air-cooled screw", "cooling",
+          'weather = "cooling"\nbalance_temp = 62.0'),
     _Load("CHWP-1", "Chilled-water pump", "pumping", ""),
     _Load("CT-1", "Condenser fan bank", "cooling", "hp = 15\nefficiency = 0.924"),
     _Load("AHU-1", "Supply fan, stacks (VFD)", "air",
@@ -57,8 +58,9 @@ LOADS = [
 ]
 
 
-def site_toml(meter: str, runlog: str) -> str:
-    """The demo's site TOML text, with the meter and run-log paths as given."""
+def site_toml(meter: str, runlog: str, weather: str, closed: list[str]) -> str:
+    """The demo's site TOML text, with the file paths as given and the closure dates."""
+    closed_text = ", ".join(f'"{d}"' for d in closed)
     eq = []
     for load in LOADS:
         lines = [f'id = "{load.id}"', f'name = "{load.name}"', f'kind = "{load.kind}"']
@@ -85,9 +87,16 @@ time_column = "time"
 equipment_column = "point"
 state_column = "state"
 
+[weather]
+file = "{weather}"
+time_column = "time"
+temp_column = "temp_f"
+unit = "F"
+
 [baseload]
 profile = "occupied"
 occupied = ["Mon-Fri 07:00-19:00", "Sat 08:00-13:00"]
+closed = [{closed_text}]
 
 ''' + "\n\n".join(eq) + "\n"
 
@@ -255,5 +264,15 @@ def simulate(seed: int = SEED) -> dict:
     for p, ek, hk in zip(periods, by_month(base_e), by_month(np.full(n, step_h))):
         monthly_rows.append({"period": p, "equipment": "baseload", "kwh": float(ek),
                              "run_hours": float(hk)})
-    return {"meter": meter, "events": events, "truth": pl.DataFrame(truth_rows),
+    hourly = np.arange(0, n, 360)
+    hour_local = (pl.Series(utc_s[hourly] * 1_000_000).cast(pl.Datetime("us", "UTC"))
+                  .dt.convert_time_zone(TZ))
+    weather = pl.DataFrame({"time": hour_local.dt.to_string("%Y-%m-%dT%H:%M:%S%:z"),
+                            "temp_f": np.round(temp_c[hourly] * 9.0 / 5.0 + 32.0, 1)})
+    # The building's closure calendar (the facility manager knows it), Mon-Sat only: on
+    # Sundays no occupied spell applies anyway.
+    first_day = dt.date(YEAR, 1, 1)
+    closed_dates = [first_day + dt.timedelta(days=int(i)) for i in np.flatnonzero(closed)]
+    closed_dates = [d.isoformat() for d in closed_dates if d.year == YEAR and d.weekday() < 6]
+    return {"meter": meter, "events": events, "weather": weather, "closed": closed_dates, "truth": pl.DataFrame(truth_rows),
             "truth_monthly": pl.DataFrame(monthly_rows)}

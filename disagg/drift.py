@@ -21,7 +21,7 @@ import polars as pl
 from disagg.align import Aligned, baseload_columns
 from disagg.config import SiteConfig
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import estimate_draws
+from disagg.estimate import degrees, estimate_draws, weather_columns, weather_specs
 from disagg.model import quantile
 from disagg.pipeline import CAUTION, load_inputs, require_usable
 from disagg.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
@@ -63,17 +63,20 @@ def parse_period(text: str, option: str) -> tuple[dt.date, dt.date]:
 
 
 def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame, np.ndarray, np.ndarray]:
-    """Used intervals, their design rows (term hours then baseload columns) and energy."""
+    """Used intervals, their design rows and energy, in the order estimate_draws uses: term
+    hours, weather slope columns, baseload columns."""
     use = aligned.use
     frame = aligned.frame.filter(pl.Series(use))
     index = {e: j for j, e in enumerate(aligned.equipment_ids)}
     H = aligned.hours[use]
     cols = [H[:, [index[m] for m in members]].mean(axis=1) for members in term_members]
+    Hf = np.column_stack(cols) if cols else np.zeros((frame.height, 0))
+    temp = aligned.temp_c[use] if aligned.temp_c is not None else None
+    Wf = weather_columns(Hf, temp, weather_specs(site, term_members))
     B, _ = baseload_columns(site.baseload, site.timezone, frame["start_utc"],
                             frame["start_utc"].dt.epoch("ns").to_numpy(),
                             frame["end_utc"].dt.epoch("ns").to_numpy())
-    X = np.column_stack(cols + [B]) if cols else B
-    return frame, X, frame["energy_kwh"].to_numpy().astype(float)
+    return frame, np.column_stack([Hf, Wf, B]), frame["energy_kwh"].to_numpy().astype(float)
 
 
 def drift_site(site_path: str | Path, memory_days: float = 30.0, step: float | None = None,
@@ -137,7 +140,14 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         ref_kw = np.array([est.kw[i] for i in idx])
         ref_se = np.array([est.se_kw[i] for i in idx])
         ref_run_h = np.array([est.hours[:, i].sum() for i in idx])
-        w0 = np.concatenate([ref_kw, est.base_kw])
+        w0 = np.array(est.design_coef, dtype=float)
+        # Weather terms are tracked as (draw at balance, slope) and stated at the reference
+        # temperature: column c, slope column, degrees beyond balance at that temperature.
+        specs = weather_specs(site, members)
+        at_ref = [[c, len(ids) + s_i,
+                   float(degrees(np.array([est.weather[idx[c]]["reference_temp_c"]]),
+                                 *specs[c])[0])]
+                  for s_i, c in enumerate(specs)]
         _, X_ref, _ = _design(site, ref_aligned, members)
         delta = DELTA_FRACTION * float(np.mean(np.sum(X_ref**2, axis=1)))
         k = len(ids)
@@ -169,6 +179,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         ref_kw, ref_se = np.array(state["reference_kw"]), np.array(state["reference_se_kw"])
         ref_run_h = np.array(state["reference_run_h"])
         w0, mu, delta = np.array(state["weights"]), state["mu"], state["delta"]
+        at_ref = state["weather_at_reference"]
         n_ref, reference_info = state["reference"]["intervals"], state["reference"]
         last_end = dt.datetime.fromisoformat(state["last_end_utc"])
         first_alarm = dict(state["first_alarm"])
@@ -190,7 +201,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     day = frame["start_utc"].dt.convert_time_zone(tz).dt.date()
     last_of_day = np.flatnonzero(np.r_[(day[1:] != day[:-1]).to_numpy(), True])
     days = day.gather(last_of_day).to_list()
-    daily = W[last_of_day, :k]
+    daily = W[last_of_day, :k].copy()
+    for c, s_col, d_ref in at_ref:
+        daily[:, int(c)] += W[last_of_day, int(s_col)] * d_ref
     rows = []
     alarms = []
     for j, eq in enumerate(ids):
@@ -257,7 +270,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "ids": ids, "members": members, "flags": flags,
         "reference": reference_info, "reference_kw": ref_kw.tolist(),
         "reference_se_kw": ref_se.tolist(), "reference_run_h": ref_run_h.tolist(),
-        "weights": W[-1].tolist(), "mu": mu, "delta": delta,
+        "weights": W[-1].tolist(), "mu": mu, "delta": delta, "weather_at_reference": at_ref,
         "sd_kw": sd.tolist(), "tau_intervals": tau_intervals.tolist(),
         "last_end_utc": frame["end_utc"].max().isoformat(),
         "first_alarm": first_alarm,
@@ -278,7 +291,7 @@ def _not_alarmed(flags: list[str], run_h: float) -> str | None:
 def _check_state(state: dict, site) -> None:
     needed = {"version", "ids", "members", "weights", "mu", "delta", "last_end_utc",
               "reference_kw", "reference_se_kw", "reference_run_h", "sd_kw", "first_alarm",
-              "reference", "flags", "tau_intervals"}
+              "reference", "flags", "tau_intervals", "weather_at_reference"}
     missing = needed - set(state)
     if missing or state.get("version") != STATE_VERSION:
         raise InputError(f"the --state file is not a disagg drift state (missing "

@@ -90,6 +90,12 @@ class Estimates:
     identifiability: dict
     variants: dict
     warnings: list[str]
+    # Weather terms: weather_hours (n_used, n_terms) hours x degrees beyond balance [h degC];
+    # weather: term index -> mode, balance and reference temperature [degC], draw at the
+    # balance point [kW], slope [kW/degC] and the (draw, slope) covariance "cov".
+    weather_hours: np.ndarray | None = None
+    weather: dict = field(default_factory=dict)
+    design_coef: np.ndarray | None = None  # the full coefficient vector [kW, kW/degC, kW]
 
 
 class _UnionFind:
@@ -136,6 +142,40 @@ def inseparable(H: np.ndarray, B: np.ndarray) -> dict:
     }
 
 
+def degrees(temp_c: np.ndarray, mode: str, balance_c: float) -> np.ndarray:
+    """Degrees beyond the balance temperature: (T - Tb)+ for cooling, (Tb - T)+ for heating.
+
+    References:
+        Kissock, J. K., Haberl, J. S. & Claridge, D. E. (2003). Inverse modeling toolkit:
+        numerical algorithms (ASHRAE RP-1050). ASHRAE Transactions 109(2) (three-parameter
+        change-point forms; citation from memory).
+    """
+    d = temp_c - balance_c if mode == "cooling" else balance_c - temp_c
+    return np.maximum(d, 0.0)
+
+
+def weather_specs(site: SiteConfig, term_members: list[list[str]]) -> dict[int, tuple[str, float]]:
+    """Term index -> (mode, balance temperature [degC]) for terms with a weather-dependent
+    member (a combined group takes its first such member's setting)."""
+    by_id = {e.id: e for e in site.equipment}
+    out = {}
+    for c, members in enumerate(term_members):
+        for m in members:
+            e = by_id[m]
+            if e.weather:
+                out[c] = (e.weather, float(e.balance_temp_c))
+                break
+    return out
+
+
+def weather_columns(H: np.ndarray, temp_c: np.ndarray | None,
+                    specs: dict[int, tuple[str, float]]) -> np.ndarray:
+    """Hours x degrees beyond balance for each weather term, in term order [h degC]."""
+    if not specs:
+        return np.zeros((H.shape[0], 0))
+    return np.column_stack([H[:, c] * degrees(temp_c, mode, bal) for c, (mode, bal) in specs.items()])
+
+
 def _local_days(frame: pl.DataFrame, tz: str) -> np.ndarray:
     """Consecutive integer label of each row's local calendar day."""
     d = frame["start_utc"].dt.convert_time_zone(tz).dt.date()
@@ -159,9 +199,22 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     end_ns = frame["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
 
     def base_for(profile: str) -> tuple[np.ndarray, list[str]]:
-        settings = site.baseload if profile == site.baseload.profile else BaseloadSettings(
-            profile, site.baseload.spells, site.baseload.spell_text)
-        return baseload_columns(settings, site.timezone, frame["start_utc"], start_ns, end_ns)
+        if profile == site.baseload.profile:
+            return baseload_columns(site.baseload, site.timezone, frame["start_utc"],
+                                    start_ns, end_ns)
+        cols, names = baseload_columns(BaseloadSettings(profile, site.baseload.spells,
+                                                        site.baseload.spell_text),
+                                       site.timezone, frame["start_utc"], start_ns, end_ns)
+        if site.baseload.closed and site.baseload.spells:
+            # A variant must nest the declared profile: give it the declared closures too,
+            # as the spell hours that the closure calendar removes.
+            full, _ = baseload_columns(BaseloadSettings("occupied", site.baseload.spells),
+                                       site.timezone, frame["start_utc"], start_ns, end_ns)
+            shut, _ = baseload_columns(site.baseload, site.timezone, frame["start_utc"],
+                                       start_ns, end_ns)
+            cols = np.column_stack([cols, full[:, 0] - shut[:, 0]])
+            names = names + ["baseload_closed_kw"]
+        return cols, names
 
     B, base_names = base_for(site.baseload.profile)
     if n < len(ids) + B.shape[1] + 2:
@@ -254,16 +307,23 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         t.column = c
     k = len(fitted_terms)
     Hf = np.column_stack(columns) if columns else np.zeros((n, 0))
+    temp = aligned.temp_c[use] if aligned.temp_c is not None else None
+    wspecs = weather_specs(site, [t.members for t in fitted_terms])
+    Wf = weather_columns(Hf, temp, wspecs)
+    # The equipment part of every design: each term's hours, then each weather term's
+    # hours x degrees beyond its balance temperature (slope columns, ASHRAE change-point form).
+    Hx = np.column_stack([Hf, Wf])
+    kx = Hx.shape[1]
 
     # --- fit ----------------------------------------------------------------------------
     def priors(m: int) -> tuple[np.ndarray, np.ndarray]:
         mean = np.array([t.prior_kw if t.prior_kw is not None else 0.0 for t in fitted_terms]
-                        + [0.0] * m)
+                        + [0.0] * (len(wspecs) + m))
         sd = np.array([t.prior_sd_kw if t.prior_sd_kw is not None else weak_sd
-                       for t in fitted_terms] + [weak_sd] * m)
+                       for t in fitted_terms] + [weak_sd] * (len(wspecs) + m))
         return mean, sd
 
-    X = np.column_stack([Hf, B])
+    X = np.column_stack([Hx, B])
     p_mean, p_sd = priors(B.shape[1])
     lower = np.zeros(X.shape[1])
     days = _local_days(frame, site.timezone)
@@ -320,11 +380,11 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         if profile == "occupied" and not site.baseload.spells:
             continue
         Bv, _ = base_for(profile)
-        if n < MIN_ROWS_PER_COLUMN * (k + Bv.shape[1]):
+        if n < MIN_ROWS_PER_COLUMN * (kx + Bv.shape[1]):
             variants[profile] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
-        Xv = np.column_stack([Hf, Bv])
+        Xv = np.column_stack([Hx, Bv])
         mv, sv = priors(Bv.shape[1])
         fv = fit_model(Xv, y, mv, sv, np.zeros(Xv.shape[1]), block=days)
         entry = {}
@@ -344,19 +404,19 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     # baseload level for each day (occupied and unoccupied separately when spells are
     # declared) by Frisch-Waugh-Lovell projection, and refit the draws on what is left.
     n_day_cols = n_days * (B.shape[1] if site.baseload.profile == "occupied" else 1)
-    if k and n_days >= 7 and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + k):
+    if k and n_days >= 7 and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + kx):
         if site.baseload.profile == "occupied":
             C = B  # occupied and unoccupied hours, one level each per day
             rest = np.zeros((n, 0))
         else:
             C = interval_h[:, None]
             rest = B if site.baseload.profile == "hour-of-week" else np.zeros((n, 0))
-        Xd = _project_out_days(np.column_stack([Hf, rest, y]), C, days)
+        Xd = _project_out_days(np.column_stack([Hx, rest, y]), C, days)
         yd = Xd[:, -1]
         Xd = Xd[:, :-1]
         md, sdd = priors(rest.shape[1])
-        fd = fit_model(Xd, yd, md, sdd, np.concatenate([np.zeros(k), np.full(rest.shape[1], -np.inf)]),
-                       block=days)
+        fd = fit_model(Xd, yd, md, sdd,
+                       np.concatenate([np.zeros(kx), np.full(rest.shape[1], -np.inf)]), block=days)
         entry = {}
         for t in fitted_terms:
             c = t.column
@@ -386,6 +446,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     se_h = np.full(nt, np.nan)
     se_j = np.full(nt, np.nan)
     hours = np.zeros((n, nt))
+    weather_hours = np.zeros((n, nt))
+    weather_info: dict[int, dict] = {}
     for i, t in enumerate(terms):
         if t.column is None:
             if t.prior_kw is not None:
@@ -412,7 +474,29 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                             "baseload schedule and whether its draw changes over the period")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
-    base_slice = slice(k, X.shape[1])
+        if c in wspecs:
+            s_col = k + list(wspecs).index(c)
+            mode, balance_c = wspecs[c]
+            weather_hours[:, i] = Wf[:, s_col - k]
+            run = Hf[:, c]
+            t_ref = (site.weather.reference_temp_c if site.weather.reference_temp_c is not None
+                     else float(np.sum(run * temp) / run.sum()) if run.sum() > 0 else balance_c)
+            d_ref = degrees(np.array([t_ref]), mode, balance_c)[0]
+            # Widen the (draw, slope) covariance as much as the stability checks widened
+            # the draw's own interval.
+            ratio = max(1.0, (high[c] - low[c]) / (2.0 * half_hac[c])) if half_hac[c] > 0 else 1.0
+            V2 = cov[np.ix_([c, s_col], [c, s_col])] * ratio**2
+            a = np.array([1.0, d_ref])
+            half_ref = q_hac * float(np.sqrt(max(a @ V2 @ a, 0.0)))
+            kw[i] = coef[c] + coef[s_col] * d_ref
+            kw_low[i], kw_high[i] = max(kw[i] - half_ref, 0.0), kw[i] + half_ref
+            se_kw[i] = half_ref / q_hac
+            weather_info[i] = {"mode": mode, "balance_temp_c": balance_c,
+                               "reference_temp_c": t_ref, "kw_at_balance": float(coef[c]),
+                               "slope_kw_per_degc": float(coef[s_col]),
+                               "slope_se_kw_per_degc": float(np.sqrt(max(V2[1, 1], 0.0))),
+                               "cov": V2}
+    base_slice = slice(kx, X.shape[1])
     cov_base = cov[base_slice, base_slice]
     if n_days >= 4:
         cov_base = _wider(cov[base_slice, base_slice], cov_jack[base_slice, base_slice] *
@@ -450,6 +534,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         terms=terms, base_names=base_names, base_id=base_id, frame=frame, hours=hours, base=B,
         y=y, fitted=fitted, kw=kw, kw_low=kw_low, kw_high=kw_high, se_kw=se_kw,
         se_hac_kw=se_h, se_jackknife_kw=se_j, base_kw=coef[base_slice], cov_base=cov_base,
+        weather_hours=weather_hours, weather=weather_info, design_coef=coef,
         critical=q_hac, confidence=confidence, fit=fit, quality=quality, identifiability=ident,
         variants=variants, warnings=warnings)
 

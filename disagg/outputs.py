@@ -190,7 +190,7 @@ def check_summary(result: CheckResult) -> str:
 
 
 def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | None = None) -> Path:
-    """Simulate the demo building and write meter.csv, runlog.csv, truth.csv,
+    """Simulate the demo building and write meter.csv, runlog.csv, weather.csv, truth.csv,
     truth_monthly.csv (in folder) and demo.toml (in toml_folder, default folder).
 
     Returns:
@@ -202,10 +202,12 @@ def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | N
     toml_folder = Path(toml_folder).resolve() if toml_folder else folder
     data = demo.simulate(demo.SEED if seed is None else seed)
     rel = Path(os.path.relpath(folder, toml_folder))
-    text = demo.site_toml((rel / "meter.csv").as_posix(), (rel / "runlog.csv").as_posix())
+    text = demo.site_toml((rel / "meter.csv").as_posix(), (rel / "runlog.csv").as_posix(),
+                          (rel / "weather.csv").as_posix(), data["closed"])
     write_atomically(folder, {
         "meter.csv": lambda p: data["meter"].write_csv(p),
         "runlog.csv": lambda p: data["events"].write_csv(p),
+        "weather.csv": lambda p: data["weather"].write_csv(p),
         "truth.csv": lambda p: data["truth"].write_csv(p, float_precision=4),
         "truth_monthly.csv": lambda p: data["truth_monthly"].write_csv(p, float_precision=4),
     }, [])

@@ -21,7 +21,7 @@ from disagg.breakdown import monthly_breakdown
 from disagg.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
 from disagg.estimate import Estimates, estimate_draws, inseparable
-from disagg.readers import read_meter, read_runlog
+from disagg.readers import read_meter, read_runlog, read_weather
 
 CAUTION = ("Estimates are not measurements. Any work on electrical equipment must follow local "
            "codes and be done by licensed, qualified people.")
@@ -55,7 +55,8 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
         raise ConfigError(f"--to {date_to} is before --from {date_from}")
     meter = read_meter(site.meter, site.timezone)
     runlog = read_runlog(site.runlog, site)
-    aligned = align(site, meter, runlog, date_from, date_to)
+    weather = read_weather(site.weather, site.timezone) if site.weather else None
+    aligned = align(site, meter, runlog, date_from, date_to, weather)
     if aligned.counts["intervals"] == 0:
         raise InputError(f"{site.meter.file}: no meter intervals between "
                          f"{date_from or 'the start'} and {date_to or 'the end'}")
@@ -175,6 +176,11 @@ def draw_list(est: Estimates) -> list[dict]:
             "run_hours": float(est.hours[:, i].sum()),
             "flags": t.flags,
         })
+        if i in est.weather:
+            w = est.weather[i]
+            draws[-1]["kw_at"] = "reference temperature"
+            draws[-1]["weather"] = {k: (v if k != "cov" else None) for k, v in w.items()
+                                    if k != "cov"}
     return draws
 
 
