@@ -180,6 +180,36 @@ def drift(
     _guard(run)
 
 
+@app.command()
+def compare(
+    site: SiteArg,
+    before: Annotated[str, typer.Option("--before", show_default=False, help="The earlier "
+                                        "period, FROM:TO local dates inclusive, such as "
+                                        "2024-06-01:2024-08-31.")],
+    after: Annotated[str, typer.Option("--after", show_default=False, help="The later period, "
+                                       "FROM:TO local dates inclusive, such as "
+                                       "2025-06-01:2025-08-31.")],
+    out: Annotated[Path, typer.Option("--out", help="Folder for compare.csv and compare.json.")],
+    confidence: ConfOpt = 0.95,
+    min_change: Annotated[float, typer.Option("--min-change", help="Smallest change called "
+                                              "rising or falling, a fraction of the earlier "
+                                              "draw.")] = 0.05,
+) -> None:
+    """Each equipment's draw in two periods and whether it rose, fell or held; writes
+    compare.csv and compare.json."""
+    from disagg.compare import compare_site, compare_summary, parse_period, write_compare
+
+    def run():
+        periods = parse_period(before, "--before"), parse_period(after, "--after")
+        result = compare_site(site, *periods, confidence=confidence, min_change=min_change)
+        summary = compare_summary(result)
+        paths = write_compare(result, out)
+        typer.echo(summary)
+        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+
+    _guard(run)
+
+
 def main() -> None:  # pragma: no cover - console entry point
     app()
 

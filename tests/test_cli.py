@@ -151,7 +151,7 @@ def _commands() -> dict:
     return typer.main.get_command(app).commands  # type: ignore[attr-defined]
 
 
-COMMANDS = ["breakdown", "check", "demo", "drift"]
+COMMANDS = ["breakdown", "check", "compare", "demo", "drift"]
 
 
 def test_the_app_registers_the_documented_commands():

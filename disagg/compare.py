@@ -1,0 +1,420 @@
+"""`disagg compare`: each equipment's running draw in two periods, and whether it changed.
+
+The site's files are read and aligned once over their whole span; each period is then the
+intervals whose start falls on one of its local dates, fitted on its own exactly as
+``disagg breakdown`` fits a range. The two fits are matched by equipment id (a combined
+group such as ``CH-1+CHWP-1`` matches only a group of the same members) and every draw gets
+a verdict: ``rising``, ``falling``, ``steady`` or ``unclear``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+from scipy.special import ndtr, ndtri
+
+from disagg import __version__
+from disagg.align import BASELOAD_COLUMN_COUNT, Aligned
+from disagg.config import SiteConfig
+from disagg.errors import ConfigError, InputError
+from disagg.estimate import Estimates, estimate_draws
+from disagg.outputs import neutralise_csv_text, to_json, write_atomically
+from disagg.pipeline import CAUTION, load_inputs
+
+COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
+           "kw_after_low", "kw_after_high", "change", "p_value", "verdict"]
+VERDICTS = ("rising", "falling", "steady", "unclear")
+# An estimate with one of these flags says more about the prior or the schedule than about
+# the draw, so a change between two of them is no evidence (the flags of estimate.py).
+UNCLEAR_FLAGS = ("prior-driven", "schedule-bound", "not-run")
+UNCLEAR_FLAG_PREFIXES = ("inseparable:",)
+# A change whose interval reaches further than +-50 % of the earlier draw is too vague to
+# call either way (common practice, no source).
+MAX_CHANGE_HALF_WIDTH = 0.5
+# Smallest relative change called rising or falling by default: 5 % of the earlier draw
+# (common practice, no source: below that, metering and weather noise dominate in practice).
+DEFAULT_MIN_CHANGE = 0.05
+
+METHOD = {
+    "standard_error": (
+        "each period's standard error is the larger of se_kw (Newey-West HAC on local-day sums, "
+        "widened to the delete-a-block jackknife where that is significantly larger) and the "
+        "larger half-width of the reported interval divided by its critical value, so that the "
+        "baseload-profile refits that widen the interval widen the test too"),
+    "test": ("z = (kw_after - kw_before) / sqrt(se_before^2 + se_after^2), the two periods' "
+             "fits taken as independent; p_value two-sided from the standard normal"),
+    "change": "after / before - 1 (fraction); interval by the delta method for a ratio",
+    "verdict": ("unclear when an id is fitted in only one period, or either estimate is "
+                "prior-driven, inseparable:<id>, schedule-bound or not-run, or the earlier draw "
+                "is 0 kW, or the change's interval reaches beyond +-50 % of the earlier draw; "
+                "else rising or falling when p_value < 1 - confidence and |change| >= "
+                "min_change; else steady"),
+    "weather": ("a draw that varies with outdoor temperature is compared at the earlier "
+                "fit's reference temperature (the site's [weather] reference_temp when set)"),
+    "multiple_comparisons": "none: each equipment is tested on its own",
+}
+
+
+@dataclass
+class CompareResult:
+    """What ``disagg compare`` computes: compare.csv's table and compare.json's content."""
+
+    site: SiteConfig
+    table: pl.DataFrame
+    report: dict
+
+
+def parse_period(text: str, option: str = "period") -> tuple[dt.date, dt.date]:
+    """``"2025-06-01:2025-08-31"`` -> (date(2025, 6, 1), date(2025, 8, 31)), both inclusive.
+
+    Args:
+        text: FROM:TO, two ISO dates (local dates of the site).
+        option: the option's name for messages, e.g. ``--before``.
+
+    Raises:
+        ConfigError: not two dates separated by ':', or FROM after TO.
+    """
+    parts = text.split(":")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        d0, d1 = (dt.date.fromisoformat(p.strip()) for p in parts)
+    except ValueError:
+        raise ConfigError(f"{option} {text!r}: expected FROM:TO dates such as "
+                          "2025-06-01:2025-08-31") from None
+    if d1 < d0:
+        raise ConfigError(f"{option} {text!r}: TO {d1} is before FROM {d0}; expected FROM:TO "
+                          "with FROM on or before TO")
+    return d0, d1
+
+
+def _unclear_flags(flags: list[str]) -> list[str]:
+    return [f for f in flags if f in UNCLEAR_FLAGS or f.startswith(UNCLEAR_FLAG_PREFIXES)]
+
+
+def _where(est: Estimates, eq_id: str) -> str:
+    """In words, what a fit did with an id it has no fitted row for."""
+    for t in est.terms:
+        if t.id == eq_id:
+            return "not run" if "not-run" in t.flags else "fitted"
+        if len(t.members) > 1 and eq_id in t.members:
+            return f"part of the combined row {t.id!r}"
+    if eq_id in est.base_id.split("+")[1:]:
+        return f"in the baseload row {est.base_id!r}"
+    members = eq_id.split("+")
+    if len(members) > 1:
+        return "not combined: " + "; ".join(f"{m} {_where(est, m)}" for m in members)
+    return "absent"
+
+
+def _weather(est: Estimates, eq_id: str) -> dict | None:
+    """The weather term of an id's fitted row, if its draw varies with temperature."""
+    info = getattr(est, "weather", None) or {}
+    for i, t in enumerate(est.terms):
+        if t.id == eq_id:
+            return info.get(i)
+    return None
+
+
+def _side(est: Estimates, eq_id: str, temp_c: float | None = None) -> dict:
+    """One period's estimate of an id: kW, interval, the standard error used, flags.
+
+    Args:
+        temp_c: for a draw that varies with outdoor temperature, restate it at this
+            temperature [degC] (None: at the fit's own reference temperature).
+    """
+    index = {t.id: i for i, t in enumerate(est.terms)}
+    i = index.get(eq_id)
+    if i is None or est.terms[i].column is None:
+        return {"fitted": False, "where": _where(est, eq_id),
+                "flags": est.terms[i].flags if i is not None else []}
+    kw, low, high = float(est.kw[i]), float(est.kw_low[i]), float(est.kw_high[i])
+    # The interval's larger half: the upper one is never cut at 0 kW; the lower one may hold
+    # a baseload variant that the upper one does not.
+    se = max(float(est.se_kw[i]), max(high - kw, kw - low) / est.critical)
+    side = {"fitted": True, "where": "fitted", "kw": kw, "kw_low": low, "kw_high": high,
+            "se_kw": se, "se_hac_kw": float(est.se_hac_kw[i]), "flags": list(est.terms[i].flags)}
+    w = _weather(est, eq_id)
+    if w is not None:
+        side["reference_temp_c"] = float(w["reference_temp_c"])
+        if temp_c is not None and temp_c != w["reference_temp_c"]:
+            # draw(T) = draw at balance + slope x degrees beyond balance (change-point form);
+            # its variance a' V a with a = (1, degrees) and V the widened (draw, slope)
+            # covariance of the fit.
+            d = (temp_c - w["balance_temp_c"] if w["mode"] == "cooling"
+                 else w["balance_temp_c"] - temp_c)
+            a = np.array([1.0, max(d, 0.0)])
+            kw = float(w["kw_at_balance"] + w["slope_kw_per_degc"] * a[1])
+            se = float(np.sqrt(max(a @ np.asarray(w["cov"]) @ a, 0.0)))
+            side.update(kw=kw, kw_low=max(kw - est.critical * se, 0.0),
+                        kw_high=kw + est.critical * se, se_kw=se, reference_temp_c=temp_c)
+    return side
+
+
+def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0.95,
+                      min_change: float = DEFAULT_MIN_CHANGE) -> tuple[pl.DataFrame, list[dict]]:
+    """Match two periods' fits by equipment id and test each draw for a change.
+
+    For an id fitted in both periods, with kW draws b (before) and a (after) and standard
+    errors s_b, s_a [kW]:
+
+        z = (a - b) / sqrt(s_b^2 + s_a^2),  p_value = 2 Phi(-|z|)  (normal, two-sided),
+        change = a / b - 1, its interval change +- q sqrt(s_a^2 + (a/b)^2 s_b^2) / b with
+        q = Phi^-1(1/2 + confidence/2) (delta method for a ratio).
+
+    The standard error of each period is the larger of its ``se_kw`` (the Newey-West HAC
+    standard error on local-day sums, widened to the delete-a-block jackknife where that is
+    significantly larger) and the larger half-width of its reported interval over its
+    critical value: ``se_kw`` does not carry the baseload-profile refits, which widen only
+    the interval. The two fits use disjoint intervals and are taken as independent.
+    A draw that varies with outdoor temperature (a weather term) is compared at one
+    temperature, the earlier fit's reference temperature: the later draw is restated there
+    from its draw at the balance point, its slope and their covariance.
+
+    Verdict:
+        ``unclear`` when the id is fitted in only one period (absent, not run, combined or
+        folded into the baseload in the other), when either estimate is flagged
+        ``prior-driven``, ``inseparable:<id>``, ``schedule-bound`` or ``not-run``, when the
+        earlier draw is 0 kW, or when the change's interval reaches beyond +-50 % of the
+        earlier draw (MAX_CHANGE_HALF_WIDTH; common practice, no source); otherwise
+        ``rising`` or ``falling`` when p_value < 1 - confidence and |change| >= min_change;
+        otherwise ``steady``. No correction for testing several loads at once.
+
+    Args:
+        before, after: the two periods' fits (``disagg.estimate.estimate_draws``).
+        confidence: two-sided level of the intervals and of the test, a fraction.
+        min_change: smallest |change| called rising or falling, a fraction of the earlier draw.
+
+    Returns:
+        (table with columns COLUMNS, one dict per row with the standard errors, z, the
+        change's interval, both periods' flags and the reason for an unclear verdict).
+        kW [kW], change a fraction, p_value a probability; null where not defined.
+
+    References:
+        Casella, G. & Berger, R. L. (2002). Statistical Inference, 2nd ed., Duxbury,
+        section 5.5.4 (the delta method; from memory).
+    """
+    q = float(ndtri(0.5 + confidence / 2.0))
+    alpha = 1.0 - confidence
+    ids: list[str] = []
+    for est in (before, after):
+        for eq_id in [t.id for t in est.terms] + est.base_id.split("+")[1:]:
+            if eq_id not in ids:
+                ids.append(eq_id)
+    rows, details = [], []
+    for eq_id in ids:
+        # A draw that varies with outdoor temperature is compared at one temperature: the
+        # earlier fit's reference temperature (the site's [weather] reference_temp when set).
+        w_before = _weather(before, eq_id)
+        temp_c = float(w_before["reference_temp_c"]) if w_before is not None else None
+        b, a = _side(before, eq_id), _side(after, eq_id, temp_c)
+        row = {"equipment": eq_id}
+        for name, s in (("before", b), ("after", a)):
+            row[f"kw_{name}"] = s.get("kw")
+            row[f"kw_{name}_low"] = s.get("kw_low")
+            row[f"kw_{name}_high"] = s.get("kw_high")
+        detail = {"equipment": eq_id, "flags_before": b["flags"], "flags_after": a["flags"],
+                  "se_before_kw": b.get("se_kw"), "se_after_kw": a.get("se_kw"),
+                  "z": None, "change_low": None, "change_high": None, "reason": None}
+        if "reference_temp_c" in b or "reference_temp_c" in a:
+            detail["reference_temp_c"] = a.get("reference_temp_c", b.get("reference_temp_c"))
+        reasons = []
+        for name, s in (("before", b), ("after", a)):
+            if not s["fitted"]:
+                reasons.append(f"no draw of its own in the {name} period ({s['where']})")
+        change = p = None
+        if not reasons:
+            diff = a["kw"] - b["kw"]
+            se_diff = math.hypot(a["se_kw"], b["se_kw"])
+            z = diff / se_diff if se_diff > 0 else (0.0 if diff == 0 else math.copysign(math.inf, diff))
+            p = float(2.0 * ndtr(-abs(z)))
+            detail["z"] = z
+            if b["kw"] > 0:
+                change = a["kw"] / b["kw"] - 1.0
+                half = q * math.hypot(a["se_kw"], (a["kw"] / b["kw"]) * b["se_kw"]) / b["kw"]
+                detail["change_low"], detail["change_high"] = change - half, change + half
+                if half > MAX_CHANGE_HALF_WIDTH:
+                    reasons.append(f"the change's interval {change - half:+.0%} to "
+                                   f"{change + half:+.0%} reaches beyond +-"
+                                   f"{MAX_CHANGE_HALF_WIDTH:.0%} of the earlier draw")
+            else:
+                reasons.append("the earlier draw is 0 kW: no relative change")
+            for name, s in (("before", b), ("after", a)):
+                bad = _unclear_flags(s["flags"])
+                if bad:
+                    reasons.append(f"the {name} estimate is {', '.join(bad)}")
+        if reasons:
+            verdict = "unclear"
+            detail["reason"] = "; ".join(reasons)
+        elif p < alpha and abs(change) >= min_change:
+            verdict = "rising" if change > 0 else "falling"
+        else:
+            verdict = "steady"
+        row.update(change=change, p_value=p, verdict=verdict)
+        detail.update(change=change, p_value=p, verdict=verdict)
+        rows.append(row)
+        details.append(detail)
+    schema = {c: (pl.String if c in ("equipment", "verdict") else pl.Float64) for c in COLUMNS}
+    return pl.DataFrame(rows, schema=schema, orient="row"), details
+
+
+def _period_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
+                period: tuple[dt.date, dt.date], label: str, confidence: float) -> Estimates:
+    """Fit the intervals whose start falls on the period's local dates.
+
+    Raises:
+        InputError: no usable interval, or too few to fit, in the period.
+    """
+    d0, d1 = period
+    inside = (local_day >= d0) & (local_day <= d1)
+    mask = aligned.use & inside
+    where = f"{label} {d0}:{d1}"
+    if not inside.any():
+        first, last = local_day.min(), local_day.max()
+        raise InputError(f"{site.meter.file}: no meter intervals in {where}; the meter "
+                         f"covers {first} to {last} (local dates)")
+    used = int(mask.sum())
+    n_unknowns = len(aligned.equipment_ids) + BASELOAD_COLUMN_COUNT[site.baseload.profile]
+    if used == 0:
+        raise InputError(f"{site.meter.file}: no interval in {where} has both a meter reading "
+                         "and a known run-log state for every equipment")
+    if used < n_unknowns + 2:
+        raise InputError(f"{site.meter.file}: only {used} usable meter intervals in {where} "
+                         f"for {n_unknowns} unknowns; a fit needs at least {n_unknowns + 2}")
+    try:
+        return estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+    except ValueError as exc:
+        raise InputError(f"{site.meter.file}: {where}: {exc}") from None
+
+
+def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> dict:
+    return {
+        "from": period[0].isoformat(), "to": period[1].isoformat(),
+        "intervals_used": int(est.frame.height),
+        "days": int(est.fit.n_blocks),
+        "critical_value": est.critical,
+        "baseload_row": est.base_id,
+        "fit_quality": est.quality,
+        "warnings": est.warnings,
+    }
+
+
+def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
+                 after: tuple[dt.date, dt.date], confidence: float = 0.95,
+                 min_change: float = DEFAULT_MIN_CHANGE) -> CompareResult:
+    """Fit each period on its own and say, per equipment, whether its draw changed.
+
+    Args:
+        site_path: the site TOML.
+        before, after: (FROM, TO) local dates, inclusive; they must not overlap.
+        confidence: level of the intervals and of the test, a fraction 0.5..0.999.
+        min_change: smallest |change| called rising or falling, a fraction of the earlier draw.
+
+    Returns:
+        The table of ``compare_estimates`` and compare.json's content.
+
+    Raises:
+        ConfigError: bad settings or overlapping periods; InputError: bad files, or a period
+        with no (or too little) usable data.
+    """
+    if not 0.5 <= confidence < 1.0:
+        raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
+    if not (math.isfinite(min_change) and min_change >= 0.0):
+        raise ConfigError(f"--min-change {min_change}: expected a fraction of 0 or more, "
+                          "such as 0.05 for 5 %")
+    if before[0] <= after[1] and after[0] <= before[1]:
+        raise ConfigError(f"--before {before[0]}:{before[1]} and --after {after[0]}:{after[1]} "
+                          "overlap; expected two separate periods")
+    site, aligned = load_inputs(site_path)
+    local_day = (aligned.frame["start_utc"].dt.convert_time_zone(site.timezone).dt.date()
+                 .to_numpy())
+    est_before = _period_fit(site, aligned, local_day, before, "--before", confidence)
+    est_after = _period_fit(site, aligned, local_day, after, "--after", confidence)
+    table, details = compare_estimates(est_before, est_after, confidence, min_change)
+    report = {
+        "tool": f"disagg {__version__}",
+        "site": site.name,
+        "timezone": site.timezone,
+        "site_file": str(site.path),
+        "confidence": confidence,
+        "min_change": min_change,
+        "method": METHOD,
+        "periods": {"before": _period_report(est_before, before),
+                    "after": _period_report(est_after, after)},
+        "equipment": details,
+        "data_notes": aligned.notes,
+        "caution": CAUTION,
+    }
+    return CompareResult(site, table, report)
+
+
+def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
+    """Write compare.csv and compare.json into out_dir, all or nothing.
+
+    Raises:
+        OutputError: the folder cannot be written, or a name would replace an input.
+    """
+    t = result.table.with_columns(
+        pl.col("kw_before", "kw_before_low", "kw_before_high", "kw_after", "kw_after_low",
+               "kw_after_high", "change").round(6),
+        pl.col("p_value").round_sig_figs(4))
+    site = result.site
+    files = {
+        "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
+        "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
+    }
+    return write_atomically(out_dir, files, [site.path, site.meter.file, site.runlog.file])
+
+
+def _num(x: float | None, spec: str) -> str:
+    return "-" if x is None or not math.isfinite(x) else format(x, spec)
+
+
+def compare_summary(result: CompareResult) -> str:
+    """A short readable table of both periods' draws, the verdicts, notes and the caution."""
+    r = result.report
+    pb, pa = r["periods"]["before"], r["periods"]["after"]
+    level = f"{100 * r['confidence']:g} %"
+    lines = [(f"{r['site']}: draws before {pb['from']} to {pb['to']} ({pb['intervals_used']:,} "
+             f"intervals used) and after {pa['from']} to {pa['to']} ({pa['intervals_used']:,} "
+             "intervals used)"),
+             "",
+             f"kW: running draw [kW] and its {level} range; change: after / before - 1 [%]",
+             (f"{'equipment':<22} {'kW before':>9} {'range':>15} {'kW after':>9} {'range':>15} "
+             f"{'change':>8} {'p-value':>8}  verdict")]
+
+    def rng(lo, hi):
+        return "-" if lo is None else f"{_num(lo, ',.2f')}-{_num(hi, ',.2f')}"
+
+    for row in result.table.iter_rows(named=True):
+        p = row["p_value"]
+        p_text = "-" if p is None else ("<0.001" if p < 0.001 else f"{p:.3f}")
+        change = "-" if row["change"] is None else f"{100 * row['change']:+.1f} %"
+        lines.append(f"{row['equipment'][:22]:<22} {_num(row['kw_before'], ',.2f'):>9} "
+                     f"{rng(row['kw_before_low'], row['kw_before_high']):>15} "
+                     f"{_num(row['kw_after'], ',.2f'):>9} "
+                     f"{rng(row['kw_after_low'], row['kw_after_high']):>15} "
+                     f"{change:>8} {p_text:>8}  {row['verdict']}")
+    lines.append(f"rising/falling: p-value under {1 - r['confidence']:.3g} and a change of at "
+                 f"least {100 * r['min_change']:g} %; steady: neither; unclear: the data cannot "
+                 "tell (why below).")
+    for d in r["equipment"]:
+        if d.get("reference_temp_c") is not None:
+            lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
+                         "outdoor temperature")
+    for d in r["equipment"]:
+        if d["reason"]:
+            lines.append(f"unclear {d['equipment']}: {d['reason']}")
+    for name, p in (("before", pb), ("after", pa)):
+        for w in p["warnings"]:
+            lines.append(f"Note ({name}): {w}")
+    for n in r["data_notes"]:
+        lines.append(f"Note: {n}")
+    lines += ["", f"Caution: {CAUTION}"]
+    return "\n".join(lines)
