@@ -456,7 +456,9 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         c = t.column
         hours[:, i] = Hf[:, c]
         kw[i], kw_low[i], kw_high[i] = coef[c], low[c], high[c]
-        se_kw[i], se_h[i], se_j[i] = se_final[c], se_hac[c], se_jack[c]
+        # The standard error that goes with the final (possibly widened, lopsided) interval.
+        se_kw[i] = max(se_final[c], (coef[c] - low[c]) / q_hac, (high[c] - coef[c]) / q_hac)
+        se_h[i], se_j[i] = se_hac[c], se_jack[c]
         if fit.prior_weight[c] >= PRIOR_DRIVEN_WEIGHT:
             t.flags.append("prior-driven")
             if t.prior_kw is None:
