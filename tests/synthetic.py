@@ -47,7 +47,8 @@ def _cycle(n: int, on: float, off: float, rng: np.random.Generator) -> np.ndarra
 def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_kwh: float = 0.5,
                   priors: dict[str, tuple[float, float]] | None = None,
                   together: bool = False, start: dt.date = dt.date(2025, 3, 3),
-                  step: tuple[str, float] | None = None) -> Synthetic:
+                  step: tuple[str, float] | None = None,
+                  step_on: dt.date | None = None) -> Synthetic:
     """A building of five loads over `days` days of 15-minute intervals.
 
     Args:
@@ -59,7 +60,8 @@ def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_k
         priors: equipment id -> (draw_kw, draw_sd_kw).
         together: the pump P-1 runs exactly when the chiller CH-1 runs.
         step: (equipment id, factor): that load's draw is multiplied by factor from the
-            first local day of the second calendar month on.
+            first local day of the second calendar month on (or from `step_on` on).
+        step_on: local date from which `step` applies; None keeps the second calendar month.
     """
     rng = np.random.default_rng(seed)
     n = days * 96
@@ -92,8 +94,11 @@ def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_k
     for k, s in status.items():
         kw = draws[k] * (1 + (0.15 * weather if misspecified and k in ("CH-1", "F-1") else 0.0))
         if step and k == step[0]:
-            month_no = local.dt.month().to_numpy()
-            kw = kw * np.where(month_no != month_no[0], step[1], 1.0)
+            if step_on is None:
+                month_no = local.dt.month().to_numpy()
+                kw = kw * np.where(month_no != month_no[0], step[1], 1.0)
+            else:
+                kw = kw * np.where((local.dt.date() >= step_on).to_numpy(), step[1], 1.0)
         energy[k] = kw * s * 0.25
     base_kw = np.where(open_now if misspecified else occupied, 30.0, 15.0)
     if misspecified:
