@@ -154,7 +154,8 @@ def drift(
     """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
     import json
 
-    from disagg.drift import drift_site, parse_period
+    from disagg.config import parse_period
+    from disagg.drift import drift_site
     from disagg.errors import InputError
     from disagg.outputs import drift_summary, write_drift
 
@@ -197,7 +198,8 @@ def compare(
 ) -> None:
     """Each equipment's draw in two periods and whether it rose, fell or held; writes
     compare.csv and compare.json."""
-    from disagg.compare import compare_site, compare_summary, parse_period, write_compare
+    from disagg.compare import compare_site, compare_summary, write_compare
+    from disagg.config import parse_period
 
     def run():
         periods = parse_period(before, "--before"), parse_period(after, "--after")

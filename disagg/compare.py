@@ -21,7 +21,7 @@ from scipy.special import ndtr, ndtri
 
 from disagg import __version__
 from disagg.align import BASELOAD_COLUMN_COUNT, Aligned
-from disagg.config import SiteConfig
+from disagg.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 from disagg.errors import ConfigError, InputError
 from disagg.estimate import Estimates, estimate_draws
 from disagg.outputs import neutralise_csv_text, to_json, write_atomically
@@ -68,30 +68,6 @@ class CompareResult:
     site: SiteConfig
     table: pl.DataFrame
     report: dict
-
-
-def parse_period(text: str, option: str = "period") -> tuple[dt.date, dt.date]:
-    """``"2025-06-01:2025-08-31"`` -> (date(2025, 6, 1), date(2025, 8, 31)), both inclusive.
-
-    Args:
-        text: FROM:TO, two ISO dates (local dates of the site).
-        option: the option's name for messages, e.g. ``--before``.
-
-    Raises:
-        ConfigError: not two dates separated by ':', or FROM after TO.
-    """
-    parts = text.split(":")
-    try:
-        if len(parts) != 2:
-            raise ValueError
-        d0, d1 = (dt.date.fromisoformat(p.strip()) for p in parts)
-    except ValueError:
-        raise ConfigError(f"{option} {text!r}: expected FROM:TO dates such as "
-                          "2025-06-01:2025-08-31") from None
-    if d1 < d0:
-        raise ConfigError(f"{option} {text!r}: TO {d1} is before FROM {d0}; expected FROM:TO "
-                          "with FROM on or before TO")
-    return d0, d1
 
 
 def _unclear_flags(flags: list[str]) -> list[str]:

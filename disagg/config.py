@@ -43,10 +43,10 @@ class MeterSettings:
     """Where the utility interval meter export is and how to read it."""
 
     file: Path
-    time_column: str
-    value_column: str
-    unit: str  # kWh, Wh, or kW (mean demand over the interval)
-    stamp: str  # which edge of the interval the time marks: end or start
+    time_column: str | None  # None for a Green Button .xml file (it states its own times)
+    value_column: str | None  # None for a Green Button .xml file
+    unit: str | None  # kWh, Wh, or kW (mean demand over the interval); None for .xml
+    stamp: str | None  # which edge of the interval the time marks: end or start; None for .xml
     interval_min: int | None  # None: inferred from the data
 
 
@@ -211,6 +211,28 @@ def _interval(table: _Table, key: str) -> int | None:
     return value
 
 
+def _is_greenbutton(table: _Table) -> bool:
+    """True when the [meter] file is a Green Button (NAESB ESPI) .xml download."""
+    text = table.data.get("file")
+    return isinstance(text, str) and text.strip().lower().endswith(".xml")
+
+
+def _greenbutton_meter(table: _Table) -> MeterSettings:
+    """[meter] settings for a Green Button .xml file: only file and interval_minutes apply.
+
+    The file gives each reading's start and duration in UTC epoch seconds and its unit in
+    the ReadingType, so the column, unit and stamp settings of a CSV export would be
+    ignored; they are refused rather than silently ignored.
+    """
+    for key in ("time_column", "value_column", "unit", "stamp"):
+        if key in table.data:
+            raise ConfigError(f"{table.where(key)}: not used with a Green Button .xml meter file "
+                              "(the file states its own times and unit); remove it")
+    table.only({"file", "interval_minutes"})
+    return MeterSettings(file=table.file("file"), time_column=None, value_column=None,
+                         unit=None, stamp=None, interval_min=_interval(table, "interval_minutes"))
+
+
 _SPELL = re.compile(r"^\s*([A-Za-z]{3})(?:\s*-\s*([A-Za-z]{3}))?\s+(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*$")
 
 
@@ -358,15 +380,18 @@ def load_site(path: str | Path) -> SiteConfig:
                           "name such as \"America/Chicago\"") from None
 
     m = _Table(path, "meter", data["meter"])
-    m.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"})
-    meter = MeterSettings(
-        file=m.file("file"),
-        time_column=m.get("time_column", str),
-        value_column=m.get("value_column", str),
-        unit=m.choice("unit", METER_UNITS),
-        stamp=m.choice("stamp", STAMPS, required=False, default="end"),
-        interval_min=_interval(m, "interval_minutes"),
-    )
+    if _is_greenbutton(m):
+        meter = _greenbutton_meter(m)
+    else:
+        m.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"})
+        meter = MeterSettings(
+            file=m.file("file"),
+            time_column=m.get("time_column", str),
+            value_column=m.get("value_column", str),
+            unit=m.choice("unit", METER_UNITS),
+            stamp=m.choice("stamp", STAMPS, required=False, default="end"),
+            interval_min=_interval(m, "interval_minutes"),
+        )
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
@@ -430,3 +455,27 @@ def load_site(path: str | Path) -> SiteConfig:
     known = {"site", "meter", "runlog", "baseload", "equipment", "weather"}
     extra = {k: v for k, v in data.items() if k not in known}
     return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra, weather)
+
+
+def parse_period(text: str, option: str = "period") -> tuple[dt.date, dt.date]:
+    """``"2025-06-01:2025-08-31"`` -> (date(2025, 6, 1), date(2025, 8, 31)), both inclusive.
+
+    Args:
+        text: FROM:TO, two ISO dates (local dates of the site).
+        option: the option's name for messages, e.g. ``--before``.
+
+    Raises:
+        ConfigError: not two dates separated by ':', or FROM after TO.
+    """
+    parts = text.split(":")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        d0, d1 = (dt.date.fromisoformat(p.strip()) for p in parts)
+    except ValueError:
+        raise ConfigError(f"{option} {text!r}: expected FROM:TO dates such as "
+                          "2025-06-01:2025-08-31") from None
+    if d1 < d0:
+        raise ConfigError(f"{option} {text!r}: TO {d1} is before FROM {d0}; expected FROM:TO "
+                          "with FROM on or before TO")
+    return d0, d1

@@ -45,23 +45,6 @@ class DriftResult:
     state: dict
 
 
-def parse_period(text: str, option: str) -> tuple[dt.date, dt.date]:
-    """'2025-01-01:2025-03-31' -> (date, date).
-
-    Raises:
-        ConfigError: not two ISO dates separated by ':', or FROM after TO.
-    """
-    try:
-        a, b = text.split(":")
-        d0, d1 = dt.date.fromisoformat(a.strip()), dt.date.fromisoformat(b.strip())
-    except ValueError:
-        raise ConfigError(f"{option} {text!r}: expected FROM:TO dates such as "
-                          "2025-01-01:2025-03-31") from None
-    if d1 < d0:
-        raise ConfigError(f"{option} {text!r}: the end is before the start")
-    return d0, d1
-
-
 def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame, np.ndarray, np.ndarray]:
     """Used intervals, their design rows and energy, in the order estimate_draws uses: term
     hours, weather slope columns, baseload columns."""
