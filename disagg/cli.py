@@ -67,13 +67,13 @@ def _date(value: str | None, option: str) -> dt.date | None:
 
 
 def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
-                         confidence: float) -> None:
+                         confidence: float, log_offset: float = 0.0) -> None:
     """Fit, write the files, then print the summary (built before writing, so a summary
     failure leaves no files)."""
     from disagg.outputs import breakdown_summary, write_breakdown
     from disagg.pipeline import breakdown_site
 
-    result = breakdown_site(site, d0, d1, confidence)
+    result = breakdown_site(site, d0, d1, confidence, log_offset)
     summary = breakdown_summary(result)
     paths = write_breakdown(result, out)
     typer.echo(summary)
@@ -87,6 +87,9 @@ ToOpt = Annotated[Optional[str], typer.Option("--to", help="Last local date to u
                                               "(YYYY-MM-DD), inclusive; default: the meter's last.")]
 ConfOpt = Annotated[float, typer.Option("--confidence", help="Confidence level of the "
                                         "intervals, a fraction.")]
+OffsetOpt = Annotated[float, typer.Option("--log-offset", help="Minutes to add to every "
+                                          "run-log time to put it on the meter's clock (see "
+                                          "check --find-offset).")]
 
 
 @app.command()
@@ -97,21 +100,32 @@ def breakdown(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
+    log_offset: OffsetOpt = 0.0,
 ) -> None:
     """Monthly kWh per equipment with intervals; writes breakdown.csv/.parquet and fit.json."""
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
-    _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence))
+    _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence, log_offset))
 
 
 @app.command()
-def check(site: SiteArg, date_from: FromOpt = None, date_to: ToOpt = None) -> None:
+def check(
+    site: SiteArg,
+    date_from: FromOpt = None,
+    date_to: ToOpt = None,
+    log_offset: OffsetOpt = 0.0,
+    find_offset: Annotated[bool, typer.Option("--find-offset", help="Also search the run "
+                                              "log's clock offset from the meter.")] = False,
+    offset_window: Annotated[float, typer.Option("--offset-window", help="Search the offset "
+                                                 "over plus/minus this many minutes.")] = 30.0,
+) -> None:
     """Read and align the inputs and report what was found, without fitting."""
     from disagg.outputs import check_summary
     from disagg.pipeline import check_site
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
-    _guard(lambda: typer.echo(check_summary(check_site(site, d0, d1))))
+    window = offset_window if find_offset else None
+    _guard(lambda: typer.echo(check_summary(check_site(site, d0, d1, log_offset, window))))
 
 
 @app.command()
@@ -150,6 +164,7 @@ def drift(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
+    log_offset: OffsetOpt = 0.0,
 ) -> None:
     """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
     import json
@@ -169,7 +184,8 @@ def drift(
                 saved = json.loads(state.read_text(encoding="utf-8"))
             except (OSError, ValueError) as exc:
                 raise InputError(f"{state}: cannot read the tracker state ({exc})") from None
-        result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1)
+        result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1,
+                            log_offset)
         text = drift_summary(result)
         from disagg.config import load_site
 
@@ -195,6 +211,7 @@ def compare(
     min_change: Annotated[float, typer.Option("--min-change", help="Smallest change called "
                                               "rising or falling, a fraction of the earlier "
                                               "draw.")] = 0.05,
+    log_offset: OffsetOpt = 0.0,
 ) -> None:
     """Each equipment's draw in two periods and whether it rose, fell or held; writes
     compare.csv and compare.json."""
@@ -203,7 +220,8 @@ def compare(
 
     def run():
         periods = parse_period(before, "--before"), parse_period(after, "--after")
-        result = compare_site(site, *periods, confidence=confidence, min_change=min_change)
+        result = compare_site(site, *periods, confidence=confidence, min_change=min_change,
+                              log_offset_min=log_offset)
         summary = compare_summary(result)
         paths = write_compare(result, out)
         typer.echo(summary)

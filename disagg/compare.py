@@ -283,7 +283,8 @@ def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> dict:
 
 def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
                  after: tuple[dt.date, dt.date], confidence: float = 0.95,
-                 min_change: float = DEFAULT_MIN_CHANGE) -> CompareResult:
+                 min_change: float = DEFAULT_MIN_CHANGE,
+                 log_offset_min: float = 0.0) -> CompareResult:
     """Fit each period on its own and say, per equipment, whether its draw changed.
 
     Args:
@@ -307,7 +308,7 @@ def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
     if before[0] <= after[1] and after[0] <= before[1]:
         raise ConfigError(f"--before {before[0]}:{before[1]} and --after {after[0]}:{after[1]} "
                           "overlap; expected two separate periods")
-    site, aligned = load_inputs(site_path)
+    site, aligned = load_inputs(site_path, log_offset_min=log_offset_min)
     local_day = (aligned.frame["start_utc"].dt.convert_time_zone(site.timezone).dt.date()
                  .to_numpy())
     est_before = _period_fit(site, aligned, local_day, before, "--before", confidence)

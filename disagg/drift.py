@@ -65,7 +65,8 @@ def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame,
 def drift_site(site_path: str | Path, memory_days: float = 30.0, step: float | None = None,
                reference: tuple[dt.date, dt.date] | None = None, threshold: float = 0.10,
                confidence: float = 0.95, state: dict | None = None,
-               date_from: dt.date | None = None, date_to: dt.date | None = None) -> DriftResult:
+               date_from: dt.date | None = None, date_to: dt.date | None = None,
+               log_offset_min: float = 0.0) -> DriftResult:
     """Track each draw day by day and flag drift against the reference.
 
     Args:
@@ -80,7 +81,7 @@ def drift_site(site_path: str | Path, memory_days: float = 30.0, step: float | N
         ConfigError: a step outside 0 < mu < 2 (or a memory needing one), bad settings.
         InputError: unusable inputs, or a state that does not fit this site.
     """
-    site, aligned = load_inputs(site_path, date_from, date_to)
+    site, aligned = load_inputs(site_path, date_from, date_to, log_offset_min)
     return drift_aligned(site, aligned, memory_days, step, reference, threshold, confidence,
                          state)
 

@@ -186,6 +186,8 @@ def check_summary(result: CheckResult) -> str:
     for e in r["not_run"]:
         lines.append(f"never ran in this period: {e}")
     lines += [f"Note: {n}" for n in r["notes"]]
+    if "clock_offset" in r:
+        lines.append(f"Run-log clock: {r['clock_offset']['verdict']}")
     return "\n".join(lines)
 
 

@@ -44,8 +44,11 @@ class BreakdownResult:
 
 
 def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
-                date_to: dt.date | None = None) -> tuple[SiteConfig, Aligned]:
+                date_to: dt.date | None = None,
+                log_offset_min: float = 0.0) -> tuple[SiteConfig, Aligned]:
     """Read the site file, the meter and the run log, and align them.
+
+    log_offset_min: minutes added to every run-log time to put it on the meter's clock.
 
     Raises:
         ConfigError, InputError: bad settings or files.
@@ -54,7 +57,7 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
     if date_from and date_to and date_to < date_from:
         raise ConfigError(f"--to {date_to} is before --from {date_from}")
     meter = read_meter(site.meter, site.timezone)
-    runlog = read_runlog(site.runlog, site)
+    runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)
     weather = read_weather(site.weather, site.timezone) if site.weather else None
     aligned = align(site, meter, runlog, date_from, date_to, weather)
     if aligned.counts["intervals"] == 0:
@@ -65,7 +68,8 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
 
 
 def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
-                   date_to: dt.date | None = None, confidence: float = 0.95) -> BreakdownResult:
+                   date_to: dt.date | None = None, confidence: float = 0.95,
+                   log_offset_min: float = 0.0) -> BreakdownResult:
     """Monthly per-equipment kWh with intervals, for one site.
 
     Raises:
@@ -73,7 +77,7 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     """
     if not 0.5 <= confidence < 1.0:
         raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
-    site, aligned = load_inputs(site_path, date_from, date_to)
+    site, aligned = load_inputs(site_path, date_from, date_to, log_offset_min)
     require_usable(site, aligned)
     try:
         est = estimate_draws(site, aligned, confidence)
@@ -256,13 +260,14 @@ class CheckResult:
 
 
 def check_site(site_path: str | Path, date_from: dt.date | None = None,
-               date_to: dt.date | None = None) -> CheckResult:
+               date_to: dt.date | None = None, log_offset_min: float = 0.0,
+               offset_window_min: float | None = None) -> CheckResult:
     """Read and align everything and say what was found, without fitting.
 
     Raises:
         ConfigError, InputError: the inputs cannot be used (including no usable interval).
     """
-    site, aligned = load_inputs(site_path, date_from, date_to)
+    site, aligned = load_inputs(site_path, date_from, date_to, log_offset_min)
     frame = aligned.frame
     used = aligned.use
     require_usable(site, aligned)
@@ -288,4 +293,25 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
         "inseparable_from_baseload": with_base,
         "notes": aligned.notes,
     }
+    if offset_window_min is not None:
+        report["clock_offset"] = find_log_offset(site, offset_window_min, log_offset_min)
     return CheckResult(site, aligned, report)
+
+
+def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0) -> dict:
+    """Search the run-log clock offset (minutes to add to the log's times, on top of
+    log_offset_min) over +-window_min; see disagg.clock.
+
+    Raises:
+        ConfigError: a window that is not a positive number of minutes.
+    """
+    from disagg.clock import estimate_log_offset
+
+    meter = read_meter(site.meter, site.timezone)
+    runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)
+    try:
+        r = estimate_log_offset(site, meter, runlog, window_min=window_min)
+    except ValueError as exc:
+        raise ConfigError(f"--offset-window {window_min:g}: {exc}") from None
+    return {"best_offset_min": r.best_offset_min, "clear": r.clear, "verdict": r.verdict,
+            "window_min": window_min, "already_applied_min": log_offset_min}

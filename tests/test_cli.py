@@ -471,3 +471,18 @@ def test_check_exits_1_when_too_few_intervals_to_fit(tmp_path):
     assert result.stderr == (f"Error: {s['runlog']} (3 meter intervals: 0 without a reading, 0 "
                              "with a run-log state unknown): only 3 usable meter intervals for 4 "
                              "unknowns; a fit needs at least 6\n")
+
+
+def test_check_finds_the_run_log_clock_offset_and_breakdown_applies_one(tmp_path):
+    s = write_site(tmp_path / "data", days=7, seed=8)
+    result = runner.invoke(app, ["check", str(s["site"]), "--find-offset", "--log-offset", "-6"])
+    assert result.exit_code == 0, result.output
+    line = [ln for ln in result.stdout.splitlines() if ln.startswith("Run-log clock:")]
+    # The log was read 6 minutes early: the search puts it back with +6 (within a minute).
+    assert len(line) == 1 and "shifted by +" in line[0], line
+    best = float(line[0].split("shifted by ")[1].split(" min")[0])
+    assert abs(best - 6.0) <= 1.0
+    out = tmp_path / "out"
+    result = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(out), "--log-offset", "2"])
+    assert result.exit_code == 0, result.output
+    assert "every run-log time is shifted by +2 min onto the meter's clock" in result.stdout
