@@ -67,13 +67,14 @@ def _date(value: str | None, option: str) -> dt.date | None:
 
 
 def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
-                         confidence: float, log_offset: float = 0.0) -> None:
+                         confidence: float, log_offset: float = 0.0,
+                         on_duplicate: str = "error") -> None:
     """Fit, write the files, then print the summary (built before writing, so a summary
     failure leaves no files)."""
     from disagg.outputs import breakdown_summary, write_breakdown
     from disagg.pipeline import breakdown_site
 
-    result = breakdown_site(site, d0, d1, confidence, log_offset)
+    result = breakdown_site(site, d0, d1, confidence, log_offset, on_duplicate=on_duplicate)
     summary = breakdown_summary(result)
     paths = write_breakdown(result, out)
     typer.echo(summary)
@@ -87,6 +88,8 @@ ToOpt = Annotated[Optional[str], typer.Option("--to", help="Last local date to u
                                               "(YYYY-MM-DD), inclusive; default: the meter's last.")]
 ConfOpt = Annotated[float, typer.Option("--confidence", help="Confidence level of the "
                                         "intervals, a fraction.")]
+DupOpt = Annotated[str, typer.Option("--on-duplicate", help="Meter readings repeated with "
+                                     "different values: error, keep-first or keep-last.")]
 OffsetOpt = Annotated[float, typer.Option("--log-offset", help="Minutes to add to every "
                                           "run-log time to put it on the meter's clock (see "
                                           "check --find-offset).")]
@@ -101,11 +104,13 @@ def breakdown(
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
     log_offset: OffsetOpt = 0.0,
+    on_duplicate: DupOpt = "error",
 ) -> None:
     """Monthly kWh per equipment with intervals; writes breakdown.csv/.parquet and fit.json."""
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
-    _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence, log_offset))
+    _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence, log_offset,
+                                        on_duplicate))
 
 
 @app.command()
@@ -118,6 +123,7 @@ def check(
                                               "log's clock offset from the meter.")] = False,
     offset_window: Annotated[float, typer.Option("--offset-window", help="Search the offset "
                                                  "over plus/minus this many minutes.")] = 30.0,
+    on_duplicate: DupOpt = "error",
 ) -> None:
     """Read and align the inputs and report what was found, without fitting."""
     from disagg.outputs import check_summary
@@ -125,7 +131,8 @@ def check(
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
     window = offset_window if find_offset else None
-    _guard(lambda: typer.echo(check_summary(check_site(site, d0, d1, log_offset, window))))
+    _guard(lambda: typer.echo(check_summary(check_site(site, d0, d1, log_offset, window,
+                                                       on_duplicate=on_duplicate))))
 
 
 @app.command()

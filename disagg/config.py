@@ -17,6 +17,11 @@ from pathlib import Path
 from disagg.errors import ConfigError
 
 METER_UNITS = ("kWh", "Wh", "kW")
+# A cumulative register: each reading is the meter's running total [kWh x multiplier], and an
+# interval's energy is the difference of consecutive readings (disagg.vee.register_energy).
+REGISTER_UNIT = "kWh-register"
+# A float64 holds whole numbers exactly up to 2^53 (about 9 x 10^15): 15 digits at most.
+MAX_REGISTER_DIGITS = 15
 STAMPS = ("end", "start")
 ALLOWED_INTERVALS_MIN = (1, 5, 10, 15, 30, 60)
 RUNLOG_LAYOUTS = ("events", "samples", "runtime")
@@ -48,6 +53,8 @@ class MeterSettings:
     unit: str | None  # kWh, Wh, or kW (mean demand over the interval); None for .xml
     stamp: str | None  # which edge of the interval the time marks: end or start; None for .xml
     interval_min: int | None  # None: inferred from the data
+    register_digits: int | None = None  # kWh-register: digits of the register (rolls over)
+    multiplier: float = 1.0  # kWh-register: kWh per register unit (CT/PT ratio, pulse weight)
 
 
 @dataclass(frozen=True)
@@ -110,6 +117,7 @@ class Equipment:
     full_load_kw: float | None  # from the nameplate, if any
     weather: str | None = None  # cooling or heating: the draw varies with outdoor temperature
     balance_temp_c: float | None = None  # change point of that variation [degC]
+    aliases: tuple[str, ...] = ()  # former ids in the run log (equipment renamed mid-period)
 
 
 @dataclass(frozen=True)
@@ -233,6 +241,45 @@ def _greenbutton_meter(table: _Table) -> MeterSettings:
                          unit=None, stamp=None, interval_min=_interval(table, "interval_minutes"))
 
 
+def _csv_meter(table: _Table) -> MeterSettings:
+    """[meter] settings for a CSV or Parquet export.
+
+    unit = "kWh-register" (a cumulative register) also takes register_digits (whole number,
+    the register rolls over past 10^digits - 1; without it a decrease is an error) and
+    multiplier (kWh per register unit, default 1); each interval runs from one register reading
+    to the next, so stamp can only be "end".
+    """
+    register = table.data.get("unit") == REGISTER_UNIT
+    extra = {"register_digits", "multiplier"}
+    for key in sorted(extra & set(table.data)):
+        if not register:
+            raise ConfigError(f"{table.where(key)}: only used with unit = \"{REGISTER_UNIT}\"; "
+                              "remove it or set that unit")
+    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"}
+               | extra)
+    digits, multiplier = None, 1.0
+    if register:
+        digits = table.get("register_digits", int, required=False)
+        if digits is not None and not 1 <= digits <= MAX_REGISTER_DIGITS:
+            raise ConfigError(f"{table.where('register_digits')} = {digits!r}: expected a whole "
+                              f"number from 1 to {MAX_REGISTER_DIGITS}")
+        multiplier = table.positive("multiplier") or 1.0
+        if table.data.get("stamp", "end") != "end":
+            raise ConfigError(f"{table.where('stamp')} = {table.data['stamp']!r}: a register "
+                              "reading ends the interval since the previous reading; remove "
+                              "stamp or set it to \"end\"")
+    return MeterSettings(
+        file=table.file("file"),
+        time_column=table.get("time_column", str),
+        value_column=table.get("value_column", str),
+        unit=REGISTER_UNIT if register else table.choice("unit", METER_UNITS),
+        stamp=table.choice("stamp", STAMPS, required=False, default="end"),
+        interval_min=_interval(table, "interval_minutes"),
+        register_digits=digits,
+        multiplier=multiplier,
+    )
+
+
 _SPELL = re.compile(r"^\s*([A-Za-z]{3})(?:\s*-\s*([A-Za-z]{3}))?\s+(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*$")
 
 
@@ -316,7 +363,8 @@ def _equipment(path: Path, index: int, data: object, seen: set[str],
     seen.add(eq_id)
     t.name = f"equipment {eq_id}"
     t.only({"id", "name", "kind", "control", "exponent", "rated_kw", "hp", "efficiency", "volts",
-            "amps", "phases", "power_factor", "draw_kw", "draw_sd_kw", "weather", "balance_temp"})
+            "amps", "phases", "power_factor", "draw_kw", "draw_sd_kw", "weather", "balance_temp",
+            "aliases"})
     name = t.get("name", str, required=False, default=eq_id)
     kind = t.get("kind", str, required=False, default="")
     control = t.choice("control", CONTROLS, required=False, default="on-off")
@@ -339,7 +387,46 @@ def _equipment(path: Path, index: int, data: object, seen: set[str],
     elif "balance_temp" in t.data:
         raise ConfigError(f"{t.where('balance_temp')}: only used with weather = \"cooling\" or "
                           "\"heating\"")
-    return Equipment(eq_id, name, kind, control, exponent, prior, full_load_kw, mode, balance_c)
+    aliases = _aliases(t, eq_id)
+    return Equipment(eq_id, name, kind, control, exponent, prior, full_load_kw, mode, balance_c,
+                     aliases)
+
+
+def _aliases(t: _Table, eq_id: str) -> tuple[str, ...]:
+    """The optional ``aliases`` list: former ids whose run-log rows count as this equipment."""
+    out: list[str] = []
+    for i, a in enumerate(t.get("aliases", list, required=False, default=[])):
+        where = f"{t.where('aliases')}[{i}] = {a!r}"
+        if not isinstance(a, str):
+            raise ConfigError(f"{where}: expected text, a former id of equipment {eq_id!r}")
+        a = a.strip()
+        if not a or any(c in a for c in "+;,\n"):
+            raise ConfigError(f"{where}: expected a non-empty id without '+', ';', ',' or line "
+                              "breaks")
+        if a == eq_id or a in out:
+            raise ConfigError(f"{where}: already names equipment {eq_id!r}; remove it")
+        out.append(a)
+    return tuple(out)
+
+
+def _check_aliases(path: Path, equipment: tuple[Equipment, ...]) -> None:
+    """An alias must name one equipment only and must not be another equipment's id.
+
+    Raises:
+        ConfigError: naming the equipment, the alias and the other use of it.
+    """
+    ids = {e.id for e in equipment}
+    owner: dict[str, str] = {}
+    for e in equipment:
+        for i, a in enumerate(e.aliases):
+            where = f"{path}: [equipment {e.id}] aliases[{i}] = {a!r}"
+            if a in ids:
+                raise ConfigError(f"{where}: is the id of another equipment; an alias is a "
+                                  "former id that no configured equipment uses; remove it")
+            if a in owner:
+                raise ConfigError(f"{where}: is already an alias of equipment {owner[a]!r}; "
+                                  "a former id can count as one equipment only; remove one")
+            owner[a] = e.id
 
 
 def load_site(path: str | Path) -> SiteConfig:
@@ -383,15 +470,7 @@ def load_site(path: str | Path) -> SiteConfig:
     if _is_greenbutton(m):
         meter = _greenbutton_meter(m)
     else:
-        m.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"})
-        meter = MeterSettings(
-            file=m.file("file"),
-            time_column=m.get("time_column", str),
-            value_column=m.get("value_column", str),
-            unit=m.choice("unit", METER_UNITS),
-            stamp=m.choice("stamp", STAMPS, required=False, default="end"),
-            interval_min=_interval(m, "interval_minutes"),
-        )
+        meter = _csv_meter(m)
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
@@ -452,6 +531,7 @@ def load_site(path: str | Path) -> SiteConfig:
         raise ConfigError(f"{path}: no [[equipment]] tables; add one per logged load")
     seen: set[str] = set()
     equipment = tuple(_equipment(path, i, e, seen, weather) for i, e in enumerate(raw_eq))
+    _check_aliases(path, equipment)
     known = {"site", "meter", "runlog", "baseload", "equipment", "weather"}
     extra = {k: v for k, v in data.items() if k not in known}
     return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra, weather)

@@ -185,6 +185,13 @@ def check_summary(result: CheckResult) -> str:
         lines.append(f"cannot be told apart from the baseload schedule: {e}")
     for e in r["not_run"]:
         lines.append(f"never ran in this period: {e}")
+    findings = r.get("findings", [])
+    if findings:
+        lines.append(f"Meter validation: {len(findings)} finding{'s' * (len(findings) != 1)}")
+        lines += [f"  {f['message']}" for f in findings]
+    else:
+        lines.append("Meter validation: no gaps, duplicates, spikes, zero runs, interval "
+                     "changes, daylight-saving hours or register rollovers found")
     lines += [f"Note: {n}" for n in r["notes"]]
     if "clock_offset" in r:
         lines.append(f"Run-log clock: {r['clock_offset']['verdict']}")

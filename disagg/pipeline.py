@@ -9,7 +9,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +21,9 @@ from disagg.breakdown import monthly_breakdown
 from disagg.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
 from disagg.estimate import Estimates, estimate_draws, inseparable
+from disagg.logcheck import coverage_findings
 from disagg.readers import read_meter, read_runlog, read_weather
+from disagg.vee import Finding
 
 CAUTION = ("Estimates are not measurements. Any work on electrical equipment must follow local "
            "codes and be done by licensed, qualified people.")
@@ -41,43 +43,71 @@ class BreakdownResult:
     fit: dict
     estimates: Estimates
     aligned: Aligned
+    findings: list[Finding] = field(default_factory=list)  # the meter validation's (disagg.vee)
 
 
 def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
                 date_to: dt.date | None = None,
-                log_offset_min: float = 0.0) -> tuple[SiteConfig, Aligned]:
+                log_offset_min: float = 0.0, *,
+                on_duplicate: str = "error") -> tuple[SiteConfig, Aligned]:
     """Read the site file, the meter and the run log, and align them.
 
     log_offset_min: minutes added to every run-log time to put it on the meter's clock.
+    on_duplicate: different meter readings at one time are an error (``error``), or the
+        first or last such row is kept (``keep-first``, ``keep-last``).
+
+    The meter validation's findings (disagg.vee) lead aligned.notes, one line each;
+    aligned.counts["spikes"] counts the intervals left out as spikes (they are also in
+    ``no_reading``: their energy was set to null).
 
     Raises:
         ConfigError, InputError: bad settings or files.
     """
+    site, aligned, _ = load_validated(site_path, date_from, date_to, log_offset_min,
+                                      on_duplicate=on_duplicate)
+    return site, aligned
+
+
+def load_validated(site_path: str | Path, date_from: dt.date | None = None,
+                   date_to: dt.date | None = None, log_offset_min: float = 0.0, *,
+                   on_duplicate: str = "error") -> tuple[SiteConfig, Aligned, list[Finding]]:
+    """load_inputs, and the meter validation's findings as well."""
     site = load_site(site_path)
     if date_from and date_to and date_to < date_from:
         raise ConfigError(f"--to {date_to} is before --from {date_from}")
-    meter = read_meter(site.meter, site.timezone)
+    meter = read_meter(site.meter, site.timezone, on_duplicate=on_duplicate)
     runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)
     weather = read_weather(site.weather, site.timezone) if site.weather else None
     aligned = align(site, meter, runlog, date_from, date_to, weather)
     if aligned.counts["intervals"] == 0:
         raise InputError(f"{site.meter.file}: no meter intervals between "
                          f"{date_from or 'the start'} and {date_to or 'the end'}")
-    aligned.notes[:0] = meter.notes + runlog.notes
-    return site, aligned
+    findings: list[Finding] = meter.findings
+    replaced = {f.replaces for f in findings}
+    aligned.notes[:0] = ([f.message for f in findings]
+                         + [n for n in meter.notes if n not in replaced] + runlog.notes
+                         + coverage_findings(runlog, aligned.frame))
+    spike_starts = [t for f in findings if f.kind == "spike" for t in f.starts_utc]
+    aligned.counts["spikes"] = int(aligned.frame["start_utc"].is_in(spike_starts).sum())
+    return site, aligned, findings
 
 
 def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                    date_to: dt.date | None = None, confidence: float = 0.95,
-                   log_offset_min: float = 0.0) -> BreakdownResult:
+                   log_offset_min: float = 0.0, *,
+                   on_duplicate: str = "error") -> BreakdownResult:
     """Monthly per-equipment kWh with intervals, for one site.
+
+    on_duplicate: see load_inputs. The meter validation's findings are in the result, in
+    fit["meter_validation"] and, one line each, in fit["warnings"].
 
     Raises:
         ConfigError, InputError: bad settings, files, or too little usable data.
     """
     if not 0.5 <= confidence < 1.0:
         raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
-    site, aligned = load_inputs(site_path, date_from, date_to, log_offset_min)
+    site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
+                                             on_duplicate=on_duplicate)
     require_usable(site, aligned)
     try:
         est = estimate_draws(site, aligned, confidence)
@@ -86,7 +116,8 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     table, months = monthly_fits(site, aligned, est, confidence)
     fit = fit_summary(site, aligned, est)
     fit["months"] = months
-    return BreakdownResult(site, table, fit, est, aligned)
+    fit["meter_validation"] = [f.as_dict() for f in findings]
+    return BreakdownResult(site, table, fit, est, aligned, findings)
 
 
 def require_usable(site: SiteConfig, aligned: Aligned) -> None:
@@ -261,13 +292,18 @@ class CheckResult:
 
 def check_site(site_path: str | Path, date_from: dt.date | None = None,
                date_to: dt.date | None = None, log_offset_min: float = 0.0,
-               offset_window_min: float | None = None) -> CheckResult:
+               offset_window_min: float | None = None, *,
+               on_duplicate: str = "error") -> CheckResult:
     """Read and align everything and say what was found, without fitting.
+
+    The report's "findings" are the meter validation's (disagg.vee, as dicts with kind,
+    count, times, policy and message); its "notes" are the other notes.
 
     Raises:
         ConfigError, InputError: the inputs cannot be used (including no usable interval).
     """
-    site, aligned = load_inputs(site_path, date_from, date_to, log_offset_min)
+    site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
+                                             on_duplicate=on_duplicate)
     frame = aligned.frame
     used = aligned.use
     require_usable(site, aligned)
@@ -291,14 +327,17 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
         "not_run": [e for e, h in zip(aligned.equipment_ids, run) if h == 0],
         "inseparable_pairs": pairs,
         "inseparable_from_baseload": with_base,
-        "notes": aligned.notes,
+        "findings": [f.as_dict() for f in findings],
+        "notes": [n for n in aligned.notes if n not in {f.message for f in findings}],
     }
     if offset_window_min is not None:
-        report["clock_offset"] = find_log_offset(site, offset_window_min, log_offset_min)
+        report["clock_offset"] = find_log_offset(site, offset_window_min, log_offset_min,
+                                                 on_duplicate=on_duplicate)
     return CheckResult(site, aligned, report)
 
 
-def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0) -> dict:
+def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,
+                    on_duplicate: str = "error") -> dict:
     """Search the run-log clock offset (minutes to add to the log's times, on top of
     log_offset_min) over +-window_min; see disagg.clock.
 
@@ -307,7 +346,7 @@ def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float =
     """
     from disagg.clock import estimate_log_offset
 
-    meter = read_meter(site.meter, site.timezone)
+    meter = read_meter(site.meter, site.timezone, on_duplicate=on_duplicate)
     runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)
     try:
         r = estimate_log_offset(site, meter, runlog, window_min=window_min)

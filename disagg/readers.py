@@ -8,6 +8,7 @@ download, whose readings are named by position ("IntervalReading 17").
 from __future__ import annotations
 
 import datetime as dt
+import difflib
 import math
 import re
 import xml.etree.ElementTree as ET
@@ -17,8 +18,9 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from disagg.config import (ALLOWED_INTERVALS_MIN, MeterSettings, RunlogSettings, SiteConfig,
-                           WeatherSettings)
+from disagg import vee
+from disagg.config import (ALLOWED_INTERVALS_MIN, REGISTER_UNIT, MeterSettings, RunlogSettings,
+                           SiteConfig, WeatherSettings)
 from disagg.errors import InputError
 
 _OFFSET = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
@@ -85,10 +87,15 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
                              "expected a date and time such as 2025-03-09T03:15:00")
         first = text[0] if len(text) else ""
         offset = bool(_OFFSET.search(first))
-        if offset:
-            parsed = text.str.to_datetime(time_zone="UTC", strict=False, time_unit="us")
-        else:
-            parsed = text.str.to_datetime(strict=False, time_unit="us")
+        try:
+            if offset:
+                parsed = text.str.to_datetime(time_zone="UTC", strict=False, time_unit="us")
+            else:
+                parsed = text.str.to_datetime(strict=False, time_unit="us")
+        except pl.exceptions.ComputeError:  # polars found no date form in the first rows
+            raise InputError(f"{path}: {_row_label(path, 0)}, column {column!r}: cannot read "
+                             f"time {first!r}; expected a date and time such as "
+                             "2025-03-09T03:15:00") from None
         if parsed.null_count():
             idx = int(parsed.is_null().arg_max())  # type: ignore[arg-type]
             raise InputError(
@@ -135,6 +142,7 @@ class MeterData:
     """Meter intervals in UTC with their energy.
 
     frame columns: start_utc, end_utc [datetime, UTC], energy_kwh [kWh, null = no reading].
+    findings: the meter validation's findings (disagg.vee.Finding), in the order checked.
     """
 
     frame: pl.DataFrame
@@ -143,6 +151,7 @@ class MeterData:
     rows_read: int
     duplicates_dropped: int = 0
     notes: list[str] = field(default_factory=list)
+    findings: list = field(default_factory=list)
 
 
 def infer_interval_min(starts: pl.Series, path: Path, what: str) -> int:
@@ -159,61 +168,95 @@ def infer_interval_min(starts: pl.Series, path: Path, what: str) -> int:
     return int(mode_s // 60)
 
 
-def read_meter(settings: MeterSettings, tz: str) -> MeterData:
-    """Read the utility interval meter export.
+def _naive_times(frame: pl.DataFrame, column: str) -> bool:
+    """True when the time column holds naive local times (parse_times' rule)."""
+    s = frame.get_column(column)
+    if s.dtype == pl.Datetime:
+        return s.dtype.time_zone is None  # type: ignore[union-attr]
+    text = s.cast(pl.String).str.strip_chars().drop_nulls()
+    return not (len(text) and _OFFSET.search(text[0]))
+
+
+def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") -> MeterData:
+    """Read the utility interval meter export and validate it (disagg.vee).
 
     A .xml file is a Green Button download (see read_greenbutton); its intervals get the
-    same checks.
+    same checks. A ``kWh-register`` file holds cumulative register readings; each interval's
+    energy is the difference from the reading one interval earlier, times the multiplier,
+    across a rollover when register_digits is set (disagg.vee.register_energy).
+
+    Findings (disagg.vee.Finding, one line each with times, count and policy): duplicate
+    times, readings off the interval grid (left out), register rollovers, the daylight-saving
+    hours of a file in naive local time, gaps (left out, not filled), spikes (left out: their
+    energy is null) and long zero runs (kept, flagged).
+
+    Args:
+        on_duplicate: different readings at one time are an error (``error``), or the first
+            (``keep-first``) or last (``keep-last``) such row in the file is kept.
 
     Returns:
         Intervals sorted by start, with energy in kWh (kW readings are multiplied by the
-        interval length in hours, Wh divided by 1000).
+        interval length in hours, Wh divided by 1000), and the findings.
 
     Raises:
         InputError: missing column, unreadable time or value, negative energy, duplicate
-        times with different values, or an interval that is not 1, 5, 10, 15, 30 or 60 min.
+        times with different values (with on_duplicate = error), an interval that is not 1, 5,
+        10, 15, 30 or 60 min, or a register that decreases without register_digits.
+        ConfigError: on_duplicate is not one of error, keep-first, keep-last.
     """
+    vee.check_on_duplicate(on_duplicate)
     if settings.file.suffix.lower() == ".xml":
-        return _read_greenbutton_meter(settings)
+        gb = _read_greenbutton_meter(settings)
+        gb.frame, findings = vee.validate_frame(gb.frame, gb.interval_min, "start", tz)
+        gb.findings = findings
+        return gb
     path = settings.file
     raw = read_table(path, "meter")
     require_columns(raw, path, [settings.time_column, settings.value_column])
     times = parse_times(raw, settings.time_column, tz, path)
     values = _numbers(raw, settings.value_column, path, f"energy in {settings.unit}")
-    if (values < 0).any():
-        idx = int((values < 0).arg_max())  # type: ignore[arg-type]
-        raise InputError(f"{path}: {_row_label(path, idx)}, column {settings.value_column!r}: "
-                         f"negative reading {values[idx]:g}; expected energy of 0 or more")
+    negative = vee.negative_readings(
+        values, lambda i: f"{path}: {_row_label(path, i)}, column {settings.value_column!r}")
+    if negative:
+        raise InputError(negative.message)
     df = pl.DataFrame({"t": times, "v": values, "row": pl.int_range(len(times), eager=True)})
-    # Same time twice: identical readings are one reading; different readings are an error.
-    dup = df.filter(pl.col("t").is_duplicated())
-    dropped = 0
-    if dup.height:
-        conflict = dup.group_by("t").agg(pl.col("v").n_unique().alias("n"),
-                                         pl.col("row").sort()).filter(pl.col("n") > 1)
-        if conflict.height:
-            first = conflict.sort(pl.col("row").list.first()).row(0, named=True)
-            r0, r1 = first["row"][0], first["row"][1]
-            raise InputError(
-                f"{path}: {_row_label(path, r1)}, column {settings.time_column!r}: time "
-                f"{first['t']} repeats {_row_label(path, r0)} with a different reading; "
-                "expected one reading per interval")
-        before = df.height
-        df = df.unique(subset="t", keep="first", maintain_order=True)
-        dropped = before - df.height
+    rows_read = df.height
+    df, findings = vee.resolve_duplicates(
+        df, on_duplicate, tz,
+        lambda t, r0, r1: (f"{path}: {_row_label(path, r1)}, column {settings.time_column!r}: "
+                           f"time {t} repeats {_row_label(path, r0)} with a different reading; "
+                           "expected one reading per interval"))
+    dropped = rows_read - df.height
     df = df.sort("t")
     interval_min = settings.interval_min or infer_interval_min(df["t"], path, "meter")
+    stamp = settings.stamp or "end"
+    off = vee.off_interval(df["t"], interval_min, stamp)
+    finding = vee.off_interval_finding(df["t"], off, interval_min, stamp, tz)
+    if finding:
+        findings.append(finding)
+        df = df.filter(~off)
+    if settings.unit == REGISTER_UNIT:
+        energy, finding = vee.register_energy(
+            df["t"], df["v"], interval_min, settings.register_digits, settings.multiplier, tz,
+            df["row"], lambda i: _row_label(path, i),
+            f"{path}: {{}}, column {settings.value_column!r}")
+        findings += [finding] if finding else []
+        # The first reading only starts the count: no interval ends there.
+        df = df.with_columns(v=energy).slice(1)
+        scale = 1.0
+    else:
+        scale = {"kWh": 1.0, "Wh": 1e-3, "kW": interval_min / 60.0}[settings.unit]
+    if _naive_times(raw, settings.time_column):
+        findings += vee.dst_hours(df["t"], tz, interval_min)
     step = pl.duration(minutes=interval_min)
-    if settings.stamp == "end":
+    if stamp == "end":
         df = df.with_columns(start_utc=pl.col("t") - step, end_utc=pl.col("t"))
     else:
         df = df.with_columns(start_utc=pl.col("t"), end_utc=pl.col("t") + step)
-    scale = {"kWh": 1.0, "Wh": 1e-3, "kW": interval_min / 60.0}[settings.unit]
     frame = df.select("start_utc", "end_utc", (pl.col("v") * scale).alias("energy_kwh"))
-    notes = []
-    if dropped:
-        notes.append(f"{dropped} repeated meter rows with identical readings were dropped")
-    return MeterData(frame, interval_min, path, raw.height, dropped, notes)
+    frame, more = vee.validate_frame(frame, interval_min, stamp, tz)
+    notes = [f.replaces for f in findings if f.replaces]
+    return MeterData(frame, interval_min, path, rows_read, dropped, notes, findings + more)
 
 
 # ---------------------------------------------------------------------------------------
@@ -608,13 +651,154 @@ def _states(frame: pl.DataFrame, column: str, path: Path) -> pl.Series:
     return values
 
 
-def _check_ids(ids: pl.Series, known: list[str], path: Path, column: str) -> None:
-    unknown = ~ids.is_in(known)
+def _alias_map(site: SiteConfig) -> dict[str, str]:
+    """Former id (an ``aliases`` entry) -> the configured id it counts as."""
+    return {a: e.id for e in site.equipment for a in e.aliases}
+
+
+def _did_you_mean(name: str, candidates: list[str]) -> str:
+    """`` did you mean 'X'?`` for the candidate closest to name, ignoring case, or ''.
+
+    Closeness is difflib's ratio (standard library), at least its default cutoff 0.6.
+    """
+    lower = {c.lower(): c for c in candidates}
+    close = difflib.get_close_matches(name.lower(), list(lower), n=1)
+    return f" did you mean {lower[close[0]]!r}?" if close else ""
+
+
+def _expected_ids(known: list[str], aliases: dict[str, str]) -> str:
+    former = f" or their former ids ({', '.join(aliases)})" if aliases else ""
+    return f"({', '.join(known)}){former}"
+
+
+def _check_ids(ids: pl.Series, known: list[str], path: Path, column: str,
+               aliases: dict[str, str] | None = None) -> None:
+    """Raise InputError at the first row whose id is neither configured nor a former id.
+
+    The message suggests the nearest configured id and names the file's other unknown ids.
+    """
+    aliases = aliases or {}
+    valid = known + list(aliases)
+    unknown = (~ids.is_in(valid)).fill_null(True) | (ids == "").fill_null(True)
     if unknown.any():
         idx = int(unknown.arg_max())  # type: ignore[arg-type]
-        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: unknown "
-                         f"equipment id {ids[idx]!r}; expected one of the site file's ids "
-                         f"({', '.join(known)})")
+        bad = ids[idx]
+        where = f"{path}: {_row_label(path, idx)}, column {column!r}"
+        if not bad:
+            raise InputError(f"{where}: empty equipment id; expected one of the site file's ids "
+                             f"{_expected_ids(known, aliases)}")
+        others = [i for i in ids.filter(unknown).unique(maintain_order=True).to_list()
+                  if i and i != bad]
+        also = ""
+        if others:
+            more = f" and {len(others) - 5} more" if len(others) > 5 else ""
+            also = (f"; the file also has unknown ids "
+                    f"{', '.join(repr(i) for i in others[:5])}{more}")
+        raise InputError(f"{where}: unknown equipment id {bad!r};{_did_you_mean(bad, valid)} "
+                         f"expected one of the site file's ids {_expected_ids(known, aliases)}"
+                         f"{also}")
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"
+
+
+def _order_notes(path: Path, t: pl.Series, by: pl.Series | None) -> list[str]:
+    """A finding for rows earlier than the previous row (of the same equipment), in file order."""
+    g = by if by is not None else pl.repeat("", len(t), eager=True)
+    back = (pl.DataFrame({"t": t, "g": g})
+            .select((pl.col("t") < pl.col("t").shift(1).over("g")).fill_null(False))
+            .to_series())
+    n = int(back.sum())
+    if not n:
+        return []
+    idx = int(back.arg_max())  # type: ignore[arg-type]
+    who = f"{by[idx]!r} at {t[idx]}" if by is not None else f"at {t[idx]}"
+    same = " of the same equipment" if by is not None else ""
+    return [f"{path}: {_plural(n, 'row')} out of time order, earlier than the previous "
+            f"row{same} (first: {_row_label(path, idx)}, {who}); policy: sorted by time"]
+
+
+def _alias_notes(path: Path, written: pl.Series, t: pl.Series,
+                 aliases: dict[str, str]) -> list[str]:
+    """One line per former id used in the file: how many rows now count as which equipment."""
+    notes = []
+    for old, new in aliases.items():
+        mask = (written == old).fill_null(False)
+        if mask.any():
+            times = t.filter(mask)
+            notes.append(f"{path}: {_plural(int(mask.sum()), 'row')} of former id {old!r} counted "
+                         f"as equipment {new!r} ({times.min()} to {times.max()})")
+    return notes
+
+
+def _sample_frame(raw: pl.DataFrame, cols: list[str], eq_id: str, t: pl.Series, path: Path,
+                  aliases: dict[str, str]) -> tuple[pl.DataFrame, list[str]]:
+    """One equipment's samples in file order: t, v (status 0..1, null = empty cell), row.
+
+    Columns of a former id (alias) fill the cells the others leave empty.
+
+    Raises:
+        InputError: two columns with different states in one row, or two rows at one time
+        with different states.
+    """
+    masked = []
+    for c in cols:
+        col = raw.get_column(c)
+        text = col.cast(pl.String).str.strip_chars() if not col.dtype.is_numeric() else None
+        empty = col.is_null() if text is None else (text.is_null() | (text == ""))
+        filled = raw.select(pl.when(empty).then(pl.lit("0"))
+                            .otherwise(pl.col(c).cast(pl.String)).alias(c))
+        v = _states(filled, c, path)
+        masked.append(v.zip_with(~empty, pl.Series(c, [None] * len(v), dtype=pl.Float64)).alias(c))
+    w = pl.DataFrame(masked)
+    notes = []
+    if len(cols) > 1:
+        differ = w.select(pl.min_horizontal(cols) != pl.max_horizontal(cols)).to_series()
+        differ = differ.fill_null(False)
+        if differ.any():
+            idx = int(differ.arg_max())  # type: ignore[arg-type]
+            both = ", ".join(repr(c) for c in cols if w[c][idx] is not None)
+            raise InputError(f"{path}: {_row_label(path, idx)}: equipment {eq_id!r} has different "
+                             f"states at the same time {t[idx]} (columns {both}); expected one "
+                             "state")
+        for c in cols:
+            seen = w[c].is_not_null()
+            if c in aliases and seen.any():
+                times = t.filter(seen)
+                notes.append(f"{path}: {_plural(int(seen.sum()), 'sample')} in column {c!r} (a "
+                             f"former id) counted as equipment {eq_id!r} ({times.min()} to "
+                             f"{times.max()})")
+    v = w.select(pl.coalesce(cols)).to_series()
+    f = pl.DataFrame({"t": t, "v": v, "row": pl.int_range(len(t), eager=True)})
+    clash = (f.drop_nulls("v").group_by("t")
+             .agg(pl.col("v").n_unique().alias("n"), pl.col("row").min())
+             .filter(pl.col("n") > 1).sort("row"))
+    if clash.height:
+        r = clash.row(0, named=True)
+        raise InputError(f"{path}: {_row_label(path, r['row'])}: equipment {eq_id!r} has "
+                         f"different states at the same time {r['t']}; expected one state")
+    return f, notes
+
+
+def _stale_notes(path: Path, eq_id: str, f: pl.DataFrame, hold_min: float,
+                 log_end: dt.datetime) -> list[str]:
+    """A finding for silences longer than max_hold: from a sample to the next, or to the log's end.
+
+    f: one row per time, sorted, v null for an empty cell (which is not a sample).
+    """
+    s = f.filter(pl.col("v").is_not_null())
+    gap_min = (s.select((pl.col("t").shift(-1).fill_null(log_end) - pl.col("t"))
+                        .dt.total_microseconds() / 60e6).to_series())
+    stale = gap_min > hold_min
+    n = int(stale.sum())
+    if not n:
+        return []
+    idx = int(stale.arg_max())  # type: ignore[arg-type]
+    return [f"{path}: equipment {eq_id!r}: {_plural(n, 'silence')} longer than max_hold_minutes "
+            f"= {hold_min:g} (first: {gap_min[idx]:g} min without a sample from {s['t'][idx]}); "
+            f"policy: more than {hold_min:g} min after a sample the state is unknown, and meter "
+            "intervals then are left out"]
 
 
 def _to_segments(df: pl.DataFrame, ids: list[str], end_col: str) -> dict[str, Segments]:
@@ -642,7 +826,13 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
     events: a state holds until that equipment's next event, and the last one until the
     log's last time. samples: a sample holds until the next sample of that column, but at
     most max_hold_minutes; an empty cell is unknown. runtime: run minutes in each log
-    interval, spread evenly over it.
+    interval, spread evenly over it. Rows (or sample columns) under a former id listed in an
+    equipment's ``aliases`` count as that equipment.
+
+    Findings go into ``notes``, one line each: rows of former ids, rows out of time order
+    (policy: sorted by time), and silences of a sample column longer than max_hold_minutes
+    (the time beyond max_hold is unknown). Coverage of the meter period needs the meter:
+    see ``disagg.logcheck.coverage_findings``.
 
     Args:
         offset_min: minutes ADDED to every run-log time once it is parsed to UTC [min], to put
@@ -651,8 +841,9 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
             ``disagg.clock.estimate_log_offset`` estimates it with this sign.
 
     Raises:
-        InputError: missing column, unreadable time or state, unknown equipment id,
-        two different states for one equipment at one time.
+        InputError: missing column, unreadable time or state, unknown or empty equipment id
+        (suggesting the nearest configured id), two different states (or run minutes) for
+        one equipment at one time.
         ValueError: offset_min is not a finite number.
     """
     if not math.isfinite(offset_min):
@@ -661,6 +852,7 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
     path = settings.file
     raw = read_table(path, "run log")
     ids = site.equipment_ids()
+    aliases = _alias_map(site)
     tz = site.timezone
     notes: list[str] = []
     if offset_min:
@@ -670,26 +862,34 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         require_columns(raw, path, [settings.time_column])
         present = [c for c in raw.columns if c != settings.time_column]
         for c in present:
-            if c not in ids:
-                raise InputError(f"{path}: column {c!r} is not a configured equipment id; "
-                                 f"expected the time column and columns named {', '.join(ids)}")
-        missing = [e for e in ids if e not in present]
+            if c not in ids and c not in aliases:
+                former = f" or former ids {', '.join(aliases)}" if aliases else ""
+                raise InputError(f"{path}: column {c!r} is not a configured equipment id;"
+                                 f"{_did_you_mean(c, ids + list(aliases))} expected the time "
+                                 f"column and columns named {', '.join(ids)}{former}")
+        by_eq = {e: [c for c in present if aliases.get(c, c) == e] for e in ids}
+        missing = [e for e in ids if not by_eq[e]]
         if missing:
             notes.append(f"no run-log column for {', '.join(missing)}: left out as unknown")
         t = parse_times(raw, settings.time_column, tz, path) + shift
+        notes += _order_notes(path, t, None)
         hold = pl.duration(microseconds=int(round(settings.max_hold_min * 60e6)))
         frames = []
-        for c in present:
-            col = raw.get_column(c)
-            text = col.cast(pl.String).str.strip_chars() if not col.dtype.is_numeric() else None
-            empty = col.is_null() if text is None else (text.is_null() | (text == ""))
-            filled = raw.select(pl.when(empty).then(pl.lit("0")).otherwise(pl.col(c).cast(pl.String)).alias(c))
-            v = _states(filled, c, path)
-            f = pl.DataFrame({"t": t, "v": v, "empty": empty}).sort("t")
+        for eq_id, eq_cols in by_eq.items():
+            if not eq_cols:
+                continue
+            f, alias_notes = _sample_frame(raw, eq_cols, eq_id, t, path, aliases)
+            notes += alias_notes
+            # One row per time, a sample before an empty cell; an empty cell ends the sample
+            # before it (unknown from then on).
+            f = (f.sort(pl.col("t"), pl.col("v").is_null())
+                 .unique(subset="t", keep="first", maintain_order=True))
             f = f.with_columns(nxt=pl.col("t").shift(-1))
             f = f.with_columns(end=pl.min_horizontal(pl.col("nxt"), pl.col("t") + hold))
-            f = f.filter(~pl.col("empty") & pl.col("end").is_not_null())
-            frames.append(f.select(pl.lit(c).alias("eq"), "t", "end", "v"))
+            notes += _stale_notes(path, eq_id, f, settings.max_hold_min,  # type: ignore[arg-type]
+                                  t.max())  # type: ignore[arg-type]
+            f = f.filter(pl.col("v").is_not_null() & pl.col("end").is_not_null())
+            frames.append(f.select(pl.lit(eq_id).alias("eq"), "t", "end", "v"))
         df = pl.concat(frames) if frames else pl.DataFrame(schema={"eq": pl.String, "t": t.dtype, "end": t.dtype, "v": pl.Float64})
         return RunLog(_to_segments(df, ids, "end"), path, raw.height, notes)
 
@@ -699,8 +899,13 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         cols = [settings.time_column, settings.equipment_column, settings.minutes_column]
     require_columns(raw, path, cols)  # type: ignore[arg-type]
     eq = raw.get_column(settings.equipment_column).cast(pl.String).str.strip_chars()  # type: ignore[arg-type]
-    _check_ids(eq, ids, path, settings.equipment_column)  # type: ignore[arg-type]
+    _check_ids(eq, ids, path, settings.equipment_column, aliases)  # type: ignore[arg-type]
+    written = eq
+    if aliases:
+        eq = eq.replace(aliases)
     t = parse_times(raw, settings.time_column, tz, path, by=eq) + shift
+    notes += _alias_notes(path, written, t, aliases)
+    notes += _order_notes(path, t, eq)
     if settings.layout == "events":
         v = _states(raw, settings.state_column, path)  # type: ignore[arg-type]
         df = pl.DataFrame({"eq": eq, "t": t, "v": v, "row": pl.int_range(raw.height, eager=True)})
@@ -724,7 +929,16 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         return RunLog(_to_segments(df, ids, "end"), path, raw.height, notes)
 
     minutes = _numbers(raw, settings.minutes_column, path, "run minutes")  # type: ignore[arg-type]
-    df = pl.DataFrame({"eq": eq, "t": t, "m": minutes}).filter(pl.col("m").is_not_null())
+    df = (pl.DataFrame({"eq": eq, "t": t, "m": minutes,
+                        "row": pl.int_range(raw.height, eager=True)})
+          .filter(pl.col("m").is_not_null()))
+    clash = (df.group_by("eq", "t").agg(pl.col("m").n_unique().alias("n"), pl.col("row").min())
+             .filter(pl.col("n") > 1).sort("row"))
+    if clash.height:
+        r = clash.row(0, named=True)
+        raise InputError(f"{path}: {_row_label(path, r['row'])}: equipment {r['eq']!r} has "
+                         f"different run minutes at the same time {r['t']}; expected one value "
+                         "per interval")
     step_min = settings.interval_min or infer_interval_min(df["t"].unique(), path, "run-log")
     if ((df["m"] < 0) | (df["m"] > step_min)).any():
         idx = int(((minutes < 0) | (minutes > step_min)).arg_max())  # type: ignore[arg-type]

@@ -301,8 +301,8 @@ def _bad_time(s):
 def _unknown_equipment(s):
     first = s["runlog"].read_text(encoding="utf-8").splitlines()[2]
     _replace_line(s["runlog"], 3, re.sub(r",[^,]+,", ",CH-9,", first, count=1))
-    return (f"{s['runlog']}: line 3, column 'point': unknown equipment id 'CH-9'; expected one "
-            "of the site file's ids (CH-1, AHU-1, P-1)")
+    return (f"{s['runlog']}: line 3, column 'point': unknown equipment id 'CH-9'; did you mean "
+            "'CH-1'? expected one of the site file's ids (CH-1, AHU-1, P-1)")
 
 
 def _negative_energy(s):
@@ -486,3 +486,21 @@ def test_check_finds_the_run_log_clock_offset_and_breakdown_applies_one(tmp_path
     result = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(out), "--log-offset", "2"])
     assert result.exit_code == 0, result.output
     assert "every run-log time is shifted by +2 min onto the meter's clock" in result.stdout
+
+
+def test_on_duplicate_keep_first_turns_the_conflict_error_into_a_finding(tmp_path):
+    s = write_site(tmp_path / "data", days=3, seed=5)
+    _conflicting_duplicate(s)
+    out = tmp_path / "out"
+    refused = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(out)])
+    assert refused.exit_code == 1
+    kept = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(out),
+                               "--on-duplicate", "keep-first"])
+    assert kept.exit_code == 0, kept.output
+    assert ("Note: meter duplicates: 1 time appears more than once with different readings "
+            "(2025-01-20T01:15:00-06:00); policy: the first row of each kept "
+            "(on_duplicate = keep-first), 1 row dropped") in kept.stdout.splitlines()
+    bad = runner.invoke(app, ["check", str(s["site"]), "--on-duplicate", "keep-middle"])
+    assert bad.exit_code == 1
+    assert bad.stderr == ("Error: --on-duplicate 'keep-middle': expected one of error, "
+                          "keep-first, keep-last\n")

@@ -214,7 +214,7 @@ def test_a_misspelt_setting_is_an_error_not_ignored(tmp_path):
     text = SITE_HEAD + '\n[[equipment]]\nid = "AC-1"\ndraw_kw = 7.0\ndraw_sd_Kw = 1.0\n'
     msg, path = _error(tmp_path, text)
     assert msg == (f"{path}: [equipment AC-1] draw_sd_Kw: unknown setting; expected one of "
-                   "amps, balance_temp, control, draw_kw, draw_sd_kw, efficiency, exponent, hp, "
+                   "aliases, amps, balance_temp, control, draw_kw, draw_sd_kw, efficiency, exponent, hp, "
                    "id, kind, name, phases, power_factor, rated_kw, volts, weather")
 
 

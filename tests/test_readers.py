@@ -412,7 +412,8 @@ def test_events_unknown_equipment_id_names_the_id_and_the_configured_ids(tmp_pat
     with pytest.raises(InputError) as exc:
         read_runlog(site.runlog, site)
     assert _message(exc) == (f"{path}: line 3, column 'point': unknown equipment id 'CH-2'; "
-                             "expected one of the site file's ids (CH-1, AHU-1, P-1)")
+                             "did you mean 'CH-1'? expected one of the site file's ids "
+                             "(CH-1, AHU-1, P-1)")
 
 
 def test_events_two_states_for_one_equipment_at_one_time_is_an_error(tmp_path):
@@ -501,7 +502,10 @@ def test_samples_hold_until_the_next_sample_but_no_longer_than_max_hold(tmp_path
     covered_to_6_40 = [s for s in _segments(log, "P-1") if s[0] < t(6, 40)]
     assert covered_to_6_40 == [(t(6, 0), t(6, 10), 1.0), (t(6, 10), t(6, 20), 1.0),
                                (t(6, 20), t(6, 40), 0.0)]
-    assert log.notes == []
+    # The 40-minute silence is a finding for every column (tests/test_runlog_validation.py
+    # checks its wording).
+    assert [n.split(": ")[1] for n in log.notes] == ["equipment 'CH-1'", "equipment 'AHU-1'",
+                                                     "equipment 'P-1'"]
 
 
 def test_samples_column_that_is_not_an_equipment_id_is_an_error(tmp_path):
@@ -510,7 +514,8 @@ def test_samples_column_that_is_not_an_equipment_id_is_an_error(tmp_path):
     with pytest.raises(InputError) as exc:
         read_runlog(site.runlog, site)
     assert _message(exc) == (f"{path}: column 'CH-9' is not a configured equipment id; "
-                             "expected the time column and columns named CH-1, AHU-1, P-1")
+                             "did you mean 'CH-1'? expected the time column and columns named "
+                             "CH-1, AHU-1, P-1")
 
 
 def test_samples_missing_equipment_column_is_unknown_and_noted(tmp_path):
