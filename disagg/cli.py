@@ -68,13 +68,14 @@ def _date(value: str | None, option: str) -> dt.date | None:
 
 def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
                          confidence: float, log_offset: float = 0.0,
-                         on_duplicate: str = "error") -> None:
+                         on_duplicate: str = "error", estimate: bool = False) -> None:
     """Fit, write the files, then print the summary (built before writing, so a summary
     failure leaves no files)."""
     from disagg.outputs import breakdown_summary, write_breakdown
     from disagg.pipeline import breakdown_site
 
-    result = breakdown_site(site, d0, d1, confidence, log_offset, on_duplicate=on_duplicate)
+    result = breakdown_site(site, d0, d1, confidence, log_offset, on_duplicate=on_duplicate,
+                            estimate=estimate)
     summary = breakdown_summary(result)
     paths = write_breakdown(result, out)
     typer.echo(summary)
@@ -105,12 +106,15 @@ def breakdown(
     confidence: ConfOpt = 0.95,
     log_offset: OffsetOpt = 0.0,
     on_duplicate: DupOpt = "error",
+    estimate: Annotated[bool, typer.Option("--estimate", help="Fill meter gaps of at most 4 "
+                                           "intervals by linear interpolation, for the monthly "
+                                           "totals only (an estimated-gaps row per month).")] = False,
 ) -> None:
     """Monthly kWh per equipment with intervals; writes breakdown.csv/.parquet and fit.json."""
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence, log_offset,
-                                        on_duplicate))
+                                        on_duplicate, estimate))
 
 
 @app.command()

@@ -95,7 +95,7 @@ def load_validated(site_path: str | Path, date_from: dt.date | None = None,
 def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                    date_to: dt.date | None = None, confidence: float = 0.95,
                    log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error") -> BreakdownResult:
+                   on_duplicate: str = "error", estimate: bool = False) -> BreakdownResult:
     """Monthly per-equipment kWh with intervals, for one site.
 
     on_duplicate: see load_inputs. The meter validation's findings are in the result, in
@@ -114,7 +114,11 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     except ValueError as exc:
         raise InputError(f"{_short_data_source(site, aligned)}: {exc}") from None
     table, months = monthly_fits(site, aligned, est, confidence)
+    estimated_months: list[str] = []
+    if estimate:
+        table, estimated_months = _add_estimated_gaps(table, aligned, site.timezone)
     fit = fit_summary(site, aligned, est)
+    fit["estimated_months"] = estimated_months
     fit["months"] = months
     fit["meter_validation"] = [f.as_dict() for f in findings]
     return BreakdownResult(site, table, fit, est, aligned, findings)
@@ -131,6 +135,34 @@ def require_usable(site: SiteConfig, aligned: Aligned) -> None:
         raise InputError(f"{_short_data_source(site, aligned)}: only {used} usable meter "
                          f"intervals for {n_unknowns} unknowns; a fit needs at least "
                          f"{n_unknowns + 2}")
+
+
+def _add_estimated_gaps(table: pl.DataFrame, aligned: Aligned,
+                        tz: str) -> tuple[pl.DataFrame, list[str]]:
+    """Add, for each month with short meter gaps, an `estimated-gaps` row holding their energy
+    filled by linear interpolation (disagg.vee.estimate_short_gaps), flagged `estimated`.
+
+    The fit never sees estimated energy; only the month's total grows by it.
+    """
+    from disagg.vee import ESTIMATE_MAX_GAP, estimate_short_gaps, monthly_totals
+
+    frame = aligned.frame.select("start_utc", "end_utc", "energy_kwh")
+    filled = estimate_short_gaps(frame, aligned.interval_min)
+    totals = monthly_totals(filled, tz).filter(pl.col("estimated"))
+    rows = []
+    for r in totals.iter_rows(named=True):
+        hours = r["estimated_intervals"] * aligned.interval_min / 60.0
+        rows.append({"period": r["period"], "equipment": "estimated-gaps", "run_hours": hours,
+                     "kw": r["estimated_kwh"] / hours, "kw_low": None, "kw_high": None,
+                     "kwh": r["estimated_kwh"], "kwh_low": None, "kwh_high": None,
+                     "share": None,
+                     "flags": f"estimated;gaps of at most {ESTIMATE_MAX_GAP} intervals, "
+                              "linear interpolation"})
+    if not rows:
+        return table, []
+    extra = pl.DataFrame(rows, schema=table.schema)
+    return (pl.concat([table, extra]).sort("period", maintain_order=True),
+            totals["period"].to_list())
 
 
 def _short_data_source(site: SiteConfig, aligned: Aligned) -> str:

@@ -504,3 +504,27 @@ def test_on_duplicate_keep_first_turns_the_conflict_error_into_a_finding(tmp_pat
     assert bad.exit_code == 1
     assert bad.stderr == ("Error: --on-duplicate 'keep-middle': expected one of error, "
                           "keep-first, keep-last\n")
+
+
+def test_estimate_fills_short_gaps_for_the_monthly_totals_only(tmp_path):
+    s = write_site(tmp_path / "data", days=3, seed=5)
+    lines = s["meter"].read_text(encoding="utf-8").splitlines()
+    gone = [float(lines[i].split(",")[1]) for i in (10, 11)]
+    before, after = float(lines[9].split(",")[1]), float(lines[12].split(",")[1])
+    s["meter"].write_text("\n".join(lines[:10] + lines[12:]) + "\n", encoding="utf-8")
+    plain, est = tmp_path / "plain", tmp_path / "est"
+    assert runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(plain)]).exit_code == 0
+    result = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(est), "--estimate"])
+    assert result.exit_code == 0, result.output
+    a = pl.read_parquet(plain / "breakdown.parquet")
+    b = pl.read_parquet(est / "breakdown.parquet")
+    assert "estimated-gaps" not in a["equipment"].to_list()
+    row = b.filter(pl.col("equipment") == "estimated-gaps").row(0, named=True)
+    # Linear interpolation between the readings on either side (k/(m+1), m = 2).
+    expected = (before + (after - before) / 3) + (before + 2 * (after - before) / 3)
+    assert row["kwh"] == pytest.approx(expected, rel=1e-9)
+    assert row["flags"].startswith("estimated;")
+    assert abs(row["kwh"] - sum(gone)) < 3 * max(gone)  # a plausible fill, not a guess of zero
+    # The fit never sees estimated energy: every other row is unchanged.
+    assert b.filter(pl.col("equipment") != "estimated-gaps").equals(a)
+    assert json.loads((est / "fit.json").read_text())["estimated_months"] == ["2025-01"]
