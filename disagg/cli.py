@@ -49,7 +49,10 @@ def _guard(fn):
         # The reader of our output went away (e.g. `| head`): not an error of ours.
         sys.stderr.close()
         raise typer.Exit(0) from None
-    except Exception as exc:  # noqa: BLE001 - the last line of defence for users
+    except (KeyboardInterrupt, SystemExit):
+        raise
+    except BaseException as exc:  # noqa: BLE001 - the last line of defence for users
+        # BaseException, not Exception: a library panic (polars' PanicException) is one.
         if _state["debug"]:
             raise
         _fail(f"internal error ({type(exc).__name__}: {exc}); run `disagg --debug ...` for the "

@@ -28,6 +28,7 @@ RUNLOG_LAYOUTS = ("events", "samples", "runtime")
 BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
 CONTROLS = ("on-off", "variable")
 WEATHER_MODES = ("cooling", "heating")
+SMALLEST_SIZE = 1e-6
 TEMP_UNITS = ("F", "C")
 WEEKDAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
 
@@ -201,14 +202,22 @@ class _Table:
         value = self.get(key, float, required)
         if value is None:
             return None
-        if not math.isfinite(value) or value <= 0 or (upper is not None and value > upper):
+        # Sizes below 1e-6 (kW, hp, V, A, ...) are no real equipment and would make the
+        # prior's precision 1 / sd^2 overflow.
+        if (not math.isfinite(value) or value < SMALLEST_SIZE
+                or (upper is not None and value > upper)):
             bound = f" and at most {upper:g}" if upper is not None else ""
-            raise ConfigError(f"{self.where(key)} = {value!r}: expected a number above 0{bound}")
+            raise ConfigError(f"{self.where(key)} = {value!r}: expected a number above 0{bound}"
+                              + (f" (at least {SMALLEST_SIZE:g})" if 0 < value < SMALLEST_SIZE
+                                 else ""))
         return value
 
     def file(self, key: str) -> Path:
         text = self.get(key, str)
-        return (self.path.parent / text).resolve()
+        try:
+            return (self.path.parent / text).resolve()
+        except (OSError, ValueError) as exc:
+            raise ConfigError(f"{self.where(key)} = {text!r}: not a usable path ({exc})") from None
 
 
 def _interval(table: _Table, key: str) -> int | None:
@@ -462,7 +471,7 @@ def load_site(path: str | Path) -> SiteConfig:
     tz = site.get("timezone", str)
     try:
         zoneinfo.ZoneInfo(tz)
-    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
         raise ConfigError(f"{site.where('timezone')} = {tz!r}: expected an IANA time zone "
                           "name such as \"America/Chicago\"") from None
 

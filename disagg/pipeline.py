@@ -75,6 +75,7 @@ def load_validated(site_path: str | Path, date_from: dt.date | None = None,
     site = load_site(site_path)
     if date_from and date_to and date_to < date_from:
         raise ConfigError(f"--to {date_to} is before --from {date_from}")
+    check_log_offset(log_offset_min)
     meter = read_meter(site.meter, site.timezone, on_duplicate=on_duplicate)
     runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)
     weather = read_weather(site.weather, site.timezone) if site.weather else None
@@ -368,6 +369,19 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
     return CheckResult(site, aligned, report)
 
 
+# Clock offsets beyond a week are no clock error but a wrong file (common practice, no source);
+# the offset search's window is capped at 12 h, its cost growing with the window.
+MAX_LOG_OFFSET_MIN = 7 * 24 * 60
+MAX_OFFSET_WINDOW_MIN = 12 * 60
+
+
+def check_log_offset(offset_min: float) -> None:
+    """Raise ConfigError for a --log-offset that is not a finite number within a week."""
+    if not (math.isfinite(offset_min) and abs(offset_min) <= MAX_LOG_OFFSET_MIN):
+        raise ConfigError(f"--log-offset {offset_min:g}: expected a number of minutes from "
+                          f"-{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
+
+
 def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,
                     on_duplicate: str = "error") -> dict:
     """Search the run-log clock offset (minutes to add to the log's times, on top of
@@ -377,6 +391,10 @@ def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float =
         ConfigError: a window that is not a positive number of minutes.
     """
     from disagg.clock import estimate_log_offset
+
+    if not (math.isfinite(window_min) and 0 < window_min <= MAX_OFFSET_WINDOW_MIN):
+        raise ConfigError(f"--offset-window {window_min:g}: expected minutes above 0 and at "
+                          f"most {MAX_OFFSET_WINDOW_MIN}")
 
     meter = read_meter(site.meter, site.timezone, on_duplicate=on_duplicate)
     runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)

@@ -39,7 +39,11 @@ def read_table(path: Path, what: str) -> pl.DataFrame:
     Raises:
         InputError: missing file, unknown extension, or a file the reader cannot parse.
     """
-    if not path.exists():
+    try:
+        exists = path.is_file()
+    except (OSError, ValueError) as exc:  # e.g. a name too long for the file system
+        raise InputError(f"{path}: cannot use this {what} file path ({exc})") from None
+    if not exists:
         raise InputError(f"{path}: no such {what} file; check the path in the site file")
     suffix = path.suffix.lower()
     try:
@@ -76,6 +80,10 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
     """
     s = frame.get_column(column)
     if s.dtype == pl.Datetime:
+        if s.null_count():
+            idx = int(s.is_null().arg_max())  # type: ignore[arg-type]
+            raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: empty time; "
+                             "expected a date and time such as 2025-03-09T03:15:00")
         if s.dtype.time_zone is not None:  # type: ignore[union-attr]
             return s.dt.convert_time_zone("UTC").dt.cast_time_unit("us")
         naive = s.dt.cast_time_unit("us")
@@ -126,10 +134,15 @@ def _numbers(frame: pl.DataFrame, column: str, path: Path, what: str) -> pl.Seri
     """A column as float64; empty cells become null, anything else unreadable is an error."""
     s = frame.get_column(column)
     if s.dtype.is_numeric():
-        return s.cast(pl.Float64)
+        values = s.cast(pl.Float64)
+        if values.is_nan().any():
+            idx = int(values.is_nan().arg_max())  # type: ignore[arg-type]
+            raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: NaN is not a "
+                             f"number; expected {what}")
+        return values
     text = s.cast(pl.String).str.strip_chars()
     values = text.cast(pl.Float64, strict=False)
-    bad = values.is_null() & text.is_not_null() & (text != "")
+    bad = (values.is_null() & text.is_not_null() & (text != "")) | values.is_nan()
     if bad.any():
         idx = int(bad.arg_max())  # type: ignore[arg-type]
         raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: {text[idx]!r} "
@@ -315,7 +328,11 @@ def _same_href(a: str | None, b: str | None) -> bool:
 
 def _gb_parse(path: Path) -> ET.Element:
     """The file's XML tree; nothing outside the file is fetched or expanded."""
-    if not path.exists():
+    try:
+        exists = path.is_file()
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: cannot use this meter file path ({exc})") from None
+    if not exists:
         raise InputError(f"{path}: no such meter file; check the path in the site file")
     try:
         data = path.read_bytes()

@@ -528,3 +528,44 @@ def test_estimate_fills_short_gaps_for_the_monthly_totals_only(tmp_path):
     # The fit never sees estimated energy: every other row is unchanged.
     assert b.filter(pl.col("equipment") != "estimated-gaps").equals(a)
     assert json.loads((est / "fit.json").read_text())["estimated_months"] == ["2025-01"]
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--log-offset", "nan"], "--log-offset nan: expected a number of minutes from -10080 to 10080"),
+    (["--log-offset", "1e12"], "--log-offset 1e+12: expected a number of minutes from -10080 to 10080"),
+    (["--find-offset", "--offset-window", "1e9"],
+     "--offset-window 1e+09: expected minutes above 0 and at most 720"),
+])
+def test_offsets_out_of_range_are_error_lines(tmp_path, args, message):
+    # Found by the property tests: these used to crash (exit 2) or exhaust memory.
+    s = write_site(tmp_path / "data", days=2, seed=5)
+    result = runner.invoke(app, ["check", str(s["site"]), *args])
+    assert result.exit_code == 1, result.output
+    assert result.stderr == f"Error: {message}\n"
+
+
+def test_a_tiny_nameplate_and_an_odd_time_zone_are_error_lines(tmp_path):
+    s = write_site(tmp_path / "data", days=2, seed=5)
+    text = s["site"].read_text()
+    s["site"].write_text(text.replace('timezone = "America/Chicago"', 'timezone = "America"'))
+    result = runner.invoke(app, ["check", str(s["site"])])
+    assert result.exit_code == 1
+    assert result.stderr == (f"Error: {s['site']}: [site] timezone = 'America': expected an IANA "
+                             'time zone name such as "America/Chicago"\n')
+    s["site"].write_text(text.replace('[[equipment]]\nid = "CH-1"\n',
+                                      '[[equipment]]\nid = "CH-1"\nrated_kw = 1e-300\n'))
+    result = runner.invoke(app, ["check", str(s["site"])])
+    assert result.exit_code == 1
+    assert result.stderr == (f"Error: {s['site']}: [equipment CH-1] rated_kw = 1e-300: expected "
+                             "a number above 0 (at least 1e-06)\n")
+
+
+def test_a_nan_meter_reading_is_an_error_line(tmp_path):
+    s = write_site(tmp_path / "data", days=2, seed=5)
+    lines = s["meter"].read_text().splitlines()
+    lines[5] = lines[5].split(",")[0] + ",NaN"
+    s["meter"].write_text("\n".join(lines) + "\n")
+    result = runner.invoke(app, ["check", str(s["site"])])
+    assert result.exit_code == 1
+    assert result.stderr == (f"Error: {s['meter']}: line 6, column 'kwh': 'NaN' is not a number; "
+                             "expected energy in kWh\n")

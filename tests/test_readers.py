@@ -612,3 +612,22 @@ def test_messages_start_with_the_resolved_file_path(tmp_path):
     assert msg.startswith(str((sub / "m.csv").resolve()) + ": line 2, column 'kwh': ")
     assert re.search(r"'x' is not a number; expected energy in kWh$", msg)
     assert "\n" not in msg  # one line
+
+
+def test_a_null_in_a_typed_parquet_time_column_is_an_error(tmp_path):
+    # Found by the property tests: this used to reach the fit and fail there (exit 2).
+    import datetime as _dt
+
+    import polars as _pl
+
+    from disagg.config import MeterSettings
+    from disagg.readers import read_meter as _read_meter
+
+    path = tmp_path / "meter.parquet"
+    t0 = _dt.datetime(2025, 1, 6, 0, 15)
+    _pl.DataFrame({"t": [t0, None, t0 + _dt.timedelta(minutes=30)], "kwh": [1.0, 2.0, 3.0]}
+                  ).write_parquet(path)
+    with pytest.raises(InputError) as exc:
+        _read_meter(MeterSettings(path, "t", "kwh", "kWh", "end", None), "America/Chicago")
+    assert str(exc.value) == (f"{path}: row 2, column 't': empty time; expected a date and time "
+                              "such as 2025-03-09T03:15:00")
