@@ -33,11 +33,16 @@ def _row_label(path: Path, index: int) -> str:
     return f"line {index + 2}" if path.suffix.lower() == ".csv" else f"row {index + 1}"
 
 
-def read_table(path: Path, what: str) -> pl.DataFrame:
+def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.DataFrame:
     """Read a CSV (every column as text) or Parquet file.
 
+    Args:
+        columns: read only these (a lazy polars scan that skips the others, so a trend export
+            with many unused columns costs no memory for them); None = every column.
+
     Raises:
-        InputError: missing file, unknown extension, or a file the reader cannot parse.
+        InputError: missing file, unknown extension, a missing column, or a file the reader
+        cannot parse.
     """
     try:
         exists = path.is_file()
@@ -48,9 +53,20 @@ def read_table(path: Path, what: str) -> pl.DataFrame:
     suffix = path.suffix.lower()
     try:
         if suffix == ".csv":
-            return pl.read_csv(path, infer_schema=False)
-        if suffix in (".parquet", ".pq"):
-            return pl.read_parquet(path)
+            lazy = pl.scan_csv(path, infer_schema=False)
+        elif suffix in (".parquet", ".pq"):
+            lazy = pl.scan_parquet(path)
+        else:
+            lazy = None
+        if lazy is not None:
+            if columns is None:
+                return lazy.collect()
+            names = lazy.collect_schema().names()
+            for col in columns:
+                if col not in names:
+                    raise InputError(f"{path}: column {col!r} not found; the file has "
+                                     f"{', '.join(repr(c) for c in names)}")
+            return lazy.select(list(dict.fromkeys(columns))).collect()
     except (pl.exceptions.PolarsError, OSError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{path}: cannot read the {what} file ({first})") from None
@@ -119,6 +135,9 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
                          f"{naive[idx]} does not exist in {tz} (clocks skip it); remove the row "
                          "or export times with a UTC offset")
     late = naive.dt.replace_time_zone(tz, ambiguous="latest", non_existent="null")
+    if not (early != late).any():
+        # No time in a repeated hour: nothing to resolve (and no large frame to build).
+        return early.dt.convert_time_zone("UTC")
     df = pl.DataFrame({"t": naive, "e": early, "l": late,
                        "g": by if by is not None else pl.repeat("", len(naive), eager=True)})
     amb = pl.col("e") != pl.col("l")
@@ -224,7 +243,7 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
         gb.findings = findings
         return gb
     path = settings.file
-    raw = read_table(path, "meter")
+    raw = read_table(path, "meter", [settings.time_column, settings.value_column])
     require_columns(raw, path, [settings.time_column, settings.value_column])
     times = parse_times(raw, settings.time_column, tz, path)
     values = _numbers(raw, settings.value_column, path, f"energy in {settings.unit}")
@@ -867,7 +886,10 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         raise ValueError(f"offset_min = {offset_min!r}: expected a finite number of minutes")
     shift = dt.timedelta(microseconds=round(offset_min * 60e6))
     path = settings.file
-    raw = read_table(path, "run log")
+    needed = {"events": [settings.time_column, settings.equipment_column, settings.state_column],
+              "runtime": [settings.time_column, settings.equipment_column,
+                          settings.minutes_column]}.get(settings.layout)
+    raw = read_table(path, "run log", needed)  # type: ignore[arg-type]
     ids = site.equipment_ids()
     aliases = _alias_map(site)
     tz = site.timezone
@@ -925,25 +947,36 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
     notes += _order_notes(path, t, eq)
     if settings.layout == "events":
         v = _states(raw, settings.state_column, path)  # type: ignore[arg-type]
-        df = pl.DataFrame({"eq": eq, "t": t, "v": v, "row": pl.int_range(raw.height, eager=True)})
-        clash = (df.group_by("eq", "t").agg(pl.col("v").n_unique().alias("n"), pl.col("row").min())
-                 .filter(pl.col("n") > 1).sort("row"))
-        if clash.height:
-            r = clash.row(0, named=True)
+        n_rows = raw.height
+        del raw  # the text columns are no longer needed: free them before the heavy steps
+        # One stable sort by (equipment, time) serves the clash check, the de-duplication and
+        # the segments; a group_by over every row doubled the peak memory of a large log.
+        df = (pl.DataFrame({"eq": eq, "t": t, "v": v, "row": pl.int_range(n_rows, eager=True)})
+              .sort("eq", "t", maintain_order=True))
+        del eq, t, v
+        same = ((pl.col("eq") == pl.col("eq").shift(1))
+                & (pl.col("t") == pl.col("t").shift(1))).fill_null(False)
+        bad = df.filter(same & (pl.col("v") != pl.col("v").shift(1)))
+        if bad.height:
+            r = (df.join(bad.select("eq", "t").unique(), on=["eq", "t"])
+                 .group_by("eq", "t").agg(pl.col("row").min()).sort("row").row(0, named=True))
             raise InputError(f"{path}: {_row_label(path, r['row'])}: equipment {r['eq']!r} has "
                              f"different states at the same time {r['t']}; expected one state")
         if df.height == 0:
             notes.append(f"{path}: the run log has no rows: every state is unknown")
             return RunLog(_to_segments(df.with_columns(end=pl.col("t")), ids, "end"), path,
-                          raw.height, notes)
+                          n_rows, notes)
         log_end = df["t"].max()
-        df = (df.unique(subset=["eq", "t"], keep="first").sort("eq", "t")
-              .with_columns(end=pl.col("t").shift(-1).over("eq"))
-              .with_columns(pl.col("end").fill_null(log_end)))
+        df = df.filter(~same)  # the first row of each (equipment, time): file order kept
+        # Sorted by equipment, so the next row's time ends a state unless the next row is
+        # another equipment's (no window function needed).
+        df = df.with_columns(end=pl.when(pl.col("eq") == pl.col("eq").shift(-1))
+                             .then(pl.col("t").shift(-1)).otherwise(None)
+                             .fill_null(log_end))
         missing = [e for e in ids if e not in set(df["eq"].unique().to_list())]
         if missing:
             notes.append(f"no run-log events for {', '.join(missing)}: left out as unknown")
-        return RunLog(_to_segments(df, ids, "end"), path, raw.height, notes)
+        return RunLog(_to_segments(df, ids, "end"), path, n_rows, notes)
 
     minutes = _numbers(raw, settings.minutes_column, path, "run minutes")  # type: ignore[arg-type]
     df = (pl.DataFrame({"eq": eq, "t": t, "m": minutes,
@@ -977,7 +1010,7 @@ def read_weather(settings: WeatherSettings, tz: str) -> pl.DataFrame:
     unreadable time or temperature, or the same time twice with different readings.
     """
     path = settings.file
-    raw = read_table(path, "weather")
+    raw = read_table(path, "weather", [settings.time_column, settings.temp_column])
     require_columns(raw, path, [settings.time_column, settings.temp_column])
     t = parse_times(raw, settings.time_column, tz, path)
     temp = _numbers(raw, settings.temp_column, path, f"a temperature in {settings.unit}")
