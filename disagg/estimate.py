@@ -467,11 +467,12 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         grew = (high[c] - low[c]) - UNSTABLE_WIDENING * width_hac[c]
         if widened[c] and grew > NUMERICAL_TOL * max(abs(coef[c]), 1.0):
             t.flags.append("unstable")
-            why = [f"{coef[c]:.3g} kW with the declared {site.baseload.profile} baseload"]
+            at = " at its balance temperature" if c in wspecs else ""
+            why = [f"{coef[c]:.3g} kW{at} with the declared {site.baseload.profile} baseload"]
             why += moved.get(c, [])
             if use_jack[c]:
                 why.append(f"leaving out single time blocks moves it by +-{se_jack[c]:.2g} kW (1 sd)")
-            warnings.append(f"{t.id} is unstable: {'; '.join(why)}. Its interval "
+            warnings.append(f"{t.id} is unstable: {'; '.join(why)}. Its interval{at} "
                             f"{low[c]:.3g}-{high[c]:.3g} kW spans these; check the declared "
                             "baseload schedule and whether its draw changes over the period")
         if coef[c] <= 1e-9:
