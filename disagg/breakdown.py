@@ -10,28 +10,65 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
+from disagg.config import TariffSettings
 from disagg.estimate import Estimates
+from disagg.tariff import interval_prices, price_table
 
 COLUMNS = ["period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh", "kwh_low",
-           "kwh_high", "share", "flags"]
-SCHEMA = {"period": pl.String, "equipment": pl.String, "run_hours": pl.Float64,
-          "kw": pl.Float64, "kw_low": pl.Float64, "kw_high": pl.Float64, "kwh": pl.Float64,
-          "kwh_low": pl.Float64, "kwh_high": pl.Float64, "share": pl.Float64,
-          "flags": pl.String}
+           "kwh_high", "share", "flags", "peak_kw", "cost"]
+_ROW_SCHEMA = {"period": pl.String, "equipment": pl.String, "run_hours": pl.Float64,
+               "kw": pl.Float64, "kw_low": pl.Float64, "kw_high": pl.Float64, "kwh": pl.Float64,
+               "kwh_low": pl.Float64, "kwh_high": pl.Float64, "share": pl.Float64,
+               "flags": pl.String}
+SCHEMA = {**_ROW_SCHEMA, "peak_kw": pl.Float64, "cost": pl.Float64}
 
 
-def monthly_breakdown(est: Estimates, tz: str) -> pl.DataFrame:
+def interval_parts_kwh(est: Estimates) -> np.ndarray:
+    """Each breakdown row's energy in each used interval [kWh], shape (n_used, terms + 2).
+
+    Columns in row order: the terms, the baseload, and the unexplained rest, so that every
+    interval's parts add up to its metered energy.
+    """
+    n, k = est.hours.shape
+    parts = np.zeros((n, k + 2))
+    for i, t in enumerate(est.terms):
+        if t.column is None:
+            continue
+        if i in est.weather:
+            w = est.weather[i]
+            parts[:, i] = (w["kw_at_balance"] * est.hours[:, i]
+                           + w["slope_kw_per_degc"] * est.weather_hours[:, i])
+        else:
+            parts[:, i] = est.kw[i] * est.hours[:, i]
+    parts[:, k] = est.base @ est.base_kw
+    parts[:, k + 1] = est.y - parts[:, :k + 1].sum(axis=1)
+    return parts
+
+
+def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = None) -> pl.DataFrame:
     """One row per month x (equipment, baseload, unexplained).
 
     Columns: period (YYYY-MM, local), equipment (id, ids joined by '+' for a combined row),
     run_hours [h] (equivalent full-load hours for variable equipment; interval hours for
     baseload and unexplained), kw, kw_low, kw_high [kW], kwh, kwh_low, kwh_high [kWh],
-    share (fraction 0..1 of the month's metered kWh), flags (words joined by ';').
+    share (fraction 0..1 of the month's metered kWh), flags (words joined by ';'),
+    peak_kw [kW] (the row's estimated draw in the interval of the month's highest metered
+    demand among the intervals used; the rows add up to that peak), cost [currency] (energy
+    at each interval's price plus the demand price x peak_kw; null without a tariff; see
+    disagg.tariff).
     """
     month = (est.frame["start_utc"].dt.convert_time_zone(tz).dt.strftime("%Y-%m")).to_numpy()
     interval_h = est.frame["interval_h"].to_numpy()
-    rows: list[dict] = []
+    parts = interval_parts_kwh(est)
+    price = None
+    if tariff is not None:
+        start_ns = est.frame["start_utc"].dt.epoch("ns").to_numpy()
+        end_ns = est.frame["end_utc"].dt.epoch("ns").to_numpy()
+        price = interval_prices(tariff, tz, start_ns, end_ns)
+    demand_price = tariff.demand_price_per_kw if tariff is not None else 0.0
+    tables: list[pl.DataFrame] = []
     for period in sorted(set(month)):
+        rows: list[dict] = []
         m = month == period
         metered = float(est.y[m].sum())
         explained = 0.0
@@ -69,7 +106,10 @@ def monthly_breakdown(est: Estimates, tz: str) -> pl.DataFrame:
         rest = metered - explained
         rows.append(_row(period, "unexplained", hours, rest / hours, float("nan"),
                          float("nan"), rest, float("nan"), float("nan"), metered, ""))
-    frame = pl.DataFrame(rows, schema=SCHEMA, orient="row")
+        tables.append(price_table(pl.DataFrame(rows, schema=_ROW_SCHEMA, orient="row"),
+                                  parts[m], interval_h[m], None if price is None else price[m],
+                                  demand_price))
+    frame = pl.concat(tables) if tables else pl.DataFrame(schema=SCHEMA)
     return frame.with_columns(pl.col(pl.Float64).fill_nan(None))
 
 

@@ -71,18 +71,39 @@ def _date(value: str | None, option: str) -> dt.date | None:
 
 def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
                          confidence: float, log_offset: float = 0.0,
-                         on_duplicate: str = "error", estimate: bool = False) -> None:
+                         on_duplicate: str = "error", estimate: bool = False, *,
+                         xlsx: bool = False, report: bool = False, quiet: bool = False,
+                         as_json: bool = False) -> None:
     """Fit, write the files, then print the summary (built before writing, so a summary
     failure leaves no files)."""
-    from disagg.outputs import breakdown_summary, write_breakdown
+    from disagg.outputs import breakdown_json, breakdown_summary, write_breakdown
     from disagg.pipeline import breakdown_site
+    from disagg.progress import terminal_bar
 
-    result = breakdown_site(site, d0, d1, confidence, log_offset, on_duplicate=on_duplicate,
-                            estimate=estimate)
-    summary = breakdown_summary(result)
-    paths = write_breakdown(result, out)
-    typer.echo(summary)
-    typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+    bar = terminal_bar(quiet or as_json)
+    try:
+        result = breakdown_site(site, d0, d1, confidence, log_offset, on_duplicate=on_duplicate,
+                                estimate=estimate, progress=bar)
+        html = _report_html(result, bar) if report else None
+        summary = breakdown_summary(result)
+        paths = write_breakdown(result, out, xlsx=xlsx, report_html=html)
+        from disagg.history import store_configured
+        paths += store_configured(result)
+    finally:
+        if bar is not None:
+            bar.close()
+    if as_json:
+        typer.echo(breakdown_json(result, paths), nl=False)
+    elif not quiet:
+        typer.echo(summary)
+        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+
+
+def _report_html(result, bar) -> str:
+    """The HTML report of a breakdown, with the drift page when the range allows one."""
+    from disagg.report import report_for
+
+    return report_for(result, progress=bar)
 
 
 SiteArg = Annotated[Path, typer.Argument(help="The site TOML file.", show_default=False)]
@@ -97,6 +118,14 @@ DupOpt = Annotated[str, typer.Option("--on-duplicate", help="Meter readings repe
 OffsetOpt = Annotated[float, typer.Option("--log-offset", help="Minutes to add to every "
                                           "run-log time to put it on the meter's clock (see "
                                           "check --find-offset).")]
+XlsxOpt = Annotated[bool, typer.Option("--xlsx", help="Also write breakdown.xlsx: one sheet "
+                                       "per table, units in the headers.")]
+ReportOpt = Annotated[bool, typer.Option("--report", help="Also write report.html, the "
+                                         "self-contained report for a facilities manager.")]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors; no "
+                                        "progress bar.")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print the summary as JSON (for "
+                                       "scripts) instead of the table.")]
 
 
 @app.command()
@@ -112,12 +141,17 @@ def breakdown(
     estimate: Annotated[bool, typer.Option("--estimate", help="Fill meter gaps of at most 4 "
                                            "intervals by linear interpolation, for the monthly "
                                            "totals only (an estimated-gaps row per month).")] = False,
+    xlsx: XlsxOpt = False,
+    report: ReportOpt = False,
+    quiet: QuietOpt = False,
+    as_json: JsonOpt = False,
 ) -> None:
     """Monthly kWh per equipment with intervals; writes breakdown.csv/.parquet and fit.json."""
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence, log_offset,
-                                        on_duplicate, estimate))
+                                        on_duplicate, estimate, xlsx=xlsx, report=report,
+                                        quiet=quiet, as_json=as_json))
 
 
 @app.command()
@@ -147,14 +181,19 @@ def demo(
     out: Annotated[Path, typer.Option("--out", help="Folder for the demo site (in demo_site/) "
                                       "and its breakdown.")],
     confidence: ConfOpt = 0.95,
+    xlsx: XlsxOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
-    """Write the fictional demo building's year of data and run the breakdown on it."""
+    """Write the fictional demo building's year of data and run the breakdown on it, with
+    its report (report.html)."""
     from disagg.outputs import write_demo_site
 
     def run():
         toml = write_demo_site(out / "demo_site")
-        typer.echo(f"Demo site written to {toml.parent} (all data invented).")
-        _breakdown_and_write(toml, out, None, None, confidence)
+        if not quiet:
+            typer.echo(f"Demo site written to {toml.parent} (all data invented).")
+        _breakdown_and_write(toml, out, None, None, confidence, xlsx=xlsx, report=True,
+                             quiet=quiet)
 
     _guard(run)
 
@@ -205,6 +244,8 @@ def drift(
 
         cfg = load_site(site)
         paths = write_drift(result, out, [cfg.path, cfg.meter.file, cfg.runlog.file], state)
+        from disagg.history import store_drift_configured
+        paths += store_drift_configured(cfg, result)
         typer.echo(text)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 
@@ -240,6 +281,175 @@ def compare(
         paths = write_compare(result, out)
         typer.echo(summary)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+
+    _guard(run)
+
+
+@app.command()
+def batch(
+    portfolio: Annotated[Path, typer.Argument(help="A folder of site TOML files (every *.toml "
+                                              "directly in it), or a portfolio TOML listing "
+                                              "them.", show_default=False)],
+    out: Annotated[Path, typer.Option("--out", help="Folder for portfolio.csv and one output "
+                                      "folder per site (named after its site file).")],
+    workers: Annotated[int | None, typer.Option("--workers", help="Local worker processes; "
+                                                "default: all cores.")] = None,
+    cluster: Annotated[str | None, typer.Option("--cluster", help="Address of a running "
+                                                "Dask scheduler (such as "
+                                                "tcp://10.0.0.5:8786): run the sites on its "
+                                                "workers instead of locally.")] = None,
+    date_from: FromOpt = None,
+    date_to: ToOpt = None,
+    drift_too: Annotated[bool, typer.Option("--drift", help="Also track each site's draws "
+                                            "(drift, default settings): drift.csv/.json per "
+                                            "site and an alarm count in portfolio.csv.")] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Breakdown of every site of a portfolio in parallel; writes DIR/portfolio.csv and each
+    site's files; exit 1 when any site failed."""
+    import time
+
+    from disagg.outputs import write_portfolio
+    from disagg.portfolio import portfolio_summary, run_portfolio
+    from disagg.progress import terminal_bar
+
+    d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
+
+    def run():
+        t0 = time.perf_counter()
+        bar = terminal_bar(quiet)
+        try:
+            result = run_portfolio(portfolio, out, workers, cluster, d0, d1, drift_too,
+                                   progress=bar)
+        finally:
+            if bar is not None:
+                bar.close()
+        paths = write_portfolio(result, out)
+        if not quiet:
+            typer.echo(portfolio_summary(result, time.perf_counter() - t0))
+            typer.echo(f"\nWrote {paths[0]} and each site's files in {out.resolve()}/<site>/")
+        return result
+
+    result = _guard(run)
+    for o in result.failed:
+        typer.echo(f"Error: {o.site_file}: {o.error}", err=True)
+    if result.failed:
+        raise typer.Exit(1)
+
+
+@app.command()
+def history(
+    site: SiteArg,
+    equipment: Annotated[str | None, typer.Option("--equipment", help="Only this equipment "
+                                                  "id (and combined rows holding it).")] = None,
+    out: Annotated[Path | None, typer.Option("--out", help="Write the table to this CSV "
+                                             "file instead of printing it.")] = None,
+    before: Annotated[str | None, typer.Option("--before", help="Compare stored months: "
+                                               "the earlier ones, FROM:TO such as "
+                                               "2024-06:2024-08 (with --after).")] = None,
+    after: Annotated[str | None, typer.Option("--after", help="Compare stored months: the "
+                                              "later ones, FROM:TO such as 2025-06:2025-08 "
+                                              "(with --before).")] = None,
+    min_change: Annotated[float, typer.Option("--min-change", help="Smallest change called "
+                                              "rising or falling, a fraction of the earlier "
+                                              "draw.")] = 0.05,
+    folder: Annotated[Path | None, typer.Option("--folder", help="The history folder, when "
+                                                "the site file has no [history] table (such "
+                                                "as a portfolio's).")] = None,
+) -> None:
+    """Each equipment's stored monthly kWh and draw; with --before/--after, an approximate
+    comparison of stored months (disagg compare refits and is exact)."""
+    from disagg import history as hist
+    from disagg.config import load_site
+    from disagg.errors import ConfigError, InputError
+    from disagg.outputs import neutralise_csv_text, write_atomically
+    from disagg.pipeline import CAUTION
+
+    def run():
+        cfg = load_site(site)
+        store = folder.resolve() if folder is not None else cfg.history
+        if store is None:
+            raise ConfigError(f"{cfg.path}: no [history] folder; add [history] folder = "
+                              "\"history\" to the site file or give --folder")
+        sid = hist.site_id(cfg.path)
+        if (before is None) != (after is None):
+            raise ConfigError("--before and --after: give both to compare stored months")
+        if before is not None:
+            result = hist.compare_from_history(store, sid, hist.parse_months(before, "--before"),
+                                               hist.parse_months(after, "--after"), min_change)
+            table = hist.select_equipment(result.table, equipment)
+            text = hist.comparison_summary(
+                result if equipment is None else
+                hist.HistoryComparison(table, result.before, result.after,
+                                       result.months_before, result.months_after,
+                                       result.method), CAUTION)
+        else:
+            stored = hist.read_history(store, sid)
+            if stored.is_empty():
+                raise InputError(f"{store}: no stored breakdown of site {sid!r}; run disagg "
+                                 "breakdown or batch with this history folder set")
+            table = hist.select_equipment(stored, equipment)
+            text = hist.history_summary(table, store, CAUTION)
+        if out is None:
+            typer.echo(text)
+            return
+        target = out.resolve()
+        write_atomically(target.parent, {
+            target.name: lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6)},
+            [cfg.path, cfg.meter.file, cfg.runlog.file])
+        typer.echo(f"Wrote {target}")
+
+    _guard(run)
+
+
+@app.command()
+def report(
+    site: SiteArg,
+    out: Annotated[Path, typer.Option("--out", help="Folder for report.html.")],
+    date_from: FromOpt = None,
+    date_to: ToOpt = None,
+    confidence: ConfOpt = 0.95,
+    log_offset: OffsetOpt = 0.0,
+    memory: Annotated[float, typer.Option("--memory", help="Drift tracker memory in days.")] = 30.0,
+    reference: Annotated[str | None, typer.Option("--reference", help="Drift reference "
+                                                  "period FROM:TO (local dates); default "
+                                                  "the first 90 days.")] = None,
+    no_drift: Annotated[bool, typer.Option("--no-drift", help="Leave the drift page "
+                                           "out.")] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Write report.html: one self-contained page (breakdown, costs, drift, fit quality,
+    cautions) to read in a browser or print to PDF."""
+    from disagg.config import parse_period
+    from disagg.outputs import write_report
+    from disagg.pipeline import breakdown_site
+    from disagg.progress import terminal_bar
+    from disagg.report import drift_for, render_report, report_summary
+
+    d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
+
+    def run():
+        ref = parse_period(reference, "--reference") if reference else None
+        bar = terminal_bar(quiet)
+        try:
+            result = breakdown_site(site, d0, d1, confidence, log_offset, progress=bar)
+            if no_drift:
+                tracked, note = None, "Drift tracking was not asked for in this report."
+            else:
+                tracked, note = drift_for(result, memory, ref)
+            html = render_report(result, tracked, progress=bar, drift_note=note)
+            line = report_summary(result, tracked)
+        finally:
+            if bar is not None:
+                bar.close()
+        s = result.site
+        inputs = [s.path, s.meter.file, s.runlog.file]
+        if s.weather is not None:
+            inputs.append(s.weather.file)
+        paths = write_report(html, out, inputs)
+        if not quiet:
+            typer.echo(line)
+            typer.echo(f"Wrote {paths[0]} ({len(html.encode('utf-8')):,} bytes)")
 
     _guard(run)
 

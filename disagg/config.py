@@ -138,6 +138,31 @@ def to_celsius(value: float, unit: str) -> float:
 
 
 @dataclass(frozen=True)
+class TouPeriod:
+    """A time-of-use period: its price [currency/kWh] on its weekly local-time spells."""
+
+    name: str
+    price_per_kwh: float
+    spells: tuple[Spell, ...]
+    spell_text: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class TariffSettings:
+    """Energy and demand prices: flat, or time-of-use periods over a default price.
+
+    energy_price_per_kwh applies to every interval outside the time-of-use periods (to all of
+    them for a flat tariff); demand_price_per_kw multiplies the month's peak demand [kW].
+    """
+
+    currency: str
+    energy_price_per_kwh: float
+    demand_price_per_kw: float = 0.0
+    periods: tuple[TouPeriod, ...] = ()
+    holidays: tuple[dt.date, ...] = ()  # local dates on which no time-of-use period applies
+
+
+@dataclass(frozen=True)
 class SiteConfig:
     """Everything a run needs to know about one site."""
 
@@ -150,6 +175,8 @@ class SiteConfig:
     equipment: tuple[Equipment, ...]
     extra: dict = field(default_factory=dict)
     weather: WeatherSettings | None = None
+    tariff: TariffSettings | None = None
+    history: Path | None = None  # [history] folder: the history store (disagg.history)
 
     def equipment_ids(self) -> list[str]:
         return [e.id for e in self.equipment]
@@ -541,9 +568,80 @@ def load_site(path: str | Path) -> SiteConfig:
     seen: set[str] = set()
     equipment = tuple(_equipment(path, i, e, seen, weather) for i, e in enumerate(raw_eq))
     _check_aliases(path, equipment)
-    known = {"site", "meter", "runlog", "baseload", "equipment", "weather"}
+    tariff = _tariff(_Table(path, "tariff", data["tariff"])) if "tariff" in data else None
+    history = None
+    if "history" in data:
+        h = _Table(path, "history", data["history"])
+        h.only({"folder"})
+        history = h.file("folder")
+    known = {"site", "meter", "runlog", "baseload", "equipment", "weather", "tariff", "history"}
     extra = {k: v for k, v in data.items() if k not in known}
-    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra, weather)
+    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra, weather,
+                      tariff, history)
+
+
+def _price(t: _Table, key: str, required: bool) -> float | None:
+    value = t.get(key, float, required=required)
+    if value is not None and (not math.isfinite(value) or value < 0):
+        raise ConfigError(f"{t.where(key)} = {value!r}: expected a price of 0 or more")
+    return value
+
+
+def _dates(t: _Table, key: str) -> tuple[dt.date, ...]:
+    out = []
+    for i, d in enumerate(t.get(key, list, required=False, default=[])):
+        try:
+            out.append(d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)))
+        except ValueError:
+            raise ConfigError(f"{t.where(key)}[{i}] = {d!r}: expected a date such as "
+                              "2025-07-04") from None
+    return tuple(out)
+
+
+def _spells(t: _Table, key: str) -> tuple[tuple[Spell, ...], tuple[str, ...]]:
+    raw = t.get(key, list)
+    if not raw:
+        raise ConfigError(f"{t.where(key)}: expected at least one spell such as "
+                          "\"Mon-Fri 12:00-18:00\"")
+    spells = []
+    for i, s in enumerate(raw):
+        if not isinstance(s, str):
+            raise ConfigError(f"{t.where(key)}[{i}] = {s!r}: expected text")
+        try:
+            spells.append(parse_spell(s))
+        except ValueError as exc:
+            raise ConfigError(f"{t.where(key)}[{i}] = {s!r}: {exc}") from None
+    return tuple(spells), tuple(raw)
+
+
+def _tariff(t: _Table) -> TariffSettings:
+    """[tariff] currency, energy_price, optional demand_price, holidays, [[tariff.periods]]."""
+    t.only({"currency", "energy_price", "demand_price", "holidays", "periods"})
+    currency = t.get("currency", str)
+    if not currency.strip() or len(currency) > 12:
+        raise ConfigError(f"{t.where('currency')} = {currency!r}: expected a short currency "
+                          "name such as USD or EUR")
+    raw = t.get("periods", list, required=False, default=[])
+    periods: list[TouPeriod] = []
+    for i, p in enumerate(raw):
+        pt = _Table(t.path, f"tariff.periods {i + 1}", p)
+        pt.only({"name", "price", "spells"})
+        name = pt.get("name", str)
+        if name in {q.name for q in periods}:
+            raise ConfigError(f"{pt.where('name')} = {name!r}: a period of that name is "
+                              "already defined")
+        spells, text = _spells(pt, "spells")
+        for q in periods:
+            for a in spells:
+                for b in q.spells:
+                    if (set(a.days) & set(b.days) and a.start_min < b.end_min
+                            and b.start_min < a.end_min):
+                        raise ConfigError(f"{pt.where('spells')}: {name!r} overlaps "
+                                          f"{q.name!r}; each time may have one price")
+        periods.append(TouPeriod(name, _price(pt, "price", True), spells, text))
+    return TariffSettings(currency.strip(), _price(t, "energy_price", True),
+                          _price(t, "demand_price", False) or 0.0, tuple(periods),
+                          _dates(t, "holidays"))
 
 
 def parse_period(text: str, option: str = "period") -> tuple[dt.date, dt.date]:

@@ -98,6 +98,23 @@ profile = "occupied"
 occupied = ["Mon-Fri 07:00-19:00", "Sat 08:00-13:00"]
 closed = [{closed_text}]
 
+# An invented time-of-use tariff (not any utility's): prices per kWh, demand per kW.
+[tariff]
+currency = "USD"
+energy_price = 0.082
+demand_price = 13.50
+holidays = ["2025-01-01", "2025-05-26", "2025-07-04", "2025-09-01", "2025-11-27", "2025-12-25"]
+
+[[tariff.periods]]
+name = "on-peak"
+price = 0.164
+spells = ["Mon-Fri 12:00-19:00"]
+
+[[tariff.periods]]
+name = "shoulder"
+price = 0.109
+spells = ["Mon-Fri 07:00-12:00", "Mon-Fri 19:00-21:00"]
+
 ''' + "\n\n".join(eq) + "\n"
 
 

@@ -509,14 +509,15 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     quality = {"interval": fit_quality(y, fitted, X.shape[1])}
     hourly = (frame.select("start_utc").with_columns(y=pl.Series(y), f=pl.Series(fitted),
                                                      h=pl.Series(interval_h))
-              .group_by(pl.col("start_utc").dt.truncate("1h")).agg(
+              .group_by(pl.col("start_utc").dt.truncate("1h"), maintain_order=True).agg(
                   pl.col("y").sum(), pl.col("f").sum(), pl.col("h").sum()))
     hourly = hourly.filter((pl.col("h") - 1.0).abs() < 1e-9)
     if hourly.height > X.shape[1] + 1:
         quality["hourly"] = fit_quality(hourly["y"].to_numpy(), hourly["f"].to_numpy(), X.shape[1])
     monthly = (frame.select("start_utc").with_columns(y=pl.Series(y), f=pl.Series(fitted))
                .group_by(pl.col("start_utc").dt.convert_time_zone(site.timezone)
-                         .dt.strftime("%Y-%m").alias("m")).agg(pl.col("y").sum(), pl.col("f").sum()))
+                         .dt.strftime("%Y-%m").alias("m"), maintain_order=True)
+               .agg(pl.col("y").sum(), pl.col("f").sum()))
     quality["monthly"] = {"months": monthly.height,
                           "nmbe_pct": float(100 * (monthly["y"].sum() - monthly["f"].sum())
                                             / monthly["y"].sum()) if monthly["y"].sum() else float("nan")}

@@ -88,8 +88,10 @@ def to_json(data: dict) -> str:
     return json.dumps(_clean(data), indent=2, ensure_ascii=False) + "\n"
 
 
-def write_breakdown(result: BreakdownResult, out_dir: Path) -> list[Path]:
-    """Write breakdown.csv, breakdown.parquet and fit.json into out_dir."""
+def write_breakdown(result: BreakdownResult, out_dir: Path, *, xlsx: bool = False,
+                    report_html: str | None = None) -> list[Path]:
+    """Write breakdown.csv, breakdown.parquet and fit.json into out_dir, all at once; with
+    xlsx also breakdown.xlsx (see write_workbook), with report_html also report.html."""
     table = result.breakdown
     site = result.site
     files = {
@@ -97,7 +99,75 @@ def write_breakdown(result: BreakdownResult, out_dir: Path) -> list[Path]:
         "breakdown.parquet": lambda p: table.write_parquet(p),
         "fit.json": lambda p: p.write_text(to_json(result.fit), encoding="utf-8"),
     }
-    return write_atomically(out_dir, files, [site.path, site.meter.file, site.runlog.file])
+    if xlsx:
+        files["breakdown.xlsx"] = lambda p: write_workbook(workbook_tables(result), p)
+    if report_html is not None:
+        files["report.html"] = lambda p: p.write_text(report_html, encoding="utf-8")
+    inputs = [site.path, site.meter.file, site.runlog.file]
+    if site.weather is not None:
+        inputs.append(site.weather.file)
+    return write_atomically(out_dir, files, inputs)
+
+
+# Unit of each breakdown column, shown in spreadsheet headers as "name [unit]".
+COLUMN_UNITS = {"run_hours": "h", "kw": "kW", "kw_low": "kW", "kw_high": "kW", "kwh": "kWh",
+                "kwh_low": "kWh", "kwh_high": "kWh", "share": "fraction 0-1", "peak_kw": "kW",
+                "se_kw": "kW", "prior_kw": "kW", "prior_sd_kw": "kW",
+                "prior_weight": "fraction 0-1", "metered_kwh": "kWh", "energy_cost": None,
+                "demand_cost": None, "cost": None, "demand_price_per_kw": None,
+                "cv_rmse_pct": "%", "nmbe_pct": "%"}
+
+
+def _with_units(frame: pl.DataFrame, currency: str) -> pl.DataFrame:
+    def unit(c: str) -> str | None:
+        if c in ("cost", "energy_cost", "demand_cost"):
+            return currency or None
+        return COLUMN_UNITS.get(c)
+
+    return frame.rename({c: f"{c} [{unit(c)}]" for c in frame.columns if unit(c)})
+
+
+def workbook_tables(result: BreakdownResult) -> dict[str, pl.DataFrame]:
+    """The spreadsheet's sheets: sheet name -> table, units in the column headers."""
+    tariff = result.fit.get("tariff") or {}
+    currency = tariff.get("currency", "")
+    draws = pl.DataFrame([{k: d.get(k) for k in ("equipment", "kw", "kw_low", "kw_high",
+                                                 "se_kw", "prior_kw", "prior_sd_kw",
+                                                 "prior_source", "prior_weight")}
+                          | {"run_hours": d["run_hours"], "flags": ";".join(d["flags"])}
+                          for d in result.fit["draws"]],
+                         schema={"equipment": pl.String, "kw": pl.Float64, "kw_low": pl.Float64,
+                                 "kw_high": pl.Float64, "se_kw": pl.Float64,
+                                 "prior_kw": pl.Float64, "prior_sd_kw": pl.Float64,
+                                 "prior_source": pl.String, "prior_weight": pl.Float64,
+                                 "run_hours": pl.Float64, "flags": pl.String})
+    table = result.breakdown
+    if not tariff:
+        table = table.drop("cost")
+    sheets = {"breakdown": table, "draws": draws}
+    if tariff:
+        sheets["costs"] = pl.DataFrame(
+            tariff["months"], schema={"period": pl.String, "metered_kwh": pl.Float64,
+                                      "peak_kw": pl.Float64, "demand_cost": pl.Float64,
+                                      "energy_cost": pl.Float64, "cost": pl.Float64})
+    notes = [("caution", CAUTION)] + [("note", w) for w in result.fit["warnings"]]
+    sheets["notes"] = pl.DataFrame(notes, schema={"kind": pl.String, "text": pl.String},
+                                   orient="row")
+    return {name: _with_units(frame, currency) for name, frame in sheets.items()}
+
+
+def write_workbook(sheets: dict[str, pl.DataFrame], path: Path) -> None:
+    """One .xlsx workbook, one sheet per table; numbers stay numbers, and text is stored as
+    text, never as a formula (xlsxwriter's strings_to_formulas off), so names from users
+    cannot run in a spreadsheet."""
+    import xlsxwriter
+
+    with xlsxwriter.Workbook(str(path), {"strings_to_formulas": False,
+                                         "strings_to_urls": False,
+                                         "nan_inf_to_errors": True}) as book:
+        for name, frame in sheets.items():
+            frame.write_excel(workbook=book, worksheet=name, autofit=True,
+                              float_precision=6)
 
 
 def _fmt(x: float | None, digits: int = 1) -> str:
@@ -110,8 +180,11 @@ def breakdown_summary(result: BreakdownResult) -> str:
     totals = (t.group_by("equipment", maintain_order=True)
               .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(),
                    pl.col("kwh_low").sum(), pl.col("kwh_high").sum(),
-                   pl.col("kwh_low").null_count().alias("no_range"), pl.col("flags")))
+                   pl.col("kwh_low").null_count().alias("no_range"), pl.col("flags"),
+                   pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")))
     metered = float(result.estimates.y.sum())
+    tariff = result.fit.get("tariff")
+    currency = tariff["currency"] if tariff else ""
     draws = {d["equipment"]: d for d in result.fit["draws"]}
     order = {e: i for i, e in enumerate(draws)}
     last = len(order) + 1
@@ -129,7 +202,8 @@ def breakdown_summary(result: BreakdownResult) -> str:
              ("kWh: sum of each month's own fit; " if own else "")
              + "kW: the draw fitted over the whole range; run h [h], kWh [kWh], kW [kW]",
              f"{'equipment':<22} {'run h':>7} {'kWh':>10} {'kWh range':>19} {'share':>6} "
-             f"{'kW':>7} {'kW range':>13}  flags"]
+             f"{'kW':>7} {'kW range':>13}  "
+             + (f"{'cost ' + currency[:5]:>11}  " if tariff else "") + "flags"]
     any_variable = False
     for r in totals.iter_rows(named=True):
         d = draws.get(r["equipment"])
@@ -144,13 +218,24 @@ def breakdown_summary(result: BreakdownResult) -> str:
         any_variable |= "variable" in flags
         kwh = r["kwh"] + 0.0 if abs(r["kwh"]) >= 0.5 else 0.0  # no "-0"
         share = 100 * kwh / metered if metered else 0.0
+        cost = ""
+        if tariff:
+            cost = f"{'-' if r['no_cost'] else _fmt(r['cost'] + 0.0, 2):>11}  "
         lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>7} {_fmt(kwh, 0):>10} "
-                     f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {flags}")
+                     f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {cost}{flags}")
     lines.append("flags: whole-range fit; each month's are in breakdown.csv. baseload and "
                  "unexplained run h: interval hours.")
     if any_variable:
         lines.append("run h of variable equipment: equivalent full-load hours "
                      "(integral of status ** exponent).")
+    if tariff:
+        months_cost = tariff["months"]
+        total = sum(m["cost"] for m in months_cost)
+        demand = sum(m["demand_cost"] for m in months_cost)
+        lines += ["", f"Cost of the intervals used: {_fmt(total, 2)} {currency} (energy "
+                      f"{_fmt(total - demand, 2)}, demand {_fmt(demand, 2)} over "
+                      f"{len(months_cost)} month{'s' if len(months_cost) != 1 else ''}); "
+                      "each row's peak_kw and cost are in breakdown.csv."]
     q = result.fit["fit_quality"]
     hq = q.get("hourly")
     if hq:
@@ -168,6 +253,31 @@ def breakdown_summary(result: BreakdownResult) -> str:
         lines.append(f"Note: {w}")
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
+
+
+def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
+    """The summary for scripts (``--json``): totals per row over the range, cost, fit quality,
+    notes, the caution and the files written."""
+    t = result.breakdown
+    totals = (t.group_by("equipment", maintain_order=True)
+              .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(), pl.col("kwh_low").sum(),
+                   pl.col("kwh_high").sum(), pl.col("kwh_low").null_count().alias("no_range"),
+                   pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")))
+    rows = [{"equipment": r["equipment"], "run_hours": r["run_hours"], "kwh": r["kwh"],
+             "kwh_low": None if r["no_range"] else r["kwh_low"],
+             "kwh_high": None if r["no_range"] else r["kwh_high"],
+             "cost": None if r["no_cost"] else r["cost"]} for r in totals.iter_rows(named=True)]
+    tariff = result.fit.get("tariff")
+    periods = t["period"].unique().sort().to_list()
+    return to_json({
+        "site": result.site.name, "first_period": periods[0], "last_period": periods[-1],
+        "intervals_used": result.aligned.counts["used"],
+        "metered_kwh": float(result.estimates.y.sum()),
+        "currency": tariff["currency"] if tariff else None,
+        "cost": sum(m["cost"] for m in tariff["months"]) if tariff else None,
+        "equipment": rows, "fit_quality": result.fit["fit_quality"],
+        "warnings": result.fit["warnings"], "caution": CAUTION,
+        "files": [str(p) for p in paths]})
 
 
 def check_summary(result: CheckResult) -> str:
@@ -267,3 +377,23 @@ def drift_summary(result: DriftResult) -> str:
     lines += [f"Note: {n}" for n in s["notes"]]
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
+
+
+def write_portfolio(result, out_dir: Path) -> list[Path]:
+    """Write portfolio.csv (one row per site; see disagg.portfolio.portfolio_frame) into
+    out_dir, atomically, with text cells neutralised for spreadsheets.
+
+    Args:
+        result: a disagg.portfolio.PortfolioResult.
+    """
+    frame = result.frame
+    inputs = [result.portfolio.source, *result.portfolio.sites]
+    return write_atomically(out_dir, {
+        "portfolio.csv": lambda p: neutralise_csv_text(frame).write_csv(p, float_precision=6),
+    }, [p for p in inputs if p.is_file()])
+
+
+def write_report(html: str, out_dir: Path, inputs: list[Path]) -> list[Path]:
+    """Write report.html (disagg.report) into out_dir atomically; never over an input."""
+    return write_atomically(out_dir, {
+        "report.html": lambda p: p.write_text(html, encoding="utf-8")}, inputs)

@@ -22,6 +22,7 @@ from disagg.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
 from disagg.estimate import Estimates, estimate_draws, inseparable
 from disagg.logcheck import coverage_findings
+from disagg.progress import Progress, report
 from disagg.readers import read_meter, read_runlog, read_weather
 from disagg.vee import Finding
 
@@ -96,10 +97,12 @@ def load_validated(site_path: str | Path, date_from: dt.date | None = None,
 def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                    date_to: dt.date | None = None, confidence: float = 0.95,
                    log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error", estimate: bool = False) -> BreakdownResult:
+                   on_duplicate: str = "error", estimate: bool = False,
+                   progress: Progress | None = None) -> BreakdownResult:
     """Monthly per-equipment kWh with intervals, for one site.
 
-    on_duplicate: see load_inputs. The meter validation's findings are in the result, in
+    on_duplicate: see load_inputs. progress: called as progress(step, done, total) while
+    reading and fitting (disagg.progress). The meter validation's findings are in the result, in
     fit["meter_validation"] and, one line each, in fit["warnings"].
 
     Raises:
@@ -107,14 +110,17 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     """
     if not 0.5 <= confidence < 1.0:
         raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
+    report(progress, "reading", 0, 1)
     site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
                                              on_duplicate=on_duplicate)
+    report(progress, "reading", 1, 1)
     require_usable(site, aligned)
+    report(progress, "fitting", 0, 1)
     try:
         est = estimate_draws(site, aligned, confidence)
     except ValueError as exc:
         raise InputError(f"{_short_data_source(site, aligned)}: {exc}") from None
-    table, months = monthly_fits(site, aligned, est, confidence)
+    table, months = monthly_fits(site, aligned, est, confidence, progress)
     estimated_months: list[str] = []
     if estimate:
         table, estimated_months = _add_estimated_gaps(table, aligned, site.timezone)
@@ -122,6 +128,9 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     fit["estimated_months"] = estimated_months
     fit["months"] = months
     fit["meter_validation"] = [f.as_dict() for f in findings]
+    fit["tariff"] = tariff_summary(site, table, aligned)
+    if fit["tariff"]:
+        fit["warnings"] += fit["tariff"]["warnings"]
     return BreakdownResult(site, table, fit, est, aligned, findings)
 
 
@@ -166,6 +175,66 @@ def _add_estimated_gaps(table: pl.DataFrame, aligned: Aligned,
             totals["period"].to_list())
 
 
+def _peaks(aligned: Aligned, tz: str) -> pl.DataFrame:
+    """Per local month: the highest demand [kW] among the intervals used and among all
+    intervals with a reading, and when each began (UTC)."""
+    f = (aligned.frame.with_columns(
+        (pl.col("energy_kwh") / pl.col("interval_h")).alias("kw"),
+        pl.col("start_utc").dt.convert_time_zone(tz).dt.strftime("%Y-%m").alias("period"),
+        pl.Series("used", aligned.use))
+        .filter(pl.col("kw").is_not_null()))
+    return f.group_by("period", maintain_order=True).agg(
+        pl.col("kw").filter("used").max().alias("used_kw"),
+        pl.col("start_utc").filter("used").sort_by(pl.col("kw").filter("used"),
+                                                   descending=True, maintain_order=True)
+        .first().alias("used_at"),
+        pl.col("kw").max().alias("all_kw"),
+        pl.col("start_utc").sort_by("kw", descending=True, maintain_order=True).first()
+        .alias("all_at"))
+
+
+def tariff_summary(site: SiteConfig, table: pl.DataFrame, aligned: Aligned) -> dict | None:
+    """The tariff and each month's cost for fit.json (None without a [tariff])."""
+    t = site.tariff
+    if t is None:
+        return None
+    priced = table.filter(pl.col("cost").is_not_null())
+    months = (priced.group_by("period", maintain_order=True)
+              .agg(pl.col("kwh").sum().alias("metered_kwh"), pl.col("cost").sum(),
+                   pl.col("peak_kw").sum()))
+    peaks = {r["period"]: r for r in _peaks(aligned, site.timezone).iter_rows(named=True)}
+    warnings = []
+    for period, p in peaks.items():
+        if p["used_kw"] is not None and p["all_kw"] > p["used_kw"] * (1 + 1e-9):
+            warnings.append(
+                f"{period}: the month's highest reading, {p['all_kw']:,.1f} kW from "
+                f"{p['all_at'].isoformat()}, is in an interval left out of the fit; its demand "
+                f"cost uses the highest interval used, {p['used_kw']:,.1f} kW from "
+                f"{p['used_at'].isoformat()}, so a bill's demand charge can be higher")
+    return {
+        "currency": t.currency,
+        "energy_price_per_kwh": t.energy_price_per_kwh,
+        "demand_price_per_kw": t.demand_price_per_kw,
+        "periods": [{"name": p.name, "price_per_kwh": p.price_per_kwh,
+                     "spells": list(p.spell_text)} for p in t.periods],
+        "holidays": [d.isoformat() for d in t.holidays],
+        "months": [{"period": r["period"], "metered_kwh": r["metered_kwh"],
+                    "peak_kw": r["peak_kw"],
+                    "peak_start_utc": (peaks[r["period"]]["used_at"].isoformat()
+                                       if r["period"] in peaks else None),
+                    "demand_cost": r["peak_kw"] * t.demand_price_per_kw,
+                    "energy_cost": r["cost"] - r["peak_kw"] * t.demand_price_per_kw,
+                    "cost": r["cost"]} for r in months.iter_rows(named=True)],
+        "method": ("cost of the intervals used by the fit: each row's estimated energy in "
+                   "every interval at that interval's price, plus the demand price x the row's "
+                   "estimated draw in the interval of the month's highest metered demand "
+                   "(the meter interval taken as the demand interval); intervals left out of "
+                   "the fit and estimated-gaps rows are not priced, so a utility bill can be "
+                   "higher"),
+        "warnings": warnings,
+    }
+
+
 def _short_data_source(site: SiteConfig, aligned: Aligned) -> str:
     """Which file to blame when too few intervals are usable, with the counts."""
     c = aligned.counts
@@ -181,7 +250,7 @@ MIN_MONTH_DAYS = 7
 
 
 def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
-                 confidence: float) -> tuple[pl.DataFrame, dict]:
+                 confidence: float, progress: Progress | None = None) -> tuple[pl.DataFrame, dict]:
     """Breakdown rows with each month's own fit, so a month's kWh follows that month's draws.
 
     A range of one month is the whole-range fit. A month with fewer than MIN_MONTH_DAYS days
@@ -191,7 +260,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         (the breakdown table, per-month draws for fit.json).
     """
     tz = site.timezone
-    whole_table = monthly_breakdown(whole, tz)
+    whole_table = monthly_breakdown(whole, tz, site.tariff)
     local = aligned.frame["start_utc"].dt.convert_time_zone(tz)
     month = local.dt.strftime("%Y-%m").to_numpy()
     day = local.dt.date().to_numpy()
@@ -200,7 +269,8 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         return whole_table, {}
     combined = {t.id: t.members for t in whole.terms if len(t.members) > 1}
     tables, months = [], {}
-    for period in periods:
+    for done, period in enumerate(periods):
+        report(progress, "fitting", done + 1, len(periods) + 1)
         mask = aligned.use & (month == period)
         est = None
         if len(set(day[mask])) >= MIN_MONTH_DAYS:
@@ -218,7 +288,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
             months[period] = {"own_fit": False, "reason": f"fewer than {MIN_MONTH_DAYS} days of "
                               "usable intervals: the whole range's draws are used"}
             continue
-        tables.append(_same_names(monthly_breakdown(est, tz), combined))
+        tables.append(_same_names(monthly_breakdown(est, tz, site.tariff), combined))
         months[period] = {"own_fit": True, "draws": draw_list(est), "baseload_row": est.base_id,
                           "fit_quality": est.quality, "warnings": est.warnings}
     return pl.concat(tables), months

@@ -29,7 +29,7 @@ README = Path(__file__).resolve().parents[1] / "README.md"
 CAUTION_LINE = ("Caution: Estimates are not measurements. Any work on electrical equipment "
                 "must follow local codes and be done by licensed, qualified people.")
 CSV_COLUMNS = ["period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh", "kwh_low",
-               "kwh_high", "share", "flags"]
+               "kwh_high", "share", "flags", "peak_kw", "cost"]
 OUTPUT_FILES = ["breakdown.csv", "breakdown.parquet", "fit.json"]
 
 TZ = "America/Chicago"
@@ -151,7 +151,7 @@ def _commands() -> dict:
     return typer.main.get_command(app).commands  # type: ignore[attr-defined]
 
 
-COMMANDS = ["breakdown", "check", "compare", "demo", "drift"]
+COMMANDS = ["batch", "breakdown", "check", "compare", "demo", "drift", "history", "report"]
 
 
 def test_the_app_registers_the_documented_commands():
@@ -437,7 +437,9 @@ def test_demo_writes_the_demo_site_and_its_breakdown(tmp_path):
     csv = pl.read_csv(out / "breakdown.csv", infer_schema_length=None)
     assert csv.columns == CSV_COLUMNS
     assert sorted(csv["period"].unique()) == [f"2025-{m:02d}" for m in range(1, 13)]
-    assert sorted(p.name for p in out.iterdir()) == sorted(OUTPUT_FILES + ["demo_site"])
+    assert sorted(p.name for p in out.iterdir()) == sorted(OUTPUT_FILES + ["demo_site",
+                                                                           "report.html"])
+    assert "<svg" in (out / "report.html").read_text(encoding="utf-8")
     assert CAUTION_LINE in result.stdout.splitlines()
 
 

@@ -54,7 +54,7 @@ runner = CliRunner()
 
 OUTPUT_FILES = ["breakdown.csv", "breakdown.parquet", "fit.json"]
 CSV_COLUMNS = ["period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh", "kwh_low",
-               "kwh_high", "share", "flags"]
+               "kwh_high", "share", "flags", "peak_kw", "cost"]
 EXAMPLES = 150  # per property test: the file runs in about 25 s on two cores
 PROPERTY_SETTINGS = settings(max_examples=EXAMPLES, deadline=None, derandomize=True,
                              database=None, suppress_health_check=[HealthCheck.too_slow,

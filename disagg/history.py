@@ -1,0 +1,407 @@
+"""The history store: every month's breakdown and drift results, kept as a Parquet dataset.
+
+Layout under the folder named by ``[history] folder`` (site file) or ``history`` (portfolio
+file), hive-partitioned so that polars (or any Parquet reader) can scan it with no server::
+
+    FOLDER/kind=breakdown/site=<site id>/period=YYYY-MM/part.parquet
+    FOLDER/kind=drift/site=<site id>/period=YYYY-MM/part.parquet
+
+The site id is the site file's name without ``.toml``, with every character other than
+letters, digits, ``.``, ``_`` and ``-`` replaced by ``_`` (``Main Library.toml`` ->
+``Main_Library``). The file name, not the ``[site] name``, so that renaming a building's
+display name does not split its history and the id is the same as the folder ``disagg batch``
+writes the site's outputs into. Two site files with the same name in different folders that
+share one history folder would share an id: give them different file names.
+
+A period is a local calendar month of the site. Storing a month replaces everything stored
+for that site, kind and month, so running a month twice leaves one copy. Drift months are
+merged by day instead: the new run's days replace the same days, other days of that month are
+kept (a run continued with ``--state`` covers only the days after the previous run).
+
+Writes are atomic per run: every new month file is first written in full into a hidden
+temporary folder inside FOLDER, and only then renamed into place (``os.replace``, atomic on one
+file system). An error or interruption while writing leaves the stored history exactly as it
+was; one during the renames leaves each month either wholly old or wholly new.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import os
+import re
+import shutil
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import polars as pl
+
+from disagg import __version__
+from disagg.errors import InputError, OutputError
+
+KINDS = ("breakdown", "drift")
+# Partition keys (taken from the folder names, never stored inside the files).
+HIVE_SCHEMA = {"site": pl.String, "period": pl.String}
+
+# Columns of a stored breakdown month, in order, with their types; cost and peak_kw are null
+# when the breakdown has no such column (a site without a [tariff], or an older run).
+BREAKDOWN_SCHEMA = {
+    "site_name": pl.String, "site_file": pl.String, "equipment": pl.String,
+    "run_hours": pl.Float64, "kw": pl.Float64, "kw_low": pl.Float64, "kw_high": pl.Float64,
+    "kwh": pl.Float64, "kwh_low": pl.Float64, "kwh_high": pl.Float64, "share": pl.Float64,
+    "flags": pl.String, "peak_kw": pl.Float64, "cost": pl.Float64, "currency": pl.String,
+    "run_utc": pl.Datetime("us", "UTC"), "tool_version": pl.String,
+}
+DRIFT_SCHEMA = {
+    "site_name": pl.String, "site_file": pl.String, "date": pl.Date, "equipment": pl.String,
+    "kw_tracked": pl.Float64, "kw_low": pl.Float64, "kw_high": pl.Float64,
+    "kw_reference": pl.Float64, "change": pl.Float64, "alarm": pl.Boolean,
+    "run_utc": pl.Datetime("us", "UTC"), "tool_version": pl.String,
+}
+_SCHEMAS = {"breakdown": BREAKDOWN_SCHEMA, "drift": DRIFT_SCHEMA}
+
+
+def site_id(site_file: str | Path) -> str:
+    """The history's id of a site: its file name without .toml, filesystem-safe."""
+    text = re.sub(r"[^A-Za-z0-9._-]", "_", Path(site_file).stem).lstrip(".")
+    return text or "site"
+
+
+def _month_dir(folder: Path, kind: str, site: str, period: str) -> Path:
+    return folder / f"kind={kind}" / f"site={site}" / f"period={period}"
+
+
+def _write_part(frame: pl.DataFrame, path: Path) -> None:
+    """Write one month file (the single place a history file is written)."""
+    frame.write_parquet(path)
+
+
+def _replace_months(folder: Path, kind: str, site: str,
+                    months: dict[str, pl.DataFrame]) -> list[Path]:
+    """Write every month's file into a temporary folder inside folder, then rename each into
+    place; see the module docstring.
+
+    Raises:
+        OutputError: the folder cannot be created or written.
+    """
+    folder = Path(folder).resolve()
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=folder))
+    except OSError as exc:
+        raise OutputError(f"{folder}: cannot create the history folder ({exc.strerror})") from None
+    targets = []
+    try:
+        staged = []
+        for i, (period, frame) in enumerate(sorted(months.items())):
+            part = tmp / f"{i}.parquet"
+            _write_part(frame, part)
+            staged.append((part, _month_dir(folder, kind, site, period) / "part.parquet"))
+        for part, target in staged:
+            target.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(part, target)
+            targets.append(target)
+    except OSError as exc:
+        raise OutputError(f"{folder}: cannot write the history ({exc.strerror})") from None
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return targets
+
+
+def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
+    """Add site name and file, the run's UTC time and the tool version; fix the columns."""
+    run_utc = dt.datetime.now(dt.UTC).replace(microsecond=0)
+    frame = frame.with_columns(pl.lit(site.name).alias("site_name"),
+                               pl.lit(str(site.path)).alias("site_file"),
+                               pl.lit(run_utc).alias("run_utc"),
+                               pl.lit(__version__).alias("tool_version"))
+    return frame.select(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
+                        for c, t in schema.items())
+
+
+def store_breakdown(folder: str | Path, result) -> list[Path]:
+    """Store each month of a breakdown result (disagg.pipeline.BreakdownResult), replacing
+    what was stored for those months of that site.
+
+    Returns:
+        The month files written.
+
+    Raises:
+        OutputError: the history folder cannot be written.
+    """
+    site = result.site
+    table = result.breakdown
+    tariff = getattr(site, "tariff", None)
+    if tariff is not None and "cost" in table.columns:
+        table = table.with_columns(pl.lit(tariff.currency).alias("currency"))
+    months = {p: _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
+              for (p,), g in table.group_by("period", maintain_order=True)}
+    return _replace_months(Path(folder), "breakdown", site_id(site.path), months)
+
+
+def store_drift(folder: str | Path, site, drift_result) -> list[Path]:
+    """Store a drift run's daily tracked draws (disagg.drift.DriftResult.table) by local
+    month; a day already stored is replaced, the month's other stored days are kept.
+
+    Args:
+        site: the site's settings (disagg.config.SiteConfig): its name, file and id.
+
+    Returns:
+        The month files written.
+
+    Raises:
+        OutputError: the history folder cannot be written.
+    """
+    folder = Path(folder)
+    sid = site_id(site.path)
+    table = drift_result.table.with_columns(pl.col("date").dt.strftime("%Y-%m").alias("period"))
+    months = {}
+    for (period,), g in table.group_by("period", maintain_order=True):
+        new = _stamp(g.drop("period"), site, DRIFT_SCHEMA)
+        old_path = _month_dir(folder.resolve(), "drift", sid, period) / "part.parquet"
+        if old_path.exists():
+            old = _read_file(old_path, DRIFT_SCHEMA)
+            new = pl.concat([old.filter(~pl.col("date").is_in(new["date"].implode())), new])
+            new = new.sort("date", maintain_order=True)
+        months[period] = new
+    return _replace_months(folder, "drift", sid, months)
+
+
+def _read_file(path: Path, schema: dict) -> pl.DataFrame:
+    try:
+        frame = pl.read_parquet(path)
+    except (OSError, pl.exceptions.PolarsError) as exc:
+        raise InputError(f"{path}: cannot read this history file ({exc})") from None
+    return frame.select(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
+                        for c, t in schema.items())
+
+
+def read_history(folder: str | Path, site: str | None = None,
+                 kind: str = "breakdown") -> pl.DataFrame:
+    """Everything stored of one kind, optionally for one site id (see site_id).
+
+    Returns:
+        The stored rows with the partition columns ``site`` and ``period`` first, sorted by
+        site and period (rows of a month in their stored order); no rows when nothing is
+        stored.
+
+    Raises:
+        InputError: a stored file cannot be read.
+    """
+    if kind not in KINDS:
+        raise ValueError(f"kind {kind!r}: expected one of {', '.join(KINDS)}")
+    schema = _SCHEMAS[kind]
+    root = Path(folder).resolve() / f"kind={kind}"
+    empty = pl.DataFrame(schema={**HIVE_SCHEMA, **schema})
+    if not root.is_dir() or not any(root.rglob("part.parquet")):
+        return empty
+    try:
+        lf = pl.scan_parquet(root, hive_partitioning=True, hive_schema=HIVE_SCHEMA,
+                             missing_columns="insert", extra_columns="ignore")
+        if site is not None:
+            lf = lf.filter(pl.col("site") == site)
+        frame = lf.collect()
+    except (OSError, pl.exceptions.PolarsError) as exc:
+        raise InputError(f"{root}: cannot read the history ({exc})") from None
+    frame = frame.select(*(pl.col(c).cast(t) for c, t in HIVE_SCHEMA.items()),
+                         *(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
+                           for c, t in schema.items()))
+    return frame.sort("site", "period", maintain_order=True)
+
+
+@dataclass
+class HistoryComparison:
+    """compare_from_history's result: one row per equipment, and the method in words."""
+
+    table: pl.DataFrame
+    before: tuple[str, str]
+    after: tuple[str, str]
+    months_before: list[str]
+    months_after: list[str]
+    method: str
+
+
+COMPARE_METHOD = (
+    "from stored monthly draws, no refit: each period's draw is the run-hour-weighted mean of "
+    "its months' kw, and its interval the run-hour-weighted means of kw_low and kw_high (as if "
+    "the months' errors were fully correlated: wider than a refit's); rising or falling only "
+    "when the two intervals do not overlap and the change is at least --min-change, else "
+    "unclear; months that were not stored are simply absent. disagg compare refits the "
+    "periods' data and is the exact method.")
+
+
+def parse_months(text: str, option: str) -> tuple[str, str]:
+    """``"2025-01:2025-03"`` or ``"2025-01"`` -> ("2025-01", "2025-03") (inclusive).
+
+    Raises:
+        InputError: not YYYY-MM[:YYYY-MM], or the first after the last.
+    """
+    parts = [p.strip() for p in text.split(":")]
+    ok = 1 <= len(parts) <= 2 and all(re.fullmatch(r"\d{4}-(0[1-9]|1[0-2])", p) for p in parts)
+    if not ok:
+        raise InputError(f"{option} {text!r}: expected months FROM:TO such as 2025-01:2025-03, "
+                         "or one month such as 2025-06")
+    first, last = parts[0], parts[-1]
+    if last < first:
+        raise InputError(f"{option} {text!r}: {last} is before {first}")
+    return first, last
+
+
+def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
+                         after: tuple[str, str], min_change: float = 0.05) -> HistoryComparison:
+    """Each equipment's draw in two ranges of stored months, and whether it rose or fell.
+
+    An approximation from the stored monthly results, without touching the meter data:
+
+    - a period's draw [kW] is the run-hour-weighted mean of its months' stored ``kw``
+      (equal to the period's energy over its run-hours for an on-off load whose month draws
+      were fitted on their own); a weather-dependent load's ``kw`` is at its reference
+      temperature, as stored;
+    - its interval is the run-hour-weighted mean of the months' ``kw_low`` and ``kw_high``:
+      the months' errors are treated as fully correlated, so the interval is never narrower
+      than a month's and is wider than a fit over the whole period would give;
+    - the verdict is ``rising`` or ``falling`` only when the two intervals do not overlap
+      and the relative change is at least min_change; otherwise ``unclear``. Non-overlap
+      of two intervals is a stricter test than the interval of the difference, so a real
+      change can be called unclear; ``missing`` when a period has no stored run-hours;
+    - rows are matched by equipment name as stored (a combined row ``A+B`` is its own row).
+
+    ``disagg compare`` refits the two periods' data and is the exact method.
+
+    Args:
+        folder: the history folder.
+        site: the site id (see site_id).
+        before, after: (first, last) months YYYY-MM, inclusive.
+        min_change: smallest relative change called rising or falling (fraction).
+
+    Raises:
+        InputError: nothing stored for the site in one of the periods.
+    """
+    hist = read_history(folder, site)
+    frames = {}
+    for name, (first, last) in (("before", before), ("after", after)):
+        rows = hist.filter(pl.col("period").is_between(pl.lit(first), pl.lit(last))
+                           & ~pl.col("equipment").str.starts_with("baseload")
+                           & ~pl.col("equipment").is_in(["unexplained", "estimated-gaps"]))
+        if rows.is_empty():
+            raise InputError(f"{Path(folder).resolve()}: no stored breakdown of site {site!r} "
+                             f"from {first} to {last}; run the breakdown for those months "
+                             "with a [history] folder set")
+        h = pl.col("run_hours")
+        weight = pl.when(pl.col("kw").is_not_null() & (h > 0)).then(h).otherwise(0.0)
+        frames[name] = rows.group_by("equipment", maintain_order=True).agg(
+            ((pl.col("kw") * weight).sum() / weight.sum()).alias(f"kw_{name}"),
+            ((pl.col("kw_low") * weight).sum() / weight.sum()).alias(f"kw_{name}_low"),
+            ((pl.col("kw_high") * weight).sum() / weight.sum()).alias(f"kw_{name}_high"),
+            weight.sum().alias(f"run_hours_{name}"),
+            pl.col("period").n_unique().alias(f"months_{name}"))
+    table = frames["before"].join(frames["after"], on="equipment", how="full",
+                                  coalesce=True, maintain_order="left_right")
+    b, a = pl.col("kw_before"), pl.col("kw_after")
+    usable = (pl.col("run_hours_before") > 0) & (pl.col("run_hours_after") > 0) & (b > 0)
+    change = pl.when(usable).then(a / b - 1.0).otherwise(None)
+    table = table.with_columns(change.alias("change")).with_columns(
+        pl.when(~usable.fill_null(False)).then(pl.lit("missing"))
+        .when((pl.col("kw_after_low") > pl.col("kw_before_high"))
+              & (pl.col("change") >= min_change)).then(pl.lit("rising"))
+        .when((pl.col("kw_after_high") < pl.col("kw_before_low"))
+              & (pl.col("change") <= -min_change)).then(pl.lit("falling"))
+        .otherwise(pl.lit("unclear")).alias("verdict"))
+    periods = {name: sorted(hist.filter(pl.col("period").is_between(pl.lit(rng[0]),
+                                                                    pl.lit(rng[1])))["period"]
+                            .unique().to_list())
+               for name, rng in (("before", before), ("after", after))}
+    return HistoryComparison(table, before, after, periods["before"], periods["after"],
+                             COMPARE_METHOD)
+
+
+def select_equipment(frame: pl.DataFrame, equipment: str | None) -> pl.DataFrame:
+    """Rows of one equipment id, including combined rows (``A+B``) that hold it.
+
+    Raises:
+        InputError: no stored row names that equipment (the stored names are listed).
+    """
+    if equipment is None:
+        return frame
+    rows = frame.filter(pl.col("equipment").str.split("+").list.contains(equipment))
+    if rows.is_empty():
+        known = ", ".join(frame["equipment"].unique(maintain_order=True).to_list())
+        raise InputError(f"--equipment {equipment!r}: no stored rows of it; stored: {known}")
+    return rows
+
+
+def _f(x: float | None, digits: int = 1) -> str:
+    return "-" if x is None or math.isnan(x) else f"{x:,.{digits}f}"
+
+
+def history_summary(frame: pl.DataFrame, folder: Path, caution: str) -> str:
+    """Each equipment's stored months, one block per equipment, for a terminal.
+
+    Args:
+        frame: read_history rows of one site (optionally one equipment).
+    """
+    periods = frame["period"].unique().sort()
+    site = frame["site"][0]
+    lines = [(f"{frame['site_name'][-1]} (history id {site}): {len(periods)} stored month"
+              f"{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}, in {folder}"),
+             ("kWh [kWh] and draw kW [kW] of each month's own run; run h [h]; stored: when the "
+              "month was last run (UTC)")]
+    for (eq,), g in frame.group_by("equipment", maintain_order=True):
+        lines += ["", eq,
+                  (f"  {'period':<8} {'kWh':>10} {'kWh range':>19} {'kW':>8} {'kW range':>15} "
+                   f"{'run h':>7}  {'stored':<16}  flags")]
+        for r in g.iter_rows(named=True):
+            kwh_rng = ("-" if r["kwh_low"] is None
+                       else f"{_f(r['kwh_low'], 0)}-{_f(r['kwh_high'], 0)}")
+            kw_rng = "-" if r["kw_low"] is None else f"{_f(r['kw_low'])}-{_f(r['kw_high'])}"
+            stored = r["run_utc"].strftime("%Y-%m-%d %H:%M") if r["run_utc"] else "-"
+            lines.append(f"  {r['period']:<8} {_f(r['kwh'], 0):>10} {kwh_rng:>19} "
+                         f"{_f(r['kw']):>8} {kw_rng:>15} {_f(r['run_hours'], 0):>7}  "
+                         f"{stored:<16}  {r['flags'] or ''}")
+    lines += ["", f"Caution: {caution}"]
+    return "\n".join(lines)
+
+
+def comparison_summary(result: HistoryComparison, caution: str) -> str:
+    """compare_from_history's table for a terminal, with its method and the caution."""
+    b0, b1 = result.before
+    a0, a1 = result.after
+    lines = [(f"Draws from stored months: before {b0} to {b1} ({len(result.months_before)} "
+              f"stored), after {a0} to {a1} ({len(result.months_after)} stored)"),
+             (f"{'equipment':<22} {'before kW':>9} {'range':>13} {'after kW':>9} {'range':>13} "
+              f"{'change':>8}  verdict")]
+    for r in result.table.iter_rows(named=True):
+        rng = {k: "-" if r[f"kw_{k}_low"] is None or math.isnan(r[f"kw_{k}_low"])
+               else f"{_f(r[f'kw_{k}_low'])}-{_f(r[f'kw_{k}_high'])}" for k in ("before", "after")}
+        change = "-" if r["change"] is None else f"{100 * r['change']:+.1f} %"
+        lines.append(f"{r['equipment'][:22]:<22} {_f(r['kw_before']):>9} {rng['before']:>13} "
+                     f"{_f(r['kw_after']):>9} {rng['after']:>13} {change:>8}  {r['verdict']}")
+    lines += ["", f"Method: {result.method}", "", f"Caution: {caution}"]
+    return "\n".join(lines)
+
+
+def store_configured(result) -> list[Path]:
+    """store_breakdown into the site's [history] folder when its file names one.
+
+    Returns:
+        [the site's breakdown folder in the store], or [] without a [history] table.
+    """
+    folder = getattr(result.site, "history", None)
+    if folder is None:
+        return []
+    store_breakdown(folder, result)
+    return [Path(folder).resolve() / "kind=breakdown" / f"site={site_id(result.site.path)}"]
+
+
+def store_drift_configured(site, drift_result) -> list[Path]:
+    """store_drift into the site's [history] folder when its file names one.
+
+    Returns:
+        [the site's drift folder in the store], or [] without a [history] table.
+    """
+    folder = getattr(site, "history", None)
+    if folder is None:
+        return []
+    store_drift(folder, site, drift_result)
+    return [Path(folder).resolve() / "kind=drift" / f"site={site_id(site.path)}"]

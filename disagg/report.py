@@ -1,0 +1,1157 @@
+"""The hand-over report: one self-contained HTML file a facilities manager can read and print.
+
+``render_report`` turns a breakdown (and, when given, a drift result) into a single HTML
+document: no script, no network reference, no font or image files; every chart is an inline
+SVG drawn with matplotlib's SVG backend with text kept as text (``svg.fonttype = none``, so
+the browser's own sans-serif font draws it and names stay searchable). Print CSS puts each
+section on its own page and keeps charts and table rows whole.
+
+Every text that comes from data (site and equipment names, notes, warnings) is HTML-escaped;
+matplotlib escapes the text it writes into the SVG, and mathtext parsing is switched off so a
+``$`` in a name is just a dollar sign.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import html
+import io
+import math
+import re
+from collections.abc import Callable
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+import polars as pl
+
+from disagg.pipeline import CAUTION, BreakdownResult
+from disagg.progress import report as _report_progress
+
+if TYPE_CHECKING:
+    from disagg.drift import DriftResult
+
+LOCKOUT = ("Before anyone services a piece of equipment, it is isolated from every energy "
+           "source and locked and tagged out (lockout/tagout), and the isolation is verified "
+           "before work starts.")
+
+# One colour per equipment, assigned in the order of the fit's draws: the Okabe & Ito
+# colour-blind-safe set (without black; its yellow, faint as a line on white, moved to the
+# end), then further distinct hues (common practice, no source). More equipment than colours
+# reuses them in order.
+PALETTE = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#882255",
+           "#44AA99", "#117733", "#332288", "#AA4499", "#999933", "#661100", "#6699CC",
+           "#DDCC77", "#F0E442")
+BASELOAD_COLOUR = "#8C8C8C"
+UNEXPLAINED_COLOUR = "#D8D2C4"
+ESTIMATED_COLOUR = "#C6C9E6"
+ALARM_COLOUR = "#C0001A"
+METERED_COLOUR = "#1D2433"
+
+DRIFT_PANELS_PER_CHART = 6
+MONTHS_PER_TABLE = 6  # columns of months per table: fits a printed page
+# Fewer local days than this: the fit page shows hourly sums instead of daily sums.
+MIN_DAYS_FOR_DAILY = 10
+
+_WIDTH_IN = 7.2  # chart width [in]; scaled to the page width by CSS
+CHART_LABEL_CHARS = 30  # longer names are cut in charts
+LEGEND_CHARS = 90  # about the characters of legend text across a chart
+
+_RC = {
+    "svg.fonttype": "none",  # text as <text>: no embedded glyphs, no font files
+    "svg.hashsalt": "disagg-report",  # stable clip-path ids (prefixed per chart below)
+    "text.parse_math": False,  # a '$' in a name is a dollar sign, not mathtext
+    "font.family": "sans-serif",
+    "font.sans-serif": ["DejaVu Sans", "Liberation Sans", "Arial", "Helvetica"],
+    "font.size": 9.0,
+    "axes.titlesize": 9.5,
+    "axes.labelsize": 9.0,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.edgecolor": "#555555",
+    "axes.labelcolor": "#222222",
+    "axes.grid": True,
+    "axes.axisbelow": True,
+    "grid.color": "#E4E6EA",
+    "grid.linewidth": 0.6,
+    "xtick.color": "#444444",
+    "ytick.color": "#444444",
+    "legend.frameon": False,
+    "legend.fontsize": 8.5,
+}
+
+e = html.escape
+
+
+def _num(x: float | None, digits: int = 0) -> str:
+    """A number with thousands separators; '-' for missing or non-finite; no '-0'."""
+    if x is None or not math.isfinite(x):
+        return "-"
+    text = f"{x:,.{digits}f}"
+    return text[1:] if text.startswith("-") and float(text[1:].replace(",", "")) == 0 else text
+
+
+def _short(name: str) -> str:
+    """A name as a chart label: at most CHART_LABEL_CHARS characters (tables give it whole)."""
+    return name if len(name) <= CHART_LABEL_CHARS else name[:CHART_LABEL_CHARS - 1] + "…"
+
+
+def _is_base(name: str) -> bool:
+    return name.startswith("baseload")
+
+
+# ---------------------------------------------------------------------------------------
+# Colours and ordering
+
+
+def equipment_order(result: BreakdownResult, extra: list[str] | None = None) -> list[str]:
+    """Row names in report order: the fit's draws, other names met in the table or in
+    `extra`, then the baseload row(s), estimated gaps and unexplained."""
+    names = [d["equipment"] for d in result.fit.get("draws", [])]
+    seen = set(names)
+    for n in list(result.breakdown["equipment"].unique(maintain_order=True)) + (extra or []):
+        if n not in seen:
+            names.append(n)
+            seen.add(n)
+    loads = [n for n in names if not _is_base(n) and n not in ("unexplained", "estimated-gaps")]
+    tail = ([n for n in names if _is_base(n)]
+            + [n for n in names if n == "estimated-gaps"]
+            + [n for n in names if n == "unexplained"])
+    return loads + tail
+
+
+def colour_map(names: list[str]) -> dict[str, str]:
+    """One fixed colour per row name: loads from PALETTE in order, baseload grey, estimated
+    gaps lavender, unexplained a light neutral."""
+    colours, k = {}, 0
+    for n in names:
+        if _is_base(n):
+            colours[n] = BASELOAD_COLOUR
+        elif n == "unexplained":
+            colours[n] = UNEXPLAINED_COLOUR
+        elif n == "estimated-gaps":
+            colours[n] = ESTIMATED_COLOUR
+        else:
+            colours[n] = PALETTE[k % len(PALETTE)]
+            k += 1
+    return colours
+
+
+# ---------------------------------------------------------------------------------------
+# SVG charts
+
+_TAG = re.compile(r"<[^>]+>")
+
+
+def _svg_text(fig, key: str, label: str) -> str:
+    """The figure as an inline <svg> element: no XML prolog, DOCTYPE, namespaces, fixed
+    size, comments or global style; every id prefixed with `key` so that charts in one page
+    never share an id."""
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg",
+                metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
+    text = buf.getvalue()
+    text = text[text.index("<svg"):]
+    text = re.sub(r"<!--.*?-->", "", text, flags=re.DOTALL)
+    text = re.sub(r"<defs>\s*<style[^>]*>.*?</style>\s*</defs>", "", text, count=1, flags=re.DOTALL)
+    text = re.sub(r"<metadata>.*?</metadata>", "", text, flags=re.DOTALL)
+
+    def fix(m: re.Match) -> str:
+        # Only inside tags: text content is escaped by matplotlib (no raw '<' or '>'), and
+        # attribute values are escaped too, so a tag never holds a '>' of its own.
+        t = m.group(0)
+        t = t.replace(' id="', f' id="{key}-').replace("url(#", f"url(#{key}-")
+        return t.replace('href="#', f'href="#{key}-')
+
+    text = _TAG.sub(fix, text)
+    head_end = text.index(">")
+    head = re.sub(r'\s(?:xmlns(?::\w+)?|width|height|version)="[^"]*"', "", text[:head_end])
+    return (f'{head} class="chart" role="img" aria-label="{e(label)}"'
+            + text[head_end:].rstrip())
+
+
+class _Charts:
+    """Draws the report's charts with one set of colours, counting them for progress."""
+
+    def __init__(self, colours: dict[str, str], total: int,
+                 progress: Callable[[str, int, int], None] | None):
+        self.colours = colours
+        self.total = total
+        self.done = 0
+        self.progress = progress
+
+    def colour(self, name: str) -> str:
+        return self.colours.get(name, PALETTE[0])
+
+    def finish(self, fig, label: str) -> str:
+        self.done += 1
+        svg = _svg_text(fig, f"c{self.done}", label)
+        _report_progress(self.progress, "drawing", self.done, self.total)
+        return svg
+
+
+def _label(ax, x: str | None, y: str | None, tag: str = "") -> None:
+    """Axis labels with ids (xlabel*/ylabel*) so that tests can find them in the SVG."""
+    if x is not None:
+        ax.set_xlabel(x)
+        ax.xaxis.label.set_gid(f"xlabel{tag}")
+    if y is not None:
+        ax.set_ylabel(y)
+        ax.yaxis.label.set_gid(f"ylabel{tag}")
+
+
+def _thousands(axis) -> None:
+    from matplotlib.ticker import FuncFormatter
+
+    axis.set_major_formatter(FuncFormatter(lambda v, _: _num(v, 0) if abs(v) >= 10
+                                           else f"{v:g}"))
+
+
+def _range_chart(ch: _Charts, rows: list[dict]) -> str:
+    """Horizontal bars of each row's kWh over the range with interval whiskers."""
+    from matplotlib.figure import Figure
+
+    n = len(rows)
+    fig = Figure(figsize=(_WIDTH_IN, 0.9 + 0.32 * n), layout="constrained")
+    ax = fig.add_subplot()
+    ypos = np.arange(n)[::-1]
+    kwh = np.array([r["kwh"] for r in rows])
+    ax.barh(ypos, kwh, height=0.64, color=[ch.colour(r["equipment"]) for r in rows],
+            edgecolor="#33333355", linewidth=0.5)
+    for y, r in zip(ypos, rows):
+        if r["kwh_low"] is not None and r["kwh_high"] is not None:
+            ax.errorbar([r["kwh"]], [y], xerr=[[r["kwh"] - r["kwh_low"]],
+                                               [r["kwh_high"] - r["kwh"]]],
+                        fmt="none", ecolor="#222222", elinewidth=1.0, capsize=3)
+    ax.axvline(0, color="#555555", linewidth=0.8)
+    ax.set_yticks(ypos, [_short(r["equipment"]) for r in rows])
+    ax.grid(axis="y", visible=False)
+    top = max([abs(r["kwh_high"] if r["kwh_high"] is not None else r["kwh"]) for r in rows]
+              + [abs(float(v)) for v in kwh] + [1.0])
+    for y, r in zip(ypos, rows):
+        end = r["kwh_high"] if r["kwh_high"] is not None else max(r["kwh"], 0.0)
+        share = (f" ({_num(100 * r['share'], 1)} %)" if math.isfinite(r["share"]) else "")
+        ax.text(end + 0.01 * top, y, f"{_num(r['kwh'])} kWh{share}",
+                va="center", ha="left", fontsize=8, color="#333333")
+    low = min([0.0] + [float(v) for v in kwh])
+    ax.set_xlim(low - 0.02 * top if low < 0 else 0, 1.32 * top)
+    _thousands(ax.xaxis)
+    _label(ax, "Energy over the range [kWh]  (whiskers: interval)", None)
+    return ch.finish(fig, "Energy per equipment over the range with intervals, kWh")
+
+
+def _monthly_chart(ch: _Charts, periods: list[str], names: list[str],
+                   kwh: dict[tuple[str, str], float]) -> str:
+    """Stacked kWh per month: positive parts upward from zero, negative parts (an
+    unexplained rest below zero) downward; the metered total marked."""
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    fig = Figure(figsize=(_WIDTH_IN, 4.6), layout="constrained")
+    ax = fig.add_subplot()
+    x = np.arange(len(periods))
+    up = np.zeros(len(periods))
+    down = np.zeros(len(periods))
+    width = 0.72
+    for name in names:
+        v = np.array([kwh.get((p, name), 0.0) for p in periods])
+        pos, neg = np.where(v > 0, v, 0.0), np.where(v < 0, v, 0.0)
+        hatch = "////" if name == "unexplained" else None
+        style = {"width": width, "color": ch.colour(name), "edgecolor": "#33333355",
+                 "linewidth": 0.4, "hatch": hatch}
+        if pos.any():
+            ax.bar(x, pos, bottom=up, **style)
+        if neg.any():
+            ax.bar(x, neg, bottom=down, **style)
+        up += pos
+        down += neg
+    metered = np.array([sum(kwh.get((p, n), 0.0) for n in names) for p in periods])
+    ax.scatter(x, metered, marker="_", s=260, color=METERED_COLOUR, linewidths=2, zorder=5)
+    ax.axhline(0, color="#555555", linewidth=0.8)
+    centre, half = (len(periods) - 1) / 2, max(len(periods), 3) / 2
+    ax.set_xlim(centre - half, centre + half)  # one month: a bar, not a wall
+    ax.set_xticks(x, periods, rotation=45 if len(periods) > 6 else 0,
+                  ha="right" if len(periods) > 6 else "center")
+    ax.grid(axis="x", visible=False)
+    _thousands(ax.yaxis)
+    _label(ax, "Month [YYYY-MM, local]", "Energy per month [kWh]")
+    handles = [Patch(facecolor=ch.colour(n), edgecolor="#33333355",
+                     hatch="////" if n == "unexplained" else None, label=_short(n))
+               for n in names]
+    handles.append(Line2D([], [], color=METERED_COLOUR, marker="_", linestyle="none",
+                          markersize=14, markeredgewidth=2, label="metered total"))
+    longest = max(len(h.get_label()) for h in handles)
+    ncol = max(1, min(6, len(handles), LEGEND_CHARS // (longest + 6)))
+    fig.legend(handles=handles, loc="outside lower center", ncol=ncol)
+    return ch.finish(fig, "Energy per month, stacked by equipment, kWh")
+
+
+def _date_axis(ax) -> None:
+    import matplotlib.dates as mdates
+
+    loc = mdates.AutoDateLocator(minticks=3, maxticks=8)
+    ax.xaxis.set_major_locator(loc)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc))
+
+
+def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: dict,
+                 part: int) -> str:
+    """Small multiples: each load's tracked daily draw, its band, the reference draw, the
+    reference period shaded and alarm days marked."""
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    cols = 2 if len(names) > 1 else 1
+    nrows = math.ceil(len(names) / cols)
+    fig = Figure(figsize=(_WIDTH_IN, 0.7 + 2.0 * nrows), layout="constrained")
+    axes = fig.subplots(nrows, cols, squeeze=False, sharex=True)
+    ref = summary.get("reference", {})
+    ref0 = dt.date.fromisoformat(ref["from"]) if ref.get("from") else None
+    ref1 = dt.date.fromisoformat(ref["to"]) if ref.get("to") else None
+    alarms = {a["equipment"]: a for a in summary.get("alarms", [])}
+    for k, name in enumerate(names):
+        ax = axes[k // cols][k % cols]
+        rows = table.filter(pl.col("equipment") == name).sort("date")
+        days = rows["date"].to_numpy()
+        kw = rows["kw_tracked"].to_numpy().astype(float)
+        lo = rows["kw_low"].to_numpy().astype(float)
+        hi = rows["kw_high"].to_numpy().astype(float)
+        ref_kw = float(rows["kw_reference"][0])
+        alarm = rows["alarm"].to_numpy().astype(bool)
+        c = ch.colour(name)
+        if ref0 is not None and ref1 is not None:
+            ax.axvspan(np.datetime64(ref0), np.datetime64(ref1 + dt.timedelta(days=1)),
+                       color="#EEF1F5", zorder=0)
+        ax.fill_between(days, lo, hi, color=c, alpha=0.22, linewidth=0)
+        ax.plot(days, kw, color=c, linewidth=1.4)
+        ax.axhline(ref_kw, color="#333333", linestyle="--", linewidth=1.0)
+        if alarm.any():
+            ax.plot(days[alarm], kw[alarm], linestyle="none", marker="o", markersize=3,
+                    color=ALARM_COLOUR)
+        # Axis limits from the draws themselves; a band much wider than their spread would
+        # flatten the line, so it is cut at the axis and the title says so.
+        values = np.concatenate([kw[np.isfinite(kw)], [ref_kw]])
+        v0, v1 = float(values.min()), float(values.max())
+        span = max(v1 - v0, 0.1 * abs(ref_kw), 0.5)
+        y0, y1 = v0 - 0.5 * span, v1 + 0.5 * span
+        band_lo, band_hi = float(np.nanmin(lo)), float(np.nanmax(hi))
+        clipped = band_lo < y0 - span or band_hi > y1 + span
+        if not clipped:
+            y0, y1 = min(y0, band_lo), max(y1, band_hi)
+        ax.set_ylim(y0, y1)
+        title = _short(name)
+        if name in alarms:
+            title += f": alarm from {alarms[name]['first_alarm_date']}"
+        if clipped:
+            title += " (band wider than shown)"
+        ax.set_title(title, loc="left", color=ALARM_COLOUR if name in alarms else "#222222")
+        _label(ax, "Date [local]" if k // cols == nrows - 1 or k + cols >= len(names) else None,
+               "Draw [kW]" if k % cols == 0 else None, tag=f"-{k}")
+        _date_axis(ax)
+        ax.tick_params(labelbottom=True)
+    for k in range(len(names), nrows * cols):
+        axes[k // cols][k % cols].set_visible(False)
+    handles = [Line2D([], [], color="#555555", linewidth=1.4, label="tracked draw (daily)"),
+               Patch(facecolor="#555555", alpha=0.22, label="band"),
+               Line2D([], [], color="#333333", linestyle="--", label="reference draw"),
+               Line2D([], [], color=ALARM_COLOUR, marker="o", markersize=3, linestyle="none",
+                      label="alarm day"),
+               Patch(facecolor="#EEF1F5", label="reference period")]
+    fig.legend(handles=handles, loc="outside upper center", ncol=5)
+    return ch.finish(fig, f"Tracked draws over time, part {part}, kW")
+
+
+def _fit_charts(ch: _Charts, when: np.ndarray, metered: np.ndarray, fitted: np.ndarray,
+                unit: str) -> tuple[str, str]:
+    """Metered and fitted energy per day (or hour) over time, and their difference."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(_WIDTH_IN, 3.0), layout="constrained")
+    ax = fig.add_subplot()
+    ax.plot(when, metered, color="#9AA3B0", linewidth=2.4, label="metered")
+    ax.plot(when, fitted, color="#D55E00", linewidth=0.9, label="fitted")
+    _date_axis(ax)
+    _thousands(ax.yaxis)
+    _label(ax, "Date [local]", f"Energy per {unit} [kWh]")
+    fig.legend(loc="outside upper right", ncol=2)
+    first = ch.finish(fig, f"Metered and fitted energy per {unit}, kWh")
+
+    fig = Figure(figsize=(_WIDTH_IN, 2.4), layout="constrained")
+    ax = fig.add_subplot()
+    resid = metered - fitted
+    ax.bar(when, resid, width=0.9 if unit == "day" else 0.9 / 24,
+           color=np.where(resid >= 0, "#0072B2", "#D55E00"), linewidth=0)
+    ax.axhline(0, color="#555555", linewidth=0.8)
+    _date_axis(ax)
+    _thousands(ax.yaxis)
+    _label(ax, "Date [local]", f"Metered - fitted [kWh per {unit}]")
+    second = ch.finish(fig, f"Residual energy per {unit}, kWh")
+    return first, second
+
+
+# ---------------------------------------------------------------------------------------
+# Data for the sections
+
+
+def _range_rows(table: pl.DataFrame, names: list[str], total_kwh: float) -> list[dict]:
+    """Each row name's totals over the range (sum over months)."""
+    has_peak = "peak_kw" in table.columns
+    has_cost = "cost" in table.columns
+    aggs = [pl.col("run_hours").sum(), pl.col("kwh").sum(), pl.col("kwh_low").sum(),
+            pl.col("kwh_high").sum(), pl.col("kwh_low").null_count().alias("no_low"),
+            pl.col("kwh_high").null_count().alias("no_high"), pl.len().alias("months")]
+    if has_peak:
+        aggs.append(pl.col("peak_kw").max())
+    if has_cost:
+        aggs += [pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")]
+    totals = {r["equipment"]: r for r in table.group_by("equipment").agg(aggs)
+              .iter_rows(named=True)}
+    rows = []
+    for n in names:
+        if n not in totals:
+            continue
+        r = totals[n]
+        ranged = r["no_low"] == 0 and r["no_high"] == 0
+        rows.append({
+            "equipment": n, "run_hours": r["run_hours"], "kwh": float(r["kwh"]),
+            "kwh_low": float(r["kwh_low"]) if ranged else None,
+            "kwh_high": float(r["kwh_high"]) if ranged else None,
+            # Estimated gap energy is not metered: no share of the metered energy.
+            "share": (r["kwh"] / total_kwh if total_kwh and n != "estimated-gaps"
+                      else float("nan")),
+            "peak_kw": r.get("peak_kw"),
+            "cost": r["cost"] if has_cost and r["no_cost"] < r["months"] else None,
+        })
+    return rows
+
+
+def _local_span(result: BreakdownResult) -> tuple[str, str]:
+    tz = result.site.timezone
+    f = result.estimates.frame
+    first = f["start_utc"].min().astimezone(_zone(tz)).date()
+    last = (f["end_utc"].max() - dt.timedelta(microseconds=1)).astimezone(_zone(tz)).date()
+    return first.isoformat(), last.isoformat()
+
+
+def _zone(tz: str):
+    from zoneinfo import ZoneInfo
+
+    return ZoneInfo(tz)
+
+
+def _fit_series(result: BreakdownResult) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
+    """Metered and fitted kWh summed per local day (per local hour for short ranges)."""
+    est = result.estimates
+    local = est.frame["start_utc"].dt.convert_time_zone(result.site.timezone)
+    frame = pl.DataFrame({"t": local, "y": est.y, "f": est.fitted})
+    days = frame["t"].dt.date().n_unique()
+    unit = "day" if days >= MIN_DAYS_FOR_DAILY else "hour"
+    key = (pl.col("t").dt.date() if unit == "day"
+           else pl.col("t").dt.truncate("1h").dt.replace_time_zone(None))
+    g = (frame.group_by(key.alias("k")).agg(pl.col("y").sum(), pl.col("f").sum()).sort("k"))
+    return g["k"].to_numpy(), g["y"].to_numpy(), g["f"].to_numpy(), unit
+
+
+# ---------------------------------------------------------------------------------------
+# HTML pieces
+
+
+def _swatch(colour: str) -> str:
+    return f'<span class="swatch" style="background:{colour}"></span>'
+
+
+def _eq(name: str, colour: str | None = None) -> str:
+    """An equipment name (with its colour swatch when given), kept on one line unless it is
+    long."""
+    cls = "eq" if len(name) <= CHART_LABEL_CHARS else "long"
+    swatch = _swatch(colour) if colour else ""
+    return f'<span class="{cls}">{swatch}{e(name)}</span>'
+
+
+def _table(headers: list[tuple[str, bool]], rows: list[list[str]], cls: str = "") -> str:
+    """A table; headers are (escaped html, numeric?); cells are ready html."""
+    num = [n for _, n in headers]
+    head = "".join(f'<th class="num">{h}</th>' if n else f"<th>{h}</th>" for h, n in headers)
+    body = "".join("<tr>" + "".join(f'<td class="num">{c}</td>' if num[i] else f"<td>{c}</td>"
+                                    for i, c in enumerate(r)) + "</tr>" for r in rows)
+    klass = f' class="{cls}"' if cls else ""
+    return f"<table{klass}><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _figure(svg: str, caption: str) -> str:
+    return f"<figure>{svg}<figcaption>{caption}</figcaption></figure>"
+
+
+def _list(items: list[str]) -> str:
+    return "<ul>" + "".join(f"<li>{i}</li>" for i in items) + "</ul>" if items else ""
+
+
+_FLAG_WORDS = {
+    "combined": "combined (run together, one row)",
+    "unstable": "interval widened",
+    "not-run": "did not run",
+    "variable": "variable speed",
+    "prior-driven": "decided by its prior",
+    "range-draw": "whole-range draw",
+    "estimated": "estimated",
+}
+
+
+def _flag_text(flags: str | list[str]) -> str:
+    items = flags if isinstance(flags, list) else [f for f in (flags or "").split(";") if f]
+    out = []
+    for f in dict.fromkeys(items):
+        if f.startswith("inseparable:"):
+            out.append(f"cannot be told apart from {f.split(':', 1)[1]}")
+        else:
+            out.append(_FLAG_WORDS.get(f, f))
+    return e(", ".join(out))
+
+
+CSS = """
+:root { --ink:#1d2433; --muted:#5b6475; --rule:#d8dce3; --accent:#1f4e79; --warn:#a3001a; }
+* { box-sizing: border-box; }
+html { background:#eef0f3; }
+body { margin:0; color:var(--ink);
+  font: 15px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, "Helvetica Neue", Arial, sans-serif; }
+main { max-width: 880px; margin: 0 auto; background:#fff; padding: 28px 40px 40px; }
+header.top h1 { font-size: 25px; margin: 0 0 4px; line-height: 1.2; }
+header.top p { margin: 2px 0; color: var(--muted); }
+nav.toc { margin: 14px 0 0; font-size: 13.5px; }
+nav.toc ol { margin: 4px 0 0; padding-left: 22px; columns: 2; }
+nav.toc a { color: var(--accent); text-decoration: none; }
+section.page { border-top: 3px solid var(--accent); margin-top: 34px; padding-top: 6px; }
+h2 { font-size: 20px; margin: 8px 0 10px; color: var(--accent); }
+h3 { font-size: 15.5px; margin: 18px 0 6px; }
+p { margin: 6px 0 10px; }
+.muted, figcaption { color: var(--muted); }
+figcaption { font-size: 12.5px; margin-top: 2px; }
+figure { margin: 14px 0; }
+svg.chart { display: block; width: 100%; height: auto; }
+svg.chart * { stroke-linejoin: round; stroke-linecap: butt; }
+table { border-collapse: collapse; width: 100%; margin: 8px 0 14px; font-size: 13px;
+  font-variant-numeric: tabular-nums; }
+th, td { padding: 3px 6px; border-bottom: 1px solid var(--rule); text-align: left;
+  vertical-align: top; }
+th { font-weight: 600; border-bottom: 1.5px solid #9aa3b0; background: #f6f7f9; }
+th.num { text-align: right; }
+td.num { text-align: right; white-space: nowrap; }
+.eq { white-space: nowrap; }
+.long { overflow-wrap: anywhere; }
+.name { font-size: 0.88em; color: var(--muted); }
+table.wide { font-size: 11.5px; }
+table.wide th, table.wide td { padding: 2px 4px; }
+tr.total td { font-weight: 600; border-top: 1.5px solid #9aa3b0; }
+.swatch { display: inline-block; width: 11px; height: 11px; margin-right: 6px;
+  border: 1px solid rgba(0,0,0,.3); vertical-align: -1px;
+  -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+.kpis { display: flex; flex-wrap: wrap; gap: 10px; margin: 10px 0 14px; }
+.kpi { border: 1px solid var(--rule); border-radius: 4px; padding: 8px 12px; min-width: 160px; }
+.kpi span { display: block; font-size: 12px; color: var(--muted); }
+.kpi b { display: block; font-size: 19px; font-variant-numeric: tabular-nums; }
+.meets { color: #0b6b2e; font-weight: 600; }
+.fails { color: var(--warn); font-weight: 600; }
+.alarm { color: var(--warn); font-weight: 600; }
+.scroll { overflow-x: auto; }
+.caution { border-left: 5px solid var(--warn); background: #fff5f5; padding: 10px 14px;
+  margin: 10px 0; -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+.caution p { margin: 4px 0; font-size: 16px; }
+footer { margin-top: 30px; font-size: 12px; color: var(--muted); }
+@page { margin: 14mm 12mm; }
+@media print {
+  html, body { background: #fff; }
+  body { font-size: 10pt; }
+  main { max-width: none; margin: 0; padding: 0; }
+  nav.toc { display: none; }
+  section.page { break-before: page; border-top: none; margin-top: 0; padding-top: 0; }
+  h2, h3 { break-after: avoid; }
+  figure, tr, .kpis, .caution { break-inside: avoid; }
+  thead { display: table-header-group; }
+  table { font-size: 8.5pt; }
+  table.wide { font-size: 7.5pt; }
+  .scroll { overflow: visible; }
+  a { color: inherit; text-decoration: none; }
+}
+"""
+
+
+# ---------------------------------------------------------------------------------------
+# The report
+
+
+# A default-reference drift run needs at least this many days of data after the reference
+# period to have anything to show (common practice, no source: four weeks).
+MIN_TRACKED_DAYS = 28
+
+
+def drift_for(result: BreakdownResult, memory_days: float = 30.0,
+              reference: tuple[dt.date, dt.date] | None = None,
+              threshold: float = 0.10) -> tuple[DriftResult | None, str | None]:
+    """The drift result for a breakdown's own intervals, or None and the reason why not.
+
+    With the default reference (the first 90 days) the data must reach MIN_TRACKED_DAYS past
+    it. A drift run that fails on these data (disagg.errors.DisaggError: too little data in
+    the reference period, a memory that needs an unstable step) is left out with its message.
+
+    Raises:
+        ConfigError: memory_days not above 0 (a bad option, not a property of the data).
+    """
+    from disagg.drift import DEFAULT_REFERENCE_DAYS, drift_aligned
+    from disagg.errors import ConfigError, DisaggError
+
+    if not (math.isfinite(memory_days) and memory_days > 0):
+        raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
+    first, last = _local_span(result)
+    span_days = (dt.date.fromisoformat(last) - dt.date.fromisoformat(first)).days + 1
+    if reference is None and span_days < DEFAULT_REFERENCE_DAYS + MIN_TRACKED_DAYS:
+        return None, (f"Drift is left out: the data cover {span_days} days, and tracking "
+                      f"needs the {DEFAULT_REFERENCE_DAYS}-day reference period plus at least "
+                      f"{MIN_TRACKED_DAYS} days after it; a shorter reference period can be "
+                      "given with --reference FROM:TO.")
+    try:
+        drift = drift_aligned(result.site, result.aligned, memory_days, None, reference,
+                              threshold, result.estimates.confidence)
+    except DisaggError as exc:
+        return None, f"Drift is left out: {exc}"
+    return drift, None
+
+
+def report_for(result: BreakdownResult, *, progress: Callable[[str, int, int], None] | None = None,
+               memory_days: float = 30.0, reference: tuple[dt.date, dt.date] | None = None,
+               drift: bool = True) -> str:
+    """The report of a breakdown with its drift page when the data allow one (drift_for).
+
+    drift: False leaves the drift page out (saying so).
+    """
+    if not drift:
+        return render_report(result, None, progress=progress,
+                             drift_note="Drift tracking was not asked for in this report.")
+    tracked, note = drift_for(result, memory_days, reference)
+    return render_report(result, tracked, progress=progress, drift_note=note)
+
+
+def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
+    """One line for the terminal: site, months, metered kWh, cost, drift alarms."""
+    table = result.breakdown
+    periods = sorted(table["period"].unique().to_list())
+    line = (f"{result.site.name}: {periods[0]} to {periods[-1]}, metered "
+            f"{_num(_metered_total(table))} kWh")
+    if _has_cost(table):
+        line += f", cost {_num(float(table['cost'].sum()), 2)} {_currency(result)}"
+    if drift is None:
+        return line + "; drift left out"
+    alarms = [a["equipment"] for a in drift.summary.get("alarms", [])]
+    return line + (f"; drift alarms: {', '.join(alarms)}" if alarms else "; no drift alarm")
+
+
+def render_report(result: BreakdownResult, drift: DriftResult | None = None, *,
+                  progress: Callable[[str, int, int], None] | None = None,
+                  drift_note: str | None = None) -> str:
+    """One self-contained HTML document of a breakdown (and its drift), ready to print.
+
+    Args:
+        result: the breakdown (disagg.pipeline.breakdown_site).
+        drift: the drift result (disagg.drift); None leaves the drift page out.
+        progress: called as progress("drawing", done, total) as each chart is drawn.
+        drift_note: why the drift page is left out (shown in its place when drift is None).
+
+    Returns:
+        The HTML text (UTF-8, no script, no external reference).
+    """
+    import matplotlib as mpl
+
+    table = result.breakdown
+    fit = result.fit
+    site_name = result.site.name
+    drift_names = (list(drift.table["equipment"].unique(maintain_order=True))
+                   if drift is not None else [])
+    names = equipment_order(result, drift_names)
+    colours = colour_map(names)
+    table_names = [n for n in names if n in set(table["equipment"].to_list())]
+    periods = sorted(table["period"].unique().to_list())
+    n_drift_charts = math.ceil(len(drift_names) / DRIFT_PANELS_PER_CHART)
+    ch = _Charts(colours, 4 + n_drift_charts, progress)
+
+    with mpl.rc_context(_RC):
+        parts = [
+            _header(result, periods),
+            _glance(result, ch, table_names),
+            _months(result, ch, table_names, periods),
+            _drift_section(drift, ch, drift_names, drift_note,
+                           {str(w) for w in result.fit.get("warnings", [])}),
+            _fit_section(result, ch),
+            _priors_section(result),
+            _caution_section(result),
+        ]
+    title = f"Energy breakdown: {site_name}"
+    return ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
+            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n"
+            f"<title>{e(title)}</title>\n<style>{CSS}</style>\n</head>\n<body>\n<main>\n"
+            + "\n".join(parts)
+            + f"\n<footer>Produced by {e(str(fit.get('tool', 'disagg')))} from the site file "
+              f"{e(Path(str(fit.get('site_file', ''))).name)}. Every figure in this report is an "
+              "estimate from the meter and the run logs.</footer>\n</main>\n</body>\n</html>\n")
+
+
+def _currency(result: BreakdownResult) -> str:
+    return str((result.fit.get("tariff") or {}).get("currency") or "currency")
+
+
+def _has_cost(table: pl.DataFrame) -> bool:
+    return "cost" in table.columns and table["cost"].is_not_null().any()
+
+
+def _has_peak(table: pl.DataFrame) -> bool:
+    return "peak_kw" in table.columns and table["peak_kw"].is_not_null().any()
+
+
+def _metered_total(table: pl.DataFrame) -> float:
+    return float(table.filter(pl.col("equipment") != "estimated-gaps")["kwh"].sum())
+
+
+def _header(result: BreakdownResult, periods: list[str]) -> str:
+    first, last = _local_span(result)
+    fit = result.fit
+    c = fit.get("intervals", {})
+    months = (f"{len(periods)} month{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}"
+              if periods else "no months")
+    sections = ["The range at a glance", "Month by month", "Drift over time", "How good the fit is",
+                "What cannot be told apart", "Cautions"]
+    ids = ["glance", "months", "drift", "fit", "priors", "cautions"]
+    toc = "".join(f'<li><a href="#{i}">{s}</a></li>' for i, s in zip(ids, sections))
+    return (f'<header class="top"><h1>{e(result.site.name)}</h1>'
+            f"<p>Energy by equipment, {e(first)} to {e(last)} (local dates, "
+            f"{e(result.site.timezone)}): {e(months)}.</p>"
+            f"<p>{_num(c.get('used'))} of {_num(c.get('intervals'))} meter intervals used; "
+            f"intervals at {100 * result.estimates.confidence:g} % confidence.</p>"
+            f'<nav class="toc"><ol>{toc}</ol></nav></header>')
+
+
+def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
+    table = result.breakdown
+    metered = _metered_total(table)
+    rows = _range_rows(table, names, metered)
+    has_cost, has_peak = _has_cost(table), _has_peak(table)
+    cur = _currency(result)
+    draws = {d["equipment"]: d for d in result.fit.get("draws", [])}
+    full_names = {eq.id: eq.name for eq in result.site.equipment}
+    loads_kwh = sum(r["kwh"] for r in rows if not _is_base(r["equipment"])
+                    and r["equipment"] not in ("unexplained", "estimated-gaps"))
+    kpis = [("Metered energy", f"{_num(metered)} kWh")]
+    estimated = sum(r["kwh"] for r in rows if r["equipment"] == "estimated-gaps")
+    if estimated:
+        kpis.append(("Estimated for short meter gaps", f"{_num(estimated)} kWh"))
+    if has_cost:
+        kpis.append(("Cost of the metered energy", f"{_num(float(table['cost'].sum()), 2)} {cur}"))
+    if metered:
+        kpis.append(("Explained by equipment", f"{_num(100 * loads_kwh / metered, 1)} %"))
+    kpi_html = "".join(f"<div class=\"kpi\"><span>{e(k)}</span><b>{e(v)}</b></div>"
+                       for k, v in kpis)
+    svg = _range_chart(ch, rows)
+    headers = [("equipment", False), ("run [h]", True), ("energy [kWh]", True),
+               ("interval [kWh]", True), ("share [%]", True), ("draw [kW]", True)]
+    if has_peak:
+        headers.append(("peak share [kW]", True))
+    if has_cost:
+        headers.append((f"cost [{e(cur)}]", True))
+    headers.append(("notes", False))
+    body = []
+    for r in rows:
+        n = r["equipment"]
+        d = draws.get(n)
+        if d is not None:
+            name = d.get("name") or n
+        elif _is_base(n):
+            name = "baseload (load no run log explains)"
+        elif n == "unexplained":
+            name = "metered minus everything fitted"
+        else:
+            name = full_names.get(n, n)
+        kw = _num(d["kw"], 1) if d and d.get("kw") is not None else "-"
+        interval = (f"{_num(r['kwh_low'])}–{_num(r['kwh_high'])}"
+                    if r["kwh_low"] is not None else "-")
+        flags = d["flags"] if d else table.filter(pl.col("equipment") == n)["flags"].to_list()
+        if not d:
+            flags = [f for cell in flags for f in (cell or "").split(";") if f]
+        label = _eq(n, ch.colour(n))
+        if name != n:
+            label += f'<br><span class="name">{e(name)}</span>'
+        cells = [label, _num(r["run_hours"]), _num(r["kwh"]), interval,
+                 _num(100 * r["share"], 1), kw]
+        if has_peak:
+            cells.append(_num(r["peak_kw"], 1))
+        if has_cost:
+            cells.append(_num(r["cost"], 2))
+        cells.append(_flag_text(flags))
+        body.append(cells)
+    metered_rows = [r for r in rows if r["equipment"] != "estimated-gaps"]
+    total = ["total metered", "", _num(sum(r["kwh"] for r in metered_rows)), "", "100.0", ""]
+    if has_peak:
+        total.append("")
+    if has_cost:
+        total.append(_num(sum(r["cost"] or 0.0 for r in rows), 2))
+    total.append("")
+    tab = _table(headers, body)
+    tab = tab.replace("</tbody>", "<tr class=\"total\">" + "".join(
+        f'<td class="num">{c}</td>' if headers[i][1] else f"<td>{c}</td>"
+        for i, c in enumerate(total)) + "</tr></tbody>")
+    own = any(m.get("own_fit") for m in result.fit.get("months", {}).values())
+    notes = [
+        "Energy and its interval are sums over the months"
+        + (" of each month's own fit" if own else "")
+        + "; the interval of a sum of months is the sum of the monthly interval ends, so it "
+          "is on the wide side. Draw: the whole range's fitted draw (full-speed draw for "
+          "variable-speed equipment). Share: of the metered energy.",
+        ("Unexplained is what the meter recorded and nothing fitted accounts for; it can be "
+         "negative when the fit overshoots."),
+    ]
+    if estimated:
+        notes.append("Estimated gaps: energy filled in by linear interpolation for short meter "
+                     "gaps; not metered, so not in the total or the shares.")
+    tariff = result.fit.get("tariff") or {}
+    if has_peak:
+        notes.append("Peak share: the equipment's estimated draw in the interval of a month's "
+                     "highest metered demand, the largest over the months; the rows of a month "
+                     "add up to that month's peak demand.")
+    if has_cost and tariff.get("method"):
+        notes.append("Cost: " + e(str(tariff["method"])) + ".")
+    return (f'<section class="page first" id="glance"><h2>1. The range at a glance</h2>'
+            f'<div class="kpis">{kpi_html}</div>'
+            + _figure(svg, "Energy of each equipment over the whole range, with its interval "
+                           "(whiskers); baseload in grey, unexplained in a light neutral.")
+            + f'<div class="scroll">{tab}</div>'
+            + "".join(f'<p class="muted">{n}</p>' for n in notes) + "</section>")
+
+
+def _month_table(names: list[str], periods: list[str], values: dict[tuple[str, str], float],
+                 colours: dict[str, str], unit: str, digits: int) -> str:
+    out = []
+    for k in range(0, len(periods), MONTHS_PER_TABLE):
+        chunk = periods[k:k + MONTHS_PER_TABLE]
+        headers = [("equipment", False)] + [(f'<span class="eq">{p}</span><br>[{e(unit)}]', True)
+                                          for p in chunk]
+        last = k + MONTHS_PER_TABLE >= len(periods)
+        if last:
+            headers.append((f"all<br>[{e(unit)}]", True))
+        rows = []
+        for n in names:
+            cells = [_eq(n, colours[n])]
+            cells += [_num(values.get((p, n)), digits) for p in chunk]
+            if last:
+                cells.append(_num(sum(values.get((p, n), 0.0) for p in periods), digits))
+            rows.append(cells)
+        label = "total with estimated gaps" if "estimated-gaps" in names else "total"
+        totals = [label] + [_num(sum(values.get((p, n), 0.0) for n in names), digits)
+                              for p in chunk]
+        if last:
+            totals.append(_num(sum(values.get((p, n), 0.0) for p in periods for n in names),
+                               digits))
+        rows.append(totals)
+        html_table = _table(headers, rows, "wide")
+        # The last body row is the total.
+        i = html_table.rfind("<tr>")
+        html_table = html_table[:i] + '<tr class="total">' + html_table[i + 4:]
+        out.append(f'<div class="scroll">{html_table}</div>')
+    return "".join(out)
+
+
+def _months(result: BreakdownResult, ch: _Charts, names: list[str], periods: list[str]) -> str:
+    table = result.breakdown
+    kwh = {(r["period"], r["equipment"]): float(r["kwh"]) for r in
+           table.select("period", "equipment", "kwh").iter_rows(named=True)
+           if r["kwh"] is not None}
+    svg = _monthly_chart(ch, periods, names, kwh)
+    parts = ['<section class="page" id="months"><h2>2. Month by month</h2>',
+             _figure(svg, "Energy per month, one colour per equipment. Parts above zero add up "
+                          "to the metered total (black mark) plus any negative unexplained "
+                          "part, which is drawn below zero."),
+             "<h3>Energy per month</h3>",
+             _month_table(names, periods, kwh, ch.colours, "kWh", 0)]
+    if _has_cost(table):
+        cur = _currency(result)
+        cost = {(r["period"], r["equipment"]): float(r["cost"]) for r in
+                table.select("period", "equipment", "cost").iter_rows(named=True)
+                if r["cost"] is not None}
+        parts += [f"<h3>Cost per month ({e(cur)}, rounded to whole units)</h3>",
+                  _month_table(names, periods, cost, ch.colours, cur, 0)]
+        months = (result.fit.get("tariff") or {}).get("months") or []
+        if months:
+            rows = [[e(str(m["period"])), _num(m.get("metered_kwh")), _num(m.get("peak_kw"), 1),
+                     _num(m.get("energy_cost"), 2), _num(m.get("demand_cost"), 2),
+                     _num(m.get("cost"), 2)] for m in months]
+            parts += ["<h3>The bill, month by month</h3>",
+                      _table([("month", False), ("metered [kWh]", True), ("peak demand [kW]", True),
+                              (f"energy cost [{e(cur)}]", True),
+                              (f"demand cost [{e(cur)}]", True), (f"cost [{e(cur)}]", True)],
+                             rows),
+                      ('<p class="muted">Peak demand: the highest interval demand of the month '
+                       "among the intervals used; each equipment's share of it is its estimated "
+                       "draw in that interval.</p>")]
+    not_own = {p: m for p, m in result.fit.get("months", {}).items() if not m.get("own_fit")}
+    if not_own:
+        parts.append("<p class=\"muted\">"
+                     + "; ".join(f"{e(p)}: {e(str(m.get('reason', '')))}"
+                                 for p, m in not_own.items()) + ".</p>")
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
+                   note: str | None, shown: set[str]) -> str:
+    """The drift page; `shown`: notes already on the fit page, not repeated here."""
+    head = '<section class="page" id="drift"><h2>3. Drift over time</h2>'
+    if drift is None:
+        return (head + "<p>" + e(note or "No drift tracking was run for this report.")
+                + "</p></section>")
+    s = drift.summary
+    t = drift.table
+    parts = [head,
+             ("<p>Each equipment's draw is tracked day by day (normalized LMS, step size "
+              f"{s.get('step_size_mu', float('nan')):.3g}) from its draw in the reference "
+              f"period {e(str(s.get('reference', {}).get('from', '')))} to "
+              f"{e(str(s.get('reference', {}).get('to', '')))}. "
+              f"Rule: {e(str(s.get('rule', '')))}; threshold "
+              f"{_num(100 * float(s.get('threshold', float('nan'))), 0)} %.</p>")]
+    alarms = s.get("alarms", [])
+    if alarms:
+        parts.append(_list([f'<span class="alarm">Alarm: {e(a["equipment"])}</span> from '
+                            f"{e(a['first_alarm_date'])}: draw "
+                            f"{_num(100 * a['change'], 1)} % ({_num(100 * a['change_low'], 1)} "
+                            f"to {_num(100 * a['change_high'], 1)} %) against its reference, as "
+                            f"of {e(a['as_of'])}" for a in alarms]))
+    else:
+        parts.append("<p>No alarm: no tracked draw moved beyond both its band and the "
+                     "threshold.</p>")
+    for k in range(0, len(names), DRIFT_PANELS_PER_CHART):
+        chunk = names[k:k + DRIFT_PANELS_PER_CHART]
+        svg = _drift_chart(ch, t, chunk, s, k // DRIFT_PANELS_PER_CHART + 1)
+        parts.append(_figure(svg, "Tracked daily draw (line), its band (shaded), the reference "
+                                  "draw (dashed), the reference period (grey) and alarm days "
+                                  "(red dots)."))
+    memory = s.get("memory_days_per_equipment", {})
+    band = s.get("band_sd_kw", {})
+    first_alarm = {a["equipment"]: a["first_alarm_date"] for a in alarms}
+    rows = []
+    for n in names:
+        last = t.filter(pl.col("equipment") == n).sort("date").row(-1, named=True)
+        change = last["change"]
+        rows.append([_eq(n, ch.colour(n)),
+                     _num(last["kw_reference"], 2),
+                     _num(last["kw_tracked"], 2), "-" if change is None else
+                     _num(100 * change, 1), _num(band.get(n), 2), _num(memory.get(n), 0),
+                     f'<span class="alarm eq">from {e(first_alarm[n])}</span>'
+                     if n in first_alarm else "none"])
+    parts.append(_table([("equipment", False), ("reference draw [kW]", True),
+                         ("latest tracked [kW]", True), ("change [%]", True),
+                         ("band sd [kW]", True), ("memory [d]", True), ("alarm", False)], rows))
+    notes = [n for n in s.get("notes", []) if n not in shown]
+    if notes:
+        parts.append("<h3>Notes</h3>" + _list([e(str(n)) for n in notes]))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
+    fit = result.fit
+    when, y, f, unit = _fit_series(result)
+    svg1, svg2 = _fit_charts(ch, when, y, f, unit)
+    q = fit.get("fit_quality", {})
+    g14 = q.get("ashrae_guideline_14", {})
+    hc = g14.get("hourly_criteria", {"cv_rmse_pct": 30.0, "nmbe_pct": 10.0})
+    mc = g14.get("monthly_criteria", {"cv_rmse_pct": 15.0, "nmbe_pct": 5.0})
+
+    def verdict(ok: bool | None) -> str:
+        if ok is None:
+            return "-"
+        return '<span class="meets">meets</span>' if ok else '<span class="fails">does not meet</span>'
+
+    rows = []
+    iq = q.get("interval")
+    if iq:
+        rows.append(["meter interval", _num(iq.get("n")), _num(iq.get("cv_rmse_pct"), 2), "-",
+                     _num(iq.get("nmbe_pct"), 2), "-", "no criterion"])
+    hq = q.get("hourly")
+    if hq:
+        ok = (hq["cv_rmse_pct"] <= hc["cv_rmse_pct"] and abs(hq["nmbe_pct"]) <= hc["nmbe_pct"])
+        rows.append(["hourly", _num(hq.get("n")), _num(hq.get("cv_rmse_pct"), 2),
+                     _num(hc["cv_rmse_pct"], 0), _num(hq.get("nmbe_pct"), 2),
+                     _num(hc["nmbe_pct"], 0), verdict(ok)])
+    mq = q.get("monthly")
+    if mq:
+        nmbe = mq.get("nmbe_pct")
+        ok = None if nmbe is None or not math.isfinite(nmbe) else abs(nmbe) <= mc["nmbe_pct"]
+        rows.append(["monthly", _num(mq.get("months")), "-", _num(mc["cv_rmse_pct"], 0),
+                     _num(nmbe, 2), _num(mc["nmbe_pct"], 0), verdict(ok) + " (NMBE)"])
+    quality = _table([("level", False), ("points [count]", True), ("CV(RMSE) [%]", True),
+                      ("limit [%]", True), ("NMBE [%]", True), ("limit [%]", True),
+                      ("ASHRAE Guideline 14 criteria", False)], rows)
+    c = fit.get("intervals", {})
+    words = [("intervals", "meter intervals in the range"),
+             ("used", "used by the fit"),
+             ("absent", "absent from the meter file (left out, not filled)"),
+             ("no_reading", "without a meter reading (left out)"),
+             ("spikes", "of these, readings set aside as spikes"),
+             ("log_unknown", "run-log state unknown for some equipment (left out)"),
+             ("weather_unknown", "no outdoor temperature near them (left out)")]
+    count_rows = [[e(w), _num(c.get(k))] for k, w in words if k in c]
+    unknown = {k: v for k, v in fit.get("unknown_intervals_by_equipment", {}).items() if v}
+    findings = fit.get("meter_validation", [])
+    warnings = fit.get("warnings", [])
+    finding_messages = {str(fd.get("message", "")) for fd in findings}
+    other_warnings = [w for w in warnings if str(w) not in finding_messages]
+    parts = ['<section class="page" id="fit"><h2>4. How good the fit is</h2>',
+             _figure(svg1, f"Metered and fitted energy per local {unit} (sums of the intervals "
+                           "used)."),
+             _figure(svg2, f"Metered minus fitted energy per local {unit}."),
+             "<h3>Fit quality against ASHRAE Guideline 14</h3>", quality,
+             ('<p class="muted">CV(RMSE) and NMBE as in ASHRAE Guideline 14-2014 (Annex B), '
+              "with n - p in the denominator (p = fitted parameters). The guideline's "
+              f"calibration criteria: hourly data CV(RMSE) within {_num(hc['cv_rmse_pct'], 0)} % "
+              f"and NMBE within {_num(hc['nmbe_pct'], 0)} %; monthly data "
+              f"{_num(mc['cv_rmse_pct'], 0)} % and {_num(mc['nmbe_pct'], 0)} %. The monthly "
+              "CV(RMSE) is not computed: a year has fewer months than the fit has parameters. "
+              "Meeting the criteria says the model follows the meter; it does not prove each "
+              "equipment's split.</p>"),
+             "<h3>What was left out and why</h3>",
+             _table([("meter intervals", False), ("count [intervals]", True)], count_rows)]
+    if unknown:
+        parts.append("<p>Intervals with an unknown run-log state, per equipment: "
+                     + e(", ".join(f"{k} {v:,}" for k, v in unknown.items())) + ".</p>")
+    if findings:
+        parts.append("<h3>Meter validation findings</h3>"
+                     + _list([e(str(fd.get("message", ""))) for fd in findings]))
+    else:
+        parts.append("<p>The meter validation (gaps, duplicates, spikes, zero runs, interval "
+                     "changes, daylight-saving hours, register rollovers) raised no finding; "
+                     "intervals left out for other reasons are counted above.</p>")
+    if other_warnings:
+        parts.append("<h3>Notes from the fit</h3>" + _list([e(str(w)) for w in other_warnings]))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _names(items: list[str]) -> str:
+    """'A', 'A and B', 'A, B and C', each in bold and escaped."""
+    b = [f'<b class="{"eq" if len(i) <= CHART_LABEL_CHARS else "long"}">{e(i)}</b>'
+         for i in items]
+    return b[0] if len(b) == 1 else ", ".join(b[:-1]) + " and " + b[-1]
+
+
+def _weight(w: float | None) -> str:
+    if w is None or not math.isfinite(w):
+        return "-"
+    return "under 0.1" if w < 0.001 else _num(100 * w, 1)
+
+
+def _priors_section(result: BreakdownResult) -> str:
+    fit = result.fit
+    ident = fit.get("identifiability", {})
+    bound = ident.get("correlation_bound", 0.95)
+    pd_weight = ident.get("prior_driven_weight", 0.5)
+    draws = fit.get("draws", [])
+    sentences: list[str] = []
+    groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
+                                    "meter": []}
+    for d in draws:
+        n = d["equipment"]
+        flags = d.get("flags", [])
+        src = str(d.get("prior_source") or "none")
+        w = d.get("prior_weight")
+        prior = (f"{_num(d['prior_kw'], 1)} ± {_num(d.get('prior_sd_kw'), 1)} kW"
+                 if d.get("prior_kw") is not None else None)
+        decided_by_prior = False
+        if "combined" in flags:
+            sentences.append(
+                f"{_names(d.get('members', []))} ran together whenever they ran (their "
+                f"run-hours correlate at {bound:g} or more) and no size or draw was given that "
+                "could split them: the meter cannot tell their energy apart, so it is "
+                f"reported as one row, <b>{e(n)}</b>.")
+        others = [f.split(":", 1)[1] for f in flags if f.startswith("inseparable:")]
+        if others:
+            who = " and ".join("the baseload schedule" if o == "baseload" else o for o in others)
+            sentences.append(
+                f"<b>{e(n)}</b> cannot be told apart from {e(who)} by the data. Its share "
+                f"is decided by its prior ({e(src)}"
+                + (f": {e(prior)}" if prior else "") + "), not by the meter.")
+            decided_by_prior = True
+        if "prior-driven" in flags:
+            sentences.append(
+                f"<b>{e(n)}</b>: {_weight(w)} % of the estimate's precision comes from its "
+                f"prior ({e(src)}), at least the {_num(100 * pd_weight, 0)} % that makes it "
+                "prior-driven: the prior, more than the meter, decided this draw.")
+            decided_by_prior = True
+        if d.get("weather"):
+            wd = d["weather"]
+            sentences.append(
+                f"<b>{e(n)}</b> draws more the "
+                f"{'hotter' if wd.get('mode') == 'cooling' else 'colder'} it is beyond "
+                f"{_num(wd.get('balance_temp_c'), 1)} °C outdoors; its draw is stated at "
+                f"{_num(wd.get('reference_temp_c'), 1)} °C.")
+        if "not-run" in flags:
+            groups["not-run"].append(n)
+            continue
+        for f in ("unstable", "variable"):
+            if f in flags:
+                groups[f].append(n)
+        if not decided_by_prior and w is not None and w < 0.05:
+            groups["meter"].append(n)
+    if groups["not-run"]:
+        sentences.append(f"{_names(groups['not-run'])} did not run in this range: no energy.")
+    if groups["variable"]:
+        one = len(groups["variable"]) == 1
+        sentences.append(f"{_names(groups['variable'])} "
+                         + ("runs at variable speed: its run-hours are equivalent full-load "
+                            "hours and its draw is the full-speed draw." if one else
+                            "run at variable speed: their run-hours are equivalent full-load "
+                            "hours and their draws are full-speed draws."))
+    if groups["unstable"]:
+        one = len(groups["unstable"]) == 1
+        sentences.append(f"The estimate{'' if one else 's'} of {_names(groups['unstable'])} "
+                         "moved with the time period or with the baseload schedule assumed, so "
+                         f"{'its interval was' if one else 'their intervals were'} widened to "
+                         "cover those results (the notes on the fit page say by how much).")
+    folded = ident.get("folded_into_baseload", [])
+    if folded:
+        base = fit.get("baseload", {}).get("row", "baseload")
+        sentences.append(f"{_names(folded)} ran on the same schedule as the baseload and have "
+                         f"no prior: their energy is reported in the row <b>{e(base)}</b>.")
+    if groups["meter"]:
+        sentences.append(f"The meter data, not the priors, decided the draws of "
+                         f"{_names(groups['meter'])}: their priors carry under 5 % of each "
+                         "estimate's precision.")
+    month_rows = result.breakdown.filter(pl.col("flags").str.contains("range-draw"))
+    if month_rows.height:
+        months = sorted(set(month_rows["period"].to_list()))
+        sentences.append(f"In {e(', '.join(months))} there were too few days of data for a "
+                         "fit of that month's own: those months use the whole range's draws.")
+    rows = []
+    for d in draws:
+        prior = (f"{_num(d['prior_kw'], 1)} ± {_num(d.get('prior_sd_kw'), 1)}"
+                 if d.get("prior_kw") is not None else "-")
+        rng = (f"{_num(d.get('kw_low'), 1)}–{_num(d.get('kw_high'), 1)}"
+               if d.get("kw_low") is not None else "-")
+        rows.append([_eq(d["equipment"]), prior,
+                     _num(d.get("kw"), 1), rng, _weight(d.get("prior_weight")),
+                     e(str(d.get("prior_source") or "none")), _flag_text(d.get("flags", []))])
+    tab = _table([("equipment", False), ("prior [kW]", True), ("fitted [kW]", True),
+                  ("interval [kW]", True), ("prior weight [%]", True), ("prior from", False),
+                  ("notes", False)], rows)
+    return ('<section class="page" id="priors"><h2>5. What cannot be told apart, and what the '
+            "priors decided</h2>"
+            "<p>A prior is the draw the engineer expected, from a nameplate or a given draw. "
+            "The fit leans toward it only as far as the meter leaves room; the prior weight "
+            "says how much of each estimate's precision came from it (0 %: all from the "
+            "meter).</p>"
+            + _list(sentences) + tab + "</section>")
+
+
+def _caution_section(result: BreakdownResult) -> str:
+    extra = ("Intervals are at "
+             f"{100 * result.estimates.confidence:g} % confidence: the true value can lie "
+             "outside them.")
+    return ('<section class="page" id="cautions"><h2>6. Cautions</h2>'
+            f'<div class="caution"><p>{e(CAUTION)}</p><p>{e(LOCKOUT)}</p></div>'
+            f"<p>{e(extra)} Drift alarms point to where to look first; they are not a "
+            "diagnosis.</p></section>")

@@ -1,0 +1,295 @@
+"""The history store (disagg.history) and `disagg history`.
+
+All data invented: tests/synthetic.py buildings written to disk by
+test_portfolio.write_site_files; H-1's draw rises 50 % (18 -> 27 kW) on 2025-04-01.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+
+import polars as pl
+import pytest
+from polars.testing import assert_frame_equal
+from test_portfolio import write_site_files
+from typer.testing import CliRunner
+
+from disagg import history
+from disagg.cli import app
+from disagg.config import load_site
+from disagg.errors import ConfigError
+from disagg.pipeline import breakdown_site
+
+runner = CliRunner()
+STEP_ON = dt.date(2025, 4, 1)
+TRUE_H1_KW = (18.0, 27.0)  # synthetic.make_building: H-1 draws 18 kW, x 1.5 from STEP_ON
+
+
+def _site(tmp_path: Path, stem: str = "plant", seed: int = 31) -> Path:
+    return write_site_files(tmp_path, stem, seed, step=("H-1", 1.5), step_on=STEP_ON,
+                            history="hist")
+
+
+def _breakdown(toml: Path, out: Path, *extra: str) -> None:
+    r = runner.invoke(app, ["breakdown", str(toml), "--out", str(out), "--quiet", *extra])
+    assert r.exit_code == 0, r.output
+
+
+def _stored_part(frame: pl.DataFrame) -> pl.DataFrame:
+    """The breakdown.csv columns of stored rows, in breakdown.csv's order."""
+    return frame.select("period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh",
+                        "kwh_low", "kwh_high", "share", "flags")
+
+
+def _csv_part(path: Path) -> pl.DataFrame:
+    t = pl.read_csv(path, schema_overrides={"flags": pl.String})
+    return _stored_part(t.with_columns(pl.col("flags").fill_null("")))
+
+
+# ---------------------------------------------------------------------------------------
+# Storing and replacing
+
+
+def test_running_the_same_months_twice_leaves_one_copy(tmp_path):
+    toml = _site(tmp_path)
+    _breakdown(toml, tmp_path / "out1")
+    first = history.read_history(tmp_path / "hist")
+    _breakdown(toml, tmp_path / "out2")
+    second = history.read_history(tmp_path / "hist")
+    assert second.height == first.height == pl.read_csv(tmp_path / "out2" / "breakdown.csv").height
+    assert second.select("period", "equipment").is_duplicated().sum() == 0
+    assert_frame_equal(_stored_part(second).with_columns(pl.col("flags").fill_null("")),
+                       _csv_part(tmp_path / "out2" / "breakdown.csv"), rel_tol=1e-6,
+                       abs_tol=1e-5)  # breakdown.csv has 6 decimals
+    assert (second["run_utc"] >= first["run_utc"]).all()
+    assert second["site"].unique().to_list() == ["plant"]
+    assert second["site_name"].unique().to_list() == ["Synthetic plant"]
+    assert second["tool_version"].unique().to_list() == [__import__("disagg").__version__]
+    parts = sorted(p.relative_to(tmp_path / "hist").as_posix()
+                   for p in (tmp_path / "hist").rglob("*.parquet"))
+    assert parts == ["kind=breakdown/site=plant/period=2025-03/part.parquet",
+                     "kind=breakdown/site=plant/period=2025-04/part.parquet"]
+
+
+def test_rerunning_one_month_replaces_that_month_only(tmp_path):
+    toml = _site(tmp_path)
+    _breakdown(toml, tmp_path / "all")
+    before = history.read_history(tmp_path / "hist")
+    _breakdown(toml, tmp_path / "april", "--from", "2025-04-01", "--confidence", "0.9")
+    after = history.read_history(tmp_path / "hist")
+    march = pl.col("period") == "2025-03"
+    assert_frame_equal(before.filter(march), after.filter(march), check_exact=True)
+    april = after.filter(~march)
+    assert_frame_equal(_stored_part(april).with_columns(pl.col("flags").fill_null("")),
+                       _csv_part(tmp_path / "april" / "breakdown.csv"), rel_tol=1e-6,
+                       abs_tol=1e-5)
+    # The new April really differs (90 % intervals are narrower than 95 %).
+    old_april = before.filter(~march)
+    assert (april["kw_high"] - april["kw_low"] < old_april["kw_high"] - old_april["kw_low"]).any()
+
+
+def test_a_run_interrupted_while_writing_leaves_the_history_unchanged(tmp_path, monkeypatch):
+    toml = _site(tmp_path)
+    folder = tmp_path / "hist"
+    history.store_breakdown(folder, breakdown_site(toml))
+    before = history.read_history(folder)
+    newer = breakdown_site(toml, confidence=0.8)
+
+    real_write = history._write_part
+    written = []
+
+    def crash_after_first(frame, path):
+        if written:
+            raise RuntimeError("simulated crash")
+        real_write(frame, path)
+        written.append(path)
+
+    monkeypatch.setattr(history, "_write_part", crash_after_first)
+    with pytest.raises(RuntimeError, match="simulated crash"):
+        history.store_breakdown(folder, newer)
+    assert len(written) == 1
+    # A process killed outright leaves its temporary folder behind: reading ignores it.
+    stale = folder / ".disagg-tmp-killed"
+    stale.mkdir()
+    (stale / "0.parquet").write_bytes(b"PAR1 half a file")
+    after = history.read_history(folder)
+    assert_frame_equal(before, after, check_exact=True)
+    assert [p.name for p in folder.iterdir() if p.name.startswith(".disagg-tmp-")] == [
+        ".disagg-tmp-killed"]
+    # Without the crash the same store does change the history: the check above can fail.
+    monkeypatch.setattr(history, "_write_part", real_write)
+    history.store_breakdown(folder, newer)
+    changed = history.read_history(folder)
+    assert changed.height == before.height
+    assert not changed["kw_low"].equals(before["kw_low"])
+
+
+def test_drift_runs_store_each_day_once_and_a_continued_run_adds_days(tmp_path):
+    toml = _site(tmp_path)
+    state = tmp_path / "state.json"
+    for out in ("d1", "d2"):
+        r = runner.invoke(app, ["drift", str(toml), "--out", str(tmp_path / out), "--to",
+                                "2025-03-31", "--state", str(tmp_path / f"{out}.json")])
+        assert r.exit_code == 0, r.output
+    march = history.read_history(tmp_path / "hist", kind="drift")
+    drift_csv = pl.read_csv(tmp_path / "d2" / "drift.csv", try_parse_dates=True)
+    assert march.height == drift_csv.height
+    assert march.select("date", "equipment").is_duplicated().sum() == 0
+    assert march["period"].unique().to_list() == ["2025-03"]
+    # Continue from the saved state: April's days are added, March's kept.
+    (tmp_path / "d2.json").rename(state)
+    r = runner.invoke(app, ["drift", str(toml), "--out", str(tmp_path / "d3"), "--state",
+                            str(state)])
+    assert r.exit_code == 0, r.output
+    both = history.read_history(tmp_path / "hist", kind="drift")
+    april_csv = pl.read_csv(tmp_path / "d3" / "drift.csv", try_parse_dates=True)
+    assert both.height == march.height + april_csv.height
+    assert both.select("date", "equipment").is_duplicated().sum() == 0
+    assert_frame_equal(both.filter(pl.col("period") == "2025-03"), march, check_exact=True)
+    stored_april = both.filter(pl.col("period") == "2025-04")
+    assert stored_april["kw_tracked"].to_list() == pytest.approx(
+        april_csv.filter(pl.col("date") >= STEP_ON)["kw_tracked"].to_list(), rel=1e-6)
+
+
+# ---------------------------------------------------------------------------------------
+# `disagg history`
+
+
+@pytest.fixture(scope="module")
+def stored(tmp_path_factory):
+    root = tmp_path_factory.mktemp("history")
+    toml = _site(root)
+    _breakdown(toml, root / "out")
+    return root, toml
+
+
+def test_history_prints_each_equipment_month_by_month(stored):
+    root, toml = stored
+    r = runner.invoke(app, ["history", str(toml)])
+    assert r.exit_code == 0, r.output
+    lines = r.stdout.splitlines()
+    assert lines[0] == (f"Synthetic plant (history id plant): 2 stored months, 2025-03 to "
+                        f"2025-04, in {root / 'hist'}")
+    bd = pl.read_csv(root / "out" / "breakdown.csv")
+    h1 = bd.filter(pl.col("equipment") == "H-1")
+    at = lines.index("H-1")
+    assert lines[at + 1].split()[:2] == ["period", "kWh"]
+    for k, row in enumerate(h1.iter_rows(named=True)):
+        fields = lines[at + 2 + k].split()
+        assert fields[0] == row["period"]
+        assert fields[1] == f"{row['kwh']:,.0f}"
+        assert fields[2] == f"{row['kwh_low']:,.0f}-{row['kwh_high']:,.0f}"
+        assert fields[3] == f"{row['kw']:,.1f}"
+    assert lines[-1].startswith("Caution: Estimates are not measurements.")
+
+
+def test_history_of_one_equipment_to_csv(stored, tmp_path):
+    root, toml = stored
+    out = tmp_path / "h1.csv"
+    r = runner.invoke(app, ["history", str(toml), "--equipment", "H-1", "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    assert r.stdout == f"Wrote {out}\n"
+    written = pl.read_csv(out, try_parse_dates=True)
+    assert written["equipment"].unique().to_list() == ["H-1"]
+    assert written["period"].to_list() == ["2025-03", "2025-04"]
+    bd = pl.read_csv(root / "out" / "breakdown.csv").filter(pl.col("equipment") == "H-1")
+    assert written["kwh"].to_list() == pytest.approx(bd["kwh"].to_list(), rel=1e-6)
+    assert written["kw"].to_list() == pytest.approx(bd["kw"].to_list(), rel=1e-6)
+
+
+def test_history_errors_are_one_line(stored, tmp_path):
+    root, toml = stored
+    r = runner.invoke(app, ["history", str(toml), "--equipment", "XX-9"])
+    assert r.exit_code == 1
+    known = history.read_history(root / "hist")["equipment"].unique(maintain_order=True)
+    assert r.stderr.splitlines() == [(f"Error: --equipment 'XX-9': no stored rows of it; "
+                                     f"stored: {', '.join(known)}")]
+    bare = tmp_path / "bare.toml"
+    bare.write_text(toml.read_text().replace('[history]\nfolder = "hist"\n', ""))
+    r = runner.invoke(app, ["history", str(bare)])
+    assert r.exit_code == 1
+    assert r.stderr.splitlines() == [(f"Error: {bare}: no [history] folder; add [history] "
+                                     "folder = \"history\" to the site file or give --folder")]
+    r = runner.invoke(app, ["history", str(bare), "--folder", str(root / "hist")])
+    assert r.exit_code == 1
+    assert r.stderr.splitlines() == [(f"Error: {root / 'hist'}: no stored breakdown of site "
+                                     "'bare'; run disagg breakdown or batch with this history "
+                                     "folder set")]
+
+
+# ---------------------------------------------------------------------------------------
+# Comparing stored months
+
+
+def test_compare_from_history_finds_the_step_and_agrees_with_a_refit(stored, tmp_path):
+    root, toml = stored
+    result = history.compare_from_history(root / "hist", "plant", ("2025-03", "2025-03"),
+                                          ("2025-04", "2025-04"))
+    rows = {r["equipment"]: r for r in result.table.iter_rows(named=True)}
+    h1 = rows["H-1"]
+    assert h1["verdict"] == "rising"
+    # Two weeks of data per month fit each draw to about 2 %, so the ratio to about 4 %.
+    assert h1["change"] == pytest.approx(TRUE_H1_KW[1] / TRUE_H1_KW[0] - 1, abs=0.05)
+    assert rows["CH-1"]["verdict"] == "unclear"  # steady truth: no false change
+    assert rows["CH-1"]["change"] == pytest.approx(0.0, abs=0.04)
+    # Each period here is one whole stored month, fitted on its own: the exact method (a
+    # refit of each period's data) gives the same draws.
+    r = runner.invoke(app, ["compare", str(toml), "--before", "2025-03-17:2025-03-31",
+                            "--after", "2025-04-01:2025-04-13", "--out", str(tmp_path / "c")])
+    assert r.exit_code == 0, r.output
+    exact = {e["equipment"]: e for e in pl.read_csv(tmp_path / "c" / "compare.csv")
+             .iter_rows(named=True)}
+    for eq, row in rows.items():
+        assert row["kw_before"] == pytest.approx(exact[eq]["kw_before"], rel=1e-6), eq
+        assert row["kw_after"] == pytest.approx(exact[eq]["kw_after"], rel=1e-6), eq
+    assert exact["H-1"]["verdict"] == "rising"
+
+
+def test_history_command_compares_stored_months(stored):
+    _, toml = stored
+    r = runner.invoke(app, ["history", str(toml), "--before", "2025-03", "--after",
+                            "2025-04:2025-04"])
+    assert r.exit_code == 0, r.output
+    lines = r.stdout.splitlines()
+    assert lines[0] == ("Draws from stored months: before 2025-03 to 2025-03 (1 stored), "
+                        "after 2025-04 to 2025-04 (1 stored)")
+    h1 = next(line for line in lines if line.startswith("H-1 "))
+    assert h1.split()[-1] == "rising"
+    assert any(line.startswith("Method: from stored monthly draws, no refit") for line in lines)
+    r = runner.invoke(app, ["history", str(toml), "--before", "2025-3"])
+    assert r.stderr.splitlines() == [("Error: --before and --after: give both to compare stored "
+                                     "months")]
+    r = runner.invoke(app, ["history", str(toml), "--before", "2025-3", "--after", "2025-04"])
+    assert r.stderr.splitlines() == [("Error: --before '2025-3': expected months FROM:TO such as "
+                                     "2025-01:2025-03, or one month such as 2025-06")]
+    r = runner.invoke(app, ["history", str(toml), "--before", "2024-01", "--after", "2025-04"])
+    assert r.exit_code == 1
+    assert "no stored breakdown of site 'plant' from 2024-01 to 2024-01" in r.stderr
+
+
+# ---------------------------------------------------------------------------------------
+# Settings and ids
+
+
+def test_history_table_in_the_site_file(tmp_path):
+    toml = _site(tmp_path)
+    assert load_site(toml).history == (tmp_path / "hist").resolve()
+    toml.write_text(toml.read_text().replace('folder = "hist"', 'folder = "hist"\nkeep = 3'))
+    with pytest.raises(ConfigError) as err:
+        load_site(toml)
+    assert str(err.value) == f"{toml}: [history] keep: unknown setting; expected one of folder"
+
+
+@pytest.mark.parametrize("name, expected", [
+    ("Main Library.toml", "Main_Library"), ("north-wing.v2.toml", "north-wing.v2"),
+    ("Ünïcode bâtiment.toml", "_n_code_b_timent"), ("..toml", "site"),
+])
+def test_site_ids_are_filesystem_safe(name, expected):
+    assert history.site_id(Path("/x") / name) == expected
+
+
+def test_reading_an_empty_store_gives_no_rows_with_the_columns(tmp_path):
+    frame = history.read_history(tmp_path / "nothing", kind="drift")
+    assert frame.is_empty()
+    assert frame.columns == ["site", "period", *history.DRIFT_SCHEMA]
