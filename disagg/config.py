@@ -545,12 +545,7 @@ def load_site(path: str | Path) -> SiteConfig:
                 raise ConfigError(f"{b.where('occupied')}[{i}] = {s!r}: {exc}") from None
             spell_text.append(s)
     closed: list[dt.date] = []
-    for i, d in enumerate(b.get("closed", list, required=False, default=[])):
-        try:
-            closed.append(d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)))
-        except ValueError:
-            raise ConfigError(f"{b.where('closed')}[{i}] = {d!r}: expected a date such as "
-                              "2025-12-25") from None
+    closed.extend(_dates(b, "closed"))
     baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text), tuple(closed))
 
     weather = None
@@ -580,21 +575,31 @@ def load_site(path: str | Path) -> SiteConfig:
                       tariff, history)
 
 
+# No energy or demand price comes near this [currency per kWh or per kW]; a larger one is a
+# typing error, and would overflow the cost sums (common practice, no source).
+MAX_PRICE = 1e6
+
+
 def _price(t: _Table, key: str, required: bool) -> float | None:
     value = t.get(key, float, required=required)
-    if value is not None and (not math.isfinite(value) or value < 0):
-        raise ConfigError(f"{t.where(key)} = {value!r}: expected a price of 0 or more")
+    if value is not None and (not math.isfinite(value) or value < 0 or value > MAX_PRICE):
+        raise ConfigError(f"{t.where(key)} = {value!r}: expected a price of 0 or more, at "
+                          f"most {MAX_PRICE:g}")
     return value
 
 
 def _dates(t: _Table, key: str) -> tuple[dt.date, ...]:
+    """A list of local dates (TOML dates or "YYYY-MM-DD" text); a date-time is refused,
+    because it would never equal a calendar day and so be ignored."""
     out = []
     for i, d in enumerate(t.get(key, list, required=False, default=[])):
         try:
-            out.append(d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)))
+            if isinstance(d, dt.datetime | dt.time) or not isinstance(d, dt.date | str):
+                raise ValueError
+            out.append(d if isinstance(d, dt.date) else dt.date.fromisoformat(d))
         except ValueError:
             raise ConfigError(f"{t.where(key)}[{i}] = {d!r}: expected a date such as "
-                              "2025-07-04") from None
+                              "2025-07-04, without a time of day") from None
     return tuple(out)
 
 

@@ -7,6 +7,7 @@ An output never replaces an input file.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import os
@@ -37,7 +38,12 @@ def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
 
 def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
                      inputs: list[Path]) -> list[Path]:
-    """Write several files into out_dir all at once.
+    """Write several files into out_dir all at once: all of them, or none.
+
+    Every file is first written into a hidden temporary folder inside out_dir. Then each
+    file already in out_dir under one of the names is moved aside into that folder, and the
+    new file moved into place; if any move fails, the new files are taken out again and the
+    old ones put back, so out_dir holds either the whole previous run or the whole new one.
 
     Args:
         out_dir: destination folder (created if missing).
@@ -48,7 +54,8 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         The paths written.
 
     Raises:
-        OutputError: the folder cannot be created or written, or a name would replace an input.
+        OutputError: the folder cannot be created or written, a name is taken by a folder,
+            or a name would replace an input.
     """
     out_dir = Path(out_dir).resolve()
     targets = [out_dir / name for name in files]
@@ -56,18 +63,40 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
     for t in targets:
         if t.resolve() in resolved_inputs:
             raise OutputError(f"{t}: writing here would replace an input file; choose another --out")
+        if t.is_dir():
+            raise OutputError(f"{t}: is a folder, so the file {t.name} cannot be written there; "
+                              "move the folder or choose another --out")
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=out_dir))
     except OSError as exc:
         raise OutputError(f"{out_dir}: cannot create the output folder ({exc.strerror})") from None
     try:
+        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=out_dir))
+    except OSError as exc:
+        raise OutputError(f"{out_dir}: cannot write in the output folder ({exc.strerror})") from None
+    old = tmp / ".previous"
+    moved: list[str] = []  # names whose previous file is in `old`
+    placed: list[str] = []  # names whose new file is in out_dir
+    try:
         for name, write in files.items():
             write(tmp / name)
+        old.mkdir()
         for name in files:
+            if (out_dir / name).exists():
+                os.replace(out_dir / name, old / name)
+                moved.append(name)
             os.replace(tmp / name, out_dir / name)
+            placed.append(name)
     except OSError as exc:
-        raise OutputError(f"{out_dir}: cannot write the outputs ({exc.strerror})") from None
+        for name in placed:
+            with contextlib.suppress(OSError):
+                (out_dir / name).unlink()
+        for name in moved:
+            with contextlib.suppress(OSError):
+                os.replace(old / name, out_dir / name)
+        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+        raise OutputError(f"{out_dir}: cannot write the outputs ({exc.strerror}){where}; "
+                          "the previous files are left as they were") from None
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     return targets
@@ -262,17 +291,22 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
     totals = (t.group_by("equipment", maintain_order=True)
               .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(), pl.col("kwh_low").sum(),
                    pl.col("kwh_high").sum(), pl.col("kwh_low").null_count().alias("no_range"),
-                   pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")))
+                   pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost"),
+                   pl.col("flags")))
+    metered = float(result.estimates.y.sum())
     rows = [{"equipment": r["equipment"], "run_hours": r["run_hours"], "kwh": r["kwh"],
              "kwh_low": None if r["no_range"] else r["kwh_low"],
              "kwh_high": None if r["no_range"] else r["kwh_high"],
-             "cost": None if r["no_cost"] else r["cost"]} for r in totals.iter_rows(named=True)]
+             "share": r["kwh"] / metered if metered else None,
+             "cost": None if r["no_cost"] else r["cost"],
+             "flags": sorted({f for cell in r["flags"] for f in (cell or "").split(";") if f})}
+            for r in totals.iter_rows(named=True)]
     tariff = result.fit.get("tariff")
     periods = t["period"].unique().sort().to_list()
     return to_json({
         "site": result.site.name, "first_period": periods[0], "last_period": periods[-1],
         "intervals_used": result.aligned.counts["used"],
-        "metered_kwh": float(result.estimates.y.sum()),
+        "metered_kwh": metered,
         "currency": tariff["currency"] if tariff else None,
         "cost": sum(m["cost"] for m in tariff["months"]) if tariff else None,
         "equipment": rows, "fit_quality": result.fit["fit_quality"],

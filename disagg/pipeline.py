@@ -266,6 +266,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
     day = local.dt.date().to_numpy()
     periods = sorted(set(month[aligned.use]))
     if len(periods) <= 1:
+        report(progress, "fitting", 1, 1)
         return whole_table, {}
     combined = {t.id: t.members for t in whole.terms if len(t.members) > 1}
     tables, months = [], {}
@@ -291,6 +292,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         tables.append(_same_names(monthly_breakdown(est, tz, site.tariff), combined))
         months[period] = {"own_fit": True, "draws": draw_list(est), "baseload_row": est.base_id,
                           "fit_quality": est.quality, "warnings": est.warnings}
+    report(progress, "fitting", len(periods) + 1, len(periods) + 1)
     return pl.concat(tables), months
 
 

@@ -80,6 +80,8 @@ def test_json_summary_is_valid_and_complete(run):
     assert {r["equipment"] for r in data["equipment"]} == {FORMULA_NAME, "F-1", "baseload",
                                                             "unexplained"}
     assert data["caution"] == CAUTION
+    shares = {r["equipment"]: r["share"] for r in data["equipment"]}
+    assert shares["F-1"] == pytest.approx(672.0 / 15712.0, abs=1e-9)  # test_tariff's hand sums
     assert sorted(data["files"]) == sorted(str(p) for p in out.iterdir())
 
 
@@ -114,3 +116,5 @@ def test_breakdown_reports_progress_steps(tmp_path):
     breakdown_site(_write_site(tmp_path, ""), progress=lambda s, d, t: seen.append((s, d, t)))
     assert seen[0] == ("reading", 0, 1) and ("reading", 1, 1) in seen
     assert any(s == "fitting" for s, _, _ in seen)
+    last = [x for x in seen if x[0] == "fitting"][-1]
+    assert last[1] == last[2]  # the bar ends full

@@ -183,7 +183,12 @@ def test_month_costs_split_adds_up():
 @pytest.mark.parametrize("body, message", [
     ('currency = "USD"\n', "[tariff] energy_price is missing; add it to the file"),
     ('currency = "USD"\nenergy_price = -0.1\n',
-     "[tariff] energy_price = -0.1: expected a price of 0 or more"),
+     "[tariff] energy_price = -0.1: expected a price of 0 or more, at most 1e+06"),
+    ('currency = "USD"\nenergy_price = 1e308\n',
+     "[tariff] energy_price = 1e+308: expected a price of 0 or more, at most 1e+06"),
+    ('currency = "USD"\nenergy_price = 0.1\nholidays = [2025-02-17T00:00:00]\n',
+     "[tariff] holidays[0] = datetime.datetime(2025, 2, 17, 0, 0): expected a date such as "
+     "2025-07-04, without a time of day"),
     ('currency = "USD"\nenergy_price = 0.1\nrate = 3\n',
      "[tariff] rate: unknown setting; expected one of currency, demand_price, energy_price, "
      "holidays, periods"),
