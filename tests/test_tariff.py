@@ -234,3 +234,43 @@ def test_a_peak_left_out_of_the_fit_is_named(tmp_path):
     assert any(w.startswith("2025-02: the month's highest reading, 50.0 kW from "
                             "2025-02-01T09:00:00+00:00, is in an interval left out of the fit")
                for w in result.fit["warnings"])
+
+
+def test_interval_prices_equal_a_minute_by_minute_count_across_a_clock_change():
+    # 30-minute intervals through March 2025 in New York (clocks go forward on 9 March),
+    # period edges in the middle of intervals, a holiday on 17 March, and a Sunday period
+    # spanning the skipped hour. The check counts each minute's local clock time with
+    # zoneinfo, a method independent of the exact-overlap code.
+    import tomllib
+    from zoneinfo import ZoneInfo
+
+    from disagg.config import _Table, _tariff
+    text = ('currency = "USD"\nenergy_price = 0.08\nholidays = ["2025-03-17"]\n'
+            '[[periods]]\nname = "peak"\nprice = 0.21\nspells = ["Mon-Fri 12:15-18:45"]\n'
+            '[[periods]]\nname = "night"\nprice = 0.05\nspells = ["Sun 01:30-03:15"]\n')
+    t = _tariff(_Table(Path("x.toml"), "tariff", tomllib.loads(text)))
+    ny, utc = ZoneInfo("America/New_York"), dt.timezone.utc
+    t0 = dt.datetime(2025, 3, 1, tzinfo=ny).astimezone(utc)
+    t1 = dt.datetime(2025, 4, 1, tzinfo=ny).astimezone(utc)
+    n = int((t1 - t0).total_seconds() // 1800)
+    start_ns = np.array([int((t0 + dt.timedelta(minutes=30 * j)).timestamp()) * 10**9
+                         for j in range(n)], dtype=np.int64)
+    price = interval_prices(t, "America/New_York", start_ns, start_ns + 1800 * 10**9)
+
+    def minute_price(m: dt.datetime) -> float:
+        loc = m.astimezone(ny)
+        hm = loc.hour * 60 + loc.minute
+        if loc.date() == dt.date(2025, 3, 17):
+            return 0.08
+        if loc.weekday() < 5 and 12 * 60 + 15 <= hm < 18 * 60 + 45:
+            return 0.21
+        if loc.weekday() == 6 and 90 <= hm < 195:
+            return 0.05
+        return 0.08
+
+    expected = np.array([np.mean([minute_price(t0 + dt.timedelta(minutes=30 * j + k))
+                                  for k in range(30)]) for j in range(n)])
+    np.testing.assert_allclose(price, expected, rtol=0, atol=1e-12)
+    # The skipped hour: on 9 March the night period runs 01:30-02:00 EST and 03:00-03:15
+    # EDT, 45 minutes; on other Sundays 105 minutes.
+    assert n == 31 * 48 - 2
