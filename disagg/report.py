@@ -347,10 +347,12 @@ def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: di
         if clipped:
             title += " (band wider than shown)"
         ax.set_title(title, loc="left", color=ALARM_COLOUR if name in alarms else "#222222")
-        _label(ax, "Date [local]" if k // cols == nrows - 1 or k + cols >= len(names) else None,
-               "Draw [kW]" if k % cols == 0 else None, tag=f"-{k}")
+        # Each panel has its own draw scale, so each has its own y label; the date axis is
+        # shared, so dates and their label go under the lowest panel of each column only.
+        lowest = k + cols >= len(names)
+        _label(ax, "Date [local]" if lowest else None, "Draw [kW]", tag=f"-{k}")
         _date_axis(ax)
-        ax.tick_params(labelbottom=True)
+        ax.tick_params(labelbottom=lowest)
     for k in range(len(names), nrows * cols):
         axes[k // cols][k % cols].set_visible(False)
     handles = [Line2D([], [], color="#555555", linewidth=1.4, label="tracked draw (daily)"),
@@ -592,12 +594,15 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
     """The drift result for a breakdown's own intervals, or None and the reason why not.
 
     With the default reference (the first 90 days) the data must reach MIN_TRACKED_DAYS past
-    it. A drift run that fails on these data (disagg.errors.DisaggError: too little data in
-    the reference period, a memory that needs an unstable step) is left out with its message.
+    it; a given reference period must hold enough usable intervals for a fit (else the
+    reason names the period and the dates the data cover). A drift run that fails on these
+    data (disagg.errors.DisaggError: a memory that needs an unstable step, ...) is left out
+    with its message.
 
     Raises:
         ConfigError: memory_days not above 0 (a bad option, not a property of the data).
     """
+    from disagg.align import BASELOAD_COLUMN_COUNT
     from disagg.drift import DEFAULT_REFERENCE_DAYS, drift_aligned
     from disagg.errors import ConfigError, DisaggError
 
@@ -610,6 +615,23 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
                       f"needs the {DEFAULT_REFERENCE_DAYS}-day reference period plus at least "
                       f"{MIN_TRACKED_DAYS} days after it; a shorter reference period can be "
                       "given with --reference FROM:TO.")
+    if reference is not None:
+        # Said here in the reference period's terms: drift_aligned would blame the files.
+        aligned = result.aligned
+        local_day = aligned.frame["start_utc"].dt.convert_time_zone(result.site.timezone).dt.date()
+        inside = int((aligned.use & ((local_day >= reference[0])
+                                     & (local_day <= reference[1])).to_numpy()).sum())
+        needed = (len(aligned.equipment_ids)
+                  + BASELOAD_COLUMN_COUNT[result.site.baseload.profile] + 2)
+        period = f"the reference period {reference[0]} to {reference[1]}"
+        if inside == 0:
+            return None, (f"Drift is left out: {period} has no usable intervals in the data, "
+                          f"which cover {first} to {last}; give a reference period inside "
+                          "them with --reference FROM:TO.")
+        if inside < needed:
+            return None, (f"Drift is left out: {period} has only {inside:,} usable intervals "
+                          f"in the data, which cover {first} to {last}; a fit needs at least "
+                          f"{needed:,}.")
     try:
         drift = drift_aligned(result.site, result.aligned, memory_days, None, reference,
                               threshold, result.estimates.confidence)
@@ -711,6 +733,23 @@ def _metered_total(table: pl.DataFrame) -> float:
     return float(table.filter(pl.col("equipment") != "estimated-gaps")["kwh"].sum())
 
 
+def interval_counts(c: dict) -> str:
+    """'1,466 of 1,486 meter intervals used (20 without a reading)' from the interval counts
+    of fit.json (disagg.align: intervals in the file, absent from it, used, no_reading,
+    log_unknown, weather_unknown; spikes, which are among no_reading)."""
+    used = int(c.get("used", 0))
+    in_range = int(c.get("intervals", 0)) + int(c.get("absent", 0))
+    spikes = int(c.get("spikes", 0))
+    reasons = [(int(c.get("absent", 0)) + int(c.get("no_reading", 0)) - spikes,
+                "without a reading"),
+               (spikes, "set aside as spikes"),
+               (int(c.get("log_unknown", 0)), "with a run-log state unknown"),
+               (int(c.get("weather_unknown", 0)), "without an outdoor temperature")]
+    why = ", ".join(f"{_num(n)} {words}" for n, words in reasons if n > 0)
+    text = f"{_num(used)} of {_num(in_range)} meter intervals used"
+    return text + (f" ({why})" if why else "")
+
+
 def _header(result: BreakdownResult, periods: list[str]) -> str:
     first, last = _local_span(result)
     fit = result.fit
@@ -724,8 +763,8 @@ def _header(result: BreakdownResult, periods: list[str]) -> str:
     return (f'<header class="top"><h1>{e(result.site.name)}</h1>'
             f"<p>Energy by equipment, {e(first)} to {e(last)} (local dates, "
             f"{e(result.site.timezone)}): {e(months)}.</p>"
-            f"<p>{_num(c.get('used'))} of {_num(c.get('intervals'))} meter intervals used; "
-            f"intervals at {100 * result.estimates.confidence:g} % confidence.</p>"
+            f"<p>{interval_counts(c)}; intervals at {100 * result.estimates.confidence:g} % "
+            "confidence.</p>"
             f'<nav class="toc"><ol>{toc}</ol></nav></header>')
 
 
@@ -812,17 +851,78 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
                      "gaps; not metered, so not in the total or the shares.")
     tariff = result.fit.get("tariff") or {}
     if has_peak:
-        notes.append("Peak share: the equipment's estimated draw in the interval of a month's "
-                     "highest metered demand, the largest over the months; the rows of a month "
-                     "add up to that month's peak demand.")
+        notes.append("Peak share [kW]: each row's estimated draw during the interval of a "
+                     "month's highest metered demand, which is when the demand charge is set "
+                     "(the billing peak), not the load's own maximum; the column shows the "
+                     "largest over the months. The rows of a month add up to that month's peak "
+                     "demand. " + UNEXPLAINED_PEAK)
     if has_cost and tariff.get("method"):
-        notes.append("Cost: " + e(str(tariff["method"])) + ".")
+        notes.append("Cost: " + e(str(tariff["method"])) + ". The tariff and the time of each "
+                     'month\'s peak are on the <a href="#months">month-by-month page</a>.')
     return (f'<section class="page first" id="glance"><h2>1. The range at a glance</h2>'
             f'<div class="kpis">{kpi_html}</div>'
             + _figure(svg, "Energy of each equipment over the whole range, with its interval "
                            "(whiskers); baseload in grey, unexplained in a light neutral.")
             + f'<div class="scroll">{tab}</div>'
             + "".join(f'<p class="muted">{n}</p>' for n in notes) + "</section>")
+
+
+UNEXPLAINED_PEAK = ("The unexplained row's peak share, and so its demand cost, is negative "
+                    "when the fitted loads add up to more than the meter read in that interval.")
+
+
+def _price(value: float | None) -> str:
+    """A price with at least 2 and at most 5 decimals: 0.082, 13.50."""
+    if value is None or not math.isfinite(value):
+        return "-"
+    text = f"{value:,.5f}".rstrip("0")
+    return text + "0" * max(0, 2 - len(text.split(".")[1]))
+
+
+def _local_time(utc_iso: str | None, tz) -> str:
+    """An ISO UTC time as local weekday, date, time and zone abbreviation:
+    'Tue 2025-07-15 15:30 CDT'."""
+    if not utc_iso:
+        return "-"
+    when = dt.datetime.fromisoformat(utc_iso)
+    if when.tzinfo is None:  # fit.json writes UTC times; a bare one is UTC too
+        when = when.replace(tzinfo=dt.UTC)
+    return e(when.astimezone(tz).strftime("%a %Y-%m-%d %H:%M %Z"))
+
+
+def _tariff_table(result: BreakdownResult, tariff: dict) -> str:
+    """The tariff as priced: energy prices (outside and in each time-of-use period, with its
+    spells), holidays and the demand price, with how demand is measured."""
+    cur = e(str(tariff.get("currency") or _currency(result)))
+    periods = tariff.get("periods") or []
+    holidays = tariff.get("holidays") or []
+    settings = result.site.tariff
+    demand = tariff.get("demand_price_per_kw")
+    if demand is None and settings is not None:
+        demand = settings.demand_price_per_kw
+    energy = tariff.get("energy_price_per_kwh")
+    if energy is None and settings is not None:
+        energy = settings.energy_price_per_kwh
+    rows = [["energy, outside the periods below" if periods else "energy",
+             _price(energy), "kWh", "every other hour" if periods else "every hour"]]
+    for p in periods:
+        rows.append([f"energy, {e(str(p.get('name', '')))}", _price(p.get("price_per_kwh")),
+                     "kWh", e(", ".join(str(x) for x in p.get("spells", []))) + " (local time)"
+                     + (", not on holidays" if holidays else "")])
+    if holidays:
+        rows.append(["holidays", "-", "-",
+                     ", ".join(f'<span class="eq">{e(str(h))}</span>' for h in holidays)
+                     + (": every hour at the price outside the periods" if periods else "")])
+    minutes = result.aligned.interval_min
+    rows.append(["demand", _price(demand), "kW",
+                 (f"the month's highest demand over one meter interval ({minutes:g} min), "
+                  "at any hour")])
+    table = _table([("charge", False), (f"price [{cur} per unit]", True), ("unit", False),
+                    ("applies", False)], rows)
+    return (table + '<p class="muted">The meter interval is taken as the demand interval, and '
+            "only one demand charge, on the month's highest interval demand at any hour, is "
+            "modelled: a bill with demand charges by time of day, a ratchet, a minimum charge, "
+            "taxes or fixed charges differs from these costs.</p>")
 
 
 def _month_table(names: list[str], periods: list[str], values: dict[tuple[str, str], float],
@@ -876,19 +976,28 @@ def _months(result: BreakdownResult, ch: _Charts, names: list[str], periods: lis
                 if r["cost"] is not None}
         parts += [f"<h3>Cost per month ({e(cur)}, rounded to whole units)</h3>",
                   _month_table(names, periods, cost, ch.colours, cur, 0)]
-        months = (result.fit.get("tariff") or {}).get("months") or []
+        tariff = result.fit.get("tariff") or {}
+        if tariff:
+            parts += ["<h3>The tariff</h3>", _tariff_table(result, tariff)]
+        months = tariff.get("months") or []
         if months:
-            rows = [[e(str(m["period"])), _num(m.get("metered_kwh")), _num(m.get("peak_kw"), 1),
+            tz = _zone(result.site.timezone)
+            rows = [[_eq(str(m["period"])),
+                     f'<span class="eq">{_local_time(m.get("peak_start_utc"), tz)}</span>',
+                     _num(m.get("metered_kwh")), _num(m.get("peak_kw"), 1),
                      _num(m.get("energy_cost"), 2), _num(m.get("demand_cost"), 2),
                      _num(m.get("cost"), 2)] for m in months]
             parts += ["<h3>The bill, month by month</h3>",
-                      _table([("month", False), ("metered [kWh]", True), ("peak demand [kW]", True),
+                      _table([("month", False), ("peak interval starts (local)", False),
+                              ("metered [kWh]", True), ("peak demand [kW]", True),
                               (f"energy cost [{e(cur)}]", True),
                               (f"demand cost [{e(cur)}]", True), (f"cost [{e(cur)}]", True)],
                              rows),
                       ('<p class="muted">Peak demand: the highest interval demand of the month '
-                       "among the intervals used; each equipment's share of it is its estimated "
-                       "draw in that interval.</p>")]
+                       "among the intervals used, starting at the local time shown. Each row's "
+                       "peak share [kW] is its estimated draw during that interval (coincident "
+                       "with the billing peak, not the load's own maximum), and its demand cost "
+                       f"is that share times the demand price. {UNEXPLAINED_PEAK}</p>")]
     not_own = {p: m for p, m in result.fit.get("months", {}).items() if not m.get("own_fit")}
     if not_own:
         parts.append("<p class=\"muted\">"
@@ -988,13 +1097,15 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
                       ("limit [%]", True), ("NMBE [%]", True), ("limit [%]", True),
                       ("ASHRAE Guideline 14 criteria", False)], rows)
     c = fit.get("intervals", {})
-    words = [("intervals", "meter intervals in the range"),
+    words = [("in_range", "meter intervals in the range (first to last reading)"),
+             ("intervals", "in the meter file"),
              ("used", "used by the fit"),
              ("absent", "absent from the meter file (left out, not filled)"),
              ("no_reading", "without a meter reading (left out)"),
              ("spikes", "of these, readings set aside as spikes"),
              ("log_unknown", "run-log state unknown for some equipment (left out)"),
              ("weather_unknown", "no outdoor temperature near them (left out)")]
+    c = {**c, "in_range": int(c.get("intervals", 0)) + int(c.get("absent", 0))}
     count_rows = [[e(w), _num(c.get(k))] for k, w in words if k in c]
     unknown = {k: v for k, v in fit.get("unknown_intervals_by_equipment", {}).items() if v}
     findings = fit.get("meter_validation", [])
@@ -1045,12 +1156,26 @@ def _weight(w: float | None) -> str:
     return "under 0.1" if w < 0.001 else _num(100 * w, 1)
 
 
+def from_celsius(value_c: float, unit: str) -> float:
+    """A temperature [degC] -> the site's weather unit ("F" or "C"); the inverse of
+    disagg.config.to_celsius."""
+    return value_c * 9.0 / 5.0 + 32.0 if unit == "F" else value_c
+
+
+def _temp(value_c: float | None, unit: str) -> str:
+    """A temperature given in degC, shown in the site's weather unit: '62.0 °F'."""
+    if value_c is None or not math.isfinite(value_c):
+        return "-"
+    return f"{_num(from_celsius(value_c, unit), 1)} °{'F' if unit == 'F' else 'C'}"
+
+
 def _priors_section(result: BreakdownResult) -> str:
     fit = result.fit
     ident = fit.get("identifiability", {})
     bound = ident.get("correlation_bound", 0.95)
     pd_weight = ident.get("prior_driven_weight", 0.5)
     draws = fit.get("draws", [])
+    unit = result.site.weather.unit if result.site.weather is not None else "C"
     sentences: list[str] = []
     groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
                                     "meter": []}
@@ -1087,8 +1212,8 @@ def _priors_section(result: BreakdownResult) -> str:
             sentences.append(
                 f"<b>{e(n)}</b> draws more the "
                 f"{'hotter' if wd.get('mode') == 'cooling' else 'colder'} it is beyond "
-                f"{_num(wd.get('balance_temp_c'), 1)} °C outdoors; its draw is stated at "
-                f"{_num(wd.get('reference_temp_c'), 1)} °C.")
+                f"{_temp(wd.get('balance_temp_c'), unit)} outdoors; its draw is stated at "
+                f"{_temp(wd.get('reference_temp_c'), unit)}.")
         if "not-run" in flags:
             groups["not-run"].append(n)
             continue

@@ -4,12 +4,17 @@ The site here is invented: three loads with random on/off spells from a seeded n
 generator, a constant baseload and small meter noise over 40 days (two calendar months),
 written as a meter CSV, an events run log and a site TOML with a flat tariff. One equipment
 id is the text `<script>alert(1)</script>`: it must show as text everywhere, never as markup.
+A second, shorter site (16 days) has meter rows missing from its file, an outdoor temperature
+file in °F with one cooling load, and a time-of-use tariff with a holiday and a demand price:
+the headline's interval counts, the temperatures' unit, the tariff table and each month's peak
+time are checked on it.
 The Chromium test renders the report headless and checks the page for console messages and
 a screenshot that is not blank.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import re
 import subprocess
@@ -22,8 +27,16 @@ import pytest
 from typer.testing import CliRunner
 
 from disagg.cli import app
+from disagg.config import to_celsius
 from disagg.pipeline import CAUTION, breakdown_site
-from disagg.report import LOCKOUT, drift_for, render_report
+from disagg.report import (
+    LOCKOUT,
+    UNEXPLAINED_PEAK,
+    drift_for,
+    from_celsius,
+    interval_counts,
+    render_report,
+)
 
 TZ = "America/Chicago"
 START_LOCAL = dt.datetime(2025, 1, 20)  # a Monday; 40 days reach into February
@@ -41,6 +54,20 @@ NOISE_KWH = 0.3
 GRID_MIN = 5
 REFERENCE = "2025-01-20:2025-02-02"  # two weeks: leaves 26 days to track
 CURRENCY = "EUR"
+BALANCE_F = 62.0  # CH-1's balance temperature in the °F site [°F]
+REFERENCE_F = 77.0  # the °F site's reference temperature [°F]
+DROPPED = 20  # meter rows left out of the °F site's file
+TOU = f"""[tariff]
+currency = "{CURRENCY}"
+energy_price = 0.125
+demand_price = 12.0
+holidays = ["2025-01-27"]
+
+[[tariff.periods]]
+name = "on-peak"
+price = 0.25
+spells = ["Mon-Fri 12:00-18:00"]
+"""
 
 # Elements an HTML document closes implicitly (HTML Living Standard, "void elements").
 VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source",
@@ -67,8 +94,16 @@ def _spells(n_steps: int, rng: np.random.Generator) -> np.ndarray:
     return state
 
 
-def write_site(folder: Path, tariff: bool = True, days: int = DAYS, seed: int = 5) -> Path:
-    """Meter CSV, events run log and site.toml in folder; returns the TOML path."""
+def write_site(folder: Path, tariff: bool = True, days: int = DAYS, seed: int = 5,
+               drop_rows: int = 0, fahrenheit: bool = False, tou: bool = False) -> Path:
+    """Meter CSV, events run log and site.toml in folder; returns the TOML path.
+
+    drop_rows: that many meter rows in a block from the middle of the file are left out.
+    fahrenheit: an hourly outdoor temperature file in °F, and CH-1 a cooling load with a
+        balance temperature of BALANCE_F (its true draw does not vary: the fit's slope is
+        near zero, and the report only has to state the temperatures).
+    tou: the tariff has the time-of-use periods, holidays and demand price of TOU.
+    """
     folder.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(seed)
     n = days * 96
@@ -87,15 +122,32 @@ def write_site(folder: Path, tariff: bool = True, days: int = DAYS, seed: int = 
     start_utc = pl.datetime_range(t0, t0 + dt.timedelta(minutes=15 * (n - 1)), "15m",
                                   eager=True, time_zone="UTC")
     end_local = (start_utc + dt.timedelta(minutes=15)).dt.convert_time_zone(TZ)
-    pl.DataFrame({"end": end_local.dt.to_string("%Y-%m-%dT%H:%M:%S%:z"), "kwh": energy}
-                 ).write_csv(folder / "meter.csv")
+    meter = pl.DataFrame({"end": end_local.dt.to_string("%Y-%m-%dT%H:%M:%S%:z"), "kwh": energy})
+    if drop_rows:
+        middle = n // 2
+        meter = pl.concat([meter[:middle], meter[middle + drop_rows:]])
+    meter.write_csv(folder / "meter.csv")
+    weather = ""
+    if fahrenheit:
+        hours = pl.datetime_range(t0 - dt.timedelta(hours=1), t0 + dt.timedelta(days=days, hours=1),
+                                  "1h", eager=True, time_zone="UTC")
+        temp_f = 60.0 + 15.0 * np.sin(np.arange(len(hours)) * 2 * np.pi / 24) + rng.normal(
+            0.0, 2.0, len(hours))
+        pl.DataFrame({"time": hours.dt.to_string("%Y-%m-%dT%H:%M:%S%:z"),
+                      "temp_f": np.round(temp_f, 1)}).write_csv(folder / "weather.csv")
+        weather = ('[weather]\nfile = "weather.csv"\ntime_column = "time"\n'
+                   f'temp_column = "temp_f"\nunit = "F"\nreference_temp = {REFERENCE_F}\n')
     pl.DataFrame(events, schema=["time", "point", "state"], orient="row").sort(
         "time", "point", maintain_order=True).write_csv(folder / "runlog.csv")
     equipment = "\n".join(
         f'[[equipment]]\nid = "{eq}"\nname = "{name.replace(chr(34), chr(92) + chr(34))}"\n'
-        + ('draw_kw = 5.0\n' if eq == "P-1" else "") for eq, (_, name) in LOADS.items())
+        + ('draw_kw = 5.0\n' if eq == "P-1" else "")
+        + (f'weather = "cooling"\nbalance_temp = {BALANCE_F}\n'
+           if fahrenheit and eq == "CH-1" else "") for eq, (_, name) in LOADS.items())
     money = (f'[tariff]\ncurrency = "{CURRENCY}"\nenergy_price = 0.20\ndemand_price = 10.0\n'
              if tariff else "")
+    if tariff and tou:
+        money = TOU
     (folder / "site.toml").write_text(f'''[site]
 name = "Test <site> & Co"
 timezone = "{TZ}"
@@ -117,6 +169,7 @@ state_column = "state"
 [baseload]
 profile = "constant"
 
+{weather}
 {money}
 {equipment}''', encoding="utf-8")
     return (folder / "site.toml").resolve()
@@ -130,6 +183,23 @@ def site(tmp_path_factory) -> Path:
 @pytest.fixture(scope="module")
 def result(site):
     return breakdown_site(site)
+
+
+@pytest.fixture(scope="module")
+def site_f(tmp_path_factory) -> Path:
+    """16 days, DROPPED meter rows missing, weather in °F, a time-of-use tariff."""
+    return write_site(tmp_path_factory.mktemp("site_f"), days=16, drop_rows=DROPPED,
+                      fahrenheit=True, tou=True)
+
+
+@pytest.fixture(scope="module")
+def result_f(site_f):
+    return breakdown_site(site_f)
+
+
+@pytest.fixture(scope="module")
+def report_f(result_f) -> str:
+    return render_report(result_f)
 
 
 @pytest.fixture(scope="module")
@@ -168,6 +238,11 @@ class Strict(HTMLParser):
         self.tags: list[str] = []
         self.svgs: list[dict] = []
         self._label_depth: int | None = None
+        # Each SVG's "axes": one dict per matplotlib axes, axis group id -> {"kind": x or y,
+        # "ticks": tick-label texts, "label": the axis label's text or None}.
+        self._axis: dict | None = None
+        self._axis_depth: int | None = None
+        self._tick_depth: int | None = None
         self.doctype = False
         self.th_num: list[str] = []
         self._in_th_num: int | None = None
@@ -188,11 +263,27 @@ class Strict(HTMLParser):
         for k, v in attrs:
             self.attrs.append((tag, k, v))
         a = dict(attrs)
+        gid = (a.get("id") or "") if tag == "g" else ""
         if tag == "svg":
-            self.svgs.append({"labels": [], "depth": len(self.stack)})
-        if tag == "g" and re.search(r"-(x|y)label", a.get("id") or ""):
+            self.svgs.append({"labels": [], "depth": len(self.stack), "axes": []})
+        if re.search(r"-axes_\d+$", gid):
+            self.svgs[-1]["axes"].append({})
+        if re.search(r"-matplotlib\.axis_\d+$", gid):
+            self._axis_depth = len(self.stack)
+            self._axis = {"ticks": [], "label": None, "kind": None}
+            self.svgs[-1]["axes"][-1][gid] = self._axis
+        tick = re.search(r"-(x|y)tick_\d+$", gid)
+        if tick and self._axis is not None:
+            self._tick_depth = len(self.stack)
+            self._axis["kind"] = tick.group(1)
+            self._axis["ticks"].append("")
+        label = re.search(r"-(x|y)label", gid)
+        if label:
             self._label_depth = len(self.stack)
             self.svgs[-1]["labels"].append("")
+            if self._axis is not None:
+                self._axis["kind"] = label.group(1)
+                self._axis["label"] = ""
         if tag == "th" and "num" in (a.get("class") or ""):
             self._in_th_num = len(self.stack)
             self.th_num.append("")
@@ -206,6 +297,10 @@ class Strict(HTMLParser):
         self.stack.pop()
         if self._label_depth is not None and len(self.stack) == self._label_depth:
             self._label_depth = None
+        if self._tick_depth is not None and len(self.stack) == self._tick_depth:
+            self._tick_depth = None
+        if self._axis_depth is not None and len(self.stack) == self._axis_depth:
+            self._axis_depth, self._axis = None, None
         if self._in_th_num is not None and len(self.stack) == self._in_th_num:
             self._in_th_num = None
 
@@ -213,6 +308,10 @@ class Strict(HTMLParser):
         self.text.append(data)
         if self._label_depth is not None:
             self.svgs[-1]["labels"][-1] += data.strip()
+            if self._axis is not None:
+                self._axis["label"] += data.strip()
+        if self._tick_depth is not None:
+            self._axis["ticks"][-1] += data.strip()
         if self._in_th_num is not None:
             self.th_num[-1] += data
 
@@ -293,6 +392,56 @@ def test_every_chart_is_an_inline_svg_with_units_on_its_axis_labels(report):
     assert "Draw [kW]" in labels
 
 
+def axis_problems(svgs: list[dict], row_names: set[str]) -> list[str]:
+    """Every axis, in every axes of every chart, that shows tick labels but has no label
+    with a unit in brackets. One kind of axis is let off: a category axis whose tick labels
+    are the breakdown's row names (no unit applies); the names of the axes let off come back
+    as 'category: ...' lines so that a test can say which ones they must be."""
+    out = []
+    for i, svg in enumerate(svgs):
+        for j, axes in enumerate(svg["axes"]):
+            for gid, axis in axes.items():
+                ticks = [t for t in axis["ticks"] if t]
+                if not ticks:
+                    continue
+                where = f"chart {i + 1}, axes {j + 1}, {axis['kind']} axis ({gid})"
+                if set(ticks) <= row_names:
+                    out.append(f"category: {where}")
+                    continue
+                label = axis["label"] or ""
+                units = re.findall(r"\[([^\]]+)\]", label)
+                if not (units and any(u in unit for unit in units for u in UNITS)):
+                    out.append(f"{where}: ticks {ticks[:3]} but label {axis['label']!r}")
+    return out
+
+
+def test_every_axis_with_tick_labels_has_its_own_label_with_a_unit(report, result, drift):
+    p = parse(report)
+    rows = {n[:29] + "…" if len(n) > 30 else n for n in result.breakdown["equipment"]}
+    problems = axis_problems(p.svgs, rows)
+    # Only the equipment axis of the at-a-glance bars is a category axis.
+    assert problems == ["category: chart 1, axes 1, y axis (c1-matplotlib.axis_2)"]
+    # Every drift panel (the first chart after the two energy charts) has its own y label,
+    # scales differing from panel to panel; dates are shown under the lowest panels only.
+    panels = p.svgs[2]["axes"]
+    assert len(panels) == drift.table["equipment"].n_unique() == 3
+    for axes in panels:
+        kinds = {a["kind"]: a for a in axes.values()}
+        assert kinds["y"]["label"] == "Draw [kW]"
+        assert any(kinds["x"]["ticks"]) == (kinds["x"]["label"] == "Date [local]")
+
+
+def test_the_axis_check_catches_a_panel_without_a_y_label(report, result):
+    # The same charts with one drift panel's y label taken out (its group id renamed so the
+    # parser no longer sees a label): the check above must then name that axis.
+    svg = re.findall(r"<svg.*?</svg>", report, flags=re.DOTALL)[2]
+    broken = svg.replace('id="c3-ylabel-1"', 'id="c3-other-1"', 1)
+    assert broken != svg
+    rows = set(result.breakdown["equipment"])
+    problems = axis_problems(parse(broken).svgs, rows)
+    assert len(problems) == 1 and "y axis" in problems[0] and "label None" in problems[0]
+
+
 def test_every_numeric_column_header_carries_a_unit(report):
     headers = parse(report).th_num
     assert len(headers) > 20
@@ -367,6 +516,143 @@ def test_a_negative_unexplained_part_is_drawn_below_zero(result):
     original = re.findall(r"<svg.*?</svg>", render_report(result), flags=re.DOTALL)[1]
     assert not any(re.fullmatch(r"-[\d,]+", t)
                    for t in re.findall(r">([^<>]+)</text>", original))
+
+
+def test_the_headline_counts_the_meter_rows_missing_from_the_file(site_f, result_f, report_f):
+    rows = pl.read_csv(site_f.parent / "meter.csv").height
+    assert rows == 16 * 96 - DROPPED
+    c = result_f.fit["intervals"]
+    # Every row in the file is used; the DROPPED rows, absent from it, are not.
+    assert (c["intervals"], c["absent"], c["used"]) == (rows, DROPPED, rows)
+    text = plain_text(report_f)
+    assert (f"{rows:,} of {rows + DROPPED:,} meter intervals used ({DROPPED} without a "
+            "reading); intervals at 95 % confidence.") in text
+    left_out = text.split("What was left out and why")[1]
+    assert f"meter intervals in the range (first to last reading) {rows + DROPPED:,}" in left_out
+    assert f"in the meter file {rows:,}" in left_out
+    assert f"absent from the meter file (left out, not filled) {DROPPED}" in left_out
+
+
+@pytest.mark.parametrize("counts, words", [
+    ({"intervals": 100, "absent": 0, "used": 100, "no_reading": 0, "log_unknown": 0,
+      "weather_unknown": 0, "spikes": 0}, "100 of 100 meter intervals used"),
+    # Spikes are among the intervals without a reading (their energy was set to null).
+    ({"intervals": 1200, "absent": 5, "used": 1180, "no_reading": 7, "log_unknown": 10,
+      "weather_unknown": 3, "spikes": 2},
+     ("1,180 of 1,205 meter intervals used (10 without a reading, 2 set aside as spikes, 10 "
+      "with a run-log state unknown, 3 without an outdoor temperature)")),
+])
+def test_interval_counts_name_every_reason_an_interval_was_left_out(counts, words):
+    assert interval_counts(counts) == words
+    # The reasons add up to the intervals not used.
+    numbers = [int(n.replace(",", "")) for n in re.findall(r"\d[\d,]*", words)]
+    assert numbers[0] + sum(numbers[2:]) == numbers[1]
+
+
+# The Fahrenheit scale: water freezes at 32 °F and boils at 212 °F (0 and 100 °C) at
+# standard pressure; 1 °C = 1.8 °F (from memory; the scale's definition). Exact in floats to
+# 1e-12.
+FREEZING_F, BOILING_F = 32.0, 212.0
+
+
+def test_from_celsius_is_the_inverse_of_the_configs_to_celsius():
+    assert from_celsius(0.0, "F") == pytest.approx(FREEZING_F, abs=1e-12)
+    assert from_celsius(100.0, "F") == pytest.approx(BOILING_F, abs=1e-12)
+    assert from_celsius(-40.0, "F") == pytest.approx(-40.0, abs=1e-12)
+    for t in (-12.5, 0.0, 16.7, 62.0, 104.0):
+        for unit in ("F", "C"):
+            assert from_celsius(to_celsius(t, unit), unit) == pytest.approx(t, abs=1e-12)
+    assert from_celsius(21.0, "C") == 21.0
+
+
+def test_temperatures_are_stated_in_the_sites_weather_unit(result_f, report_f):
+    draw = next(d for d in result_f.fit["draws"] if d["equipment"] == "CH-1")
+    # The fit works in °C: 62 °F is 16.7 °C, 77 °F is 25 °C.
+    assert draw["weather"]["balance_temp_c"] == pytest.approx(to_celsius(BALANCE_F, "F"))
+    assert draw["weather"]["reference_temp_c"] == pytest.approx(to_celsius(REFERENCE_F, "F"))
+    text = plain_text(report_f)
+    assert (f"CH-1 draws more the hotter it is beyond {BALANCE_F:.1f} °F outdoors; its draw is "
+            f"stated at {REFERENCE_F:.1f} °F.") in text
+    assert "°C" not in text
+
+
+def test_the_tariff_is_shown_where_the_costs_are(report_f):
+    text = plain_text(report_f)
+    months = text.split("2. Month by month")[1].split("3. Drift over time")[0]
+    tariff = months.split("The tariff")[1].split("The bill, month by month")[0]
+    assert f"charge price [{CURRENCY} per unit] unit applies" in tariff
+    assert "energy, outside the periods below 0.125 kWh every other hour" in tariff
+    assert ("energy, on-peak 0.25 kWh Mon-Fri 12:00-18:00 (local time), not on holidays"
+            in tariff)
+    # (plain_text puts a space between text nodes: the date is a node of its own)
+    assert "holidays - - 2025-01-27 : every hour at the price outside the periods" in tariff
+    assert ("demand 12.00 kW the month's highest demand over one meter interval (15 min), at "
+            "any hour") in tariff
+    assert ("The meter interval is taken as the demand interval, and only one demand charge, "
+            "on the month's highest interval demand at any hour, is modelled") in tariff
+
+
+def test_each_months_peak_is_shown_in_local_time_with_the_zone(site_f, report_f):
+    # The peak found here from the meter file itself: the row with the highest energy of
+    # each local month (every row of the file is used: see the headline test), its start
+    # 15 minutes before its end stamp, in the site's zone.
+    meter = pl.read_csv(site_f.parent / "meter.csv").with_columns(
+        pl.col("end").str.to_datetime("%Y-%m-%dT%H:%M:%S%:z").dt.convert_time_zone(TZ))
+    start = meter.with_columns((pl.col("end") - dt.timedelta(minutes=15)).alias("start"))
+    peaks = (start.with_columns(pl.col("start").dt.strftime("%Y-%m").alias("month"))
+             .sort("kwh", descending=True).group_by("month", maintain_order=True).first()
+             .sort("month"))
+    text = plain_text(report_f)
+    bill = text.split("The bill, month by month")[1].split("3. Drift over time")[0]
+    assert bill.startswith(" month peak interval starts (local) metered [kWh] peak demand [kW]")
+    assert peaks.height == 2
+    for r in peaks.iter_rows(named=True):
+        when = r["start"].strftime("%a %Y-%m-%d %H:%M %Z")
+        # month, peak start, metered [kWh], peak demand [kW] = the row's kWh / 0.25 h, shown
+        # to 0.1 kW (the file's kWh have 3 decimals, so no rounding tie can occur).
+        row = re.search(rf"{r['month']} {re.escape(when)} [\d,]+ ([\d,]+\.\d) ", bill)
+        assert row, (when, bill[:400])
+        assert float(row.group(1).replace(",", "")) == pytest.approx(r["kwh"] / 0.25, abs=0.05)
+    # January 2025 is in standard time: CST; the zone abbreviation is shown.
+    assert re.search(r"2025-01 \w{3} 2025-01-\d\d \d\d:\d\d CST ", bill)
+
+
+def test_the_peak_share_and_a_negative_unexplained_cost_are_explained(report_f):
+    text = plain_text(report_f)
+    glance = text.split("1. The range at a glance")[1].split("2. Month by month")[0]
+    months = text.split("2. Month by month")[1].split("3. Drift over time")[0]
+    for section in (glance, months):
+        assert UNEXPLAINED_PEAK in section
+        assert "not the load's own maximum" in section
+    assert ("Peak share [kW]: each row's estimated draw during the interval of a month's "
+            "highest metered demand") in glance
+
+
+def test_drift_with_a_reference_period_outside_the_data_says_so(site, tmp_path):
+    out = tmp_path / "out"
+    r = runner.invoke(app, ["report", str(site), "--out", str(out), "--reference",
+                            "2024-01-01:2024-02-01"])
+    assert r.exit_code == 0, r.output
+    assert r.stdout.splitlines()[0].endswith("; drift left out")
+    text = plain_text((out / "report.html").read_text(encoding="utf-8"))
+    assert ("Drift is left out: the reference period 2024-01-01 to 2024-02-01 has no usable "
+            "intervals in the data, which cover 2025-01-20 to 2025-02-28") in text
+    assert "run-log state" not in text.split("3. Drift over time")[1].split("4. How good")[0]
+
+
+def test_drift_with_too_few_usable_intervals_in_the_reference_period_says_so(result):
+    # Only 3 usable intervals on the first day: the reference period of that day alone is
+    # too short for a fit of 3 loads and a constant baseload (4 unknowns + 2).
+    day = result.aligned.frame["start_utc"].dt.convert_time_zone(TZ).dt.date().to_numpy()
+    first = np.flatnonzero(day == dt.date(2025, 1, 20))
+    use = result.aligned.use.copy()
+    use[first[3:]] = False
+    thin = dataclasses.replace(result, aligned=dataclasses.replace(result.aligned, use=use))
+    tracked, note = drift_for(thin, 7.0, (dt.date(2025, 1, 20), dt.date(2025, 1, 20)))
+    assert tracked is None
+    assert note == ("Drift is left out: the reference period 2025-01-20 to 2025-01-20 has only "
+                    "3 usable intervals in the data, which cover 2025-01-20 to 2025-02-28; a "
+                    "fit needs at least 6.")
 
 
 # ---------------------------------------------------------------------------------------
