@@ -86,9 +86,11 @@ def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date 
                                 estimate=estimate, progress=bar)
         html = _report_html(result, bar) if report else None
         summary = breakdown_summary(result)
+        from disagg.history import check_configured, store_configured
+        check_configured(result.site)  # a bad history folder fails before any output
         paths = write_breakdown(result, out, xlsx=xlsx, report_html=html)
-        from disagg.history import store_configured
-        paths += store_configured(result)
+        stored = store_configured(result, d0, d1, paths)
+        paths += stored.files
     finally:
         if bar is not None:
             bar.close()
@@ -97,6 +99,8 @@ def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date 
     elif not quiet:
         typer.echo(summary)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+    for note in [] if quiet else stored.notes:
+        typer.echo(f"Note: {note}", err=as_json)
 
 
 def _report_html(result, bar) -> str:
@@ -243,9 +247,10 @@ def drift(
         from disagg.config import load_site
 
         cfg = load_site(site)
+        from disagg.history import check_configured, store_drift_configured
+        check_configured(cfg)  # a bad history folder fails before any output
         paths = write_drift(result, out, [cfg.path, cfg.meter.file, cfg.runlog.file], state)
-        from disagg.history import store_drift_configured
-        paths += store_drift_configured(cfg, result)
+        paths += store_drift_configured(cfg, result, paths)
         typer.echo(text)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 
@@ -303,24 +308,39 @@ def batch(
     drift_too: Annotated[bool, typer.Option("--drift", help="Also track each site's draws "
                                             "(drift, default settings): drift.csv/.json per "
                                             "site and an alarm count in portfolio.csv.")] = False,
+    reference: Annotated[str | None, typer.Option("--reference", help="With --drift: the "
+                                                  "drift reference period FROM:TO (local "
+                                                  "dates) of every site; default each "
+                                                  "site's first 90 days.")] = None,
     quiet: QuietOpt = False,
 ) -> None:
     """Breakdown of every site of a portfolio in parallel; writes DIR/portfolio.csv and each
-    site's files; exit 1 when any site failed."""
+    site's files; exit 1 when any site failed, 130 when interrupted."""
     import time
 
+    from disagg.config import parse_period
     from disagg.outputs import write_portfolio
-    from disagg.portfolio import portfolio_summary, run_portfolio
+    from disagg.portfolio import BatchInterrupted, portfolio_summary, run_portfolio
     from disagg.progress import terminal_bar
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     def run():
         t0 = time.perf_counter()
+        ref = parse_period(reference, "--reference") if reference else None
         bar = terminal_bar(quiet)
         try:
             result = run_portfolio(portfolio, out, workers, cluster, d0, d1, drift_too,
-                                   progress=bar)
+                                   progress=bar, drift_reference=ref)
+        except BatchInterrupted as stop:
+            # No portfolio.csv for part of the sites: a previous complete one stays, and a
+            # script never reads a partial table as the portfolio's.
+            if bar is not None:
+                bar.close()
+            typer.echo(f"Interrupted: {stop.finished} site{'s' * (stop.finished != 1)} "
+                       f"finished, {stop.not_run} not run; portfolio.csv not written",
+                       err=True)
+            raise typer.Exit(130) from None
         finally:
             if bar is not None:
                 bar.close()
@@ -332,7 +352,11 @@ def batch(
 
     result = _guard(run)
     for o in result.failed:
-        typer.echo(f"Error: {o.site_file}: {o.error}", err=True)
+        # The library's message often starts with the site file already; name it once.
+        error = o.error or ""
+        if not error.startswith(o.site_file):
+            error = f"{o.site_file}: {error}"
+        typer.echo(f"Error: {error}", err=True)
     if result.failed:
         raise typer.Exit(1)
 
@@ -394,6 +418,9 @@ def history(
             typer.echo(text)
             return
         target = out.resolve()
+        if target.is_dir():
+            raise ConfigError(f"--out {out}: {target} is a folder; give a CSV file name such as "
+                              f"{target / 'history.csv'}")
         write_atomically(target.parent, {
             target.name: lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6)},
             [cfg.path, cfg.meter.file, cfg.runlog.file])

@@ -14,9 +14,25 @@ writes the site's outputs into. Two site files with the same name in different f
 share one history folder would share an id: give them different file names.
 
 A period is a local calendar month of the site. Storing a month replaces everything stored
-for that site, kind and month, so running a month twice leaves one copy. Drift months are
-merged by day instead: the new run's days replace the same days, other days of that month are
-kept (a run continued with ``--state`` covers only the days after the previous run).
+for that site, kind and month, so running a month twice leaves one copy. Each stored breakdown
+month carries its coverage: the intervals used, the local days with at least one of them, and
+the first and last such day. A breakdown month is stored only when
+
+- the run's requested range (``--from``/``--to``; none means unbounded) holds the whole
+  calendar month: a range that cuts a month short never replaces it. A month that is short
+  only because the data end (or start) there is stored, with its coverage;
+- and it has data on at least as many days as the stored run of that month: a run whose data
+  hold a few days of a month already stored in full (an export starting on the month's last
+  day) leaves it alone. Delete the month's folder to replace it anyway.
+
+The months left as they were are returned with the reason (:class:`Stored`), and the commands
+print them as notes. Drift months are merged by day instead: the new run's days replace the
+same days, other days of that month are kept (a run continued with ``--state`` covers only the
+days after the previous run).
+
+A command checks that the history folder can be written (:func:`check_folder`) before it
+writes any output, so a bad history folder fails with nothing written; if storing still fails
+after the outputs were written, its error says so (:func:`outputs_already_written`).
 
 Writes are atomic per run: every new month file is first written in full into a hidden
 temporary folder inside FOLDER, and only then renamed into place (``os.replace``, atomic on one
@@ -26,19 +42,21 @@ was; one during the renames leaves each month either wholly old or wholly new.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import math
 import os
 import re
 import shutil
 import tempfile
-from dataclasses import dataclass
+from collections.abc import Iterator
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import polars as pl
 
 from disagg import __version__
-from disagg.errors import InputError, OutputError
+from disagg.errors import DisaggError, InputError, OutputError
 
 KINDS = ("breakdown", "drift")
 # Partition keys (taken from the folder names, never stored inside the files).
@@ -51,8 +69,13 @@ BREAKDOWN_SCHEMA = {
     "run_hours": pl.Float64, "kw": pl.Float64, "kw_low": pl.Float64, "kw_high": pl.Float64,
     "kwh": pl.Float64, "kwh_low": pl.Float64, "kwh_high": pl.Float64, "share": pl.Float64,
     "flags": pl.String, "peak_kw": pl.Float64, "cost": pl.Float64, "currency": pl.String,
+    # The month's coverage (the same on every row of a month; null in months stored before
+    # coverage was kept): intervals used, local days with at least one of them, first and last.
+    "intervals_used": pl.Int64, "days_with_data": pl.Int64, "first_date": pl.Date,
+    "last_date": pl.Date,
     "run_utc": pl.Datetime("us", "UTC"), "tool_version": pl.String,
 }
+COVERAGE_COLUMNS = ("intervals_used", "days_with_data", "first_date", "last_date")
 DRIFT_SCHEMA = {
     "site_name": pl.String, "site_file": pl.String, "date": pl.Date, "equipment": pl.String,
     "kw_tracked": pl.Float64, "kw_low": pl.Float64, "kw_high": pl.Float64,
@@ -72,6 +95,42 @@ def _month_dir(folder: Path, kind: str, site: str, period: str) -> Path:
     return folder / f"kind={kind}" / f"site={site}" / f"period={period}"
 
 
+def check_folder(folder: str | Path) -> Path:
+    """Create the history folder if missing and check that files can be written in it (by
+    creating and removing an empty hidden file); call before writing any output.
+
+    Returns:
+        The folder, resolved.
+
+    Raises:
+        OutputError: the folder cannot be created or written.
+    """
+    folder = Path(folder).resolve()
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{folder}: cannot create the history folder ({exc.strerror})") from None
+    try:
+        fd, probe = tempfile.mkstemp(prefix=".disagg-probe-", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise OutputError(f"{folder}: cannot write in the history folder ({exc.strerror})") from None
+    return folder
+
+
+@contextlib.contextmanager
+def outputs_already_written(written: list[Path]) -> Iterator[None]:
+    """Around storing that follows writing a run's outputs: a DisaggError raised inside
+    becomes an OutputError saying the outputs were written and the history was not updated."""
+    try:
+        yield
+    except DisaggError as exc:
+        where = f" in {Path(written[0]).parent}" if written else ""
+        raise OutputError(f"{exc}; the outputs were written{where} but the history was not "
+                          "updated") from None
+
+
 def _write_part(frame: pl.DataFrame, path: Path) -> None:
     """Write one month file (the single place a history file is written)."""
     frame.write_parquet(path)
@@ -85,12 +144,11 @@ def _replace_months(folder: Path, kind: str, site: str,
     Raises:
         OutputError: the folder cannot be created or written.
     """
-    folder = Path(folder).resolve()
+    folder = check_folder(folder)
     try:
-        folder.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=folder))
     except OSError as exc:
-        raise OutputError(f"{folder}: cannot create the history folder ({exc.strerror})") from None
+        raise OutputError(f"{folder}: cannot write in the history folder ({exc.strerror})") from None
     targets = []
     try:
         staged = []
@@ -120,24 +178,113 @@ def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
                         for c, t in schema.items())
 
 
-def store_breakdown(folder: str | Path, result) -> list[Path]:
-    """Store each month of a breakdown result (disagg.pipeline.BreakdownResult), replacing
-    what was stored for those months of that site.
+@dataclass
+class Stored:
+    """What storing a breakdown did.
+
+    files: the month files written (store_configured: the site's folder in the store, when
+        any month was stored). skipped: period -> why that month was left as it was.
+    """
+
+    files: list[Path] = field(default_factory=list)
+    skipped: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def notes(self) -> list[str]:
+        """One line per month not stored, in month order."""
+        return [self.skipped[p] for p in sorted(self.skipped)]
+
+
+def month_coverage(aligned, tz: str) -> pl.DataFrame:
+    """Per local month (by interval start): intervals used, days with data (local days with at
+    least one interval used), first_date and last_date of those days.
+
+    Args:
+        aligned: disagg.align.Aligned; its ``use`` mask says which intervals the fit used.
+        tz: the site's time zone.
+    """
+    local = aligned.frame["start_utc"].dt.convert_time_zone(tz)
+    frame = pl.DataFrame({"period": local.dt.strftime("%Y-%m"), "date": local.dt.date(),
+                          "used": pl.Series(aligned.use, dtype=pl.Boolean)})
+    return (frame.filter("used").group_by("period").agg(
+        pl.len().cast(pl.Int64).alias("intervals_used"),
+        pl.col("date").n_unique().cast(pl.Int64).alias("days_with_data"),
+        pl.col("date").min().alias("first_date"), pl.col("date").max().alias("last_date"))
+        .sort("period"))
+
+
+def _month_bounds(period: str) -> tuple[dt.date, dt.date]:
+    first = dt.date.fromisoformat(f"{period}-01")
+    following = (first.replace(day=28) + dt.timedelta(days=4)).replace(day=1)
+    return first, following - dt.timedelta(days=1)
+
+
+def _cut_short(period: str, date_from: dt.date | None, date_to: dt.date | None) -> str | None:
+    """Why the requested range does not hold the whole month, or None when it does."""
+    first, last = _month_bounds(period)
+    why = []
+    if date_from is not None and date_from > first:
+        why.append(f"--from {date_from} is after its first day")
+    if date_to is not None and date_to < last:
+        why.append(f"--to {date_to} is before its last day")
+    return " and ".join(why) or None
+
+
+def _days(n: int | None, first, last) -> str:
+    return f"{n} day{'s' * (n != 1)} ({first} to {last})"
+
+
+def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None,
+                    date_to: dt.date | None = None) -> Stored:
+    """Store each month of a breakdown result (disagg.pipeline.BreakdownResult) with its
+    coverage, replacing what was stored for those months of that site; see the module
+    docstring for the months that are left as they were.
+
+    Args:
+        date_from, date_to: the run's requested range (local dates, inclusive; None:
+            unbounded), as given to disagg.pipeline.breakdown_site.
 
     Returns:
-        The month files written.
+        The month files written and the months not stored, with why.
 
     Raises:
         OutputError: the history folder cannot be written.
+        InputError: a stored month file cannot be read.
     """
     site = result.site
+    sid = site_id(site.path)
+    root = Path(folder).resolve()
     table = result.breakdown
     tariff = getattr(site, "tariff", None)
     if tariff is not None and "cost" in table.columns:
         table = table.with_columns(pl.lit(tariff.currency).alias("currency"))
-    months = {p: _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
-              for (p,), g in table.group_by("period", maintain_order=True)}
-    return _replace_months(Path(folder), "breakdown", site_id(site.path), months)
+    coverage = month_coverage(result.aligned, site.timezone)
+    table = table.join(coverage, on="period", how="left", maintain_order="left")
+    months, skipped = {}, {}
+    for (period,), g in table.group_by("period", maintain_order=True):
+        new = g.row(0, named=True)
+        have = _days(new["days_with_data"] or 0, new["first_date"], new["last_date"])
+        cut = _cut_short(period, date_from, date_to)
+        if cut is not None:
+            skipped[period] = (f"{period} not stored in the history: {cut}, so this run has "
+                               f"only part of the month (data on {have}); a month is stored "
+                               "only from a run whose range holds all of it, and any stored "
+                               "run of it is kept")
+            continue
+        old_path = _month_dir(root, "breakdown", sid, period) / "part.parquet"
+        if old_path.exists():
+            old = _read_file(old_path, BREAKDOWN_SCHEMA).row(0, named=True)
+            if (old["days_with_data"] is not None
+                    and (new["days_with_data"] or 0) < old["days_with_data"]):
+                skipped[period] = (
+                    f"{period} not stored in the history: the stored run of this month has "
+                    f"data on {_days(old['days_with_data'], old['first_date'], old['last_date'])}"
+                    f", this run only on {have}; the stored month is kept (delete "
+                    f"{old_path.parent} to replace it)")
+                continue
+        months[period] = _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
+    files = _replace_months(root, "breakdown", sid, months) if months else []
+    return Stored(files, skipped)
 
 
 def store_drift(folder: str | Path, site, drift_result) -> list[Path]:
@@ -345,19 +492,20 @@ def history_summary(frame: pl.DataFrame, folder: Path, caution: str) -> str:
     site = frame["site"][0]
     lines = [(f"{frame['site_name'][-1]} (history id {site}): {len(periods)} stored month"
               f"{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}, in {folder}"),
-             ("kWh [kWh] and draw kW [kW] of each month's own run; run h [h]; stored: when the "
-              "month was last run (UTC)")]
+             ("kWh [kWh] and draw kW [kW] of each month's own run; run h [h]; days: days with "
+              "data in the month; stored: when the month was last run (UTC)")]
     for (eq,), g in frame.group_by("equipment", maintain_order=True):
         lines += ["", eq,
                   (f"  {'period':<8} {'kWh':>10} {'kWh range':>19} {'kW':>8} {'kW range':>15} "
-                   f"{'run h':>7}  {'stored':<16}  flags")]
+                   f"{'run h':>7} {'days':>4}  {'stored':<16}  flags")]
         for r in g.iter_rows(named=True):
             kwh_rng = ("-" if r["kwh_low"] is None
                        else f"{_f(r['kwh_low'], 0)}-{_f(r['kwh_high'], 0)}")
             kw_rng = "-" if r["kw_low"] is None else f"{_f(r['kw_low'])}-{_f(r['kw_high'])}"
             stored = r["run_utc"].strftime("%Y-%m-%d %H:%M") if r["run_utc"] else "-"
+            days = "-" if r["days_with_data"] is None else r["days_with_data"]
             lines.append(f"  {r['period']:<8} {_f(r['kwh'], 0):>10} {kwh_rng:>19} "
-                         f"{_f(r['kw']):>8} {kw_rng:>15} {_f(r['run_hours'], 0):>7}  "
+                         f"{_f(r['kw']):>8} {kw_rng:>15} {_f(r['run_hours'], 0):>7} {days:>4}  "
                          f"{stored:<16}  {r['flags'] or ''}")
     lines += ["", f"Caution: {caution}"]
     return "\n".join(lines)
@@ -381,27 +529,49 @@ def comparison_summary(result: HistoryComparison, caution: str) -> str:
     return "\n".join(lines)
 
 
-def store_configured(result) -> list[Path]:
+def check_configured(site) -> None:
+    """check_folder on the site's [history] folder, when its file names one."""
+    folder = getattr(site, "history", None)
+    if folder is not None:
+        check_folder(folder)
+
+
+def store_configured(result, date_from: dt.date | None = None, date_to: dt.date | None = None,
+                     written: list[Path] | None = None) -> Stored:
     """store_breakdown into the site's [history] folder when its file names one.
 
+    Args:
+        date_from, date_to: the run's requested range (see store_breakdown).
+        written: the outputs already written by this run, named in an error.
+
     Returns:
-        [the site's breakdown folder in the store], or [] without a [history] table.
+        Stored with files = [the site's breakdown folder in the store] when any month was
+        stored, and the months not stored; empty without a [history] table.
+
+    Raises:
+        OutputError: the history cannot be written (saying the outputs were written).
     """
     folder = getattr(result.site, "history", None)
     if folder is None:
-        return []
-    store_breakdown(folder, result)
-    return [Path(folder).resolve() / "kind=breakdown" / f"site={site_id(result.site.path)}"]
+        return Stored()
+    with outputs_already_written(written or []):
+        stored = store_breakdown(folder, result, date_from, date_to)
+    site_dir = Path(folder).resolve() / "kind=breakdown" / f"site={site_id(result.site.path)}"
+    return Stored([site_dir] if stored.files else [], stored.skipped)
 
 
-def store_drift_configured(site, drift_result) -> list[Path]:
+def store_drift_configured(site, drift_result, written: list[Path] | None = None) -> list[Path]:
     """store_drift into the site's [history] folder when its file names one.
 
     Returns:
         [the site's drift folder in the store], or [] without a [history] table.
+
+    Raises:
+        OutputError: the history cannot be written (saying the outputs were written).
     """
     folder = getattr(site, "history", None)
     if folder is None:
         return []
-    store_drift(folder, site, drift_result)
+    with outputs_already_written(written or []):
+        store_drift(folder, site, drift_result)
     return [Path(folder).resolve() / "kind=drift" / f"site={site_id(site.path)}"]

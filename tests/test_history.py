@@ -7,12 +7,14 @@ test_portfolio.write_site_files; H-1's draw rises 50 % (18 -> 27 kW) on 2025-04-
 from __future__ import annotations
 
 import datetime as dt
+import errno
+import json
 from pathlib import Path
 
 import polars as pl
 import pytest
 from polars.testing import assert_frame_equal
-from test_portfolio import write_site_files
+from test_portfolio import meter_months, write_site_files
 from typer.testing import CliRunner
 
 from disagg import history
@@ -40,6 +42,12 @@ def _stored_part(frame: pl.DataFrame) -> pl.DataFrame:
     """The breakdown.csv columns of stored rows, in breakdown.csv's order."""
     return frame.select("period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh",
                         "kwh_low", "kwh_high", "share", "flags")
+
+
+def _full_march_site(tmp_path: Path) -> Path:
+    """All of March 2025 (31 days; the clock goes forward on the 9th) and April 1-14."""
+    return write_site_files(tmp_path, "plant", 33, start=dt.date(2025, 3, 1), days=45,
+                            history="hist")
 
 
 def _csv_part(path: Path) -> pl.DataFrame:
@@ -87,6 +95,125 @@ def test_rerunning_one_month_replaces_that_month_only(tmp_path):
     # The new April really differs (90 % intervals are narrower than 95 %).
     old_april = before.filter(~march)
     assert (april["kw_high"] - april["kw_low"] < old_april["kw_high"] - old_april["kw_low"]).any()
+
+
+def test_each_month_is_stored_with_its_coverage(tmp_path):
+    toml = _full_march_site(tmp_path)
+    _breakdown(toml, tmp_path / "out")
+    stored = history.read_history(tmp_path / "hist")
+    coverage = stored.group_by("period", maintain_order=True).agg(
+        pl.col(c).unique() for c in history.COVERAGE_COLUMNS)
+    assert coverage.height == 2 and all(coverage[c].list.len().to_list() == [1, 1]
+                                        for c in history.COVERAGE_COLUMNS)
+    coverage = coverage.with_columns(pl.col(c).list.first() for c in history.COVERAGE_COLUMNS)
+    # Intervals counted straight from the meter file (every interval is used here): March
+    # has 31 x 96 - 4 (the hour skipped on 2025-03-09), April 14 x 96.
+    meter = pl.read_csv(load_site(toml).meter.file)
+    assert meter.height == 2972 + 1344
+    assert coverage.rows() == [
+        ("2025-03", 2972, 31, dt.date(2025, 3, 1), dt.date(2025, 3, 31)),
+        ("2025-04", 1344, 14, dt.date(2025, 4, 1), dt.date(2025, 4, 14))]
+
+
+def test_a_part_month_run_leaves_the_stored_whole_month_and_says_so(tmp_path):
+    toml = _full_march_site(tmp_path)
+    _breakdown(toml, tmp_path / "full")
+    before = history.read_history(tmp_path / "hist")
+    march = pl.col("period") == "2025-03"
+    r = runner.invoke(app, ["breakdown", str(toml), "--out", str(tmp_path / "part"), "--from",
+                            "2025-03-20", "--confidence", "0.9"])
+    assert r.exit_code == 0, r.output
+    notes = [line for line in r.stdout.splitlines() if line.startswith("Note: 2025-")]
+    assert notes == [("Note: 2025-03 not stored in the history: --from 2025-03-20 is after its "
+                      "first day, so this run has only part of the month (data on 12 days "
+                      "(2025-03-20 to 2025-03-31)); a month is stored only from a run whose "
+                      "range holds all of it, and any stored run of it is kept")]
+    # With --json the note goes to stderr, so stdout stays one JSON document; --quiet: none.
+    r = runner.invoke(app, ["breakdown", str(toml), "--out", str(tmp_path / "part_json"),
+                            "--from", "2025-03-20", "--confidence", "0.9", "--json"])
+    assert r.exit_code == 0, r.output
+    assert json.loads(r.stdout)["first_period"] == "2025-03"
+    assert r.stderr.splitlines() == notes
+    r = runner.invoke(app, ["breakdown", str(toml), "--out", str(tmp_path / "part_quiet"),
+                            "--from", "2025-03-20", "--confidence", "0.9", "--quiet"])
+    assert r.exit_code == 0 and r.stdout == "" and r.stderr == ""
+    after = history.read_history(tmp_path / "hist")
+    assert_frame_equal(after.filter(march), before.filter(march), check_exact=True)
+    # The whole March is what is stored: its kWh are the meter file's.
+    metered = meter_months(toml).filter(march)["kwh"][0]
+    assert after.filter(march)["kwh"].sum() == pytest.approx(metered, rel=1e-9)
+    part = pl.read_csv(tmp_path / "part" / "breakdown.csv").filter(march)["kwh"].sum()
+    assert part < 0.5 * metered  # the part-month run really differs
+    # April lies wholly inside --from 2025-03-20..(no end) and is short only because the
+    # data end: it is stored, from the new run (90 % intervals).
+    april = after.filter(~march)
+    assert_frame_equal(_stored_part(april).with_columns(pl.col("flags").fill_null("")),
+                       _csv_part(tmp_path / "part" / "breakdown.csv")
+                       .filter(pl.col("period") == "2025-04"), rel_tol=1e-6, abs_tol=1e-5)
+    # --to cuts April short: in the library, the months left and why.
+    result = breakdown_site(toml, None, dt.date(2025, 4, 10))
+    stored = history.store_breakdown(tmp_path / "hist", result, None, dt.date(2025, 4, 10))
+    assert [p.parent.name for p in stored.files] == ["period=2025-03"]
+    assert stored.notes == [("2025-04 not stored in the history: --to 2025-04-10 is before its "
+                             "last day, so this run has only part of the month (data on 10 days "
+                             "(2025-04-01 to 2025-04-10)); a month is stored only from a run "
+                             "whose range holds all of it, and any stored run of it is kept")]
+    assert_frame_equal(history.read_history(tmp_path / "hist").filter(~march), april,
+                       check_exact=True)
+
+
+def test_data_holding_less_of_a_stored_month_do_not_replace_it(tmp_path):
+    toml = _full_march_site(tmp_path)
+    _breakdown(toml, tmp_path / "full")
+    before = history.read_history(tmp_path / "hist")
+    # The next export of the same site (same file name, same history folder) starts on
+    # March 30 and has no --from: its March is short because its data start there.
+    later = write_site_files(tmp_path / "later", "plant", 34, start=dt.date(2025, 3, 30),
+                             days=20, history=str(tmp_path / "hist"))
+    r = runner.invoke(app, ["breakdown", str(later), "--out", str(tmp_path / "later_out")])
+    assert r.exit_code == 0, r.output
+    march_dir = tmp_path / "hist" / "kind=breakdown" / "site=plant" / "period=2025-03"
+    notes = [line for line in r.stdout.splitlines() if line.startswith("Note: 2025-")]
+    assert notes == [("Note: 2025-03 not stored in the history: the stored run of this month "
+                      "has data on 31 days (2025-03-01 to 2025-03-31), this run only on 2 days "
+                      f"(2025-03-30 to 2025-03-31); the stored month is kept (delete "
+                      f"{march_dir} to replace it)")]
+    after = history.read_history(tmp_path / "hist")
+    march = pl.col("period") == "2025-03"
+    assert_frame_equal(after.filter(march), before.filter(march), check_exact=True)
+    # April: 18 days now against 14 stored: replaced by the new run.
+    assert after.filter(~march)["days_with_data"].unique().to_list() == [18]
+
+
+def test_an_unwritable_history_folder_fails_before_any_output(tmp_path):
+    (tmp_path / "blocker").write_text("a file where the history folder's parent should be")
+    toml = write_site_files(tmp_path, "plant", 31, days=10, history="blocker/hist")
+    for command in ("breakdown", "drift"):
+        out = tmp_path / f"out_{command}"
+        r = runner.invoke(app, [command, str(toml), "--out", str(out)])
+        assert r.exit_code == 1
+        assert r.stderr.splitlines() == [(f"Error: {tmp_path / 'blocker' / 'hist'}: cannot "
+                                         "create the history folder (Not a directory)")]
+        assert r.stdout == ""
+        assert not out.exists()
+
+
+def test_a_history_failing_after_the_outputs_says_they_were_written(tmp_path, monkeypatch):
+    toml = _site(tmp_path)
+
+    def full_disk(frame, path):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(history, "_write_part", full_disk)
+    for command, written in (("breakdown", "breakdown.csv"), ("drift", "drift.csv")):
+        out = tmp_path / f"out_{command}"
+        r = runner.invoke(app, [command, str(toml), "--out", str(out)])
+        assert r.exit_code == 1
+        assert r.stderr.splitlines() == [(f"Error: {tmp_path / 'hist'}: cannot write the history "
+                                         "(No space left on device); the outputs were written "
+                                         f"in {out} but the history was not updated")]
+        assert (out / written).exists()
+    assert not list((tmp_path / "hist").rglob("*.parquet"))
 
 
 def test_a_run_interrupted_while_writing_leaves_the_history_unchanged(tmp_path, monkeypatch):
@@ -181,6 +308,7 @@ def test_history_prints_each_equipment_month_by_month(stored):
         assert fields[1] == f"{row['kwh']:,.0f}"
         assert fields[2] == f"{row['kwh_low']:,.0f}-{row['kwh_high']:,.0f}"
         assert fields[3] == f"{row['kw']:,.1f}"
+        assert fields[6] == {"2025-03": "15", "2025-04": "13"}[row["period"]]  # days with data
     assert lines[-1].startswith("Caution: Estimates are not measurements.")
 
 
@@ -205,6 +333,12 @@ def test_history_errors_are_one_line(stored, tmp_path):
     known = history.read_history(root / "hist")["equipment"].unique(maintain_order=True)
     assert r.stderr.splitlines() == [(f"Error: --equipment 'XX-9': no stored rows of it; "
                                      f"stored: {', '.join(known)}")]
+    folder = tmp_path / "a_folder"
+    folder.mkdir()
+    r = runner.invoke(app, ["history", str(toml), "--out", str(folder)])
+    assert r.exit_code == 1
+    assert r.stderr.splitlines() == [(f"Error: --out {folder}: {folder} is a folder; give a CSV "
+                                     f"file name such as {folder / 'history.csv'}")]
     bare = tmp_path / "bare.toml"
     bare.write_text(toml.read_text().replace('[history]\nfolder = "hist"\n', ""))
     r = runner.invoke(app, ["history", str(bare)])
