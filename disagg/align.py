@@ -58,8 +58,13 @@ def overlap_hours(seg: Segments, start_ns: np.ndarray, end_ns: np.ndarray,
     Returns:
         (run_h, unknown_h), each shape (n,) [h].
     """
-    v1, c1 = _cumulative(seg, end_ns, exponent)
-    v0, c0 = _cumulative(seg, start_ns, exponent)
+    if len(start_ns) > 1 and np.array_equal(start_ns[1:], end_ns[:-1]):
+        # Back-to-back intervals (the usual meter): each edge is evaluated once.
+        v, c = _cumulative(seg, np.concatenate([start_ns, end_ns[-1:]]), exponent)
+        v0, v1, c0, c1 = v[:-1], v[1:], c[:-1], c[1:]
+    else:
+        v1, c1 = _cumulative(seg, end_ns, exponent)
+        v0, c0 = _cumulative(seg, start_ns, exponent)
     length_h = (end_ns - start_ns) / NS_PER_H
     return v1 - v0, np.maximum(length_h - (c1 - c0), 0.0)
 
@@ -93,7 +98,7 @@ def spell_segments(spells: tuple[Spell, ...], tz: str, first_ns: int, last_ns: i
     a repeated hour takes the first occurrence.
     """
     zone = zoneinfo.ZoneInfo(tz)
-    utc = dt.timezone.utc
+    utc = dt.UTC
     d0 = dt.datetime.fromtimestamp(first_ns / 1e9, utc).astimezone(zone).date() - dt.timedelta(days=1)
     d1 = dt.datetime.fromtimestamp(last_ns / 1e9, utc).astimezone(zone).date() + dt.timedelta(days=1)
     edges: list[tuple[int, int]] = []
@@ -123,7 +128,7 @@ def _local_to_ns(day: dt.date, minute: int, zone: zoneinfo.ZoneInfo) -> int:
     # A skipped local time does not survive the round trip through UTC. The first valid time
     # after it is the moment of the clock change; changes fall on whole minutes.
     probe = naive
-    while local.astimezone(dt.timezone.utc).astimezone(zone).replace(tzinfo=None) != probe:
+    while local.astimezone(dt.UTC).astimezone(zone).replace(tzinfo=None) != probe:
         probe += dt.timedelta(minutes=1)
         local = probe.replace(tzinfo=zone, fold=0)
     return int(local.timestamp() * 1_000_000) * 1000
@@ -134,7 +139,8 @@ BASELOAD_COLUMN_COUNT = {"constant": 1, "occupied": 2, "hour-of-week": 168}
 
 
 def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
-                     start_ns: np.ndarray, end_ns: np.ndarray) -> tuple[np.ndarray, list[str]]:
+                     start_ns: np.ndarray, end_ns: np.ndarray,
+                     how: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
     """Design columns for the baseload profile [h]: the baseload kW multiply these.
 
     constant: the interval length. occupied: occupied and unoccupied hours of the interval
@@ -149,14 +155,20 @@ def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
         seg = spell_segments(base.spells, tz, int(start_ns.min()), int(end_ns.max()), base.closed)
         occ, _ = overlap_hours(seg, start_ns, end_ns)
         return np.column_stack([occ, length_h - occ]), ["baseload_occupied_kw", "baseload_unoccupied_kw"]
-    local = start_utc.dt.convert_time_zone(tz)
-    # weekday() and hour() are Int8: widen before the arithmetic, or Sat 08:00 (128) wraps.
-    how = ((local.dt.weekday().cast(pl.Int64) - 1) * 24
-           + local.dt.hour().cast(pl.Int64)).to_numpy()
+    if how is None:
+        how = hour_of_week(start_utc, tz)
     cols = np.zeros((len(length_h), 168))
     cols[np.arange(len(length_h)), how] = length_h
     names = [f"baseload_how{h:03d}_kw" for h in range(168)]
     return cols, names
+
+
+def hour_of_week(start_utc: pl.Series, tz: str) -> np.ndarray:
+    """Hour of the week of each local start time, Mon 00:00-00:59 = 0 ... Sun 23:00 = 167."""
+    local = start_utc.dt.convert_time_zone(tz)
+    # weekday() and hour() are Int8: widen before the arithmetic, or Sat 08:00 (128) wraps.
+    return ((local.dt.weekday().cast(pl.Int64) - 1) * 24
+            + local.dt.hour().cast(pl.Int64)).to_numpy()
 
 
 @dataclass
@@ -177,6 +189,57 @@ class Aligned:
     unknown_by_equipment: dict[str, int] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     temp_c: np.ndarray | None = None  # (n,) outdoor temperature [degC], NaN where unknown
+    # Per-interval arrays of the whole frame that every fit needs (frame_arrays,
+    # frame_baseload), computed once: copies made with dataclasses.replace (another `use`,
+    # for a month or a reference period) share it.
+    cache: dict = field(default_factory=dict, repr=False, compare=False)
+
+
+def frame_arrays(aligned: Aligned, tz: str) -> dict[str, np.ndarray]:
+    """Arrays over every interval of aligned.frame, computed once per frame and time zone.
+
+    start_ns, end_ns: interval edges [ns since epoch, UTC]; length_h: interval length [h];
+    local_date: local calendar date of the start (days since 1970-01-01); hour_of_week: see
+    hour_of_week(); month: local year x 100 + month of the start.
+    """
+    key = ("arrays", tz)
+    hit = aligned.cache.get(key)
+    if hit is not None and hit[0] is aligned.frame:
+        return hit[1]
+    f = aligned.frame
+    local = f["start_utc"].dt.convert_time_zone(tz)
+    start_ns = f["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+    end_ns = f["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+    arrays = {
+        "start_ns": start_ns, "end_ns": end_ns, "length_h": (end_ns - start_ns) / NS_PER_H,
+        "local_date": local.dt.date().cast(pl.Int32).to_numpy(),
+        "hour_of_week": ((local.dt.weekday().cast(pl.Int64) - 1) * 24
+                         + local.dt.hour().cast(pl.Int64)).to_numpy(),
+        "month": (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy(),
+    }
+    for v in arrays.values():
+        v.flags.writeable = False  # shared by every fit of this frame
+    aligned.cache[key] = (f, arrays)
+    return arrays
+
+
+def frame_baseload(aligned: Aligned, base: BaseloadSettings,
+                   tz: str) -> tuple[np.ndarray, list[str]]:
+    """baseload_columns over every interval of aligned.frame, computed once per frame, time
+    zone and settings (constant and occupied profiles; hour-of-week is built each time from
+    frame_arrays' codes, its 168 columns being too large to keep)."""
+    a = frame_arrays(aligned, tz)
+    if base.profile == "hour-of-week":
+        return baseload_columns(base, tz, aligned.frame["start_utc"], a["start_ns"], a["end_ns"],
+                                how=a["hour_of_week"])
+    key = ("baseload", base, tz)
+    hit = aligned.cache.get(key)
+    if hit is not None and hit[0] is aligned.frame:
+        return hit[1]
+    out = baseload_columns(base, tz, aligned.frame["start_utc"], a["start_ns"], a["end_ns"])
+    out[0].flags.writeable = False  # shared by every fit of this frame
+    aligned.cache[key] = (aligned.frame, out)
+    return out
 
 
 def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
@@ -220,7 +283,7 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
     span_h = float((end_ns.max() - start_ns.min()) / NS_PER_H) if frame.height else 0.0
     counts = {
         "intervals": frame.height,
-        "absent": max(int(round(span_h * 60 / meter.interval_min)) - frame.height, 0),
+        "absent": max(round(span_h * 60 / meter.interval_min) - frame.height, 0),
         "used": int(use.sum()),
         "no_reading": int((~reading).sum()),
         "log_unknown": int((reading & ~known).sum()),

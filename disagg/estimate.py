@@ -14,11 +14,24 @@ from dataclasses import dataclass, field
 import numpy as np
 import polars as pl
 
-from disagg.align import Aligned, baseload_columns
+from disagg.align import (
+    NS_PER_H,
+    Aligned,
+    baseload_columns,
+    frame_arrays,
+    frame_baseload,
+)
 from disagg.config import BaseloadSettings, SiteConfig
-from scipy.special import chdtri
-
-from disagg.model import Fit, collinearity, fit_model, fit_quality, jackknife_cov, quantile
+from disagg.model import (
+    Fit,
+    Indicators,
+    chi2_upper_quantile,
+    collinearity,
+    fit_model,
+    fit_quality,
+    jackknife_cov,
+    quantile,
+)
 
 # Two equipment hour series correlated at or above this cannot be told apart; the same
 # bound on R^2 against the baseload columns, and on R^2 against everything (VIF >= 20).
@@ -39,6 +52,9 @@ MIN_ROWS_PER_COLUMN = 10
 # Differences in kW smaller than this fraction of the draw (or of 1 kW) are rounding, not a
 # change: they neither widen an interval nor flag it.
 NUMERICAL_TOL = 1e-6
+# Designs with more rows than this (a year of 1-minute data) are not copied for the
+# collinearity diagnostics: collinearity() reads them a chunk of rows at a time.
+LONG_DESIGN_ROWS = 65536
 MORE_FLEXIBLE = {"constant": ("occupied", "hour-of-week"), "occupied": ("hour-of-week",),
                  "hour-of-week": ()}
 
@@ -129,7 +145,9 @@ def inseparable(H: np.ndarray, B: np.ndarray) -> dict:
     if not active:
         return {"active": [], "corr": np.zeros((0, 0)), "r2_base": {}, "vif": {}, "pairs": [],
                 "with_baseload": []}
-    d = collinearity(H[:, active], B)
+    # A long design with every load active is used as it is (no copy of 1-minute data).
+    long = len(H) > LONG_DESIGN_ROWS and len(active) == H.shape[1]
+    d = collinearity(H if long else H[:, active], B)
     pairs = [(active[a], active[b], float(d["corr"][a, b]))
              for a in range(len(active)) for b in range(a + 1, len(active))
              if abs(d["corr"][a, b]) >= INSEPARABLE_R]
@@ -176,10 +194,10 @@ def weather_columns(H: np.ndarray, temp_c: np.ndarray | None,
     return np.column_stack([H[:, c] * degrees(temp_c, mode, bal) for c, (mode, bal) in specs.items()])
 
 
-def _local_days(frame: pl.DataFrame, tz: str) -> np.ndarray:
-    """Consecutive integer label of each row's local calendar day."""
-    d = frame["start_utc"].dt.convert_time_zone(tz).dt.date()
-    return d.rank("dense").to_numpy().astype(np.int64)
+def _local_days(local_date: np.ndarray) -> np.ndarray:
+    """Consecutive integer label (1, 2, ...) of each row's local calendar day (as days since
+    1970-01-01)."""
+    return np.unique(local_date, return_inverse=True)[1].reshape(-1).astype(np.int64) + 1
 
 
 def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95) -> Estimates:
@@ -189,32 +207,49 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         ValueError: too few usable intervals to fit.
     """
     use = aligned.use
+    tz = site.timezone
     frame = aligned.frame.filter(pl.Series(use))
     n = frame.height
-    H_all = aligned.hours[use]
+    H_all = aligned.hours if use.all() else aligned.hours[use]  # read only: no copy needed
     eq_by_id = {e.id: e for e in site.equipment}
     ids = aligned.equipment_ids
     y = frame["energy_kwh"].to_numpy().astype(float)
-    start_ns = frame["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
-    end_ns = frame["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+    # Whole-frame arrays are computed once (align.frame_arrays); a month's fit takes its rows.
+    everything = bool(use.all())
+    arrays = {k: v if everything else v[use] for k, v in frame_arrays(aligned, tz).items()}
+    start_ns, end_ns = arrays["start_ns"], arrays["end_ns"]
+
+    def base_cols(settings: BaseloadSettings) -> tuple[np.ndarray, list[str]]:
+        if settings.profile == "hour-of-week":
+            return baseload_columns(settings, tz, frame["start_utc"], start_ns, end_ns,
+                                    how=arrays["hour_of_week"])
+        cols, names = frame_baseload(aligned, settings, tz)
+        return (cols if everything else cols[use]), names
+
+    def closure_column() -> np.ndarray:
+        """A variant must nest the declared profile: it gets the declared closures too, as
+        the spell hours that the closure calendar removes."""
+        full, _ = base_cols(BaseloadSettings("occupied", site.baseload.spells))
+        shut, _ = base_cols(site.baseload)
+        return full[:, 0] - shut[:, 0]
 
     def base_for(profile: str) -> tuple[np.ndarray, list[str]]:
         if profile == site.baseload.profile:
-            return baseload_columns(site.baseload, site.timezone, frame["start_utc"],
-                                    start_ns, end_ns)
-        cols, names = baseload_columns(BaseloadSettings(profile, site.baseload.spells,
-                                                        site.baseload.spell_text),
-                                       site.timezone, frame["start_utc"], start_ns, end_ns)
+            return base_cols(site.baseload)
+        cols, names = base_cols(BaseloadSettings(profile, site.baseload.spells,
+                                                 site.baseload.spell_text))
         if site.baseload.closed and site.baseload.spells:
-            # A variant must nest the declared profile: give it the declared closures too,
-            # as the spell hours that the closure calendar removes.
-            full, _ = baseload_columns(BaseloadSettings("occupied", site.baseload.spells),
-                                       site.timezone, frame["start_utc"], start_ns, end_ns)
-            shut, _ = baseload_columns(site.baseload, site.timezone, frame["start_utc"],
-                                       start_ns, end_ns)
-            cols = np.column_stack([cols, full[:, 0] - shut[:, 0]])
+            cols = np.column_stack([cols, closure_column()])
             names = names + ["baseload_closed_kw"]
         return cols, names
+
+    def how_columns() -> tuple[np.ndarray, Indicators]:
+        """The hour-of-week variant's baseload: dense closure column (when closures are
+        declared; see base_for) and the 168 hour-of-week columns by row."""
+        ind = Indicators(arrays["hour_of_week"], (end_ns - start_ns) / NS_PER_H, 168)
+        if site.baseload.closed and site.baseload.spells:
+            return closure_column()[:, None], ind
+        return np.zeros((n, 0)), ind
 
     B, base_names = base_for(site.baseload.profile)
     if n < len(ids) + B.shape[1] + 2:
@@ -306,14 +341,20 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     for c, t in enumerate(fitted_terms):
         t.column = c
     k = len(fitted_terms)
-    Hf = np.column_stack(columns) if columns else np.zeros((n, 0))
     temp = aligned.temp_c[use] if aligned.temp_c is not None else None
     wspecs = weather_specs(site, [t.members for t in fitted_terms])
-    Wf = weather_columns(Hf, temp, wspecs)
-    # The equipment part of every design: each term's hours, then each weather term's
-    # hours x degrees beyond its balance temperature (slope columns, ASHRAE change-point form).
-    Hx = np.column_stack([Hf, Wf])
-    kx = Hx.shape[1]
+    # The design, built once: each term's hours (Hf), then each weather term's hours x
+    # degrees beyond its balance temperature (Wf: slope columns, ASHRAE change-point form),
+    # together the equipment part of every design (Hx), then the baseload columns. Hf, Wf
+    # and Hx are views of it (a site-year of 1-minute data: ~200 MB per copy saved).
+    kx = k + len(wspecs)
+    X = np.empty((n, kx + B.shape[1]))
+    for c in range(k):
+        X[:, c] = columns[c]
+    del columns, H_all
+    X[:, k:kx] = weather_columns(X[:, :k], temp, wspecs)
+    X[:, kx:] = B
+    Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
 
     # --- fit ----------------------------------------------------------------------------
     def priors(m: int) -> tuple[np.ndarray, np.ndarray]:
@@ -323,10 +364,9 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                        for t in fitted_terms] + [weak_sd] * (len(wspecs) + m))
         return mean, sd
 
-    X = np.column_stack([Hx, B])
     p_mean, p_sd = priors(B.shape[1])
     lower = np.zeros(X.shape[1])
-    days = _local_days(frame, site.timezone)
+    days = _local_days(arrays["local_date"])
     fit = fit_model(X, y, p_mean, p_sd, lower, block=days)
     coef = fit.coef
     se_hac = fit.se
@@ -351,7 +391,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     half_hac = q_hac * se_hac
     # Widen to the jackknife only where it is significantly larger than the HAC standard
     # error: (se_J / se_HAC)^2 against the chi-square(K-1)/(K-1) upper quantile.
-    ratio_bound = chdtri(df_jack, 1.0 - confidence) / df_jack
+    ratio_bound = chi2_upper_quantile(df_jack, 1.0 - confidence) / df_jack
     with np.errstate(invalid="ignore", divide="ignore"):
         use_jack = ((np.nan_to_num(np.square(se_jack / se_hac), nan=0.0) > ratio_bound)
                     & (np.nan_to_num(se_jack) > NUMERICAL_TOL * np.maximum(np.abs(coef), 1.0)))
@@ -379,25 +419,34 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     for profile in MORE_FLEXIBLE[site.baseload.profile]:
         if profile == "occupied" and not site.baseload.spells:
             continue
-        Bv, _ = base_for(profile)
-        if n < MIN_ROWS_PER_COLUMN * (kx + Bv.shape[1]):
+        ind = None
+        if profile == "hour-of-week":
+            # The 168 hour-of-week columns are stored by row (model.Indicators), the closure
+            # column (if any) stays dense; the baseload columns' order does not matter.
+            Bv, ind = how_columns()
+            m_cols = Bv.shape[1] + ind.n_levels
+        else:
+            Bv, _ = base_for(profile)
+            m_cols = Bv.shape[1]
+        if n < MIN_ROWS_PER_COLUMN * (kx + m_cols):
             variants[profile] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
-        Xv = np.column_stack([Hx, Bv])
-        mv, sv = priors(Bv.shape[1])
-        fv = fit_model(Xv, y, mv, sv, np.zeros(Xv.shape[1]), block=days)
+        Xv = np.column_stack([Hx, Bv]) if Bv.shape[1] else Hx
+        mv, sv = priors(m_cols)
+        fv = fit_model(Xv, y, mv, sv, np.zeros(kx + m_cols), block=days, indicators=ind)
+        se_v = fv.se
         entry = {}
         for t in fitted_terms:
             c = t.column
             # Near-collinearity with the variant's baseload shows in its standard error;
             # only an estimate its (weak) prior decided says nothing about the draw.
             separable = fv.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
-            entry[t.id] = {"kw": float(fv.coef[c]), "se_kw": float(fv.se[c]),
+            entry[t.id] = {"kw": float(fv.coef[c]), "se_kw": float(se_v[c]),
                            "prior_weight": float(fv.prior_weight[c]),
                            "separable": bool(separable)}
             if separable:
-                widen_with(c, float(fv.coef[c]), float(fv.se[c]), profile)
+                widen_with(c, float(fv.coef[c]), float(se_v[c]), profile)
         variants[profile] = entry
     # By-day variant: the baseload's level may change from one local day to the next
     # (closures, holidays, events) in ways no weekly profile knows. Profile out a separate
@@ -417,23 +466,25 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         md, sdd = priors(rest.shape[1])
         fd = fit_model(Xd, yd, md, sdd,
                        np.concatenate([np.zeros(kx), np.full(rest.shape[1], -np.inf)]), block=days)
+        se_d = fd.se
         entry = {}
         for t in fitted_terms:
             c = t.column
             tss = float(np.sum((Hf[:, c] - Hf[:, c].mean()) ** 2))
             r2_day = 1.0 - float(np.sum(Xd[:, c] ** 2)) / tss if tss > 0 else 1.0
             separable = fd.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
-            entry[t.id] = {"kw": float(fd.coef[c]), "se_kw": float(fd.se[c]),
+            entry[t.id] = {"kw": float(fd.coef[c]), "se_kw": float(se_d[c]),
                            "prior_weight": float(fd.prior_weight[c]),
                            "separable": bool(separable), "r2_with_daily_baseload": r2_day}
             if separable:
-                widen_with(c, float(fd.coef[c]), float(fd.se[c]), "daily baseload levels")
+                widen_with(c, float(fd.coef[c]), float(se_d[c]), "daily baseload levels")
             else:
                 t.flags.append("schedule-bound")
                 warnings.append(f"{t.id} runs on the same days and hours as the baseload "
                                 "schedule: its draw holds only if the baseload follows its "
                                 "declared schedule on every day")
         variants[f"{site.baseload.profile}-by-day"] = entry
+        del Xd, yd  # free the projected design before the results are built
     low = np.maximum(low, 0.0)
     width_hac = (coef + half_hac) - np.maximum(coef - half_hac, 0.0)
 
@@ -507,20 +558,18 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     fitted = X @ coef
 
     quality = {"interval": fit_quality(y, fitted, X.shape[1])}
-    hourly = (frame.select("start_utc").with_columns(y=pl.Series(y), f=pl.Series(fitted),
-                                                     h=pl.Series(interval_h))
-              .group_by(pl.col("start_utc").dt.truncate("1h"), maintain_order=True).agg(
-                  pl.col("y").sum(), pl.col("f").sum(), pl.col("h").sum()))
-    hourly = hourly.filter((pl.col("h") - 1.0).abs() < 1e-9)
-    if hourly.height > X.shape[1] + 1:
-        quality["hourly"] = fit_quality(hourly["y"].to_numpy(), hourly["f"].to_numpy(), X.shape[1])
-    monthly = (frame.select("start_utc").with_columns(y=pl.Series(y), f=pl.Series(fitted))
-               .group_by(pl.col("start_utc").dt.convert_time_zone(site.timezone)
-                         .dt.strftime("%Y-%m").alias("m"), maintain_order=True)
-               .agg(pl.col("y").sum(), pl.col("f").sum()))
-    quality["monthly"] = {"months": monthly.height,
-                          "nmbe_pct": float(100 * (monthly["y"].sum() - monthly["f"].sum())
-                                            / monthly["y"].sum()) if monthly["y"].sum() else float("nan")}
+    # Fit quality by clock hour (UTC hours: whole hours of every zone with whole-hour
+    # offsets) and by local month.
+    _, hour = np.unique(start_ns // NS_PER_H, return_inverse=True)
+    hour = hour.reshape(-1)
+    whole = np.abs(np.bincount(hour, weights=interval_h) - 1.0) < 1e-9
+    if whole.sum() > X.shape[1] + 1:
+        quality["hourly"] = fit_quality(np.bincount(hour, weights=y)[whole],
+                                        np.bincount(hour, weights=fitted)[whole], X.shape[1])
+    y_sum = float(np.sum(y))
+    quality["monthly"] = {"months": len(np.unique(arrays["month"])),
+                          "nmbe_pct": float(100 * (y_sum - float(np.sum(fitted))) / y_sum)
+                          if y_sum else float("nan")}
 
     ident = {
         "correlation_bound": INSEPARABLE_R,
@@ -547,16 +596,45 @@ def _project_out_days(V: np.ndarray, C: np.ndarray, days: np.ndarray) -> np.ndar
     """Residuals of V's columns after least squares on C's columns separately within each day.
 
     Args:
-        V: (n, q) columns to residualize; C: (n, c) per-day nuisance columns; days: (n,)
-        non-decreasing day labels.
+        V: (n, q) columns to residualize, overwritten with the residuals (and returned);
+        C: (n, c) per-day nuisance columns; days: (n,) non-decreasing day labels.
+
+    Each day's C columns are orthonormalised by Gram-Schmidt (twice, for orthogonality to
+    working precision), all days at once; a column that adds no direction within a day (all
+    zero, or a multiple of the earlier ones: norm left at most c_rows x machine epsilon x the
+    day's largest column norm, as the SVD least-squares rank rule) is skipped for that day.
+    The projection on them is then subtracted from V, a few weeks of rows at a time.
     """
-    out = np.empty_like(V)
-    edges = np.flatnonzero(np.diff(days)) + 1
-    for rows in np.split(np.arange(len(days)), edges):
-        c = C[rows]
-        coef = np.linalg.lstsq(c, V[rows], rcond=None)[0]
-        out[rows] = V[rows] - c @ coef
-    return out
+    n = len(days)
+    starts = np.flatnonzero(np.concatenate([[True], np.diff(days) != 0]))
+    bounds = np.append(starts, n)
+    chunk_days = max(1, _PROJECT_CHUNK_ROWS * len(starts) // max(n, 1))
+    for d0 in range(0, len(starts), chunk_days):
+        d1 = min(d0 + chunk_days, len(starts))
+        rows = slice(bounds[d0], bounds[d1])
+        local = bounds[d0:d1] - bounds[d0]  # first row of each day in the chunk
+        sizes = np.diff(np.append(local, bounds[d1] - bounds[d0]))
+        day_of = np.repeat(np.arange(d1 - d0), sizes)
+        Cc = C[rows]
+        tol = (np.finfo(float).eps * np.maximum(sizes, C.shape[1])
+               * np.sqrt(np.add.reduceat(Cc * Cc, local, axis=0).max(axis=1)))
+        basis: list[np.ndarray] = []
+        for k in range(C.shape[1]):
+            r = Cc[:, k].copy()
+            for _ in range(2):
+                for q in basis:
+                    r -= q * np.add.reduceat(q * r, local)[day_of]
+            norm = np.sqrt(np.add.reduceat(r * r, local))
+            keep = norm > tol
+            basis.append(np.where(keep[day_of], r / np.where(keep, norm, 1.0)[day_of], 0.0))
+        Vc = V[rows]
+        for q in basis:
+            Vc -= q[:, None] * np.add.reduceat(q[:, None] * Vc, local, axis=0)[day_of]
+    return V
+
+
+# Rows per chunk of _project_out_days (whole days): bounds its temporary memory.
+_PROJECT_CHUNK_ROWS = 65536
 
 
 def _partner(ids: list[str], active: list[int], corr: np.ndarray, j: int) -> dict:
