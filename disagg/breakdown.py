@@ -57,7 +57,8 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     at each interval's price plus the demand price x peak_kw; null without a tariff; see
     disagg.tariff).
     """
-    month = (est.frame["start_utc"].dt.convert_time_zone(tz).dt.strftime("%Y-%m")).to_numpy()
+    local = est.frame["start_utc"].dt.convert_time_zone(tz)
+    month = (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy()
     interval_h = est.frame["interval_h"].to_numpy()
     parts = interval_parts_kwh(est)
     price = None
@@ -67,13 +68,16 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
         price = interval_prices(tariff, tz, start_ns, end_ns)
     demand_price = tariff.demand_price_per_kw if tariff is not None else 0.0
     tables: list[pl.DataFrame] = []
-    for period in sorted(set(month)):
+    for code in np.unique(month):
+        period = f"{code // 100:04d}-{code % 100:02d}"
         rows: list[dict] = []
-        m = month == period
+        m = month == code
         metered = float(est.y[m].sum())
         explained = 0.0
+        run_hs = est.hours[m].sum(axis=0)
+        deg_hs = est.weather_hours[m].sum(axis=0) if est.weather_hours is not None else None
         for i, t in enumerate(est.terms):
-            run_h = float(est.hours[m, i].sum())
+            run_h = float(run_hs[i])
             kw = float(est.kw[i])
             if t.column is None:
                 kwh = kwh_lo = kwh_hi = 0.0
@@ -82,7 +86,7 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
                 # Draw varies with outdoor temperature: energy = b0 x run_h + slope x
                 # sum(run_h x degrees beyond balance), interval from their covariance.
                 w = est.weather[i]
-                deg_h = float(est.weather_hours[m, i].sum())
+                deg_h = float(deg_hs[i])
                 a = np.array([run_h, deg_h])
                 kwh = w["kw_at_balance"] * run_h + w["slope_kw_per_degc"] * deg_h
                 half = est.critical * float(np.sqrt(max(a @ w["cov"] @ a, 0.0)))

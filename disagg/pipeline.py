@@ -16,7 +16,7 @@ import numpy as np
 import polars as pl
 
 from disagg import __version__
-from disagg.align import BASELOAD_COLUMN_COUNT, Aligned, align, baseload_columns
+from disagg.align import BASELOAD_COLUMN_COUNT, Aligned, align, baseload_columns, frame_arrays
 from disagg.breakdown import monthly_breakdown
 from disagg.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
@@ -261,20 +261,20 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
     """
     tz = site.timezone
     whole_table = monthly_breakdown(whole, tz, site.tariff)
-    local = aligned.frame["start_utc"].dt.convert_time_zone(tz)
-    month = local.dt.strftime("%Y-%m").to_numpy()
-    day = local.dt.date().to_numpy()
-    periods = sorted(set(month[aligned.use]))
+    arrays = frame_arrays(aligned, tz)
+    month_code, day = arrays["month"], arrays["local_date"]
+    codes = np.unique(month_code[aligned.use])
+    periods = [f"{c // 100:04d}-{c % 100:02d}" for c in codes]
     if len(periods) <= 1:
         report(progress, "fitting", 1, 1)
         return whole_table, {}
     combined = {t.id: t.members for t in whole.terms if len(t.members) > 1}
     tables, months = [], {}
-    for done, period in enumerate(periods):
+    for done, (code, period) in enumerate(zip(codes, periods, strict=True)):
         report(progress, "fitting", done + 1, len(periods) + 1)
-        mask = aligned.use & (month == period)
+        mask = aligned.use & (month_code == code)
         est = None
-        if len(set(day[mask])) >= MIN_MONTH_DAYS:
+        if len(np.unique(day[mask])) >= MIN_MONTH_DAYS:
             try:
                 est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
             except ValueError:
