@@ -10,9 +10,7 @@ engineer's prior, and bounds keeping every kW non-negative.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
-from statistics import NormalDist
 
 import numpy as np
 
@@ -664,129 +662,22 @@ def _pinvh(A: np.ndarray) -> np.ndarray:
 
 
 def quantile(confidence: float, df: float | None = None) -> float:
-    """Two-sided critical value: normal, or Student t with df degrees of freedom.
+    """Two-sided critical value: normal, or Student t with df degrees of freedom
+    (scipy.special ``ndtri`` and ``stdtrit``)."""
+    from scipy.special import ndtri, stdtrit
 
-    The normal quantile is Python's statistics.NormalDist (Wichura's AS 241); Student t with
-    a whole number of degrees of freedom up to _MAX_CLOSED_FORM_DF is solved by Newton's
-    method on its closed-form distribution function (tests check both against scipy).
-    Otherwise scipy.special.stdtrit.
-    """
     a = 0.5 + confidence / 2.0
     if df is None or not np.isfinite(df):
-        return NormalDist().inv_cdf(a)
-    if float(df).is_integer() and 1 <= df <= _MAX_CLOSED_FORM_DF:
-        return _t_quantile(a, int(df))
-    from scipy.special import stdtrit
-
+        return float(ndtri(a))
     return float(stdtrit(df, a))
 
 
 def chi2_upper_quantile(df: float, tail: float) -> float:
-    """x with P(X > x) = tail for X chi-square with df degrees of freedom (scipy's
-    ``chdtri(df, tail)``), by Newton's method on the closed form for whole df up to
-    _MAX_CLOSED_FORM_DF; otherwise scipy.special.chdtri."""
-    if not (float(df).is_integer() and 1 <= df <= _MAX_CLOSED_FORM_DF and 0 < tail < 1):
-        from scipy.special import chdtri
+    """x with P(X > x) = tail for X chi-square with df degrees of freedom
+    (scipy.special ``chdtri``)."""
+    from scipy.special import chdtri
 
-        return float(chdtri(df, tail))
-    nu = int(df)
-    z = NormalDist().inv_cdf(1.0 - tail)
-    a = 2.0 / (9.0 * nu)
-    x = max(nu * (1.0 - a + z * math.sqrt(a)) ** 3, 1e-3)  # Wilson-Hilferty start
-    for _ in range(200):
-        step = (_chi2_upper(x, nu) - tail) / _chi2_density(x, nu)
-        x_new = min(max(x + step, 0.5 * x), 2.0 * x)
-        if abs(x_new - x) <= 4.0 * _EPS * x:
-            return x_new
-        x = x_new
-    return x
-
-
-# Degrees of freedom up to which quantile() and chi2_upper_quantile() use the closed forms
-# below (their sums have about df / 2 terms; checked against scipy to 1e-12 up to here).
-_MAX_CLOSED_FORM_DF = 1000
-_EPS = float(np.finfo(float).eps)
-
-
-def _t_central(t: float, nu: int) -> float:
-    """P(|T| <= t), t >= 0, for Student t with a whole number nu of degrees of freedom.
-
-    References:
-        Abramowitz, M. & Stegun, I. A. (1964). Handbook of Mathematical Functions, 26.7.3
-        (odd nu) and 26.7.4 (even nu); from memory.
-    """
-    theta = math.atan(t / math.sqrt(nu))
-    s, c = math.sin(theta), math.cos(theta)
-    c2 = c * c
-    if nu % 2:
-        if nu == 1:
-            return 2.0 * theta / math.pi
-        term = total = c
-        for k in range(1, (nu - 3) // 2 + 1):
-            term *= c2 * (2 * k) / (2 * k + 1)
-            total += term
-        return 2.0 / math.pi * (theta + s * total)
-    term = total = 1.0
-    for k in range(1, (nu - 2) // 2 + 1):
-        term *= c2 * (2 * k - 1) / (2 * k)
-        total += term
-    return s * total
-
-
-def _t_density(t: float, nu: int) -> float:
-    return math.exp(math.lgamma((nu + 1) / 2) - math.lgamma(nu / 2)
-                    - 0.5 * math.log(nu * math.pi) - (nu + 1) / 2 * math.log1p(t * t / nu))
-
-
-def _t_quantile(p: float, nu: int) -> float:
-    """t with P(T <= t) = p for Student t with nu (whole, >= 1) degrees of freedom."""
-    if p < 0.5:
-        return -_t_quantile(1.0 - p, nu)
-    central = 2.0 * p - 1.0
-    if nu == 1:
-        return math.tan(math.pi * central / 2.0)
-    if nu == 2:
-        return central * math.sqrt(2.0 / (1.0 - central * central))
-    z = NormalDist().inv_cdf(p)
-    # Cornish-Fisher start (Abramowitz & Stegun 26.7.5, from memory), then Newton.
-    t = z + (z**3 + z) / (4 * nu) + (5 * z**5 + 16 * z**3 + 3 * z) / (96 * nu * nu)
-    for _ in range(100):
-        if t <= 0.0:
-            return 0.0
-        t_new = max(t - (_t_central(t, nu) - central) / (2.0 * _t_density(t, nu)), 0.5 * t)
-        if abs(t_new - t) <= 4.0 * _EPS * t:
-            return t_new
-        t = t_new
-    return t
-
-
-def _chi2_upper(x: float, nu: int) -> float:
-    """P(X > x) for chi-square X with a whole number nu of degrees of freedom.
-
-    References:
-        Abramowitz & Stegun (1964), 26.4.4 (odd nu) and 26.4.5 (even nu); from memory.
-    """
-    if nu % 2 == 0:
-        h = x / 2.0
-        term = total = 1.0
-        for k in range(1, nu // 2):
-            term *= h / k
-            total += term
-        return math.exp(-h) * total
-    chi = math.sqrt(x)
-    tail = math.erfc(chi / math.sqrt(2.0))
-    if nu == 1:
-        return tail
-    term = total = chi
-    for r in range(2, (nu - 1) // 2 + 1):
-        term *= x / (2 * r - 1)
-        total += term
-    return tail + 2.0 * math.exp(-x / 2.0) / math.sqrt(2.0 * math.pi) * total
-
-
-def _chi2_density(x: float, nu: int) -> float:
-    return math.exp((nu / 2 - 1) * math.log(x) - x / 2 - (nu / 2) * math.log(2.0)
-                    - math.lgamma(nu / 2))
+    return float(chdtri(df, tail))
 
 
 def jackknife_cov(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray, penalty: np.ndarray,
