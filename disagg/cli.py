@@ -272,11 +272,20 @@ def compare(
                                               "rising or falling, a fraction of the earlier "
                                               "draw.")] = 0.05,
     log_offset: OffsetOpt = 0.0,
+    from_history: Annotated[bool, typer.Option("--from-history", help="Take the periods' "
+                                               "draws from the stored months of the site's "
+                                               "[history] (--before/--after as months such "
+                                               "as 2024-06:2024-08) instead of refitting; "
+                                               "writes compare.csv only.")] = False,
 ) -> None:
     """Each equipment's draw in two periods and whether it rose, fell or held; writes
     compare.csv and compare.json."""
     from disagg.compare import compare_site, compare_summary, write_compare
     from disagg.config import parse_period
+
+    if from_history:
+        _guard(lambda: _compare_from_history(site, before, after, out, min_change))
+        return
 
     def run():
         periods = parse_period(before, "--before"), parse_period(after, "--after")
@@ -479,6 +488,30 @@ def report(
             typer.echo(f"Wrote {paths[0]} ({len(html.encode('utf-8')):,} bytes)")
 
     _guard(run)
+
+
+def _compare_from_history(site: Path, before: str, after: str, out: Path,
+                          min_change: float) -> None:
+    """compare --from-history: the stored months' draws, no refit (disagg.history)."""
+    from disagg import history as hist
+    from disagg.config import load_site
+    from disagg.errors import ConfigError
+    from disagg.outputs import neutralise_csv_text, write_atomically
+    from disagg.pipeline import CAUTION
+
+    cfg = load_site(site)
+    if cfg.history is None:
+        raise ConfigError(f"{cfg.path}: --from-history needs a [history] folder in the site "
+                          "file, such as [history] folder = \"history\"")
+    result = hist.compare_from_history(cfg.history, hist.site_id(cfg.path),
+                                       hist.parse_months(before, "--before"),
+                                       hist.parse_months(after, "--after"), min_change)
+    text = hist.comparison_summary(result, CAUTION)
+    paths = write_atomically(out, {"compare.csv": lambda p: neutralise_csv_text(result.table)
+                                   .write_csv(p, float_precision=6)},
+                             [cfg.path, cfg.meter.file, cfg.runlog.file])
+    typer.echo(text)
+    typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 
 
 def main() -> None:  # pragma: no cover - console entry point

@@ -427,3 +427,27 @@ def test_reading_an_empty_store_gives_no_rows_with_the_columns(tmp_path):
     frame = history.read_history(tmp_path / "nothing", kind="drift")
     assert frame.is_empty()
     assert frame.columns == ["site", "period", *history.DRIFT_SCHEMA]
+
+
+def test_compare_takes_its_periods_from_history(stored, tmp_path):
+    # The same stored months as `disagg history --before/--after`, through `disagg compare`.
+    _, toml = stored
+    r = runner.invoke(app, ["compare", str(toml), "--before", "2025-03", "--after", "2025-04",
+                            "--out", str(tmp_path / "cmp"), "--from-history"])
+    assert r.exit_code == 0, r.output
+    assert r.stdout.splitlines()[0] == ("Draws from stored months: before 2025-03 to 2025-03 "
+                                        "(1 stored), after 2025-04 to 2025-04 (1 stored)")
+    table = pl.read_csv(tmp_path / "cmp" / "compare.csv")
+    same = runner.invoke(app, ["history", str(toml), "--before", "2025-03", "--after",
+                               "2025-04", "--out", str(tmp_path / "h.csv")])
+    assert same.exit_code == 0, same.output
+    assert_frame_equal(table, pl.read_csv(tmp_path / "h.csv"))
+    assert table.filter(pl.col("equipment") == "H-1")["verdict"][0] == "rising"
+    r = runner.invoke(app, ["compare", str(toml), "--before", "2025-03-01:2025-03-31",
+                            "--after", "2025-04", "--out", str(tmp_path / "x"),
+                            "--from-history"])
+    assert r.exit_code == 1
+    assert r.stderr.splitlines() == [("Error: --before '2025-03-01:2025-03-31': expected months "
+                                      "FROM:TO such as 2025-01:2025-03, or one month such as "
+                                      "2025-06")]
+    assert not (tmp_path / "x").exists()
