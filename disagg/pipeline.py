@@ -71,16 +71,23 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
 
 def load_validated(site_path: str | Path, date_from: dt.date | None = None,
                    date_to: dt.date | None = None, log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error") -> tuple[SiteConfig, Aligned, list[Finding]]:
-    """load_inputs, and the meter validation's findings as well."""
+                   on_duplicate: str = "error",
+                   progress: Progress | None = None) -> tuple[SiteConfig, Aligned, list[Finding]]:
+    """load_inputs, and the meter validation's findings as well. progress: called as
+    progress("reading", done, 4) after the meter, the run log, the weather and the alignment."""
     site = load_site(site_path)
     if date_from and date_to and date_to < date_from:
         raise ConfigError(f"--to {date_to} is before --from {date_from}")
     check_log_offset(log_offset_min)
+    report(progress, "reading", 0, 4)
     meter = read_meter(site.meter, site.timezone, on_duplicate=on_duplicate)
+    report(progress, "reading", 1, 4)
     runlog = read_runlog(site.runlog, site, offset_min=log_offset_min)
+    report(progress, "reading", 2, 4)
     weather = read_weather(site.weather, site.timezone) if site.weather else None
+    report(progress, "reading", 3, 4)
     aligned = align(site, meter, runlog, date_from, date_to, weather)
+    report(progress, "reading", 4, 4)
     if aligned.counts["intervals"] == 0:
         raise InputError(f"{site.meter.file}: no meter intervals between "
                          f"{date_from or 'the start'} and {date_to or 'the end'}")
@@ -110,10 +117,8 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     """
     if not 0.5 <= confidence < 1.0:
         raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
-    report(progress, "reading", 0, 1)
     site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
-                                             on_duplicate=on_duplicate)
-    report(progress, "reading", 1, 1)
+                                             on_duplicate=on_duplicate, progress=progress)
     require_usable(site, aligned)
     report(progress, "fitting", 0, 1)
     try:
