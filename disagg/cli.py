@@ -249,7 +249,7 @@ def drift(
         cfg = load_site(site)
         from disagg.history import check_configured, store_drift_configured
         check_configured(cfg)  # a bad history folder fails before any output
-        paths = write_drift(result, out, [cfg.path, cfg.meter.file, cfg.runlog.file], state)
+        paths = write_drift(result, out, cfg.input_files(), state)
         paths += store_drift_configured(cfg, result, paths)
         typer.echo(text)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
@@ -432,7 +432,7 @@ def history(
                               f"{target / 'history.csv'}")
         write_atomically(target.parent, {
             target.name: lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6)},
-            [cfg.path, cfg.meter.file, cfg.runlog.file])
+            cfg.input_files())
         typer.echo(f"Wrote {target}")
 
     _guard(run)
@@ -478,11 +478,7 @@ def report(
         finally:
             if bar is not None:
                 bar.close()
-        s = result.site
-        inputs = [s.path, s.meter.file, s.runlog.file]
-        if s.weather is not None:
-            inputs.append(s.weather.file)
-        paths = write_report(html, out, inputs)
+        paths = write_report(html, out, result.site.input_files())
         if not quiet:
             typer.echo(line)
             typer.echo(f"Wrote {paths[0]} ({len(html.encode('utf-8')):,} bytes)")
@@ -509,7 +505,7 @@ def _compare_from_history(site: Path, before: str, after: str, out: Path,
     text = hist.comparison_summary(result, CAUTION)
     paths = write_atomically(out, {"compare.csv": lambda p: neutralise_csv_text(result.table)
                                    .write_csv(p, float_precision=6)},
-                             [cfg.path, cfg.meter.file, cfg.runlog.file])
+                             cfg.input_files())
     typer.echo(text)
     typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 

@@ -346,7 +346,7 @@ def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
         "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
         "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
     }
-    return write_atomically(out_dir, files, [site.path, site.meter.file, site.runlog.file])
+    return write_atomically(out_dir, files, site.input_files())
 
 
 def _num(x: float | None, spec: str) -> str:

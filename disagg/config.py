@@ -181,6 +181,11 @@ class SiteConfig:
     def equipment_ids(self) -> list[str]:
         return [e.id for e in self.equipment]
 
+    def input_files(self) -> list[Path]:
+        """The files a run reads (the site file, meter, run log, weather): never outputs."""
+        files = [self.path, self.meter.file, self.runlog.file]
+        return files + ([self.weather.file] if self.weather is not None else [])
+
 
 class _Table:
     """A TOML table with the file and table name kept for error messages."""

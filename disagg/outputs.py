@@ -132,10 +132,7 @@ def write_breakdown(result: BreakdownResult, out_dir: Path, *, xlsx: bool = Fals
         files["breakdown.xlsx"] = lambda p: write_workbook(workbook_tables(result), p)
     if report_html is not None:
         files["report.html"] = lambda p: p.write_text(report_html, encoding="utf-8")
-    inputs = [site.path, site.meter.file, site.runlog.file]
-    if site.weather is not None:
-        inputs.append(site.weather.file)
-    return write_atomically(out_dir, files, inputs)
+    return write_atomically(out_dir, files, site.input_files())
 
 
 # Unit of each breakdown column, shown in spreadsheet headers as "name [unit]".

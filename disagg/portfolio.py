@@ -238,7 +238,7 @@ def _run_site(job: SiteJob) -> SiteOutcome:
         hist.check_folder(history)  # a bad history folder fails before any output
     files = write_breakdown(result, out)
     if drift is not None:
-        files += write_drift(drift, out, [site.path, site.meter.file, site.runlog.file])
+        files += write_drift(drift, out, site.input_files())
     if history is not None:
         with hist.outputs_already_written(files):
             stored = hist.store_breakdown(history, result, job.date_from, job.date_to)

@@ -222,3 +222,10 @@ def test_a_whole_number_setting_given_as_decimal_says_whole_number(tmp_path):
     text = SITE_HEAD.replace('unit = "kWh"', 'unit = "kWh"\ninterval_minutes = 15.0') + EQ
     msg, path = _error(tmp_path, text)
     assert msg == f"{path}: [meter] interval_minutes = 15.0: expected a whole number"
+
+
+def test_input_files_name_every_file_a_run_reads():
+    # The demo site reads its TOML, meter, run log and weather; outputs must never replace them.
+    site = load_site(Path(__file__).resolve().parents[1] / "configs" / "demo.toml")
+    assert [p.name for p in site.input_files()] == ["demo.toml", "meter.csv", "runlog.csv",
+                                                     "weather.csv"]
