@@ -6,6 +6,7 @@ Paths inside the TOML are resolved against the TOML's own folder. Every problem 
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import math
 import re
@@ -598,13 +599,16 @@ def _dates(t: _Table, key: str) -> tuple[dt.date, ...]:
     because it would never equal a calendar day and so be ignored."""
     out = []
     for i, d in enumerate(t.get(key, list, required=False, default=[])):
-        try:
-            if isinstance(d, dt.datetime | dt.time) or not isinstance(d, dt.date | str):
-                raise ValueError
-            out.append(d if isinstance(d, dt.date) else dt.date.fromisoformat(d))
-        except ValueError:
+        day = None
+        if isinstance(d, dt.date) and not isinstance(d, dt.datetime):
+            day = d
+        elif isinstance(d, str):
+            with contextlib.suppress(ValueError):
+                day = dt.date.fromisoformat(d)
+        if day is None:
             raise ConfigError(f"{t.where(key)}[{i}] = {d!r}: expected a date such as "
-                              "2025-07-04, without a time of day") from None
+                              "2025-07-04, without a time of day")
+        out.append(day)
     return tuple(out)
 
 
