@@ -18,13 +18,20 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from disagg.fit.align import Aligned, baseload_columns
-from disagg.inputs.config import SiteConfig
+from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
+from disagg.analyses.track import (
+    EWMA_L,
+    MU_MAX,
+    ewma_alarms,
+    mean_gains,
+    nlms,
+    step_from_memory,
+)
 from disagg.errors import ConfigError, InputError
+from disagg.fit.align import Aligned, baseload_columns
 from disagg.fit.estimate import degrees, estimate_draws, weather_columns, weather_specs
 from disagg.fit.solvers import quantile
-from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
-from disagg.analyses.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
+from disagg.inputs.config import SiteConfig
 
 DEFAULT_REFERENCE_DAYS = 90
 # Regularization of the normalized step: 1e-6 of the mean squared input norm, small enough

@@ -16,15 +16,21 @@ import numpy as np
 import polars as pl
 
 from disagg import __version__
-from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned, align, baseload_columns, frame_arrays
 from disagg.analyses.breakdown import monthly_breakdown
-from disagg.inputs.config import SiteConfig, load_site
 from disagg.errors import ConfigError, InputError
+from disagg.fit.align import (
+    BASELOAD_COLUMN_COUNT,
+    Aligned,
+    align,
+    baseload_columns,
+    frame_arrays,
+)
 from disagg.fit.estimate import Estimates, estimate_draws, inseparable
+from disagg.inputs.config import SiteConfig, load_site
 from disagg.inputs.logcheck import coverage_findings
-from disagg.progress import Progress, report
 from disagg.inputs.readers import read_meter, read_runlog, read_weather
 from disagg.inputs.vee import Finding
+from disagg.progress import Progress, report
 
 CAUTION = ("Estimates are not measurements. Any work on electrical equipment must follow local "
            "codes and be done by licensed, qualified people.")

@@ -23,27 +23,21 @@ from disagg.analyses.pipeline import BreakdownResult
 from disagg.present.report.charts import (
     _RC,
     _Charts,
-    _num,
     colour_map,
     e,
     equipment_order,
 )
-from disagg.present.report.sections import (
-    _caution_section,
-    _currency,
-    _drift_section,
-    _fit_section,
-    _glance,
-    _has_cost,
-    _header,
-    _local_span,
-    _metered_total,
-    _months,
-    _priors_section,
-)
 from disagg.present.report.sections import (  # noqa: F401 - re-exported
     LOCKOUT,
     UNEXPLAINED_PEAK,
+    _caution_section,
+    _drift_section,
+    _fit_section,
+    _glance,
+    _header,
+    _local_span,
+    _months,
+    _priors_section,
     from_celsius,
     interval_counts,
 )
@@ -121,20 +115,6 @@ def report_for(result: BreakdownResult, *, progress: Callable[[str, int, int], N
                              drift_note="Drift tracking was not asked for in this report.")
     tracked, note = drift_for(result, memory_days, reference)
     return render_report(result, tracked, progress=progress, drift_note=note)
-
-
-def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
-    """One line for the terminal: site, months, metered kWh, cost, drift alarms."""
-    table = result.breakdown
-    periods = sorted(table["period"].unique().to_list())
-    line = (f"{result.site.name}: {periods[0]} to {periods[-1]}, metered "
-            f"{_num(_metered_total(table))} kWh")
-    if _has_cost(table):
-        line += f", cost {_num(float(table['cost'].sum()), 2)} {_currency(result)}"
-    if drift is None:
-        return line + "; drift left out"
-    alarms = [a["equipment"] for a in drift.summary.get("alarms", [])]
-    return line + (f"; drift alarms: {', '.join(alarms)}" if alarms else "; no drift alarm")
 
 
 def render_report(result: BreakdownResult, drift: DriftResult | None = None, *,
