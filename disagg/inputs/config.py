@@ -57,6 +57,7 @@ class MeterSettings:
     interval_min: int | None  # None: inferred from the data
     register_digits: int | None = None  # kWh-register: digits of the register (rolls over)
     multiplier: float = 1.0  # kWh-register: kWh per register unit (CT/PT ratio, pulse weight)
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
 
 
 @dataclass(frozen=True)
@@ -72,6 +73,7 @@ class RunlogSettings:
     max_hold_min: float | None = None  # samples: longest a sample holds
     stamp: str = "start"  # runtime: which edge of its interval the time marks
     interval_min: int | None = None  # runtime: length of its intervals, None = inferred
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
 
 
 @dataclass(frozen=True)
@@ -131,6 +133,7 @@ class WeatherSettings:
     temp_column: str
     unit: str  # F or C, as in the file (balance and reference temperatures use it too)
     reference_temp_c: float | None  # drift and comparison are stated at this temperature
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
 
 
 def to_celsius(value: float, unit: str) -> float:
@@ -261,6 +264,20 @@ def _interval(table: _Table, key: str) -> int | None:
     return value
 
 
+DATE_ORDERS = ("ymd", "mdy", "dmy")
+
+
+def _date_order(table: _Table) -> str | None:
+    """date_order: the order of numeric dates (ymd, mdy, dmy) or a whole format string such as
+    "%m/%d/%Y %I:%M %p" (strftime codes); None lets the reader decide from the column."""
+    value = table.get("date_order", str, required=False)
+    if value is None or value in DATE_ORDERS or "%" in value:
+        return value
+    raise ConfigError(f"{table.where('date_order')} = {value!r}: expected \"ymd\" (2024-10-13), "
+                      "\"mdy\" (10/13/2024), \"dmy\" (13/10/2024) or a format string such as "
+                      "\"%m/%d/%Y %H:%M\"")
+
+
 def _is_greenbutton(table: _Table) -> bool:
     """True when the [meter] file is a Green Button (NAESB ESPI) .xml download."""
     text = table.data.get("file")
@@ -297,8 +314,8 @@ def _csv_meter(table: _Table) -> MeterSettings:
         if not register:
             raise ConfigError(f"{table.where(key)}: only used with unit = \"{REGISTER_UNIT}\"; "
                               "remove it or set that unit")
-    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"}
-               | extra)
+    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes",
+                "date_order"} | extra)
     digits, multiplier = None, 1.0
     if register:
         digits = table.get("register_digits", int, required=False)
@@ -319,6 +336,7 @@ def _csv_meter(table: _Table) -> MeterSettings:
         interval_min=_interval(table, "interval_minutes"),
         register_digits=digits,
         multiplier=multiplier,
+        date_order=_date_order(table),
     )
 
 
@@ -516,7 +534,7 @@ def load_site(path: str | Path) -> SiteConfig:
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
-    r.only({"file", "layout", "time_column"} | {
+    r.only({"file", "layout", "time_column", "date_order"} | {
         "events": {"equipment_column", "state_column"},
         "samples": {"max_hold_minutes"},
         "runtime": {"equipment_column", "minutes_column", "stamp", "interval_minutes"}}[layout])
@@ -530,6 +548,7 @@ def load_site(path: str | Path) -> SiteConfig:
         max_hold_min=r.positive("max_hold_minutes", required=True) if layout == "samples" else None,
         stamp=r.choice("stamp", STAMPS, required=False, default="start") if layout == "runtime" else "start",
         interval_min=_interval(r, "interval_minutes") if layout == "runtime" else None,
+        date_order=_date_order(r),
     )
 
     b = _Table(path, "baseload", data.get("baseload", {}))
@@ -557,12 +576,13 @@ def load_site(path: str | Path) -> SiteConfig:
     weather = None
     if "weather" in data:
         w = _Table(path, "weather", data["weather"])
-        w.only({"file", "time_column", "temp_column", "unit", "reference_temp"})
+        w.only({"file", "time_column", "temp_column", "unit", "reference_temp", "date_order"})
         unit = w.choice("unit", TEMP_UNITS)
         ref_t = w.get("reference_temp", float, required=False)
         weather = WeatherSettings(w.file("file"), w.get("time_column", str),
                                   w.get("temp_column", str), unit,
-                                  None if ref_t is None else to_celsius(ref_t, unit))
+                                  None if ref_t is None else to_celsius(ref_t, unit),
+                                  _date_order(w))
     raw_eq = data.get("equipment", [])
     if not isinstance(raw_eq, list) or not raw_eq:
         raise ConfigError(f"{path}: no [[equipment]] tables; add one per logged load")

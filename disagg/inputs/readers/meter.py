@@ -101,7 +101,8 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     path = settings.file
     raw = read_table(path, "meter", [settings.time_column, settings.value_column])
     require_columns(raw, path, [settings.time_column, settings.value_column])
-    times = parse_times(raw, settings.time_column, tz, path)
+    times = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
+                        setting="[meter] date_order")
     values = _numbers(raw, settings.value_column, path, f"energy in {settings.unit}")
     negative = vee.negative_readings(
         values, lambda i: f"{path}: {_row_label(path, i)}, column {settings.value_column!r}")
