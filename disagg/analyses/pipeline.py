@@ -151,7 +151,8 @@ def require_usable(site: SiteConfig, aligned: Aligned) -> None:
     n_unknowns = len(aligned.equipment_ids) + BASELOAD_COLUMN_COUNT[site.baseload.profile]
     if used == 0:
         raise InputError(f"{_short_data_source(site, aligned)}: no interval has both a meter "
-                         "reading and a known state for every equipment")
+                         "reading and a known state for every equipment"
+                         + _never_known(site, aligned))
     if used < n_unknowns + 2:
         raise InputError(f"{_short_data_source(site, aligned)}: only {used} usable meter "
                          f"intervals for {n_unknowns} unknowns; a fit needs at least "
@@ -244,6 +245,22 @@ def tariff_summary(site: SiteConfig, table: pl.DataFrame, aligned: Aligned) -> d
                    "higher"),
         "warnings": warnings,
     }
+
+
+def _never_known(site: SiteConfig, aligned: Aligned) -> str:
+    """'; no known state at all for X (expected ...)' naming the equipment whose state is
+    unknown in every interval, such as a load missing from a wide (samples) run log."""
+    known = ~np.isnan(aligned.hours)
+    never = [eq for j, eq in enumerate(aligned.equipment_ids) if not known[:, j].any()]
+    if not never:
+        return ""
+    ids = ", ".join(never)
+    if site.runlog.layout == "samples":
+        expected = f"a run-log column named {ids}" if len(never) == 1 else \
+            f"run-log columns named {ids}"
+    else:
+        expected = f"run-log rows with {ids} in column {site.runlog.equipment_column!r}"
+    return f"; no known state at all for {ids} (expected {expected})"
 
 
 def _short_data_source(site: SiteConfig, aligned: Aligned) -> str:
