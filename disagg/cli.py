@@ -78,8 +78,8 @@ def _date(value: str | None, option: str) -> dt.date | None:
 
 
 def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
-                         confidence: float, log_offset: float = 0.0,
-                         on_duplicate: str = "error", estimate: bool = False, *,
+                         confidence: float, log_offset: float | None = None,
+                         on_duplicate: str | None = None, estimate: bool = False, *,
                          xlsx: bool = False, report: bool = False, quiet: bool = False,
                          as_json: bool = False) -> None:
     """Fit, write the files, then print the summary (built before writing, so a summary
@@ -126,11 +126,14 @@ ToOpt = Annotated[Optional[str], typer.Option("--to", help="Last local date to u
                                               "(YYYY-MM-DD), inclusive; default: the meter's last.")]
 ConfOpt = Annotated[float, typer.Option("--confidence", help="Confidence level of the "
                                         "intervals, a fraction.")]
-DupOpt = Annotated[str, typer.Option("--on-duplicate", help="Meter readings repeated with "
-                                     "different values: error, keep-first or keep-last.")]
-OffsetOpt = Annotated[float, typer.Option("--log-offset", help="Minutes to add to every "
-                                          "run-log time to put it on the meter's clock (see "
-                                          "check --find-offset).")]
+DupOpt = Annotated[Optional[str], typer.Option(
+    "--on-duplicate", show_default=False, help="Meter readings repeated with different "
+    "values: error, keep-first or keep-last; default: the site file's [meter] on_duplicate, "
+    "else error.")]
+OffsetOpt = Annotated[Optional[float], typer.Option(
+    "--log-offset", show_default=False, help="Minutes to add to every run-log time to put it "
+    "on the meter's clock (see check --find-offset); default: the site file's [runlog] "
+    "log_offset_minutes, else 0.")]
 XlsxOpt = Annotated[bool, typer.Option("--xlsx", help="Also write breakdown.xlsx: one sheet "
                                        "per table, units in the headers.")]
 ReportOpt = Annotated[bool, typer.Option("--report", help="Also write report.html, the "
@@ -149,8 +152,8 @@ def breakdown(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
-    log_offset: OffsetOpt = 0.0,
-    on_duplicate: DupOpt = "error",
+    log_offset: OffsetOpt = None,
+    on_duplicate: DupOpt = None,
     estimate: Annotated[bool, typer.Option("--estimate", help="Fill meter gaps of at most 4 "
                                            "intervals by linear interpolation, for the monthly "
                                            "totals only (an estimated-gaps row per month).")] = False,
@@ -172,12 +175,12 @@ def check(
     site: SiteArg,
     date_from: FromOpt = None,
     date_to: ToOpt = None,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
     find_offset: Annotated[bool, typer.Option("--find-offset", help="Also search the run "
                                               "log's clock offset from the meter.")] = False,
     offset_window: Annotated[float, typer.Option("--offset-window", help="Search the offset "
                                                  "over plus/minus this many minutes.")] = 30.0,
-    on_duplicate: DupOpt = "error",
+    on_duplicate: DupOpt = None,
 ) -> None:
     """Read and align the inputs and report what was found, without fitting."""
     from disagg.analyses.pipeline import check_site
@@ -230,7 +233,7 @@ def drift(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
 ) -> None:
     """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
     import json
@@ -281,7 +284,7 @@ def compare(
     min_change: Annotated[float, typer.Option("--min-change", help="Smallest change called "
                                               "rising or falling, a fraction of the earlier "
                                               "draw.")] = 0.05,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
     from_history: Annotated[bool, typer.Option("--from-history", help="Take the periods' "
                                                "draws from the stored months of the site's "
                                                "[history] (--before/--after as months such "
@@ -459,7 +462,7 @@ def report(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
     memory: Annotated[float, typer.Option("--memory", help="Drift tracker memory in days.")] = 30.0,
     reference: Annotated[str | None, typer.Option("--reference", help="Drift reference "
                                                   "period FROM:TO (local dates); default "

@@ -17,6 +17,7 @@ import polars as pl
 
 from disagg import __version__
 from disagg.analyses.breakdown import monthly_breakdown
+from disagg.analyses.clock import offset_warning
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import (
     BASELOAD_COLUMN_COUNT,
@@ -55,13 +56,15 @@ class BreakdownResult:
 
 def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
                 date_to: dt.date | None = None,
-                log_offset_min: float = 0.0, *,
-                on_duplicate: str = "error") -> tuple[SiteConfig, Aligned]:
+                log_offset_min: float | None = None, *,
+                on_duplicate: str | None = None) -> tuple[SiteConfig, Aligned]:
     """Read the site file, the meter and the run log, and align them.
 
-    log_offset_min: minutes added to every run-log time to put it on the meter's clock.
+    log_offset_min: minutes added to every run-log time to put it on the meter's clock; None
+        takes the site file's ``[runlog] log_offset_minutes`` (default 0).
     on_duplicate: different meter readings at one time are an error (``error``), or the
-        first or last such row is kept (``keep-first``, ``keep-last``).
+        first or last such row is kept (``keep-first``, ``keep-last``); None takes the site
+        file's ``[meter] on_duplicate`` (default ``error``).
 
     The meter validation's findings (disagg.inputs.vee) lead aligned.notes, one line each;
     aligned.counts["spikes"] counts the intervals left out as spikes (they are also in
@@ -76,12 +79,24 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
 
 
 def load_validated(site_path: str | Path, date_from: dt.date | None = None,
-                   date_to: dt.date | None = None, log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error",
+                   date_to: dt.date | None = None, log_offset_min: float | None = None, *,
+                   on_duplicate: str | None = None,
                    progress: Progress | None = None) -> tuple[SiteConfig, Aligned, list[Finding]]:
     """load_inputs, and the meter validation's findings as well. progress: called as
     progress("reading", done, 4) after the meter, the run log, the weather and the alignment."""
+    site, _, _, aligned, findings = _read_all(site_path, date_from, date_to, log_offset_min,
+                                              on_duplicate, progress)
+    return site, aligned, findings
+
+
+def _read_all(site_path: str | Path, date_from: dt.date | None, date_to: dt.date | None,
+              log_offset_min: float | None, on_duplicate: str | None,
+              progress: Progress | None = None):
+    """load_validated's work, also returning the meter and run log as read:
+    (site, meter, runlog, aligned, findings)."""
     site = load_site(site_path)
+    log_offset_min = site.runlog.log_offset_min if log_offset_min is None else log_offset_min
+    on_duplicate = site.meter.on_duplicate if on_duplicate is None else on_duplicate
     if date_from and date_to and date_to < date_from:
         raise ConfigError(f"--to {date_to} is before --from {date_from}")
     check_log_offset(log_offset_min)
@@ -104,13 +119,13 @@ def load_validated(site_path: str | Path, date_from: dt.date | None = None,
                          + coverage_findings(runlog, aligned.frame))
     spike_starts = [t for f in findings if f.kind == "spike" for t in f.starts_utc]
     aligned.counts["spikes"] = int(aligned.frame["start_utc"].is_in(spike_starts).sum())
-    return site, aligned, findings
+    return site, meter, runlog, aligned, findings
 
 
 def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                    date_to: dt.date | None = None, confidence: float = 0.95,
-                   log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error", estimate: bool = False,
+                   log_offset_min: float | None = None, *,
+                   on_duplicate: str | None = None, estimate: bool = False,
                    progress: Progress | None = None) -> BreakdownResult:
     """Monthly per-equipment kWh with intervals, for one site.
 
@@ -123,9 +138,13 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     """
     if not 0.5 <= confidence < 1.0:
         raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
-    site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
-                                             on_duplicate=on_duplicate, progress=progress)
+    site, meter, runlog, aligned, findings = _read_all(site_path, date_from, date_to,
+                                                       log_offset_min, on_duplicate, progress)
     require_usable(site, aligned)
+    applied = site.runlog.log_offset_min if log_offset_min is None else log_offset_min
+    clock_warning = offset_warning(site, meter, runlog, applied)
+    if clock_warning:
+        aligned.notes.append(clock_warning)
     report(progress, "fitting", 0, 1)
     try:
         est = estimate_draws(site, aligned, confidence)
@@ -424,9 +443,9 @@ class CheckResult:
 
 
 def check_site(site_path: str | Path, date_from: dt.date | None = None,
-               date_to: dt.date | None = None, log_offset_min: float = 0.0,
+               date_to: dt.date | None = None, log_offset_min: float | None = None,
                offset_window_min: float | None = None, *,
-               on_duplicate: str = "error") -> CheckResult:
+               on_duplicate: str | None = None) -> CheckResult:
     """Read and align everything and say what was found, without fitting.
 
     The report's "findings" are the meter validation's (disagg.inputs.vee, as dicts with kind,
@@ -464,8 +483,10 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
         "notes": [n for n in aligned.notes if n not in {f.message for f in findings}],
     }
     if offset_window_min is not None:
-        report["clock_offset"] = find_log_offset(site, offset_window_min, log_offset_min,
-                                                 on_duplicate=on_duplicate)
+        report["clock_offset"] = find_log_offset(
+            site, offset_window_min,
+            site.runlog.log_offset_min if log_offset_min is None else log_offset_min,
+            on_duplicate=site.meter.on_duplicate if on_duplicate is None else on_duplicate)
     return CheckResult(site, aligned, report)
 
 

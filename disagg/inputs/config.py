@@ -58,6 +58,7 @@ class MeterSettings:
     register_digits: int | None = None  # kWh-register: digits of the register (rolls over)
     multiplier: float = 1.0  # kWh-register: kWh per register unit (CT/PT ratio, pulse weight)
     date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
+    on_duplicate: str = "error"  # different readings at one time: error, keep-first, keep-last
 
 
 @dataclass(frozen=True)
@@ -74,6 +75,7 @@ class RunlogSettings:
     stamp: str = "start"  # runtime: which edge of its interval the time marks
     interval_min: int | None = None  # runtime: length of its intervals, None = inferred
     date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
+    log_offset_min: float = 0.0  # minutes added to every log time to reach the meter's clock
 
 
 @dataclass(frozen=True)
@@ -265,6 +267,9 @@ def _interval(table: _Table, key: str) -> int | None:
 
 
 DATE_ORDERS = ("ymd", "mdy", "dmy")
+DUPLICATE_POLICIES = ("error", "keep-first", "keep-last")  # as disagg.inputs.vee.ON_DUPLICATE
+# Clock offsets beyond a week are no clock error but a wrong file (common practice, no source).
+MAX_LOG_OFFSET_MIN = 7 * 24 * 60
 
 
 def _date_order(table: _Table) -> str | None:
@@ -276,6 +281,15 @@ def _date_order(table: _Table) -> str | None:
     raise ConfigError(f"{table.where('date_order')} = {value!r}: expected \"ymd\" (2024-10-13), "
                       "\"mdy\" (10/13/2024), \"dmy\" (13/10/2024) or a format string such as "
                       "\"%m/%d/%Y %H:%M\"")
+
+
+def _log_offset(table: _Table) -> float:
+    """[runlog] log_offset_minutes: minutes added to every run-log time (the --log-offset)."""
+    value = table.get("log_offset_minutes", float, required=False, default=0.0)
+    if not (math.isfinite(value) and abs(value) <= MAX_LOG_OFFSET_MIN):
+        raise ConfigError(f"{table.where('log_offset_minutes')} = {value!r}: expected a number "
+                          f"of minutes from -{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
+    return value
 
 
 def _is_greenbutton(table: _Table) -> bool:
@@ -315,7 +329,7 @@ def _csv_meter(table: _Table) -> MeterSettings:
             raise ConfigError(f"{table.where(key)}: only used with unit = \"{REGISTER_UNIT}\"; "
                               "remove it or set that unit")
     table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes",
-                "date_order"} | extra)
+                "date_order", "on_duplicate"} | extra)
     digits, multiplier = None, 1.0
     if register:
         digits = table.get("register_digits", int, required=False)
@@ -337,6 +351,8 @@ def _csv_meter(table: _Table) -> MeterSettings:
         register_digits=digits,
         multiplier=multiplier,
         date_order=_date_order(table),
+        on_duplicate=table.choice("on_duplicate", DUPLICATE_POLICIES, required=False,
+                                  default="error"),
     )
 
 
@@ -534,7 +550,7 @@ def load_site(path: str | Path) -> SiteConfig:
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
-    r.only({"file", "layout", "time_column", "date_order"} | {
+    r.only({"file", "layout", "time_column", "date_order", "log_offset_minutes"} | {
         "events": {"equipment_column", "state_column"},
         "samples": {"max_hold_minutes"},
         "runtime": {"equipment_column", "minutes_column", "stamp", "interval_minutes"}}[layout])
@@ -549,6 +565,7 @@ def load_site(path: str | Path) -> SiteConfig:
         stamp=r.choice("stamp", STAMPS, required=False, default="start") if layout == "runtime" else "start",
         interval_min=_interval(r, "interval_minutes") if layout == "runtime" else None,
         date_order=_date_order(r),
+        log_offset_min=_log_offset(r),
     )
 
     b = _Table(path, "baseload", data.get("baseload", {}))
