@@ -459,7 +459,8 @@ def test_a_header_only_run_log_is_an_error_line_not_a_crash(tmp_path):
         assert result.stderr == (
             f"Error: {s['runlog']} (288 meter intervals: 0 without a reading, 288 with a "
             "run-log state unknown): no interval has both a meter reading and a known state "
-            "for every equipment\n")
+            "for every equipment; no known state at all for CH-1, AHU-1, P-1 (expected "
+            "run-log rows with CH-1, AHU-1, P-1 in column 'point')\n")
         assert "Traceback" not in result.output
     assert not (tmp_path / "out").exists()
 

@@ -14,6 +14,7 @@ whose clock runs 7 minutes behind the meter's (it records 10:00 for what the met
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 from dataclasses import dataclass, field
 
@@ -21,7 +22,7 @@ import numpy as np
 import polars as pl
 
 from disagg.errors import InputError
-from disagg.fit.align import align, baseload_columns
+from disagg.fit.align import Aligned, align, baseload_columns, frame_baseload
 from disagg.fit.solvers import solve_regularized
 from disagg.inputs.config import SiteConfig
 from disagg.inputs.readers import MeterData, RunLog, Segments
@@ -338,7 +339,9 @@ MATERIAL_GAIN = 0.05
 
 
 def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
-                   applied_min: float = 0.0) -> str | None:
+                   applied_min: float = 0.0, aligned: Aligned | None = None,
+                   date_from: dt.date | None = None,
+                   date_to: dt.date | None = None) -> str | None:
     """A warning with the --log-offset to try when the run-log clock is materially off, else None.
 
     Cheap in the usual case (clocks agree): the logs as read and moved +-QUICK_PROBE_MIN are
@@ -347,18 +350,19 @@ def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
 
     Args:
         runlog: as read, with applied_min [min] already added to its times.
+        aligned: the run's own alignment of meter and runlog over [date_from, date_to] (the
+            probe at 0 and its baseload columns, shared with the run's fits), or None.
     """
-    probes = (0.0, -QUICK_PROBE_MIN, QUICK_PROBE_MIN)
-    aligned = [align(site, meter, runlog if p == 0.0 else shift_runlog(runlog, p)) for p in probes]
-    mask = aligned[0].use & aligned[1].use & aligned[2].use
+    if aligned is None:
+        aligned = align(site, meter, runlog, date_from, date_to)
+    probes = [aligned] + [align(site, meter, shift_runlog(runlog, p), date_from, date_to)
+                          for p in (-QUICK_PROBE_MIN, QUICK_PROBE_MIN)]
+    mask = probes[0].use & probes[1].use & probes[2].use
     if mask.sum() < MIN_INTERVALS:
         return None
-    frame = aligned[0].frame
-    start_ns = frame["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
-    end_ns = frame["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
-    base, _ = baseload_columns(site.baseload, site.timezone, frame["start_utc"], start_ns, end_ns)
-    y = frame["energy_kwh"].to_numpy().astype(float)[mask]
-    rss = [_rss_quick(np.column_stack([a.hours[mask], base[mask]]), y) for a in aligned]
+    base, _ = frame_baseload(aligned, site.baseload, site.timezone)
+    y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
+    rss = [_rss_quick(np.column_stack([a.hours[mask], base[mask]]), y) for a in probes]
     if rss[0] <= min(rss[1], rss[2]):
         return None
     try:

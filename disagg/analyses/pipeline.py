@@ -142,7 +142,7 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                                                        log_offset_min, on_duplicate, progress)
     require_usable(site, aligned)
     applied = site.runlog.log_offset_min if log_offset_min is None else log_offset_min
-    clock_warning = offset_warning(site, meter, runlog, applied)
+    clock_warning = offset_warning(site, meter, runlog, applied, aligned, date_from, date_to)
     if clock_warning:
         aligned.notes.append(clock_warning)
     report(progress, "fitting", 0, 1)
