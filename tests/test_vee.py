@@ -205,6 +205,18 @@ def test_spike_is_listed_with_its_value_and_the_rule(tmp_path):
     assert m.frame["energy_kwh"].null_count() == 1
 
 
+def test_spike_of_a_kw_meter_is_stated_in_kw(tmp_path):
+    # The same readings as mean demand [kW] on 15-minute intervals: the limit and the reading
+    # are stated in kW as the file gives them (27.7912 kWh per 15 min = 111.165 kW is the same
+    # rule on 4 x the values).
+    rows = [f"{r.split(',')[0]},{float(r.split(',')[1]) * 4:g}" for r in _spike_rows()]
+    m = _read(tmp_path, rows, unit="kW")
+    assert _messages(m) == [
+        "meter spikes: 1 reading above 111.165 kW (the larger of the median + 6 scaled MADs "
+        "and 2 x the 99th percentile), 400 kW at 2025-01-07T12:15:00-06:00; policy: left out "
+        "of the fit"]
+
+
 def test_spike_is_left_out_of_the_fit_and_counted(tmp_path):
     site_path = _site(tmp_path, _spike_rows())
     _, aligned = load_inputs(site_path)

@@ -29,6 +29,7 @@ from disagg.fit.align import (
 from disagg.fit.estimate import Estimates, estimate_draws, inseparable
 from disagg.inputs.config import SiteConfig, load_site
 from disagg.inputs.logcheck import coverage_findings
+from disagg.inputs.notes import tidy
 from disagg.inputs.readers import read_meter, read_runlog, read_weather
 from disagg.inputs.vee import Finding
 from disagg.progress import Progress, report
@@ -114,9 +115,14 @@ def _read_all(site_path: str | Path, date_from: dt.date | None, date_to: dt.date
                          f"{date_from or 'the start'} and {date_to or 'the end'}")
     findings: list[Finding] = meter.findings
     replaced = {f.replaces for f in findings}
-    aligned.notes[:0] = ([f.message for f in findings]
+    align_notes = aligned.notes
+    if any(f.kind == "gap" for f in findings):  # the gap finding already says so, with times
+        align_notes = [n for n in align_notes
+                       if "meter intervals are absent from the file" not in n]
+    aligned.notes = tidy([f.message for f in findings]
                          + [n for n in meter.notes if n not in replaced] + runlog.notes
-                         + coverage_findings(runlog, aligned.frame))
+                         + coverage_findings(runlog, aligned.frame) + align_notes,
+                         site.input_files(), site.path.parent, site.timezone)
     spike_starts = [t for f in findings if f.kind == "spike" for t in f.starts_utc]
     aligned.counts["spikes"] = int(aligned.frame["start_utc"].is_in(spike_starts).sum())
     return site, meter, runlog, aligned, findings

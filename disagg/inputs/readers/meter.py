@@ -143,7 +143,7 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     else:
         df = df.with_columns(start_utc=pl.col("t"), end_utc=pl.col("t") + step)
     frame = df.select("start_utc", "end_utc", (pl.col("v") * scale).alias("energy_kwh"))
-    frame, more = vee.validate_frame(frame, interval_min, stamp, tz)
+    frame, more = vee.validate_frame(frame, interval_min, stamp, tz, settings.unit or "kWh")
     notes = [f.replaces for f in findings if f.replaces]
     return MeterData(frame, interval_min, path, rows_read, dropped, notes, findings + more)
 
