@@ -288,7 +288,7 @@ def portfolio_summary(result: PortfolioResult, seconds: float | None = None) -> 
         lines.append(f"history: {unstored} site{'s' * (unstored != 1)} with months not stored "
                      "(a --from/--to range that cuts a month short, or a stored month with "
                      "more data); see history_note in portfolio.csv")
-    lines.append("file: the site file's name (its output folder); peak kW: the highest "
+    lines.append("file: the site file's path in the portfolio without .toml (its output folder); peak kW: the highest "
                  "monthly peak demand of the intervals used; cost: over the range (sites "
                  "with a [tariff])")
     lines.append("CV(RMSE) and NMBE: hourly, as ASHRAE Guideline 14 defines them (criteria 30 % "
