@@ -317,10 +317,13 @@ def compare(
 @app.command()
 def batch(
     portfolio: Annotated[Path, typer.Argument(help="A folder of site TOML files (every *.toml "
-                                              "directly in it), or a portfolio TOML listing "
-                                              "them.", show_default=False)],
-    out: Annotated[Path, typer.Option("--out", help="Folder for portfolio.csv and one output "
-                                      "folder per site (named after its site file).")],
+                                              "directly in it and every */site.toml one level "
+                                              "down), or a portfolio TOML listing them.",
+                                              show_default=False)],
+    out: Annotated[Path, typer.Option("--out", help="Folder for portfolio.csv, "
+                                      "portfolio_equipment.csv and one output folder per site "
+                                      "(its site file's path in the portfolio without "
+                                      ".toml).")],
     workers: Annotated[int | None, typer.Option("--workers", help="Local worker processes; "
                                                 "default: all cores.")] = None,
     cluster: Annotated[str | None, typer.Option("--cluster", help="Address of a running "

@@ -10,7 +10,7 @@ import pytest
 from disagg.inputs.config import Spell, load_site, parse_spell
 from disagg.errors import ConfigError
 
-# --- Outside check values (references.md section 5) ------------------------------------------
+# --- Outside check values (docs/references.md section 5) ------------------------------------------
 # US DOE, "Determining Electric Motor Load and Efficiency", Eq. 1: three-phase input power
 # P = sqrt(3) x V x I x PF / 1000. The check 480 V, 100 A, PF 0.9 -> 74.82 kW is printed to
 # 2 decimals, so the tolerance is half a unit in the last place.

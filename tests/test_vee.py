@@ -371,7 +371,7 @@ REGISTER = 'register_digits = 5\nmultiplier = 2'
 
 def test_register_readings_become_interval_energy_across_a_rollover(tmp_path):
     # A 5-digit register times 2: 99970 -> 99990 is 20 x 2 = 40 kWh; 99990 -> 00012 rolls
-    # over: (12 - 99990 + 10^5) mod 10^5 = 22, x 2 = 44 kWh (references.md section 7).
+    # over: (12 - 99990 + 10^5) mod 10^5 = 22, x 2 = 44 kWh (docs/references.md section 7).
     rows = ["2025-01-06 00:15:00,99970", "2025-01-06 00:30:00,99990",
             "2025-01-06 00:45:00,00012", "2025-01-06 01:00:00,30"]
     m = _read(tmp_path, rows, unit="kWh-register", meter_extra=REGISTER)

@@ -2,7 +2,7 @@
 
 Utility VEE standards check interval data for missing intervals, zero reads during outages,
 spikes, short or long intervals after a time reset and register (pulse) overflow
-(references.md section 7, read from their tables of contents). Each check here is a pure
+(docs/references.md section 7, read from their tables of contents). Each check here is a pure
 function over the meter readings that returns a :class:`Finding`: what was found, how many,
 the first few times (local ISO 8601 with the UTC offset, as the file's stamp edge) and the
 policy the tool applies, all in one readable line. ``disagg.inputs.readers.read_meter`` runs them.
@@ -252,7 +252,7 @@ def register_energy(t: pl.Series, reading: pl.Series, interval_min: int, digits:
 
     The interval ending at a reading gets (R2 - R1) x multiplier from the previous reading
     exactly one interval earlier; with ``digits`` set, a reading below the previous one is a
-    rollover: (R2 - R1 + 10^digits) mod 10^digits x multiplier (references.md section 7,
+    rollover: (R2 - R1 + 10^digits) mod 10^digits x multiplier (docs/references.md section 7,
     from memory). An interval whose previous reading is missing or further back is null (its
     energy is known only together with the gap's), and so is the first reading's.
 
