@@ -413,7 +413,7 @@ def test_a_folder_per_building_each_holding_site_toml_runs_into_a_folder_per_bui
             name = f"{building}/site" if source == root else f"portfolio/{building}/site"
             mine = long.filter(pl.col("site") == name).drop("site", "site_name")
             bd = pl.read_csv(out / building / "site" / "breakdown.csv").select(mine.columns)
-            assert_frame_equal(mine, bd, check_dtypes=False, rtol=1e-6, atol=1e-6)
+            assert_frame_equal(mine, bd, check_dtypes=False, rel_tol=1e-6, abs_tol=1e-6)
         assert set(long["site_name"]) == {"Synthetic site"}
 
 
