@@ -404,8 +404,9 @@ def test_check_reports_the_intervals_and_exits_0(main_run):
     assert result.exit_code == 0, result.output
     assert result.stderr == ""
     lines = result.stdout.splitlines()
-    assert lines[0] == ("Synthetic test site: 2025-01-20T06:00:00+00:00 to "
-                        "2025-02-10T06:00:00+00:00 (UTC), 15-minute meter intervals")
+    # Times in the site's zone (America/Chicago: UTC-6 in winter).
+    assert lines[0] == ("Synthetic test site: 2025-01-20T00:00:00-06:00 to "
+                        "2025-02-10T00:00:00-06:00 (America/Chicago), 15-minute meter intervals")
     assert lines[1] == ("intervals 2,016: used 2,016, absent 0, no reading 0, run-log state "
                         "unknown 0")
     assert [ln.split()[0] for ln in lines[2:5]] == ["CH-1", "AHU-1", "P-1"]

@@ -6,7 +6,9 @@ fails leaves the output folder untouched.
 
 from __future__ import annotations
 
+import datetime as dt
 import math
+import zoneinfo
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -143,7 +145,10 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
 def check_summary(result: CheckResult) -> str:
     r = result.report
     c = r["intervals"]
-    lines = [f"{r['site']}: {r['period']['start_utc']} to {r['period']['end_utc']} (UTC), "
+    zone = zoneinfo.ZoneInfo(result.site.timezone)
+    start, end = (dt.datetime.fromisoformat(r["period"][k]).astimezone(zone).isoformat()
+                  for k in ("start_utc", "end_utc"))
+    lines = [f"{r['site']}: {start} to {end} ({result.site.timezone}), "
              f"{r['interval_min']}-minute meter intervals",
              f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
              f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
