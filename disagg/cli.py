@@ -67,6 +67,15 @@ def _guard(fn):
               "full trace and report it", code=2)
 
 
+def _signal_name(signum: int) -> str:
+    import signal
+
+    try:
+        return signal.Signals(signum).name
+    except ValueError:
+        return f"signal {signum}"
+
+
 def _date(value: str | None, option: str) -> dt.date | None:
     if value is None:
         return None
@@ -359,10 +368,12 @@ def batch(
             # script never reads a partial table as the portfolio's.
             if bar is not None:
                 bar.close()
-            typer.echo(f"Interrupted: {stop.finished} site{'s' * (stop.finished != 1)} "
+            signum = getattr(stop, "signum", None)
+            what = "Interrupted" if signum is None else f"Stopped by {_signal_name(signum)}"
+            typer.echo(f"{what}: {stop.finished} site{'s' * (stop.finished != 1)} "
                        f"finished, {stop.not_run} not run; portfolio.csv not written",
                        err=True)
-            raise typer.Exit(130) from None
+            raise typer.Exit(130 if signum is None else 128 + signum) from None
         finally:
             if bar is not None:
                 bar.close()

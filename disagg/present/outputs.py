@@ -29,12 +29,21 @@ _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
 def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
-    """Prefix a single quote to text cells that a spreadsheet would read as a formula."""
+    """Prefix a single quote to text cells, and to column headers, that a spreadsheet would
+    read as a formula (headers are built from equipment ids in portfolio.csv: ``<id>_kwh``)."""
     text_cols = [c for c, t in frame.schema.items() if t == pl.String]
-    return frame.with_columns(
-        pl.when(pl.any_horizontal(pl.col(c).str.starts_with(s) for s in _FORMULA_START))
-        .then(pl.lit("'") + pl.col(c)).otherwise(pl.col(c)).alias(c)
-        for c in text_cols) if text_cols else frame
+    if text_cols:
+        frame = frame.with_columns(
+            pl.when(pl.any_horizontal(pl.col(c).str.starts_with(s) for s in _FORMULA_START))
+            .then(pl.lit("'") + pl.col(c)).otherwise(pl.col(c)).alias(c)
+            for c in text_cols)
+    renames = {c: f"'{c}" for c in frame.columns if c.startswith(_FORMULA_START)}
+    # Keep headers distinct: an id of its own could already start with the quote ("'-x").
+    for c, quoted in list(renames.items()):
+        while quoted in frame.columns:
+            quoted = "'" + quoted
+        renames[c] = quoted
+    return frame.rename(renames) if renames else frame
 
 
 def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
