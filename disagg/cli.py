@@ -46,7 +46,26 @@ def _fail(message: str, code: int = 1) -> None:
 
 
 def _guard(fn):
-    """Run fn(); turn library errors into one Error line (exit 1)."""
+    """Run fn(); turn library errors into one Error line (exit 1).
+
+    Python and library warnings (numpy's RuntimeWarning, ...) are not printed: what matters
+    to the engineer is in the outputs' notes and an error is an Error line; --debug shows
+    them after the command.
+    """
+    import warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            return _guarded(fn)
+        finally:
+            if _state["debug"]:
+                for w in caught:
+                    typer.echo(warnings.formatwarning(w.message, w.category, w.filename,
+                                                      w.lineno).rstrip(), err=True)
+
+
+def _guarded(fn):
     try:
         return fn()
     except DisaggError as exc:
@@ -253,11 +272,21 @@ def drift(
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     def run():
+        import math
+
+        if step is None and not (math.isfinite(memory) and memory > 0):
+            raise InputError(f"--memory {memory:g}: expected a number of days above 0")
         ref = parse_period(reference, "--reference") if reference else None
         saved = None
-        if state is not None and state.exists():
+        state_path = None
+        if state is not None:
+            from disagg.inputs.config import check_regular_file, resolve_path
+
+            state_path = resolve_path(state, "--state")
+            check_regular_file(state_path, "tracker state file (--state)")
+        if state_path is not None and state_path.exists():
             try:
-                saved = json.loads(state.read_text(encoding="utf-8"))
+                saved = json.loads(state_path.read_text(encoding="utf-8"))
             except (OSError, ValueError) as exc:
                 raise InputError(f"{state}: cannot read the tracker state ({exc})") from None
         result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1,
@@ -268,7 +297,7 @@ def drift(
         cfg = load_site(site)
         from disagg.present.history import check_configured, store_drift_configured
         check_configured(cfg)  # a bad history folder fails before any output
-        paths = write_drift(result, out, cfg.input_files(), state)
+        paths = write_drift(result, out, cfg.input_files(), state_path)
         paths += store_drift_configured(cfg, result, paths)
         typer.echo(text)
         typer.echo("\nWrote " + ", ".join(str(p) for p in paths))

@@ -69,11 +69,11 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         OutputError: the folder cannot be created or written, a name is taken by a folder,
             or a name would replace an input.
     """
-    out_dir = Path(out_dir).resolve()
+    out_dir = _resolved(out_dir)
     targets = [out_dir / name for name in files]
-    resolved_inputs = {p.resolve() for p in inputs}
+    resolved_inputs = {_resolved(p) for p in inputs}
     for t in targets:
-        if t.resolve() in resolved_inputs:
+        if _resolved(t) in resolved_inputs:
             raise OutputError(f"{t}: writing here would replace an input file; choose another --out")
         if t.is_dir():
             raise OutputError(f"{t}: is a folder, so the file {t.name} cannot be written there; "
@@ -108,6 +108,15 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
     return targets
 
 
+def _resolved(path: Path) -> Path:
+    """path.resolve(), with a symbolic link loop an OutputError."""
+    try:
+        return Path(path).resolve()
+    except (OSError, RuntimeError) as exc:
+        why = "a symbolic link loop" if isinstance(exc, RuntimeError) else _reason(exc)
+        raise OutputError(f"{path}: cannot use this output path ({why})") from None
+
+
 def _reason(exc: OSError) -> str:
     """An OS error's reason in words, never "None"."""
     return (exc.strerror or (os.strerror(exc.errno) if exc.errno else None) or str(exc)
@@ -115,12 +124,16 @@ def _reason(exc: OSError) -> str:
 
 
 def _where(exc: OSError) -> str:
-    return f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+    """The file an OS error names, by its name in the output folder (the staging folder it
+    was in is gone)."""
+    return f" ({Path(exc.filename).name})" if getattr(exc, "filename", None) else ""
 
 
 def _first_line(exc: BaseException) -> str:
+    """The first line of an error; of polars' "... underlying IO error: REASON", the reason."""
     text = str(exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__
+    line = text[0] if text else type(exc).__name__
+    return line.split("underlying IO error: ", 1)[-1]
 
 
 def _make_folder(folder: Path) -> list[Path]:
@@ -234,14 +247,20 @@ def write_workbook(sheets: dict[str, pl.DataFrame], path: Path) -> None:
     """One .xlsx workbook, one sheet per table; numbers stay numbers, and text is stored as
     text, never as a formula (xlsxwriter's strings_to_formulas off), so names from users
     cannot run in a spreadsheet."""
+    import io
+
     import xlsxwriter
 
-    with xlsxwriter.Workbook(str(path), {"strings_to_formulas": False,
-                                         "strings_to_urls": False,
-                                         "nan_inf_to_errors": True}) as book:
+    # Built in memory and then written as one file: a full disk is then a plain OSError of
+    # that write (xlsxwriter writing the file itself leaves a half-closed zip file that
+    # prints a second error when collected).
+    buffer = io.BytesIO()
+    with xlsxwriter.Workbook(buffer, {"strings_to_formulas": False, "strings_to_urls": False,
+                                      "nan_inf_to_errors": True, "in_memory": True}) as book:
         for name, frame in sheets.items():
             frame.write_excel(workbook=book, worksheet=name, autofit=True,
                               float_precision=6)
+    Path(path).write_bytes(buffer.getvalue())
 
 
 def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | None = None) -> Path:
