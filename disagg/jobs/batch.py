@@ -51,6 +51,10 @@ START_METHOD = "forkserver"
 # Seconds to wait for a Dask scheduler to answer before giving up: the whole connection
 # (TCP connect, Dask's handshake and an identity request), not only the TCP connect.
 CLUSTER_CONNECT_TIMEOUT_S = 20
+# Seconds a cluster batch waits while the scheduler has no worker (none joined, or the last
+# one stopped) before it gives up with an error, and how often it looks [s].
+CLUSTER_IDLE_TIMEOUT_S = 60.0
+CLUSTER_POLL_S = 1.0
 # A scheduler address as Dask prints it: tcp:// or tls://, a host name, IPv4 or [IPv6]
 # address, and a port.
 CLUSTER_ADDRESS = re.compile(r"(tcp|tls)://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):([0-9]{1,5})")
@@ -720,37 +724,99 @@ def _connect(address: str):
                           f"({type(exc).__name__}: {exc})") from None
 
 
+class ClusterError(ConfigError):
+    """The cluster stopped doing the batch's work: no worker for CLUSTER_IDLE_TIMEOUT_S, or
+    the scheduler went away."""
+
+
+def _live_workers(client) -> int:
+    """How many workers the scheduler has now (asks it)."""
+    return len(client.nthreads())
+
+
 def _run_on_cluster(address: str, jobs: list[SiteJob],
                     progress: Progress | None) -> list[SiteOutcome]:
+    """Run the jobs on the cluster's workers.
+
+    Raises:
+        ClusterError: the scheduler has no worker for CLUSTER_IDLE_TIMEOUT_S (none at the
+            start, or the last one stopped), or the connection to it is lost; the sites not
+            finished are cancelled.
+        BatchInterrupted: Ctrl-C.
+    """
     try:
-        from distributed import as_completed as dask_completed
+        from distributed import wait as dask_wait
     except ImportError:
         raise ConfigError(f"--cluster {address}: needs dask distributed; install it with "
                           "pip install 'disagg[cluster]'") from None
     client = _connect(address)
     outcomes: list[SiteOutcome | None] = [None] * len(jobs)
+    total = len(jobs)
+    done = 0
+
+    def not_run() -> str:
+        finished = sum(o is not None for o in outcomes)
+        return f"{finished} site{'s' * (finished != 1)} finished, {total - finished} not run"
+
     try:
         with client.as_current():
             futures = client.map(run_site, jobs, pure=False)
             index = {f.key: i for i, f in enumerate(futures)}
+            pending = set(futures)
+            idle_since: float | None = None
             try:
-                for done, fut in enumerate(dask_completed(futures), start=1):
-                    i = index[fut.key]
+                while pending:
                     try:
-                        outcomes[i] = fut.result()
-                    except Exception as exc:  # noqa: BLE001 - a worker died (KilledWorker, ...)
-                        outcomes[i] = _lost(jobs[i], exc)
-                    report(progress, "sites", done, len(jobs))
+                        finished_now, _ = dask_wait(list(pending), timeout=CLUSTER_POLL_S,
+                                                    return_when="FIRST_COMPLETED")
+                    except TimeoutError:
+                        finished_now = set()
+                    for fut in finished_now:
+                        pending.discard(fut)
+                        i = index[fut.key]
+                        try:
+                            outcomes[i] = fut.result()
+                        except (KeyboardInterrupt, SystemExit):
+                            raise
+                        except BaseException as exc:  # noqa: BLE001 - KilledWorker, cancelled
+                            if client.status != "running":
+                                raise
+                            outcomes[i] = _lost(jobs[i], exc)
+                        done += 1
+                        report(progress, "sites", done, total)
+                    if not pending or finished_now:
+                        idle_since = None
+                        continue
+                    if _live_workers(client) > 0:
+                        idle_since = None
+                    elif idle_since is None:
+                        idle_since = time.monotonic()
+                    elif time.monotonic() - idle_since > CLUSTER_IDLE_TIMEOUT_S:
+                        client.cancel(list(pending))
+                        raise ClusterError(
+                            f"--cluster {address}: the scheduler has had no worker for "
+                            f"{CLUSTER_IDLE_TIMEOUT_S:g} s, so nothing runs the sites "
+                            f"({not_run()}); start workers for it, or run without --cluster")
             except KeyboardInterrupt:
                 # Dask cancels the sites not started; a running one finishes on its worker.
-                client.cancel([f for f in futures if not f.done()])
+                with contextlib.suppress(Exception):
+                    client.cancel([f for f in futures if not f.done()])
                 finished = sum(o is not None for o in outcomes)
-                raise BatchInterrupted(finished, len(jobs) - finished) from None
+                raise BatchInterrupted(finished, total - finished) from None
+    except (ClusterError, BatchInterrupted):
+        raise
+    except (KeyboardInterrupt, SystemExit):
+        raise
+    except BaseException as exc:  # noqa: BLE001 - the scheduler went away: closed comm, ...
+        text = (str(exc).strip().splitlines() or [""])[0]
+        detail = ("" if not text or "cancelled" in type(exc).__name__.lower()
+                  else f": {text[:120]}")
+        raise ClusterError(f"--cluster {address}: lost the connection to the scheduler "
+                           f"({type(exc).__name__}{detail}); {not_run()}") from None
     finally:
-        client.close()
+        with contextlib.suppress(BaseException):
+            client.close(timeout=2)
     return outcomes  # type: ignore[return-value]
-
-
 
 
 @dataclass(frozen=True)
