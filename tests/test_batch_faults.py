@@ -127,3 +127,12 @@ def test_a_killed_batch_leaves_no_process_of_its_group(tmp_path, sig):
     finally:
         for pid in _group(proc.pid):
             os.kill(pid, signal.SIGKILL)
+
+
+def test_a_deeply_nested_portfolio_file_is_a_config_error(tmp_path):
+    pf = tmp_path / "p.toml"
+    pf.write_text("[portfolio]\nsites = " + "[" * 3000 + "]" * 3000 + "\n", encoding="utf-8")
+    with pytest.raises(ConfigError) as exc:
+        batch.load_portfolio(pf)
+    assert str(exc.value) == (f"{pf}: not valid TOML for disagg (arrays or tables nested more "
+                              "than 50 deep)")

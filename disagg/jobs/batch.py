@@ -30,7 +30,6 @@ import os
 import re
 import signal
 import time
-import tomllib
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -137,7 +136,9 @@ def load_portfolio(path: str | Path) -> Portfolio:
         ConfigError: no such folder or file, no sites, a bad portfolio file, or two sites
             whose file names would share an output folder.
     """
-    path = Path(path).resolve()
+    from disagg.inputs.config import parse_toml, resolve_path
+
+    path = resolve_path(path, "portfolio")
     history = None
     if path.is_dir():
         sites = sorted((p for p in path.glob("*.toml")
@@ -146,11 +147,10 @@ def load_portfolio(path: str | Path) -> Portfolio:
             raise ConfigError(f"{path}: no *.toml site files in this folder")
     elif path.is_file():
         try:
-            data = tomllib.loads(path.read_text(encoding="utf-8"))
+            text = path.read_text(encoding="utf-8")
         except (OSError, UnicodeDecodeError) as exc:
             raise ConfigError(f"{path}: cannot read the portfolio file ({exc})") from None
-        except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+        data = parse_toml(text, path)
         if set(data) != {"portfolio"} or not isinstance(data["portfolio"], dict):
             hint = ("; this looks like a site file: run it with disagg breakdown"
                     if "site" in data else "")
