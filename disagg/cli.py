@@ -46,7 +46,26 @@ def _fail(message: str, code: int = 1) -> None:
 
 
 def _guard(fn):
-    """Run fn(); turn library errors into one Error line (exit 1)."""
+    """Run fn(); turn library errors into one Error line (exit 1).
+
+    Python and library warnings (numpy's RuntimeWarning, ...) are not printed: what matters
+    to the engineer is in the outputs' notes and an error is an Error line; --debug shows
+    them after the command.
+    """
+    import warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            return _guarded(fn)
+        finally:
+            if _state["debug"]:
+                for w in caught:
+                    typer.echo(warnings.formatwarning(w.message, w.category, w.filename,
+                                                      w.lineno).rstrip(), err=True)
+
+
+def _guarded(fn):
     try:
         return fn()
     except DisaggError as exc:
@@ -65,6 +84,15 @@ def _guard(fn):
             raise
         _fail(f"internal error ({type(exc).__name__}: {exc}); run `disagg --debug ...` for the "
               "full trace and report it", code=2)
+
+
+def _signal_name(signum: int) -> str:
+    import signal
+
+    try:
+        return signal.Signals(signum).name
+    except ValueError:
+        return f"signal {signum}"
 
 
 def _date(value: str | None, option: str) -> dt.date | None:
@@ -318,10 +346,12 @@ def batch(
         except BatchInterrupted as stop:
             # No portfolio.csv for part of the sites: a previous complete one stays, and a
             # script never reads a partial table as the portfolio's.
-            typer.echo(f"Interrupted: {stop.finished} site{'s' * (stop.finished != 1)} "
+            signum = getattr(stop, "signum", None)
+            what = "Interrupted" if signum is None else f"Stopped by {_signal_name(signum)}"
+            typer.echo(f"{what}: {stop.finished} site{'s' * (stop.finished != 1)} "
                        f"finished, {stop.not_run} not run; portfolio.csv not written",
                        err=True)
-            raise typer.Exit(130) from None
+            raise typer.Exit(130 if signum is None else 128 + signum) from None
         if not quiet:
             typer.echo(done.summary)
             typer.echo(f"\nWrote {done.paths[0]} and each site's files in {out.resolve()}/<site>/")

@@ -326,13 +326,27 @@ def test_meter_interval_not_allowed_is_an_error(tmp_path):
                              "1, 5, 10, 15, 30, 60 minutes")
 
 
-def test_meter_interval_from_the_site_file_wins_over_the_data(tmp_path):
-    # Two readings an hour apart with interval_minutes = 15: the intervals are 15 minutes long.
-    site, _ = _meter(tmp_path, ["2025-01-06 01:00:00,1.0", "2025-01-06 02:00:00,1.0"],
-                     meter_extra="interval_minutes = 15")
+def test_meter_interval_from_the_site_file_agreeing_with_the_data(tmp_path):
+    site, _ = _meter(tmp_path, ["2025-01-06 01:00:00,1.0", "2025-01-06 01:15:00,1.0",
+                                "2025-01-06 02:00:00,1.0"], meter_extra="interval_minutes = 15")
     m = read_meter(site.meter, site.timezone)
     assert m.interval_min == 15
-    assert m.frame["start_utc"].to_list() == [_utc(2025, 1, 6, 6, 45), _utc(2025, 1, 6, 7, 45)]
+    assert m.frame["start_utc"].to_list() == [_utc(2025, 1, 6, 6, 45), _utc(2025, 1, 6, 7, 0),
+                                              _utc(2025, 1, 6, 7, 45)]
+
+
+@pytest.mark.parametrize("rows, stated, apart", [
+    # interval_minutes = 5 on 15-minute data made every draw about 3 times too high.
+    (["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,1.0", "2025-01-06 00:45:00,1.0"], 5, 15),
+    (["2025-01-06 01:00:00,1.0", "2025-01-06 02:00:00,1.0"], 15, 60),
+    (["2025-01-06 00:05:00,1.0", "2025-01-06 00:10:00,1.0", "2025-01-06 00:15:00,1.0"], 15, 5)])
+def test_meter_interval_that_disagrees_with_the_data_is_an_error(tmp_path, rows, stated, apart):
+    site, path = _meter(tmp_path, rows, meter_extra=f"interval_minutes = {stated}")
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert str(exc.value) == (f"{path}: the readings are {apart} minutes apart (the most common "
+                              f"spacing) but the site file sets interval_minutes = {stated}; "
+                              "remove interval_minutes or correct it")
 
 
 def test_meter_identical_duplicate_rows_are_dropped_and_counted(tmp_path):

@@ -26,7 +26,7 @@ from disagg.analyses.pipeline import (
     check_site,
 )
 from disagg.errors import ConfigError, DisaggError, InputError
-from disagg.inputs.config import load_site
+from disagg.inputs.config import check_regular_file, load_site, resolve_path
 from disagg.inputs.vee import check_on_duplicate
 from disagg.present import history as hist
 from disagg.present import terminal
@@ -255,10 +255,21 @@ class DriftOptions:
 
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
+        if self.step is None and not (math.isfinite(self.memory_days) and self.memory_days > 0):
+            raise ConfigError(f"--memory {self.memory_days:g}: expected a number of days above 0")
 
 
 def _read_state(path: Path | None) -> dict | None:
-    if path is None or not path.exists():
+    """The saved tracker state, or None when there is no such file yet.
+
+    Raises:
+        ConfigError: a FIFO, device or folder (refused before reading), a link loop.
+        InputError: the file cannot be read or is not JSON.
+    """
+    if path is None:
+        return None
+    check_regular_file(resolve_path(path, "--state"), "tracker state file (--state)")
+    if not path.exists():
         return None
     try:
         return json.loads(path.read_text(encoding="utf-8"))

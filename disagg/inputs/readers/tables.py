@@ -166,9 +166,33 @@ def _ymd_text(text: pl.Series, column: str, path: Path, date_order: str | None,
     return iso
 
 
+# Times outside these years are typing or export errors, and beyond them the nanosecond
+# times of the alignment (numpy datetime64[ns]: years 1678 to 2261) would overflow.
+FIRST_YEAR, LAST_YEAR = 1900, 2199
+
+
 def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
                 by: pl.Series | None = None, date_order: str | None = None,
                 setting: str = "date_order") -> pl.Series:
+    """_parse_times, and every time within the years FIRST_YEAR to LAST_YEAR.
+
+    Raises:
+        InputError: as _parse_times, or a time outside those years, naming its row.
+    """
+    times = _parse_times(frame, column, tz, path, by, date_order, setting)
+    year = times.dt.year()
+    outside = (year < FIRST_YEAR) | (year > LAST_YEAR)
+    if outside.any():
+        idx = int(outside.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: time "
+                         f"{times[idx]} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
+                         "expected a date and time such as 2025-03-09T03:15:00")
+    return times
+
+
+def _parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
+                 by: pl.Series | None = None, date_order: str | None = None,
+                 setting: str = "date_order") -> pl.Series:
     """Timestamps -> UTC datetimes [us].
 
     Text with a UTC offset (``2025-03-09T03:15:00-05:00``) is converted directly. Naive text
@@ -282,7 +306,7 @@ def _numbers(frame: pl.DataFrame, column: str, path: Path, what: str) -> pl.Seri
             idx = int(values.is_nan().arg_max())  # type: ignore[arg-type]
             raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: NaN is not a "
                              f"number; expected {what}")
-        return values
+        return _bounded(values, column, path, what)
     text = s.cast(pl.String).str.strip_chars()
     values = text.cast(pl.Float64, strict=False)
     bad = (values.is_null() & text.is_not_null() & (text != "")) | values.is_nan()
@@ -290,4 +314,20 @@ def _numbers(frame: pl.DataFrame, column: str, path: Path, what: str) -> pl.Seri
         idx = int(bad.arg_max())  # type: ignore[arg-type]
         raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: {text[idx]!r} "
                          f"is not a number; expected {what}")
+    return _bounded(values, column, path, what)
+
+
+# Largest magnitude of a number read from an input file: a 15-digit register (the most a
+# float64 holds exactly) fits; anything larger, or infinite, is a corrupt cell and would
+# overflow the fit's sums of squares.
+MAX_INPUT_NUMBER = 1e15
+
+
+def _bounded(values: pl.Series, column: str, path: Path, what: str) -> pl.Series:
+    """values, unless one is infinite or beyond MAX_INPUT_NUMBER (an InputError naming it)."""
+    big = (values.abs() > MAX_INPUT_NUMBER).fill_null(False)
+    if big.any():
+        idx = int(big.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: {values[idx]!r} "
+                         f"is too large (more than {MAX_INPUT_NUMBER:g} in size); expected {what}")
     return values
