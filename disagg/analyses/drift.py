@@ -73,7 +73,7 @@ def drift_site(site_path: str | Path, memory_days: float = 30.0, step: float | N
                reference: tuple[dt.date, dt.date] | None = None, threshold: float = 0.10,
                confidence: float = 0.95, state: dict | None = None,
                date_from: dt.date | None = None, date_to: dt.date | None = None,
-               log_offset_min: float = 0.0) -> DriftResult:
+               log_offset_min: float | None = None) -> DriftResult:
     """Track each draw day by day and flag drift against the reference.
 
     Args:

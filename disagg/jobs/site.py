@@ -133,8 +133,8 @@ class BreakdownOptions:
     date_from: dt.date | None = None
     date_to: dt.date | None = None
     confidence: float = 0.95
-    log_offset_min: float = 0.0
-    on_duplicate: str = "error"
+    log_offset_min: float | None = None  # None: the site file's, else 0
+    on_duplicate: str | None = None  # None: the site file's, else error
     estimate_gaps: bool = False
     xlsx: bool = False
     report: bool = False
@@ -145,8 +145,10 @@ class BreakdownOptions:
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
         check_confidence(self.confidence)
-        check_log_offset(self.log_offset_min)
-        check_on_duplicate(self.on_duplicate)
+        if self.log_offset_min is not None:
+            check_log_offset(self.log_offset_min)
+        if self.on_duplicate is not None:
+            check_on_duplicate(self.on_duplicate)
 
 
 def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> Run:
@@ -197,9 +199,9 @@ class CheckOptions:
     site: Path
     date_from: dt.date | None = None
     date_to: dt.date | None = None
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     offset_window_min: float | None = None
-    on_duplicate: str = "error"
+    on_duplicate: str | None = None  # None: the site file's, else error
 
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
@@ -249,7 +251,7 @@ class DriftOptions:
     date_from: dt.date | None = None
     date_to: dt.date | None = None
     confidence: float = 0.95
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
 
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
@@ -302,7 +304,7 @@ class CompareOptions:
     after: Period | tuple[str, str]
     confidence: float = 0.95
     min_change: float = 0.05
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     from_history: bool = False
 
 
@@ -393,7 +395,7 @@ class ReportOptions:
     date_from: dt.date | None = None
     date_to: dt.date | None = None
     confidence: float = 0.95
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     memory_days: float = 30.0
     reference: Period | None = None
     drift: bool = True
@@ -401,7 +403,8 @@ class ReportOptions:
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
         check_confidence(self.confidence)
-        check_log_offset(self.log_offset_min)
+        if self.log_offset_min is not None:
+            check_log_offset(self.log_offset_min)
 
 
 def run_report(opts: ReportOptions, progress: Progress | None = None) -> Run:

@@ -94,9 +94,19 @@ DRIFT_SCHEMA = {
 _SCHEMAS = {"breakdown": BREAKDOWN_SCHEMA, "drift": DRIFT_SCHEMA}
 
 
+# A site file with this generic name (a folder per building, each holding site.toml) is
+# known by its folder's name instead.
+GENERIC_SITE_STEM = "site"
+
+
 def site_id(site_file: str | Path) -> str:
-    """The history's id of a site: its file name without .toml, filesystem-safe."""
-    text = re.sub(r"[^A-Za-z0-9._-]", "_", Path(site_file).stem).lstrip(".")
+    """The history's id of a site: its file name without .toml (for ``site.toml``, its
+    folder's name), filesystem-safe."""
+    path = Path(site_file)
+    stem = path.stem
+    if stem == GENERIC_SITE_STEM and path.parent.name:
+        stem = path.parent.name
+    text = re.sub(r"[^A-Za-z0-9._-]", "_", stem).lstrip(".")
     return text or "site"
 
 
