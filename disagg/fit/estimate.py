@@ -14,15 +14,15 @@ from dataclasses import dataclass, field
 import numpy as np
 import polars as pl
 
-from disagg.align import (
+from disagg.fit.align import (
     NS_PER_H,
     Aligned,
     baseload_columns,
     frame_arrays,
     frame_baseload,
 )
-from disagg.config import BaseloadSettings, SiteConfig
-from disagg.model import (
+from disagg.inputs.config import BaseloadSettings, SiteConfig
+from disagg.fit.solvers import (
     Fit,
     Indicators,
     chi2_upper_quantile,

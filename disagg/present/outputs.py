@@ -19,8 +19,8 @@ from pathlib import Path
 import polars as pl
 
 from disagg.errors import OutputError
-from disagg.drift import DriftResult
-from disagg.pipeline import CAUTION, BreakdownResult, CheckResult
+from disagg.analyses.drift import DriftResult
+from disagg.analyses.pipeline import CAUTION, BreakdownResult, CheckResult
 
 # Cells starting with these can run as formulas when a spreadsheet opens a CSV; OWASP
 # ("CSV Injection" page, from memory) recommends a leading single quote.
@@ -411,11 +411,11 @@ def drift_summary(result: DriftResult) -> str:
 
 
 def write_portfolio(result, out_dir: Path) -> list[Path]:
-    """Write portfolio.csv (one row per site; see disagg.portfolio.portfolio_frame) into
+    """Write portfolio.csv (one row per site; see disagg.jobs.batch.portfolio_frame) into
     out_dir, atomically, with text cells neutralised for spreadsheets.
 
     Args:
-        result: a disagg.portfolio.PortfolioResult.
+        result: a disagg.jobs.batch.PortfolioResult.
     """
     frame = result.frame
     inputs = [result.portfolio.source, *result.portfolio.sites]
@@ -425,6 +425,6 @@ def write_portfolio(result, out_dir: Path) -> list[Path]:
 
 
 def write_report(html: str, out_dir: Path, inputs: list[Path]) -> list[Path]:
-    """Write report.html (disagg.report) into out_dir atomically; never over an input."""
+    """Write report.html (disagg.present.report) into out_dir atomically; never over an input."""
     return write_atomically(out_dir, {
         "report.html": lambda p: p.write_text(html, encoding="utf-8")}, inputs)

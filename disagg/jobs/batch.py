@@ -185,8 +185,8 @@ def load_portfolio(path: str | Path) -> Portfolio:
 def run_site(job: SiteJob) -> SiteOutcome:
     """One site's whole job; never raises for the site's own problems.
 
-    Reads and fits the site (disagg.pipeline.breakdown_site), tracks drift when asked
-    (disagg.drift.drift_aligned on the same aligned data, default settings), writes the
+    Reads and fits the site (disagg.analyses.pipeline.breakdown_site), tracks drift when asked
+    (disagg.analyses.drift.drift_aligned on the same aligned data, default settings), writes the
     outputs into job.out_dir, and stores the months in the history store when the site file
     or the job names a history folder (checked before any output is written). Any exception
     becomes a failed outcome with a one-line error; nothing is written for a site whose fit,
@@ -210,7 +210,7 @@ def run_site(job: SiteJob) -> SiteOutcome:
 
 
 def _site_name(site_file: str) -> str | None:
-    from disagg.config import load_site
+    from disagg.inputs.config import load_site
 
     try:
         return load_site(site_file).name
@@ -219,13 +219,13 @@ def _site_name(site_file: str) -> str | None:
 
 
 def _run_site(job: SiteJob) -> SiteOutcome:
-    from disagg.outputs import write_breakdown, write_drift
-    from disagg.pipeline import breakdown_site
+    from disagg.present.outputs import write_breakdown, write_drift
+    from disagg.analyses.pipeline import breakdown_site
 
     result = breakdown_site(job.site_file, job.date_from, job.date_to)
     drift = None
     if job.drift:
-        from disagg.drift import drift_aligned
+        from disagg.analyses.drift import drift_aligned
 
         drift = drift_aligned(result.site, result.aligned, reference=job.drift_reference)
     out = Path(job.out_dir)
@@ -233,7 +233,7 @@ def _run_site(job: SiteJob) -> SiteOutcome:
     history = site.history or (Path(job.history) if job.history else None)
     stored = None
     if history is not None:
-        from disagg import history as hist
+        from disagg.present import history as hist
 
         hist.check_folder(history)  # a bad history folder fails before any output
     files = write_breakdown(result, out)
@@ -329,7 +329,7 @@ def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
     """Run every site of a portfolio; return the portfolio table and each site's outcome.
 
     Writes each site's outputs into out_dir/<site file name without .toml>/ (and its history)
-    from inside its job; writes nothing else (see disagg.outputs.write_portfolio).
+    from inside its job; writes nothing else (see disagg.present.outputs.write_portfolio).
 
     Args:
         workers: local worker processes (default: all cores; at most the number of sites).
@@ -550,7 +550,7 @@ def _f(x: float | None, digits: int = 1) -> str:
 
 def portfolio_summary(result: PortfolioResult, seconds: float | None = None) -> str:
     """A short table of the sites (the first SUMMARY_MAX_SITES), counts and the caution."""
-    from disagg.pipeline import CAUTION
+    from disagg.analyses.pipeline import CAUTION
 
     n, failed = len(result.outcomes), len(result.failed)
     took = f" in {seconds:,.1f} s" if seconds is not None else ""

@@ -20,12 +20,12 @@ import polars as pl
 from scipy.special import ndtr, ndtri
 
 from disagg import __version__
-from disagg.align import BASELOAD_COLUMN_COUNT, Aligned
-from disagg.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
+from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
+from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import Estimates, estimate_draws
-from disagg.outputs import neutralise_csv_text, to_json, write_atomically
-from disagg.pipeline import CAUTION, load_inputs
+from disagg.fit.estimate import Estimates, estimate_draws
+from disagg.present.outputs import neutralise_csv_text, to_json, write_atomically
+from disagg.analyses.pipeline import CAUTION, load_inputs
 
 COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
            "kw_after_low", "kw_after_high", "change", "p_value", "verdict"]
@@ -163,7 +163,7 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
         otherwise ``steady``. No correction for testing several loads at once.
 
     Args:
-        before, after: the two periods' fits (``disagg.estimate.estimate_draws``).
+        before, after: the two periods' fits (``disagg.fit.estimate.estimate_draws``).
         confidence: two-sided level of the intervals and of the test, a fraction.
         min_change: smallest |change| called rising or falling, a fraction of the earlier draw.
 

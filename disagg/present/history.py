@@ -200,7 +200,7 @@ def month_coverage(aligned, tz: str) -> pl.DataFrame:
     least one interval used), first_date and last_date of those days.
 
     Args:
-        aligned: disagg.align.Aligned; its ``use`` mask says which intervals the fit used.
+        aligned: disagg.fit.align.Aligned; its ``use`` mask says which intervals the fit used.
         tz: the site's time zone.
     """
     local = aligned.frame["start_utc"].dt.convert_time_zone(tz)
@@ -236,13 +236,13 @@ def _days(n: int | None, first, last) -> str:
 
 def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None,
                     date_to: dt.date | None = None) -> Stored:
-    """Store each month of a breakdown result (disagg.pipeline.BreakdownResult) with its
+    """Store each month of a breakdown result (disagg.analyses.pipeline.BreakdownResult) with its
     coverage, replacing what was stored for those months of that site; see the module
     docstring for the months that are left as they were.
 
     Args:
         date_from, date_to: the run's requested range (local dates, inclusive; None:
-            unbounded), as given to disagg.pipeline.breakdown_site.
+            unbounded), as given to disagg.analyses.pipeline.breakdown_site.
 
     Returns:
         The month files written and the months not stored, with why.
@@ -288,11 +288,11 @@ def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None
 
 
 def store_drift(folder: str | Path, site, drift_result) -> list[Path]:
-    """Store a drift run's daily tracked draws (disagg.drift.DriftResult.table) by local
+    """Store a drift run's daily tracked draws (disagg.analyses.drift.DriftResult.table) by local
     month; a day already stored is replaced, the month's other stored days are kept.
 
     Args:
-        site: the site's settings (disagg.config.SiteConfig): its name, file and id.
+        site: the site's settings (disagg.inputs.config.SiteConfig): its name, file and id.
 
     Returns:
         The month files written.
