@@ -240,7 +240,7 @@ def test_ewma_alarms_need_both_a_significant_and_a_practical_change():
 
 # --- the per-weight form (a diagonal step matrix) ----------------------------------------
 
-from disagg.track import (PER_WEIGHT_DELTA, mean_update, recent_level,  # noqa: E402
+from disagg.analyses.track import (PER_WEIGHT_DELTA, mean_update, recent_level,  # noqa: E402
                           recent_sd_factor, scales_for_memory)
 
 

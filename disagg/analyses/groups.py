@@ -12,9 +12,9 @@ from __future__ import annotations
 
 import dataclasses
 
-from disagg.align import Aligned, frame_baseload
-from disagg.config import Prior, SiteConfig
-from disagg.estimate import inseparable
+from disagg.fit.align import Aligned, frame_baseload
+from disagg.inputs.config import Prior, SiteConfig
+from disagg.fit.estimate import inseparable
 
 
 def inseparable_groups(site: SiteConfig, aligned: Aligned) -> list[list[str]]:
