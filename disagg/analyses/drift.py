@@ -298,6 +298,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             flags.append(list(t.flags))
             found.append((est, i, t))
         k = len(ids)
+        if k == 0:
+            why = "; ".join(f"{c}: {r}" for c, r in no_reference.items())
+            raise InputError(f"{site.meter.file}: no load has a reference period to track it "
+                             f"from ({why})")
         specs = weather_specs(site, members)
         ref_kw = np.array([est.kw[i] for est, i, _ in found])
         ref_se = np.array([est.se_kw[i] for est, i, _ in found])
