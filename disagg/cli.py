@@ -206,13 +206,20 @@ def demo(
 def drift(
     site: SiteArg,
     out: Annotated[Path, typer.Option("--out", help="Folder for drift.csv and drift.json.")],
-    memory: Annotated[float, typer.Option("--memory", help="Tracker memory in days; converted "
-                                          "to the step size.")] = 30.0,
+    memory: Annotated[float, typer.Option("--memory", help="Tracker memory in days, the same "
+                                          "for every load whatever its duty cycle.")] = 30.0,
     step: Annotated[Optional[float], typer.Option("--step", help="Normalized LMS step size "
-                                                  "instead of --memory (0 < step < 2).")] = None,
-    reference: Annotated[Optional[str], typer.Option("--reference", help="Reference period "
-                                                     "FROM:TO (local dates); default the first "
-                                                     "90 days.")] = None,
+                                                  "mu (0 < step < 2); default 1.")] = None,
+    reference: Annotated[Optional[str], typer.Option("--reference", help="One reference period "
+                                                     "FROM:TO (local dates) for all loads; "
+                                                     "default each load's own first 90 days "
+                                                     "with enough run-hours.")] = None,
+    reference_hours: Annotated[float, typer.Option("--reference-hours", help="Run-hours a "
+                                                   "load's own reference period must hold.")
+                               ] = 48.0,
+    baseload_memory: Annotated[Optional[float], typer.Option("--baseload-memory", help="Memory "
+                                                             "of the baseload levels in days; "
+                                                             "default --memory.")] = None,
     threshold: Annotated[float, typer.Option("--threshold", help="Relative change that "
                                              "matters, a fraction.")] = 0.10,
     state: Annotated[Optional[Path], typer.Option("--state", help="Tracker state file: "
@@ -241,8 +248,13 @@ def drift(
                 saved = json.loads(state.read_text(encoding="utf-8"))
             except (OSError, ValueError) as exc:
                 raise InputError(f"{state}: cannot read the tracker state ({exc})") from None
+        if not (reference_hours > 0):
+            from disagg.errors import ConfigError
+            raise ConfigError(f"--reference-hours {reference_hours:g}: expected run-hours "
+                              "above 0")
         result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1,
-                            log_offset)
+                            log_offset, baseload_memory_days=baseload_memory,
+                            min_reference_run_h=reference_hours)
         text = drift_summary(result)
         from disagg.inputs.config import load_site
 

@@ -33,7 +33,7 @@ from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
 from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
 from disagg.analyses.track import (EWMA_L, MU_MAX, PER_WEIGHT_DELTA, ewma_alarms, nlms,
                                    recent_level, recent_sd_factor, scales_for_memory,
-                                   step_for_rates)
+                                   step_for_rates, weight_covariance)
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import Aligned, baseload_columns
 from disagg.fit.estimate import Estimates, degrees, estimate_draws, weather_columns, weather_specs
@@ -49,7 +49,7 @@ MIN_REFERENCE_RUN_H = 48.0
 # value forgets in about tau days): L = Phi^-1(1 - 0.01 / (2 x 365 / tau)), 3.35 at 30 days
 # (common practice in spirit, no source for the 1 %; the measured rate is in
 # bench/RESULTS.md).
-FALSE_ALARM_PER_LOAD_YEAR = 0.01
+FALSE_ALARM_PER_LOAD_YEAR = 0.002
 
 
 def chart_limit(tau_days: float) -> float:
@@ -351,28 +351,22 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         delta = PER_WEIGHT_DELTA
         scales, tau_all = scales_for_memory(X, memory, mu, row_sets, delta)
         tau_intervals = tau_all[:k]
-        # Band: in the plain regime column j is a scalar LMS with rate 1 / tau_j; its
-        # steady-state error is that of a least-squares fit with weights exp(-t / tau_j)
-        # (effective size 2 tau_j): sum_l gamma_l C_jl / (2 tau_j P_j^2), with gamma_l the
-        # lag-l autocovariance of the differenced residual at the reference draws (lags up
-        # to BAND_LAGS: differencing makes neighbouring residuals correlated), C_jl the
-        # mean of x_tj x_(t+l)j and P_j = C_j0, all over its reference period.
+        # Band: the steady-state standard deviation of each tracked weight from the
+        # independence theory of LMS (track.weight_covariance), over its own reference
+        # period, with the differenced residual's autocovariance at the reference draws up
+        # to BAND_LAGS (differencing makes neighbouring residuals correlated); the coupling
+        # with loads that switch together is included.
         resid = y - X @ w0
         sd = np.zeros(k)
         for rows, cols in row_sets:
             if len(rows) <= BAND_LAGS:
                 continue
-            r_w, X_w = resid[rows], X[rows]
-            gamma = [float(np.mean(r_w[lag:] * r_w[:len(r_w) - lag]))
-                     for lag in range(BAND_LAGS + 1)]
+            r_w = resid[rows]
+            gamma = np.array([float(np.mean(r_w[lag:] * r_w[:len(r_w) - lag]))
+                              for lag in range(BAND_LAGS + 1)])
+            S = weight_covariance(X[rows], scales, mu, gamma, delta)
             for j in cols[cols < k]:
-                x = X_w[:, j]
-                power = float(np.mean(x * x))
-                if power > 0 and np.isfinite(tau_intervals[j]):
-                    num = gamma[0] * power + 2.0 * sum(
-                        gamma[lag] * float(np.mean(x[lag:] * x[:len(x) - lag]))
-                        for lag in range(1, BAND_LAGS + 1))
-                    sd[j] = math.sqrt(max(num, 0.0) / (2.0 * tau_intervals[j] * power**2))
+                sd[j] = math.sqrt(max(float(S[j, j]), 0.0))
         reference_info = {"from": main[0].isoformat(), "to": main[1].isoformat(),
                           "intervals": int(main_est.frame.height)}
         windows_info = {c: [windows[c][0].isoformat(), windows[c][1].isoformat()] for c in ids}
@@ -427,14 +421,20 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     recent = np.column_stack([recent_level(series[:, j], tau_days[j], lag_days[j])
                               for j in range(k)])[len(past):] if k else daily
     # The alarm compares the tracked value with the reference: both are uncertain.
-    sd_alarm = np.sqrt(sd**2 + ref_se**2)
+    # The alarm reads the recent level (the mean draw of the last memory-length, the
+    # tracker's lag taken out): it follows a step fully within one memory. It and the
+    # reference are both uncertain.
+    sd_recent_all = np.array([sd[j] * recent_sd_factor(tau_days[j], lag_days[j])
+                              for j in range(k)])
+    sd_alarm = np.sqrt(sd_recent_all**2 + ref_se**2)
     rows = []
     alarms = []
     for j, eq in enumerate(ids):
         why = _not_alarmed(flags[j], ref_run_h[j])
         if why is None:
-            alarm = ewma_alarms(daily[:, j], ref_kw[j], sd_alarm[j], threshold,
-                                chart_limit(tau_days[j]))
+            level = recent[:, j]
+            alarm = ewma_alarms(np.where(np.isfinite(level), level, ref_kw[j]), ref_kw[j],
+                                sd_alarm[j], threshold, chart_limit(tau_days[j]))
         else:
             alarm = np.zeros(len(days), dtype=bool)
         if alarm.any() and eq not in first_alarm:
@@ -504,8 +504,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "groups": [group_id(g) for g in groups],
         "equipment": status,
         "threshold": threshold,
-        "rule": ("alarm when |tracked - reference| exceeds both L standard deviations (of the "
-                 "tracked value and the reference together; EWMA control chart, Roberts 1959; "
+        "rule": ("alarm when |recent level - reference| exceeds both L standard deviations "
+                 "(of the recent level, the mean draw of the last memory-length with the "
+                 "tracker's lag taken out, and of the reference together; an EWMA control "
+                 "chart, Roberts 1959, read without its lag; "
                  f"L = Phi^-1(1 - {FALSE_ALARM_PER_LOAD_YEAR:g} / (2 x 365 / memory)), at least "
                  f"{EWMA_L:g}, for about {FALSE_ALARM_PER_LOAD_YEAR:.0%} false alarms per load "
                  "and year) and threshold x reference"),

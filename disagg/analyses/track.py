@@ -19,7 +19,7 @@ column forgets at its own requested pace whatever its duty cycle.
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import expm
+from scipy.linalg import expm, solve_discrete_lyapunov
 
 # Normalized LMS converges in the mean square for 0 < mu < 2 (Haykin, Adaptive Filter Theory,
 # the normalized LMS chapter, from memory; also stated in vendor DSP documentation, read via
@@ -221,6 +221,52 @@ def scales_for_memory(X: np.ndarray, memory_intervals: np.ndarray, mu: float,
             break
         d = np.where(excited, d * kappa ** -SCALE_DAMPING, d)
     return d, achieved
+
+
+def weight_covariance(X: np.ndarray, scale: np.ndarray, mu: float, autocov: np.ndarray,
+                      delta: float = PER_WEIGHT_DELTA) -> np.ndarray:
+    """Steady-state covariance of the per-weight tracker's weights around their mean.
+
+    Independence theory of LMS (Haykin, Adaptive Filter Theory, from memory): the weight
+    error c_t = w_t - w* follows c <- (I - mu g D x x') c + mu g D x e with g = 1 /
+    (delta + x . D x), so its covariance S solves the discrete Lyapunov equation
+    S = (I - A) S (I - A)' + Q, A = `mean_update`, Q = mu^2 sum_l gamma_l mean_t
+    g_t g_(t+l) D x_t x_(t+l)' D (symmetrized), gamma_l the residual autocovariance at lag l
+    (differenced data have correlated neighbours). The coupling between columns that run
+    together is in A's off-diagonal terms. A direction that no row excites keeps 0.
+
+    Args:
+        X: (n, p) inputs; scale: (p,) d; autocov: (L + 1,) residual autocovariances
+            [kWh^2] at lags 0..L.
+
+    Returns:
+        (p, p) covariance [kW^2].
+    """
+    X = np.asarray(X, dtype=float)
+    n, p = X.shape
+    excited = np.flatnonzero(np.any(X != 0, axis=0))
+    S = np.zeros((p, p))
+    if not len(excited) or n == 0:
+        return S
+    Xe = X[:, excited]
+    de = scale[excited]
+    g = 1.0 / (delta + np.einsum("ij,ij->i", X, X * scale))
+    G = Xe * de * g[:, None]  # rows: g_t D x_t
+    A = mu * G.T @ Xe / n
+    Q = np.zeros((len(excited), len(excited)))
+    for lag, gamma in enumerate(np.asarray(autocov, dtype=float)):
+        if lag >= n:
+            break
+        if lag == 0:
+            Q += gamma * G.T @ G / n
+        else:
+            C = G[lag:].T @ G[:n - lag] / n
+            Q += gamma * (C + C.T)
+    Q *= mu**2
+    F = (1.0 - 1e-9) * (np.eye(len(excited)) - A)
+    S_e = solve_discrete_lyapunov(F, Q)
+    S[np.ix_(excited, excited)] = (S_e + S_e.T) / 2.0
+    return S
 
 
 def recent_level(daily: np.ndarray, tau_days: float, lag_days: int) -> np.ndarray:
