@@ -32,7 +32,7 @@ from scipy.special import ndtri
 from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
 from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
 from disagg.analyses.track import (EWMA_L, MU_MAX, PER_WEIGHT_DELTA, ewma_alarms, nlms,
-                                   recent_level, recent_sd_factor, scales_for_memory,
+                                   recent_levels, scales_for_memory,
                                    step_for_rates, weight_covariance)
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import Aligned, baseload_columns
@@ -415,37 +415,45 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         daily[:, int(c)] += W[last_of_day, int(s_col)] * d_ref
     tau_days = tau_intervals / per_day
     lag_days = [max(1, int(round(t))) if np.isfinite(t) else 1 for t in tau_days]
-    n_tail = max(lag_days, default=1)
-    past = np.array(tail, dtype=float).reshape(-1, k)
+    n_tail = max(lag_days, default=1) + 1
+    if state is None:
+        # The series starts with the start value (the reference draws), so that the first
+        # days get a lag-free level too (track.recent_levels).
+        start = np.array(w0[:k], dtype=float)
+        for c, s_col, d_ref in at_ref:
+            start[int(c)] += w0[int(s_col)] * d_ref
+        past = start[None, :]
+    else:
+        past = np.array(tail, dtype=float).reshape(-1, k)
     series = np.vstack([past, daily])
-    recent = np.column_stack([recent_level(series[:, j], tau_days[j], lag_days[j])
-                              for j in range(k)])[len(past):] if k else daily
-    # The alarm compares the tracked value with the reference: both are uncertain.
+    recent = np.empty_like(daily)
+    factor = np.empty_like(daily)
+    for j in range(k):
+        recent[:, j], factor[:, j] = recent_levels(series[:, j], len(past), tau_days[j],
+                                                   lag_days[j])
     # The alarm reads the recent level (the mean draw of the last memory-length, the
     # tracker's lag taken out): it follows a step fully within one memory. It and the
     # reference are both uncertain.
-    sd_recent_all = np.array([sd[j] * recent_sd_factor(tau_days[j], lag_days[j])
-                              for j in range(k)])
-    sd_alarm = np.sqrt(sd_recent_all**2 + ref_se**2)
+    sd_recent_all = sd[None, :] * factor
+    sd_alarm = np.sqrt(sd_recent_all**2 + ref_se[None, :] ** 2)
     rows = []
     alarms = []
     for j, eq in enumerate(ids):
         why = _not_alarmed(flags[j], ref_run_h[j])
         if why is None:
-            level = recent[:, j]
-            alarm = ewma_alarms(np.where(np.isfinite(level), level, ref_kw[j]), ref_kw[j],
-                                sd_alarm[j], threshold, chart_limit(tau_days[j]))
+            alarm = ewma_alarms(recent[:, j], ref_kw[j], sd_alarm[:, j], threshold,
+                                chart_limit(tau_days[j]))
         else:
             alarm = np.zeros(len(days), dtype=bool)
         if alarm.any() and eq not in first_alarm:
             first_alarm[eq] = days[int(np.argmax(alarm))].isoformat()
-        sd_recent = sd[j] * recent_sd_factor(tau_days[j], lag_days[j])
         for d_i, d in enumerate(days):
             kw = float(daily[d_i, j])
             lvl = float(recent[d_i, j])
             c_low = c_high = None
             if ref_kw[j] > 0 and math.isfinite(lvl):
-                c_low, c_high = _change_interval(lvl, sd_recent, ref_kw[j], ref_se[j], z)
+                c_low, c_high = _change_interval(lvl, float(sd_recent_all[d_i, j]), ref_kw[j],
+                                                 ref_se[j], z)
             rows.append({"date": d, "equipment": eq, "kw_tracked": kw,
                          "kw_low": kw - z * sd[j], "kw_high": kw + z * sd[j],
                          "kw_reference": float(ref_kw[j]),
@@ -459,16 +467,14 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         j = ids.index(eq)
         kw = float(daily[-1, j])
         lvl = float(recent[-1, j])
-        sd_recent = sd[j] * recent_sd_factor(tau_days[j], lag_days[j])
-        if not math.isfinite(lvl):  # fewer days than the lag: the tracked value, lagging
-            lvl, sd_recent = kw, sd[j]
+        sd_recent = float(sd_recent_all[-1, j])
         low, high = _change_interval(lvl, sd_recent, ref_kw[j], ref_se[j], z)
         alarms.append({
             "equipment": eq, "members": members[j], "first_alarm_date": first_date,
             "kw_reference": float(ref_kw[j]), "kw_latest": kw, "kw_recent": lvl,
             "change": lvl / ref_kw[j] - 1.0, "change_low": low, "change_high": high,
             "change_tracked": kw / ref_kw[j] - 1.0,
-            "recent_days": lag_days[j], "as_of": days[-1].isoformat(),
+            "recent_days": min(lag_days[j], len(series) - 1), "as_of": days[-1].isoformat(),
         })
     span_days = (days[-1] - days[0]).days + 1
     memory_used = {eq: float(tau_days[j]) if np.isfinite(tau_days[j]) else None

@@ -289,6 +289,26 @@ def recent_level(daily: np.ndarray, tau_days: float, lag_days: int) -> np.ndarra
     return out
 
 
+def recent_levels(series: np.ndarray, first: int, tau_days: float,
+                  lag_days: int) -> tuple[np.ndarray, np.ndarray]:
+    """`recent_level` for rows first.. of a daily series, the lag cut to the rows before.
+
+    Row i uses lag min(lag_days, i), so a short run (fewer days than the lag, the series
+    starting with the start value) still gets a lag-free level, noisier the shorter the lag.
+
+    Returns:
+        (levels, sd factors `recent_sd_factor` of each row's lag); without a finite tau
+        (a load never excited) the tracked values and factor 1.
+    """
+    idx = np.arange(first, len(series))
+    if not (np.isfinite(tau_days) and tau_days > 0) or first < 1:
+        return series[idx].astype(float), np.ones(len(idx))
+    lag = np.minimum(lag_days, idx)
+    a = np.exp(-lag / tau_days)
+    level = (series[idx] - a * series[idx - lag]) / (1.0 - a)
+    return level, np.sqrt((1.0 + a) / (1.0 - a))
+
+
 def recent_sd_factor(tau_days: float, lag_days: int) -> float:
     """Standard deviation of `recent_level` over that of the tracked value.
 
