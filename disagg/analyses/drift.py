@@ -58,6 +58,10 @@ def chart_limit(tau_days: float) -> float:
     return max(EWMA_L, float(ndtri(1.0 - FALSE_ALARM_PER_LOAD_YEAR / (2.0 * blocks))))
 
 
+# The recent level must span at least this many days before it can alarm (a week: every
+# weekday schedule seen; common practice, no source).
+MIN_RECENT_DAYS = 7
+
 # Residual autocovariance lags in the tracker's band: one hour of 15-minute intervals
 # (differenced residuals are correlated at lag 1; a little further for slow noise).
 BAND_LAGS = 4
@@ -443,6 +447,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         if why is None:
             alarm = ewma_alarms(recent[:, j], ref_kw[j], sd_alarm[:, j], threshold,
                                 chart_limit(tau_days[j]))
+            # A level over only a few days rests on a handful of switchings: its error is far
+            # from normal, so it is not alarmed on before MIN_RECENT_DAYS.
+            alarm &= (len(past) + np.arange(len(days))) >= min(MIN_RECENT_DAYS, lag_days[j])
         else:
             alarm = np.zeros(len(days), dtype=bool)
         if alarm.any() and eq not in first_alarm:
