@@ -23,18 +23,17 @@ from typer.testing import CliRunner
 
 from disagg.jobs import batch as portfolio
 from disagg.present import history
+from disagg.present.terminal import DRIFT_NOT_RUN, portfolio_summary
 from disagg.cli import app
 from disagg.inputs.config import load_site
 from disagg.errors import ConfigError
 from disagg.jobs.batch import (
-    DRIFT_NOT_RUN,
     Portfolio,
     PortfolioResult,
     SiteJob,
     SiteOutcome,
     load_portfolio,
     portfolio_frame,
-    portfolio_summary,
     run_portfolio,
     run_site,
 )

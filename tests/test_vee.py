@@ -17,7 +17,7 @@ import pytest
 
 from disagg.inputs.config import load_site
 from disagg.errors import ConfigError, InputError
-from disagg.present.outputs import check_summary
+from disagg.present.terminal import check_summary
 from disagg.analyses.pipeline import breakdown_site, check_site, load_inputs
 from disagg.inputs.readers import read_meter
 from disagg.inputs.vee import (

@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
-from disagg.inputs.config import TariffSettings
-from disagg.fit.estimate import Estimates
 from disagg.analyses.tariff import interval_prices, price_table
+from disagg.fit.estimate import Estimates
+from disagg.inputs.config import TariffSettings
 
 COLUMNS = ["period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh", "kwh_low",
            "kwh_high", "share", "flags", "peak_kw", "cost"]

@@ -21,9 +21,9 @@ import numpy as np
 import polars as pl
 from scipy.optimize import nnls
 
+from disagg.errors import InputError
 from disagg.fit.align import align, baseload_columns
 from disagg.inputs.config import SiteConfig
-from disagg.errors import InputError
 from disagg.inputs.readers import MeterData, RunLog, Segments
 
 NS_PER_MIN = 60_000_000_000

@@ -20,17 +20,16 @@ import polars as pl
 
 from disagg import __version__
 from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
-from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
-from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
+from disagg.analyses.pipeline import CAUTION, check_confidence, load_inputs
+from disagg.analyses.verdict import RULE as VERDICT_RULE
+from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: F401 - VERDICTS: API
 from disagg.errors import ConfigError, InputError
+from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
 from disagg.fit.estimate import Estimates, estimate_draws
-from disagg.present.outputs import neutralise_csv_text, to_json, write_atomically
-from disagg.analyses.pipeline import CAUTION, load_inputs
+from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 
 COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
            "kw_after_low", "kw_after_high", "change", "p_value", "verdict"]
-from disagg.analyses.verdict import RULE as VERDICT_RULE  # noqa: E402
-from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: E402,F401
 # An estimate with one of these flags says more about the prior or the schedule than about
 # the draw, so a change between two of them is no evidence (the flags of estimate.py).
 UNCLEAR_FLAGS = ("prior-driven", "schedule-bound", "not-run")
@@ -318,8 +317,7 @@ def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
         ConfigError: bad settings or overlapping periods; InputError: bad files, or a period
         with no (or too little) usable data.
     """
-    if not 0.5 <= confidence < 1.0:
-        raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
+    check_confidence(confidence)
     if not (math.isfinite(min_change) and min_change >= 0.0):
         raise ConfigError(f"--min-change {min_change}: expected a fraction of 0 or more, "
                           "such as 0.05 for 5 %")
@@ -363,67 +361,3 @@ def compare_aligned(site: SiteConfig, aligned: Aligned, before: tuple[dt.date, d
     return CompareResult(site, table, report)
 
 
-def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
-    """Write compare.csv and compare.json into out_dir, all or nothing.
-
-    Raises:
-        OutputError: the folder cannot be written, or a name would replace an input.
-    """
-    t = result.table.with_columns(
-        pl.col("kw_before", "kw_before_low", "kw_before_high", "kw_after", "kw_after_low",
-               "kw_after_high", "change").round(6),
-        pl.col("p_value").round_sig_figs(4))
-    site = result.site
-    files = {
-        "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
-        "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
-    }
-    return write_atomically(out_dir, files, site.input_files())
-
-
-def _num(x: float | None, spec: str) -> str:
-    return "-" if x is None or not math.isfinite(x) else format(x, spec)
-
-
-def compare_summary(result: CompareResult) -> str:
-    """A short readable table of both periods' draws, the verdicts, notes and the caution."""
-    r = result.report
-    pb, pa = r["periods"]["before"], r["periods"]["after"]
-    level = f"{100 * r['confidence']:g} %"
-    lines = [(f"{r['site']}: draws before {pb['from']} to {pb['to']} ({pb['intervals_used']:,} "
-             f"intervals used) and after {pa['from']} to {pa['to']} ({pa['intervals_used']:,} "
-             "intervals used)"),
-             "",
-             f"kW: running draw [kW] and its {level} range; change: after / before - 1 [%]",
-             (f"{'equipment':<22} {'kW before':>9} {'range':>15} {'kW after':>9} {'range':>15} "
-             f"{'change':>8} {'p-value':>8}  verdict")]
-
-    def rng(lo, hi):
-        return "-" if lo is None else f"{_num(lo, ',.2f')}-{_num(hi, ',.2f')}"
-
-    for row in result.table.iter_rows(named=True):
-        p = row["p_value"]
-        p_text = "-" if p is None else ("<0.001" if p < 0.001 else f"{p:.3f}")
-        change = "-" if row["change"] is None else f"{100 * row['change']:+.1f} %"
-        lines.append(f"{row['equipment'][:22]:<22} {_num(row['kw_before'], ',.2f'):>9} "
-                     f"{rng(row['kw_before_low'], row['kw_before_high']):>15} "
-                     f"{_num(row['kw_after'], ',.2f'):>9} "
-                     f"{rng(row['kw_after_low'], row['kw_after_high']):>15} "
-                     f"{change:>8} {p_text:>8}  {row['verdict']}")
-    lines.append(f"rising/falling: p-value under {1 - r['confidence']:.3g} and a change of at "
-                 f"least {100 * r['min_change']:g} %; steady: neither; unclear: the data cannot "
-                 "tell (why below).")
-    for d in r["equipment"]:
-        if d.get("reference_temp_c") is not None:
-            lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
-                         "outdoor temperature")
-    for d in r["equipment"]:
-        if d["reason"]:
-            lines.append(f"unclear {d['equipment']}: {d['reason']}")
-    for name, p in (("before", pb), ("after", pa)):
-        for w in p["warnings"]:
-            lines.append(f"Note ({name}): {w}")
-    for n in r["data_notes"]:
-        lines.append(f"Note: {n}")
-    lines += ["", f"Caution: {CAUTION}"]
-    return "\n".join(lines)

@@ -21,7 +21,6 @@ from disagg.fit.align import (
     frame_arrays,
     frame_baseload,
 )
-from disagg.inputs.config import BaseloadSettings, SiteConfig
 from disagg.fit.solvers import (
     Fit,
     Indicators,
@@ -32,6 +31,7 @@ from disagg.fit.solvers import (
     jackknife_cov,
     quantile,
 )
+from disagg.inputs.config import BaseloadSettings, SiteConfig
 
 # Two equipment hour series correlated at or above this cannot be told apart; the same
 # bound on R^2 against the baseload columns, and on R^2 against everything (VIF >= 20).

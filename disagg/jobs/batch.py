@@ -38,6 +38,7 @@ from pathlib import Path
 import polars as pl
 
 from disagg.errors import ConfigError, DisaggError
+from disagg.present.terminal import DRIFT_NOT_RUN
 from disagg.progress import Progress, report
 
 # Start method of the local worker processes. "forkserver": every worker is forked from a
@@ -219,32 +220,14 @@ def _site_name(site_file: str) -> str | None:
 
 
 def _run_site(job: SiteJob) -> SiteOutcome:
-    from disagg.present.outputs import write_breakdown, write_drift
-    from disagg.analyses.pipeline import breakdown_site
+    from disagg.jobs.site import BreakdownOptions, run_breakdown
 
-    result = breakdown_site(job.site_file, job.date_from, job.date_to)
-    drift = None
-    if job.drift:
-        from disagg.analyses.drift import drift_aligned
-
-        drift = drift_aligned(result.site, result.aligned, reference=job.drift_reference)
-    out = Path(job.out_dir)
-    site = result.site
-    history = site.history or (Path(job.history) if job.history else None)
-    stored = None
-    if history is not None:
-        from disagg.present import history as hist
-
-        hist.check_folder(history)  # a bad history folder fails before any output
-    files = write_breakdown(result, out)
-    if drift is not None:
-        files += write_drift(drift, out, site.input_files())
-    if history is not None:
-        with hist.outputs_already_written(files):
-            stored = hist.store_breakdown(history, result, job.date_from, job.date_to)
-            files += stored.files
-            if drift is not None:
-                files += hist.store_drift(history, site, drift)
+    run = run_breakdown(BreakdownOptions(
+        Path(job.site_file), Path(job.out_dir), job.date_from, job.date_to,
+        history=Path(job.history) if job.history else None, drift=job.drift,
+        drift_reference=job.drift_reference))
+    result, drift = run.result if job.drift else (run.result, None)
+    site, files = result.site, run.paths
     table = result.breakdown
     periods = table["period"].unique().sort()
     totals = table.group_by("equipment", maintain_order=True).agg(pl.col("kwh").sum())
@@ -262,11 +245,8 @@ def _run_site(job: SiteJob) -> SiteOutcome:
         cost=float(sum(m["cost"] for m in tariff["months"])) if tariff else None,
         currency=tariff["currency"] if tariff else None,
         alarm_equipment=alarmed, drift_note=drift_note,
-        history_note=" | ".join(stored.notes) if stored and stored.notes else None,
+        history_note=" | ".join(run.notes) if run.notes else None,
         files=[str(p) for p in files])
-
-
-DRIFT_NOT_RUN = "drift not tracked (batch --drift tracks it)"
 
 
 def _alarms(drift) -> tuple[int | None, list[str] | None, str]:
@@ -540,47 +520,33 @@ def _run_on_cluster(address: str, jobs: list[SiteJob],
     return outcomes  # type: ignore[return-value]
 
 
-# Sites listed one per line in the terminal summary; portfolio.csv always has them all.
-SUMMARY_MAX_SITES = 50
 
 
-def _f(x: float | None, digits: int = 1) -> str:
-    return "-" if x is None else f"{x:,.{digits}f}"
+@dataclass(frozen=True)
+class BatchOptions:
+    """Settings of disagg batch (see run_portfolio)."""
+
+    portfolio: Path
+    out: Path
+    workers: int | None = None
+    cluster: str | None = None
+    date_from: dt.date | None = None
+    date_to: dt.date | None = None
+    drift: bool = False
+    drift_reference: tuple[dt.date, dt.date] | None = None
 
 
-def portfolio_summary(result: PortfolioResult, seconds: float | None = None) -> str:
-    """A short table of the sites (the first SUMMARY_MAX_SITES), counts and the caution."""
-    from disagg.analyses.pipeline import CAUTION
+def run_batch(opts: BatchOptions, progress: Progress | None = None):
+    """Every site's job (run_portfolio), then portfolio.csv; returns a disagg.jobs.site.Run
+    whose result is the PortfolioResult. An interrupt (BatchInterrupted) writes no
+    portfolio.csv, so a partial table never passes for the portfolio's."""
+    from disagg.jobs.site import Run
+    from disagg.present.outputs import write_portfolio
+    from disagg.present.terminal import portfolio_summary
 
-    n, failed = len(result.outcomes), len(result.failed)
-    took = f" in {seconds:,.1f} s" if seconds is not None else ""
-    lines = [(f"{result.portfolio.source}: {n} site{'s' * (n != 1)}, {n - failed} ok, "
-              f"{failed} failed{took}"),
-             (f"{'file':<18} {'site':<24} {'period':<16} {'metered kWh':>12} {'peak kW':>8} "
-              f"{'cost':>14} {'alarms':>6} {'CV(RMSE) %':>10} {'NMBE %':>7}  status")]
-    for o in result.outcomes[:SUMMARY_MAX_SITES]:
-        cost = "-" if o.cost is None else f"{_f(o.cost, 0)} {(o.currency or '')[:4]}"
-        lines.append(f"{o.folder[:18]:<18} {(o.site or '-')[:24]:<24} {o.period or '-':<16} "
-                     f"{_f(o.metered_kwh, 0):>12} {_f(o.peak_kw):>8} {cost:>14} "
-                     f"{'-' if o.alarms is None else o.alarms:>6} {_f(o.cv_rmse_pct):>10} "
-                     f"{_f(o.nmbe_pct, 2):>7}  {o.status}")
-    if n > SUMMARY_MAX_SITES:
-        lines.append(f"... and {n - SUMMARY_MAX_SITES} more sites: see portfolio.csv")
-    ok = [o for o in result.outcomes if o.status == "ok"]
-    if ok and all(o.drift_note == DRIFT_NOT_RUN for o in ok):
-        lines.append("alarms: drift not tracked (add --drift to count drift alarms)")
-    elif any(o.alarms is None for o in ok):
-        lines.append("alarms: - where no day was tracked after the drift reference period; "
-                     "see drift_note in portfolio.csv")
-    unstored = sum(1 for o in ok if o.history_note)
-    if unstored:
-        lines.append(f"history: {unstored} site{'s' * (unstored != 1)} with months not stored "
-                     "(a --from/--to range that cuts a month short, or a stored month with "
-                     "more data); see history_note in portfolio.csv")
-    lines.append("file: the site file's name (its output folder); peak kW: the highest "
-                 "monthly peak demand of the intervals used; cost: over the range (sites "
-                 "with a [tariff])")
-    lines.append("CV(RMSE) and NMBE: hourly, as ASHRAE Guideline 14 defines them (criteria 30 % "
-                 "and 10 %); each site's details are in its folder's fit.json")
-    lines += ["", f"Caution: {CAUTION}"]
-    return "\n".join(lines)
+    t0 = time.perf_counter()
+    result = run_portfolio(opts.portfolio, opts.out, opts.workers, opts.cluster, opts.date_from,
+                           opts.date_to, opts.drift, progress=progress,
+                           drift_reference=opts.drift_reference)
+    paths = write_portfolio(result, opts.out)
+    return Run(result, portfolio_summary(result, time.perf_counter() - t0), paths)

@@ -44,7 +44,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
-import math
 import os
 import re
 import shutil
@@ -185,8 +184,7 @@ def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
 class Stored:
     """What storing a breakdown did.
 
-    files: the month files written (store_configured: the site's folder in the store, when
-        any month was stored). skipped: period -> why that month was left as it was.
+    files: the month files written. skipped: period -> why that month was left as it was.
     """
 
     files: list[Path] = field(default_factory=list)
@@ -503,55 +501,9 @@ def select_equipment(frame: pl.DataFrame, equipment: str | None) -> pl.DataFrame
     return rows
 
 
-def _f(x: float | None, digits: int = 1) -> str:
-    return "-" if x is None or math.isnan(x) else f"{x:,.{digits}f}"
-
-
-def history_summary(frame: pl.DataFrame, folder: Path, caution: str) -> str:
-    """Each equipment's stored months, one block per equipment, for a terminal.
-
-    Args:
-        frame: read_history rows of one site (optionally one equipment).
-    """
-    periods = frame["period"].unique().sort()
-    site = frame["site"][0]
-    lines = [(f"{frame['site_name'][-1]} (history id {site}): {len(periods)} stored month"
-              f"{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}, in {folder}"),
-             ("kWh [kWh] and draw kW [kW] of each month's own run; run h [h]; days: days with "
-              "data in the month; stored: when the month was last run (UTC)")]
-    for (eq,), g in frame.group_by("equipment", maintain_order=True):
-        lines += ["", eq,
-                  (f"  {'period':<8} {'kWh':>10} {'kWh range':>19} {'kW':>8} {'kW range':>15} "
-                   f"{'run h':>7} {'days':>4}  {'stored':<16}  flags")]
-        for r in g.iter_rows(named=True):
-            kwh_rng = ("-" if r["kwh_low"] is None
-                       else f"{_f(r['kwh_low'], 0)}-{_f(r['kwh_high'], 0)}")
-            kw_rng = "-" if r["kw_low"] is None else f"{_f(r['kw_low'])}-{_f(r['kw_high'])}"
-            stored = r["run_utc"].strftime("%Y-%m-%d %H:%M") if r["run_utc"] else "-"
-            days = "-" if r["days_with_data"] is None else r["days_with_data"]
-            lines.append(f"  {r['period']:<8} {_f(r['kwh'], 0):>10} {kwh_rng:>19} "
-                         f"{_f(r['kw']):>8} {kw_rng:>15} {_f(r['run_hours'], 0):>7} {days:>4}  "
-                         f"{stored:<16}  {r['flags'] or ''}")
-    lines += ["", f"Caution: {caution}"]
-    return "\n".join(lines)
-
-
-def comparison_summary(result: HistoryComparison, caution: str) -> str:
-    """compare_from_history's table for a terminal, with its method and the caution."""
-    b0, b1 = result.before
-    a0, a1 = result.after
-    lines = [(f"Draws from stored months: before {b0} to {b1} ({len(result.months_before)} "
-              f"stored), after {a0} to {a1} ({len(result.months_after)} stored)"),
-             (f"{'equipment':<22} {'before kW':>9} {'range':>13} {'after kW':>9} {'range':>13} "
-              f"{'change':>8}  verdict")]
-    for r in result.table.iter_rows(named=True):
-        rng = {k: "-" if r[f"kw_{k}_low"] is None or math.isnan(r[f"kw_{k}_low"])
-               else f"{_f(r[f'kw_{k}_low'])}-{_f(r[f'kw_{k}_high'])}" for k in ("before", "after")}
-        change = "-" if r["change"] is None else f"{100 * r['change']:+.1f} %"
-        lines.append(f"{r['equipment'][:22]:<22} {_f(r['kw_before']):>9} {rng['before']:>13} "
-                     f"{_f(r['kw_after']):>9} {rng['after']:>13} {change:>8}  {r['verdict']}")
-    lines += ["", f"Method: {result.method}", "", f"Caution: {caution}"]
-    return "\n".join(lines)
+def site_folder(folder: str | Path, kind: str, site_file: str | Path) -> Path:
+    """The site's folder of one kind (breakdown or drift) in the history store."""
+    return Path(folder).resolve() / f"kind={kind}" / f"site={site_id(site_file)}"
 
 
 def check_configured(site) -> None:
@@ -559,30 +511,6 @@ def check_configured(site) -> None:
     folder = getattr(site, "history", None)
     if folder is not None:
         check_folder(folder)
-
-
-def store_configured(result, date_from: dt.date | None = None, date_to: dt.date | None = None,
-                     written: list[Path] | None = None) -> Stored:
-    """store_breakdown into the site's [history] folder when its file names one.
-
-    Args:
-        date_from, date_to: the run's requested range (see store_breakdown).
-        written: the outputs already written by this run, named in an error.
-
-    Returns:
-        Stored with files = [the site's breakdown folder in the store] when any month was
-        stored, and the months not stored; empty without a [history] table.
-
-    Raises:
-        OutputError: the history cannot be written (saying the outputs were written).
-    """
-    folder = getattr(result.site, "history", None)
-    if folder is None:
-        return Stored()
-    with outputs_already_written(written or []):
-        stored = store_breakdown(folder, result, date_from, date_to)
-    site_dir = Path(folder).resolve() / "kind=breakdown" / f"site={site_id(result.site.path)}"
-    return Stored([site_dir] if stored.files else [], stored.skipped)
 
 
 def store_drift_configured(site, drift_result, written: list[Path] | None = None) -> list[Path]:
@@ -599,4 +527,4 @@ def store_drift_configured(site, drift_result, written: list[Path] | None = None
         return []
     with outputs_already_written(written or []):
         store_drift(folder, site, drift_result)
-    return [Path(folder).resolve() / "kind=drift" / f"site={site_id(site.path)}"]
+    return [site_folder(folder, "drift", site.path)]
