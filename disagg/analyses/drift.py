@@ -497,7 +497,11 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                              f"days beside the other loads: its memory is {tau_days[j]:.0f} days")
     for row in status:
         if row["status"] != "tracked":
-            notes.append(f"{row['equipment']}: {row['detail']}")
+            notes.append(f"{row['equipment']}: {row['detail']}"
+                         + (" (as of the run that started the saved state; run without "
+                            "--state to give it a reference from the data now at hand)"
+                            if state is not None and row["status"] in ("not run", "no reference")
+                            else ""))
     table = pl.DataFrame(rows, schema={"date": pl.Date, "equipment": pl.String,
                                        "kw_tracked": pl.Float64, "kw_low": pl.Float64,
                                        "kw_high": pl.Float64, "kw_reference": pl.Float64,
