@@ -95,6 +95,19 @@ def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame,
     return frame, np.column_stack([Hf, Wf, B]), frame["energy_kwh"].to_numpy().astype(float)
 
 
+def bartlett_lrv(x: np.ndarray, lags: int) -> float:
+    """Long-run variance of a series about zero: gamma_0 + 2 sum_l (1 - l / (L + 1)) gamma_l
+    (Bartlett weights, Newey & West 1987), autocovariances by FFT."""
+    n = len(x)
+    if n == 0:
+        return 0.0
+    lags = min(lags, n - 1)
+    f = np.fft.rfft(x, 2 * n)
+    ac = np.fft.irfft(f * np.conj(f))[:lags + 1] / n
+    w = 1.0 - np.arange(lags + 1) / (lags + 1)
+    return float(ac[0] + 2.0 * np.sum(w[1:] * ac[1:]))
+
+
 def differences(frame: pl.DataFrame, X: np.ndarray, y: np.ndarray,
                 previous: dict | None) -> tuple[np.ndarray, np.ndarray]:
     """Each interval's design row and energy minus the previous interval's.
@@ -370,7 +383,14 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                               for lag in range(BAND_LAGS + 1)])
             S = weight_covariance(X[rows], scales, mu, gamma, delta)
             for j in cols[cols < k]:
-                sd[j] = math.sqrt(max(float(S[j, j]), 0.0))
+                # Residuals correlated beyond BAND_LAGS (slow noise, an undeclared weather
+                # effect) widen the band by the ratio of the score's long-run variance over
+                # a day to that over BAND_LAGS (Bartlett weights; Newey & West 1987).
+                score = X[rows, j] * r_w
+                wide = bartlett_lrv(score, int(per_day))
+                narrow = bartlett_lrv(score, BAND_LAGS)
+                inflate = math.sqrt(wide / narrow) if narrow > 0 and wide > narrow else 1.0
+                sd[j] = inflate * math.sqrt(max(float(S[j, j]), 0.0))
         reference_info = {"from": main[0].isoformat(), "to": main[1].isoformat(),
                           "intervals": int(main_est.frame.height)}
         windows_info = {c: [windows[c][0].isoformat(), windows[c][1].isoformat()] for c in ids}
