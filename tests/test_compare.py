@@ -509,7 +509,8 @@ def test_the_tost_verdict_against_a_hand_computation(df):
             "steady" if inside else "unclear")
         assert v2["verdict"] == expected, (a2, v2)
     # Both kinds of call happen in that sweep (the check is not vacuous).
-    calls = {change_verdict(b, sb, a2, sa, conf, m, df)["verdict"] for a2 in np.linspace(19, 21, 41)}
+    calls = {change_verdict(b, sb, a2, sa, conf, m, df)["verdict"]
+             for a2 in np.linspace(19, 21, 41)}
     assert calls == {"rising", "falling", "steady", "unclear"}
 
 

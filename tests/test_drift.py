@@ -229,8 +229,8 @@ def test_a_seasonal_load_is_tracked_from_its_own_season_and_its_step_alarmed():
     s = make_year(1, steps={"CH-2": (1.30, dt.date(2025, 8, 10))})
     result = drift_aligned(s.site, s.aligned)
     window = [dt.date.fromisoformat(d) for d in result.summary["reference_per_equipment"]["CH-2"]]
-    first_run = s.aligned.frame["start_utc"].dt.convert_time_zone("America/Chicago").dt.date().filter(
-        s.aligned.hours[:, s.aligned.equipment_ids.index("CH-2")] > 0).min()
+    local = s.aligned.frame["start_utc"].dt.convert_time_zone("America/Chicago").dt.date()
+    first_run = local.filter(s.aligned.hours[:, s.aligned.equipment_ids.index("CH-2")] > 0).min()
     assert window[0] == first_run
     assert (window[1] - window[0]).days == 89
     first = _first_alarms(result)

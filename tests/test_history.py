@@ -481,7 +481,8 @@ def test_compare_and_history_give_the_same_verdict_on_the_same_numbers(stored):
             continue
         seen.add(r["verdict"])
         assert via_compare(r["kw_before"], r["kw_before_low"], r["kw_before_high"],
-                           r["kw_after"], r["kw_after_low"], r["kw_after_high"], 0.05) == r["verdict"]
+                           r["kw_after"], r["kw_after_low"], r["kw_after_high"],
+                           0.05) == r["verdict"]
     assert {"rising", "steady"} <= seen
     # A sweep of made-up numbers crossing every verdict.
     verdicts = set()

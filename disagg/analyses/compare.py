@@ -249,7 +249,8 @@ def add_member_rows(table: pl.DataFrame, details: list[dict],
                     out.append({"equipment": m, "flags_before": [], "flags_after": [],
                                 "se_before_kw": None, "se_after_kw": None, "z": None,
                                 "change_low": None, "change_high": None, "change": None,
-                                "p_value": None, "verdict": "unclear", "covered_by": row["equipment"],
+                                "p_value": None, "verdict": "unclear",
+                                "covered_by": row["equipment"],
                                 "reason": (f"covered by the group row {row['equipment']!r}: "
                                            "its members run together and the data cannot "
                                            "tell them apart")})

@@ -602,7 +602,8 @@ def _status(site, aligned, ids, members, groups, no_reference, main_est, run_tot
                                         "combined draw is tracked and alarmed")})
             else:
                 rows.append({"equipment": e.id, "status": "no reference", "tracked_as": gid,
-                             "detail": f"in the group {gid}, {no_reference.get(gid, 'not tracked')}"})
+                             "detail": (f"in the group {gid}, "
+                                        f"{no_reference.get(gid, 'not tracked')}")})
             continue
         if e.id in tracked:
             rows.append({"equipment": e.id, "status": "tracked", "tracked_as": e.id,
