@@ -260,3 +260,22 @@ def test_loads_that_never_reach_the_reference_run_hours_are_listed_with_the_reas
     # Nothing reaches 5000 run-hours in 90 days: one clear error.
     with pytest.raises(InputError, match="no load has a reference period"):
         drift_aligned(s.site, s.aligned, min_reference_run_h=5000.0)
+
+
+def test_drift_command_takes_the_reference_hours_and_refuses_a_bad_value(tmp_path):
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+    from test_cli import write_site
+    paths = write_site(tmp_path)
+    runner = CliRunner()
+    r = runner.invoke(app, ["drift", str(paths["site"]), "--out", str(tmp_path / "bad"),
+                            "--reference-hours", "0"])
+    assert r.exit_code == 1
+    assert r.output.strip() == "Error: --reference-hours 0: expected run-hours above 0"
+    assert not (tmp_path / "bad").exists()
+    r = runner.invoke(app, ["drift", str(paths["site"]), "--out", str(tmp_path / "ok"),
+                            "--reference-hours", "10", "--baseload-memory", "5"])
+    assert r.exit_code == 0, r.output
+    summary = json.loads((tmp_path / "ok" / "drift.json").read_text(encoding="utf-8"))
+    assert summary["equipment"] and summary["reference_per_equipment"]
