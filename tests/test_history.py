@@ -493,3 +493,32 @@ def test_compare_and_history_give_the_same_verdict_on_the_same_numbers(stored):
             assert via_compare(*args, 0.05) == v, (ka, half)
             verdicts.add(v)
     assert verdicts == {"rising", "falling", "steady", "unclear"}
+
+
+def test_a_stored_draw_the_data_cannot_pin_down_is_unclear_as_in_compare(stored, tmp_path):
+    # A copy of the store with H-1's April month flagged inseparable from C-1 (as the
+    # breakdown flags a load it cannot tell apart from another that has a prior).
+    import shutil
+    root, _ = stored
+    copy = tmp_path / "hist"
+    shutil.copytree(root / "hist", copy)
+    part = next(copy.glob("kind=breakdown/site=plant/period=2025-04/*.parquet"))
+    frame = pl.read_parquet(part)
+    frame = frame.with_columns(pl.when(pl.col("equipment") == "H-1")
+                               .then(pl.lit("inseparable:C-1")).otherwise(pl.col("flags"))
+                               .alias("flags"))
+    frame.write_parquet(part)
+    before = history.compare_from_history(root / "hist", "plant", ("2025-03", "2025-03"),
+                                          ("2025-04", "2025-04"))
+    after = history.compare_from_history(copy, "plant", ("2025-03", "2025-03"),
+                                         ("2025-04", "2025-04"))
+    verdict = {r["equipment"]: r["verdict"] for r in after.table.iter_rows(named=True)}
+    assert dict(zip(before.table["equipment"], before.table["verdict"]))["H-1"] == "rising"
+    assert verdict["H-1"] == "unclear"
+    # compare's rule says the same on an estimate with that flag.
+    from disagg.analyses.compare import compare_estimates
+    from test_compare import _est
+    row = after.table.filter(pl.col("equipment") == "H-1").row(0, named=True)
+    t, _ = compare_estimates(_est([("H-1", row["kw_before"], 0.01, [])]),
+                             _est([("H-1", row["kw_after"], 0.01, ["inseparable:C-1"])]))
+    assert t["verdict"][0] == "unclear"

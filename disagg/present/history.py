@@ -375,9 +375,13 @@ COMPARE_METHOD = (
     "its months' kw, and its interval the run-hour-weighted means of kw_low and kw_high (as if "
     "the months' errors were fully correlated: wider than a refit's); its standard error the "
     "interval's larger half over the normal 97.5 % point; then the verdict rule shared with "
-    "disagg compare: " + VERDICT_RULE + "; missing when a period has no stored run-hours. "
+    "disagg compare: " + VERDICT_RULE + "; unclear when a stored month of either period is "
+    "flagged prior-driven, schedule-bound, not-run or inseparable:<id> (disagg compare "
+    "compares such loads as their group); missing when a period has no stored run-hours. "
     "Months that were not stored are simply absent. disagg compare refits the periods' data "
     "and is the exact method.")
+# Stored rows with these flags (or inseparable:<id>) are unclear, as in disagg compare.
+UNCLEAR_FLAGS = ("prior-driven", "schedule-bound", "not-run")
 # Stored intervals are the breakdown's 95 % intervals (its default confidence).
 STORED_CONFIDENCE = 0.95
 
@@ -462,7 +466,8 @@ def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
             ((pl.col("kw_low") * weight).sum() / weight.sum()).alias(f"kw_{name}_low"),
             ((pl.col("kw_high") * weight).sum() / weight.sum()).alias(f"kw_{name}_high"),
             weight.sum().alias(f"run_hours_{name}"),
-            pl.col("period").n_unique().alias(f"months_{name}"))
+            pl.col("period").n_unique().alias(f"months_{name}"),
+            pl.col("flags").fill_null("").str.join(";").alias(f"_flags_{name}"))
     table = frames["before"].join(frames["after"], on="equipment", how="full",
                                   coalesce=True, maintain_order="left_right")
     b, a = pl.col("kw_before"), pl.col("kw_after")
@@ -474,10 +479,17 @@ def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
         if not r["_usable"]:
             verdicts.append("missing")
             continue
+        flags = f"{r['_flags_before'] or ''};{r['_flags_after'] or ''}".split(";")
+        if any(f in UNCLEAR_FLAGS or f.startswith("inseparable:") for f in flags):
+            # As disagg compare: a draw the prior or the schedule decides is no evidence of
+            # a change (a group is compared as one row only by a refit, disagg compare).
+            verdicts.append("unclear")
+            continue
         verdicts.append(period_verdict(r["kw_before"], r["kw_before_low"], r["kw_before_high"],
                                        r["kw_after"], r["kw_after_low"], r["kw_after_high"],
                                        min_change)["verdict"])
-    table = table.drop("_usable").with_columns(pl.Series("verdict", verdicts, pl.String))
+    table = table.drop("_usable", "_flags_before", "_flags_after").with_columns(
+        pl.Series("verdict", verdicts, pl.String))
     periods = {name: sorted(hist.filter(pl.col("period").is_between(pl.lit(rng[0]),
                                                                     pl.lit(rng[1])))["period"]
                             .unique().to_list())
