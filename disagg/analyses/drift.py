@@ -27,6 +27,7 @@ from pathlib import Path
 
 import numpy as np
 import polars as pl
+from scipy.linalg import pinvh
 from scipy.special import ndtri
 
 from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
@@ -375,6 +376,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         # with loads that switch together is included.
         resid = y - X @ w0
         sd = np.zeros(k)
+        ls_factor = np.ones(k)
         for rows, cols in row_sets:
             if len(rows) <= BAND_LAGS:
                 continue
@@ -391,6 +393,12 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                 narrow = bartlett_lrv(score, BAND_LAGS)
                 inflate = math.sqrt(wide / narrow) if narrow > 0 and wide > narrow else 1.0
                 sd[j] = inflate * math.sqrt(max(float(S[j, j]), 0.0))
+                # The windowed check's least-squares variance sigma^2 (X'X)^-1 assumes
+                # uncorrelated residuals: its correction for this load's score.
+                x = X[rows, j]
+                white = gamma[0] * float(np.mean(x * x))
+                ls_factor[j] = inflate * (math.sqrt(max(narrow, 0.0) / white)
+                                          if white > 0 else 1.0)
         reference_info = {"from": main[0].isoformat(), "to": main[1].isoformat(),
                           "intervals": int(main_est.frame.height)}
         windows_info = {c: [windows[c][0].isoformat(), windows[c][1].isoformat()] for c in ids}
@@ -399,6 +407,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         last_end = None
         first_alarm: dict[str, str] = {}
         tail: list[list[float]] = []
+        stats_tail: list = []
     else:
         _check_state(state, site)
         ids, members, flags = state["ids"], state["members"], state["flags"]
@@ -416,6 +425,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         sd = np.array(state["sd_kw"])
         tau_intervals = np.array(state["tau_intervals"], dtype=float)
         tail = state["daily_tail"]
+        ls_factor = np.array(state["ls_factor"], dtype=float)
+        stats_tail = [(np.array(S_), np.array(b_), c_, n_)
+                      for S_, b_, c_, n_ in state["day_stats_tail"]]
         k = len(ids)
         later = (aligned.frame["start_utc"] >= last_end).to_numpy()
         aligned = dataclasses.replace(aligned, use=aligned.use & later)
@@ -460,6 +472,12 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     # reference are both uncertain.
     sd_recent_all = sd[None, :] * factor
     sd_alarm = np.sqrt(sd_recent_all**2 + ref_se[None, :] ** 2)
+    day_start = np.r_[0, last_of_day[:-1] + 1]
+    day_stats = [(X[a:b].T @ X[a:b], X[a:b].T @ y[a:b], float(y[a:b] @ y[a:b]),
+                  int(np.count_nonzero(np.any(X[a:b] != 0, axis=1))))
+                 for a, b in zip(day_start, last_of_day + 1)]
+    window = _WindowCheck(stats_tail + day_stats, k, at_ref, ref_kw, ref_se, ls_factor,
+                          threshold, [chart_limit(t) for t in tau_days])
     rows = []
     alarms = []
     for j, eq in enumerate(ids):
@@ -470,6 +488,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             # A level over only a few days rests on a handful of switchings: its error is far
             # from normal, so it is not alarmed on before MIN_RECENT_DAYS.
             alarm &= (len(past) + np.arange(len(days))) >= min(MIN_RECENT_DAYS, lag_days[j])
+            for d_i in np.flatnonzero(alarm):
+                alarm[d_i] = window.confirms(j, len(stats_tail) + d_i, lag_days[j])
         else:
             alarm = np.zeros(len(days), dtype=bool)
         if alarm.any() and eq not in first_alarm:
@@ -572,10 +592,63 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "last_end_utc": frame["end_utc"].max().isoformat(),
         "first_alarm": first_alarm,
         "daily_tail": series[-n_tail:].tolist(),
+        "ls_factor": ls_factor.tolist(),
+        "day_stats_tail": [[S_.tolist(), b_.tolist(), c_, n_]
+                           for S_, b_, c_, n_ in (stats_tail + day_stats)[-n_tail:]],
         "last_row": {"end_utc": frame["end_utc"][-1].isoformat(),
                      "x": X_level[-1].tolist(), "y": float(y_level[-1])},
     }
     return DriftResult(table, summary, new_state)
+
+
+class _WindowCheck:
+    """The windowed least-squares check of an alarm.
+
+    The tracker's transient can put part of one load's change on another that switches
+    with it; a least-squares fit of the same differenced rows over the alarm's window (the
+    last memory-length of days) solves the attribution exactly. An alarm stands only where
+    that fit's draw, too, is beyond the threshold and beyond L standard deviations of it
+    and the reference together (sigma^2 (X'X)^+ with the load's correction for correlated
+    residuals). Days' sums X'X, X'y, y'y are kept, so a continued run checks the same
+    windows.
+    """
+
+    def __init__(self, stats, k, at_ref, ref_kw, ref_se, factor, threshold, limits):
+        self.stats, self.k, self.at_ref = stats, k, at_ref
+        self.ref_kw, self.ref_se, self.factor = ref_kw, ref_se, factor
+        self.threshold, self.limits = threshold, limits
+        self.cache: dict = {}
+
+    def _fit(self, i: int, lag: int):
+        key = (i, lag)
+        if key not in self.cache:
+            part = self.stats[max(0, i - lag + 1):i + 1]
+            S = sum(p[0] for p in part)
+            b = sum(p[1] for p in part)
+            c = sum(p[2] for p in part)
+            n = sum(p[3] for p in part)
+            P = pinvh(S)
+            w = P @ b
+            rank = int(np.linalg.matrix_rank(S))
+            rss = max(c - 2.0 * w @ b + w @ S @ w, 0.0)
+            s2 = rss / (n - rank) if n > rank + 10 else np.inf
+            self.cache[key] = (w, P, s2)
+        return self.cache[key]
+
+    def confirms(self, j: int, i: int, lag: int) -> bool:
+        w, P, s2 = self._fit(i, lag)
+        a = np.zeros(len(w))
+        a[j] = 1.0
+        for c, s_col, d_ref in self.at_ref:
+            if int(c) == j:
+                a[int(s_col)] = d_ref
+        value = float(a @ w)
+        var = s2 * float(a @ P @ a) * self.factor[j] ** 2
+        if not np.isfinite(var):
+            return False
+        dev = abs(value - self.ref_kw[j])
+        return bool(dev > self.threshold * abs(self.ref_kw[j])
+                    and dev > self.limits[j] * math.sqrt(var + self.ref_se[j] ** 2))
 
 
 def _change_interval(level: float, sd_level: float, ref: float, ref_se: float,
@@ -631,7 +704,8 @@ def _check_state(state: dict, site) -> None:
     needed = {"version", "ids", "members", "weights", "mu", "delta", "last_end_utc",
               "reference_kw", "reference_se_kw", "reference_run_h", "sd_kw", "first_alarm",
               "reference", "flags", "tau_intervals", "weather_at_reference", "scales",
-              "reference_per_equipment", "equipment", "groups", "daily_tail", "last_row"}
+              "reference_per_equipment", "equipment", "groups", "daily_tail", "last_row",
+              "ls_factor", "day_stats_tail"}
     missing = needed - set(state)
     if missing or state.get("version") != STATE_VERSION:
         raise InputError(f"the --state file is not a disagg drift state (missing "
