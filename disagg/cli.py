@@ -234,13 +234,20 @@ def demo(
 def drift(
     site: SiteArg,
     out: Annotated[Path, typer.Option("--out", help="Folder for drift.csv and drift.json.")],
-    memory: Annotated[float, typer.Option("--memory", help="Tracker memory in days; converted "
-                                          "to the step size.")] = 30.0,
+    memory: Annotated[float, typer.Option("--memory", help="Tracker memory in days, the same "
+                                          "for every load whatever its duty cycle.")] = 30.0,
     step: Annotated[Optional[float], typer.Option("--step", help="Normalized LMS step size "
-                                                  "instead of --memory (0 < step < 2).")] = None,
-    reference: Annotated[Optional[str], typer.Option("--reference", help="Reference period "
-                                                     "FROM:TO (local dates); default the first "
-                                                     "90 days.")] = None,
+                                                  "mu (0 < step < 2); default 1.")] = None,
+    reference: Annotated[Optional[str], typer.Option("--reference", help="One reference period "
+                                                     "FROM:TO (local dates) for all loads; "
+                                                     "default each load's own first 90 days "
+                                                     "with enough run-hours.")] = None,
+    reference_hours: Annotated[float, typer.Option("--reference-hours", help="Run-hours a "
+                                                   "load's own reference period must hold.")
+                               ] = 48.0,
+    baseload_memory: Annotated[Optional[float], typer.Option("--baseload-memory", help="Memory "
+                                                             "of the baseload levels in days; "
+                                                             "default --memory.")] = None,
     threshold: Annotated[float, typer.Option("--threshold", help="Relative change that "
                                              "matters, a fraction.")] = 0.10,
     state: Annotated[Optional[Path], typer.Option("--state", help="Tracker state file: "
@@ -260,7 +267,8 @@ def drift(
     def run():
         ref = parse_period(reference, "--reference") if reference else None
         _print_run(run_drift(DriftOptions(site, out, memory, step, ref, threshold, state, d0,
-                                          d1, confidence, log_offset)))
+                                          d1, confidence, log_offset,
+                                          baseload_memory, reference_hours)))
 
     _guard(run)
 

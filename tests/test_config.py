@@ -201,9 +201,8 @@ def test_a_misspelt_key_names_the_nearest_known_one(tmp_path):
     text = SITE_HEAD.replace('unit = "kWh"', 'unit = "kWh"\ninterval_minute = 15') + EQ
     msg, path = _error(tmp_path, text)
     assert msg == (f"{path}: [meter] interval_minute: unknown setting (did you mean "
-                   "interval_minutes?); expected one of date_order, file, interval_minutes, "
-                   "multiplier, on_duplicate, register_digits, stamp, time_column, unit, "
-                   "value_column")
+                   "interval_minutes?); expected one of date_order, file, interval_minutes, multiplier, "
+                   "on_duplicate, register_digits, stamp, time_column, unit, value_column")
 
 
 @pytest.mark.parametrize("kind", ["fifo", "device", "folder"])

@@ -349,6 +349,19 @@ def _interval(table: _Table, key: str) -> int | None:
     return value
 
 
+def _temperature(table: _Table, key: str, required: bool) -> float | None:
+    """A temperature setting: finite, within MAX_ABS_TEMP of zero.
+
+    Raises:
+        ConfigError: missing (when required), not a number, or out of that range.
+    """
+    value = table.get(key, float, required=required)
+    if value is not None and not (math.isfinite(value) and abs(value) <= MAX_ABS_TEMP):
+        raise ConfigError(f"{table.where(key)} = {value!r}: expected a temperature from "
+                          f"{-MAX_ABS_TEMP:g} to {MAX_ABS_TEMP:g}")
+    return value
+
+
 DATE_ORDERS = ("ymd", "mdy", "dmy")
 DUPLICATE_POLICIES = ("error", "keep-first", "keep-last")  # as disagg.inputs.vee.ON_DUPLICATE
 # Clock offsets beyond a week are no clock error but a wrong file (common practice, no source).
@@ -372,19 +385,6 @@ def _log_offset(table: _Table) -> float:
     if not (math.isfinite(value) and abs(value) <= MAX_LOG_OFFSET_MIN):
         raise ConfigError(f"{table.where('log_offset_minutes')} = {value!r}: expected a number "
                           f"of minutes from -{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
-    return value
-
-
-def _temperature(table: _Table, key: str, required: bool) -> float | None:
-    """A temperature setting: finite, within MAX_ABS_TEMP of zero.
-
-    Raises:
-        ConfigError: missing (when required), not a number, or out of that range.
-    """
-    value = table.get(key, float, required=required)
-    if value is not None and not (math.isfinite(value) and abs(value) <= MAX_ABS_TEMP):
-        raise ConfigError(f"{table.where(key)} = {value!r}: expected a temperature from "
-                          f"{-MAX_ABS_TEMP:g} to {MAX_ABS_TEMP:g}")
     return value
 
 

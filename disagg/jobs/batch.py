@@ -216,22 +216,16 @@ def load_portfolio(path: str | Path) -> Portfolio:
             raise ConfigError(f"{path}: {seen[name]} and {s} would both write to the output "
                               f"folder {name!r}; give the site files different names")
         seen[name] = s
-    # Sites that may share a history folder (the portfolio's one, or a [history] folder
-    # written relative to site files in the same folder) must not share a history id: their
-    # months would mix. Sites in different folders (a folder per building, each holding
-    # site.toml) keep separate relative history folders; the store itself still refuses an id
-    # used by another site file (disagg.present.history).
     from disagg.present.history import site_id
 
-    ids: dict[tuple[Path | None, str], Path] = {}
+    ids: dict[str, Path] = {}
     for s in sites:
-        key = (None if history is not None else s.parent, site_id(s))
-        if key in ids:
-            raise ConfigError(f"{path}: {ids[key]} and {s} would share the history id "
-                              f"{key[1]!r} (file names that differ only in characters other "
-                              "than letters, digits, '.', '_' and '-'); give the site files "
-                              "different names")
-        ids[key] = s
+        sid = site_id(s)
+        if sid in ids:
+            raise ConfigError(f"{path}: {ids[sid]} and {s} would share the history id {sid!r} "
+                              "(file names that differ only in characters other than letters, "
+                              "digits, '.', '_' and '-'); give the site files different names")
+        ids[sid] = s
     return pf
 
 

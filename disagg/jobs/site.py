@@ -252,11 +252,16 @@ class DriftOptions:
     date_to: dt.date | None = None
     confidence: float = 0.95
     log_offset_min: float | None = None  # None: the site file's, else 0
+    baseload_memory_days: float | None = None  # None: memory_days
+    min_reference_run_h: float = 48.0  # run-hours a load's own reference period must hold
 
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
         if self.step is None and not (math.isfinite(self.memory_days) and self.memory_days > 0):
             raise ConfigError(f"--memory {self.memory_days:g}: expected a number of days above 0")
+        if not self.min_reference_run_h > 0:
+            raise ConfigError(f"--reference-hours {self.min_reference_run_h:g}: expected "
+                              "run-hours above 0")
 
 
 def _read_state(path: Path | None) -> dict | None:
@@ -284,7 +289,8 @@ def run_drift(opts: DriftOptions) -> Run:
     saved = _read_state(opts.state)
     result = drift_site(opts.site, opts.memory_days, opts.step, opts.reference, opts.threshold,
                         opts.confidence, saved, opts.date_from, opts.date_to,
-                        opts.log_offset_min)
+                        opts.log_offset_min, baseload_memory_days=opts.baseload_memory_days,
+                        min_reference_run_h=opts.min_reference_run_h)
     summary = terminal.drift_summary(result)
     site = load_site(opts.site)
     hist.check_configured(site)  # a bad history folder fails before any output

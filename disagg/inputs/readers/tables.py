@@ -98,6 +98,30 @@ def _parse_offset_times(text: pl.Series) -> pl.Series | None:
     return pl.from_epoch(wall.dt.epoch("us") - shift_us, time_unit="us").dt.replace_time_zone("UTC")
 
 
+# Times outside these years are typing or export errors, and beyond them the nanosecond
+# times of the alignment (numpy datetime64[ns]: years 1678 to 2261) would overflow.
+FIRST_YEAR, LAST_YEAR = 1900, 2199
+
+
+def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
+                by: pl.Series | None = None, date_order: str | None = None,
+                setting: str = "date_order") -> pl.Series:
+    """_parse_times, and every time within the years FIRST_YEAR to LAST_YEAR.
+
+    Raises:
+        InputError: as _parse_times, or a time outside those years, naming its row.
+    """
+    times = _parse_times(frame, column, tz, path, by, date_order, setting)
+    year = times.dt.year()
+    outside = (year < FIRST_YEAR) | (year > LAST_YEAR)
+    if outside.any():
+        idx = int(outside.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: time "
+                         f"{times[idx]} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
+                         "expected a date and time such as 2025-03-09T03:15:00")
+    return times
+
+
 DATE_ORDERS = ("ymd", "mdy", "dmy")
 # A date written with numbers: 2024-10-13, 10/13/2024, 13.10.2024, 10/13/24 (then the rest).
 _NUMERIC_DATE = r"^(\d{1,4})[/.\-](\d{1,2})[/.\-](\d{1,4})(.*)$"
@@ -164,30 +188,6 @@ def _ymd_text(text: pl.Series, column: str, path: Path, date_order: str | None,
                          f"{text[i]!r}; expected a {_ORDER_WORDS[order]} date {how} such as "
                          f"{first!r}")
     return iso
-
-
-# Times outside these years are typing or export errors, and beyond them the nanosecond
-# times of the alignment (numpy datetime64[ns]: years 1678 to 2261) would overflow.
-FIRST_YEAR, LAST_YEAR = 1900, 2199
-
-
-def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
-                by: pl.Series | None = None, date_order: str | None = None,
-                setting: str = "date_order") -> pl.Series:
-    """_parse_times, and every time within the years FIRST_YEAR to LAST_YEAR.
-
-    Raises:
-        InputError: as _parse_times, or a time outside those years, naming its row.
-    """
-    times = _parse_times(frame, column, tz, path, by, date_order, setting)
-    year = times.dt.year()
-    outside = (year < FIRST_YEAR) | (year > LAST_YEAR)
-    if outside.any():
-        idx = int(outside.arg_max())  # type: ignore[arg-type]
-        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: time "
-                         f"{times[idx]} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
-                         "expected a date and time such as 2025-03-09T03:15:00")
-    return times
 
 
 def _parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,

@@ -546,10 +546,10 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
     s = drift.summary
     t = drift.table
     parts = [head,
-             ("<p>Each equipment's draw is tracked day by day (normalized LMS, step size "
-              f"{s.get('step_size_mu', float('nan')):.3g}) from its draw in the reference "
-              f"period {e(str(s.get('reference', {}).get('from', '')))} to "
-              f"{e(str(s.get('reference', {}).get('to', '')))}. "
+             ("<p>Each equipment's draw is tracked day by day (per-weight normalized LMS, "
+              f"step size {s.get('step_size_mu', float('nan')):.3g}, the same memory for every "
+              "load) from its draw in its own reference period (in the table; loads that run "
+              "together and cannot be told apart are tracked as their group A+B). "
               f"Rule: {e(str(s.get('rule', '')))}; threshold "
               f"{_num(100 * float(s.get('threshold', float('nan'))), 0)} %.</p>")]
     alarms = s.get("alarms", [])
@@ -570,18 +570,22 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
                                   "(red dots)."))
     memory = s.get("memory_days_per_equipment", {})
     band = s.get("band_sd_kw", {})
+    own = s.get("reference_per_equipment", {})
     first_alarm = {a["equipment"]: a["first_alarm_date"] for a in alarms}
     rows = []
     for n in names:
         last = t.filter(pl.col("equipment") == n).sort("date").row(-1, named=True)
         change = last["change"]
+        period = own.get(n)
         rows.append([_eq(n, ch.colour(n)),
+                     e(f"{period[0]} to {period[1]}") if period else "-",
                      _num(last["kw_reference"], 2),
                      _num(last["kw_tracked"], 2), "-" if change is None else
                      _num(100 * change, 1), _num(band.get(n), 2), _num(memory.get(n), 0),
                      f'<span class="alarm eq">from {e(first_alarm[n])}</span>'
                      if n in first_alarm else "none"])
-    parts.append(_table([("equipment", False), ("reference draw [kW]", True),
+    parts.append(_table([("equipment", False), ("reference period", False),
+                         ("reference draw [kW]", True),
                          ("latest tracked [kW]", True), ("change [%]", True),
                          ("band sd [kW]", True), ("memory [d]", True), ("alarm", False)], rows))
     notes = [n for n in s.get("notes", []) if n not in shown]
