@@ -4,6 +4,7 @@ ids that would collide are refused, a file of another schema is one error (all d
 from __future__ import annotations
 
 import datetime as dt
+import json
 import os
 import subprocess
 import sys
@@ -200,3 +201,26 @@ def test_a_history_file_of_another_schema_is_one_error(tmp_path):
     with pytest.raises(InputError) as exc:
         history._read_file(part, history.BREAKDOWN_SCHEMA)
     assert str(exc.value).startswith(f"{part}: not a disagg history file: its column 'kw'")
+
+
+def test_reading_the_history_first_finishes_a_killed_run(tmp_path):
+    # The same kill as above, then a read (disagg history) before any other write.
+    _store(tmp_path, "old")
+    staging = tmp_path / f"{commit.PREFIX}{commit._host()}-{_dead_pid()}-abc"
+    staging.mkdir()
+    moves = []
+    for i, p in enumerate(PERIODS[4:]):
+        new = pl.DataFrame({"equipment": ["H-1"], "flags": ["new"]})
+        new.write_parquet(staging / f"{i}.parquet")
+        moves.append([f"{i}.parquet", str(tmp_path / "kind=breakdown" / "site=plant"
+                                          / f"period={p}" / "part.parquet")])
+    (staging / commit.JOURNAL).write_text(json.dumps({"moves": moves}))
+    stored = history.read_history(tmp_path, "plant")
+    assert stored.filter(pl.col("period") >= "2025-05")["flags"].unique().to_list() == ["new"]
+    assert not staging.exists()
+
+
+def _dead_pid() -> int:
+    proc = subprocess.Popen([sys.executable, "-c", "pass"])
+    proc.wait()
+    return proc.pid

@@ -48,7 +48,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
-import fcntl
 import os
 import re
 import shutil
@@ -61,6 +60,11 @@ from pathlib import Path
 import polars as pl
 
 from disagg import __version__
+
+try:
+    import fcntl
+except ImportError:  # not on this system (Windows): runs do not take turns there
+    fcntl = None
 from disagg.errors import DisaggError, InputError, OutputError
 from disagg.present import commit
 
@@ -154,6 +158,9 @@ def _locked(folder: Path) -> Iterator[None]:
         OutputError: the lock file cannot be opened, or another run held it for
             LOCK_TIMEOUT_S seconds.
     """
+    if fcntl is None:
+        yield
+        return
     path = folder / LOCK_FILE
     try:
         fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
@@ -425,6 +432,8 @@ def read_history(folder: str | Path, site: str | None = None,
     if kind not in KINDS:
         raise ValueError(f"kind {kind!r}: expected one of {', '.join(KINDS)}")
     schema = _SCHEMAS[kind]
+    # A run killed while putting its months in place: finish it first (see commit.recover).
+    commit.recover(Path(folder).resolve())
     root = Path(folder).resolve() / f"kind={kind}"
     empty = pl.DataFrame(schema={**HIVE_SCHEMA, **schema})
     if not root.is_dir() or not any(root.rglob("part.parquet")):
