@@ -10,7 +10,7 @@ import pytest
 from disagg.inputs.config import Spell, load_site, parse_spell
 from disagg.errors import ConfigError
 
-# --- Outside check values (references.md section 5) ------------------------------------------
+# --- Outside check values (docs/references.md section 5) ------------------------------------------
 # US DOE, "Determining Electric Motor Load and Efficiency", Eq. 1: three-phase input power
 # P = sqrt(3) x V x I x PF / 1000. The check 480 V, 100 A, PF 0.9 -> 74.82 kW is printed to
 # 2 decimals, so the tolerance is half a unit in the last place.
@@ -201,8 +201,8 @@ def test_a_misspelt_key_names_the_nearest_known_one(tmp_path):
     text = SITE_HEAD.replace('unit = "kWh"', 'unit = "kWh"\ninterval_minute = 15') + EQ
     msg, path = _error(tmp_path, text)
     assert msg == (f"{path}: [meter] interval_minute: unknown setting (did you mean "
-                   "interval_minutes?); expected one of file, interval_minutes, multiplier, "
-                   "register_digits, stamp, time_column, unit, value_column")
+                   "interval_minutes?); expected one of date_order, file, interval_minutes, multiplier, "
+                   "on_duplicate, register_digits, stamp, time_column, unit, value_column")
 
 
 @pytest.mark.parametrize("kind", ["fifo", "device", "folder"])

@@ -724,7 +724,7 @@ def test_any_damage_with_any_options_gives_a_result_or_one_error_line(ops, commo
 
 FALL_BACK_START_LOCAL = dt.datetime(2025, 10, 28)  # local midnight; 10 days cross 2025-11-02
 FALL_BACK_DAYS = 10
-# A day when clocks go back has 100 fifteen-minute intervals (references.md section 7,
+# A day when clocks go back has 100 fifteen-minute intervals (docs/references.md section 7,
 # common practice, no source); an exact count.
 FALL_BACK_DAY_INTERVALS = 100
 DST_DRAW_KW = {"CH-1": 40.0, "AHU-1": 12.0, "P-1": 5.0}

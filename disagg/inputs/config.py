@@ -66,6 +66,8 @@ class MeterSettings:
     interval_min: int | None  # None: inferred from the data
     register_digits: int | None = None  # kWh-register: digits of the register (rolls over)
     multiplier: float = 1.0  # kWh-register: kWh per register unit (CT/PT ratio, pulse weight)
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
+    on_duplicate: str = "error"  # different readings at one time: error, keep-first, keep-last
 
 
 @dataclass(frozen=True)
@@ -81,6 +83,8 @@ class RunlogSettings:
     max_hold_min: float | None = None  # samples: longest a sample holds
     stamp: str = "start"  # runtime: which edge of its interval the time marks
     interval_min: int | None = None  # runtime: length of its intervals, None = inferred
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
+    log_offset_min: float = 0.0  # minutes added to every log time to reach the meter's clock
 
 
 @dataclass(frozen=True)
@@ -140,6 +144,7 @@ class WeatherSettings:
     temp_column: str
     unit: str  # F or C, as in the file (balance and reference temperatures use it too)
     reference_temp_c: float | None  # drift and comparison are stated at this temperature
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
 
 
 def to_celsius(value: float, unit: str) -> float:
@@ -357,6 +362,32 @@ def _temperature(table: _Table, key: str, required: bool) -> float | None:
     return value
 
 
+DATE_ORDERS = ("ymd", "mdy", "dmy")
+DUPLICATE_POLICIES = ("error", "keep-first", "keep-last")  # as disagg.inputs.vee.ON_DUPLICATE
+# Clock offsets beyond a week are no clock error but a wrong file (common practice, no source).
+MAX_LOG_OFFSET_MIN = 7 * 24 * 60
+
+
+def _date_order(table: _Table) -> str | None:
+    """date_order: the order of numeric dates (ymd, mdy, dmy) or a whole format string such as
+    "%m/%d/%Y %I:%M %p" (strftime codes); None lets the reader decide from the column."""
+    value = table.get("date_order", str, required=False)
+    if value is None or value in DATE_ORDERS or "%" in value:
+        return value
+    raise ConfigError(f"{table.where('date_order')} = {value!r}: expected \"ymd\" (2024-10-13), "
+                      "\"mdy\" (10/13/2024), \"dmy\" (13/10/2024) or a format string such as "
+                      "\"%m/%d/%Y %H:%M\"")
+
+
+def _log_offset(table: _Table) -> float:
+    """[runlog] log_offset_minutes: minutes added to every run-log time (the --log-offset)."""
+    value = table.get("log_offset_minutes", float, required=False, default=0.0)
+    if not (math.isfinite(value) and abs(value) <= MAX_LOG_OFFSET_MIN):
+        raise ConfigError(f"{table.where('log_offset_minutes')} = {value!r}: expected a number "
+                          f"of minutes from -{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
+    return value
+
+
 def _is_greenbutton(table: _Table) -> bool:
     """True when the [meter] file is a Green Button (NAESB ESPI) .xml download."""
     text = table.data.get("file")
@@ -393,8 +424,8 @@ def _csv_meter(table: _Table) -> MeterSettings:
         if not register:
             raise ConfigError(f"{table.where(key)}: only used with unit = \"{REGISTER_UNIT}\"; "
                               "remove it or set that unit")
-    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"}
-               | extra)
+    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes",
+                "date_order", "on_duplicate"} | extra)
     digits, multiplier = None, 1.0
     if register:
         digits = table.get("register_digits", int, required=False)
@@ -415,6 +446,9 @@ def _csv_meter(table: _Table) -> MeterSettings:
         interval_min=_interval(table, "interval_minutes"),
         register_digits=digits,
         multiplier=multiplier,
+        date_order=_date_order(table),
+        on_duplicate=table.choice("on_duplicate", DUPLICATE_POLICIES, required=False,
+                                  default="error"),
     )
 
 
@@ -640,7 +674,7 @@ def load_site(path: str | Path) -> SiteConfig:
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
-    r.only({"file", "layout", "time_column"} | {
+    r.only({"file", "layout", "time_column", "date_order", "log_offset_minutes"} | {
         "events": {"equipment_column", "state_column"},
         "samples": {"max_hold_minutes"},
         "runtime": {"equipment_column", "minutes_column", "stamp", "interval_minutes"}}[layout])
@@ -654,6 +688,8 @@ def load_site(path: str | Path) -> SiteConfig:
         max_hold_min=r.positive("max_hold_minutes", required=True) if layout == "samples" else None,
         stamp=r.choice("stamp", STAMPS, required=False, default="start") if layout == "runtime" else "start",
         interval_min=_interval(r, "interval_minutes") if layout == "runtime" else None,
+        date_order=_date_order(r),
+        log_offset_min=_log_offset(r),
     )
 
     b = _Table(path, "baseload", data.get("baseload", {}))
@@ -681,12 +717,13 @@ def load_site(path: str | Path) -> SiteConfig:
     weather = None
     if "weather" in data:
         w = _Table(path, "weather", data["weather"])
-        w.only({"file", "time_column", "temp_column", "unit", "reference_temp"})
+        w.only({"file", "time_column", "temp_column", "unit", "reference_temp", "date_order"})
         unit = w.choice("unit", TEMP_UNITS)
         ref_t = _temperature(w, "reference_temp", required=False)
         weather = WeatherSettings(w.file("file"), w.get("time_column", str),
                                   w.get("temp_column", str), unit,
-                                  None if ref_t is None else to_celsius(ref_t, unit))
+                                  None if ref_t is None else to_celsius(ref_t, unit),
+                                  _date_order(w))
     raw_eq = data.get("equipment", [])
     if not isinstance(raw_eq, list) or not raw_eq:
         raise ConfigError(f"{path}: no [[equipment]] tables; add one per logged load")

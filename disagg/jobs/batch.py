@@ -77,6 +77,22 @@ class Portfolio:
     sites: tuple[Path, ...]
     history: Path | None = None
 
+    @property
+    def base(self) -> Path:
+        """The folder the sites' paths are relative to: the folder itself, or the portfolio
+        file's folder."""
+        return self.source if self.source.is_dir() else self.source.parent
+
+    def folder_name(self, site: Path) -> str:
+        """A site's output folder, relative to --out: its path relative to the portfolio
+        without .toml (``school/site.toml`` -> ``school/site``); a site file outside the
+        portfolio's folder gets its file name without .toml."""
+        try:
+            rel = site.relative_to(self.base)
+        except ValueError:
+            return site.stem
+        return rel.with_suffix("").as_posix()
+
 
 @dataclass(frozen=True)
 class SiteJob:
@@ -89,6 +105,11 @@ class SiteJob:
     drift: bool = False
     history: str | None = None  # the portfolio's history folder, used when the site has none
     drift_reference: tuple[dt.date, dt.date] | None = None  # None: drift's default
+    name: str | None = None  # the output folder relative to --out; None: the file's stem
+
+    @property
+    def folder(self) -> str:
+        return self.name or Path(self.site_file).stem
 
 
 @dataclass
@@ -96,7 +117,7 @@ class SiteOutcome:
     """What one site's job returns: plain data, the same wherever the job ran."""
 
     site_file: str
-    folder: str  # the output folder's name (the site file's name without .toml)
+    folder: str  # the output folder relative to --out (Portfolio.folder_name)
     status: str  # ok or failed
     site: str | None = None  # the [site] name, when the file could be read
     error: str | None = None  # one line, as `disagg breakdown` would print it after "Error: "
@@ -114,6 +135,8 @@ class SiteOutcome:
     history_note: str | None = None  # months not stored in the history, and why
     files: list[str] = field(default_factory=list)
     seconds: float = 0.0  # wall time of the job (not part of the portfolio table)
+    # breakdown.csv's rows: period, equipment, kwh, kwh_low, kwh_high, share, flags
+    months: list[dict] = field(default_factory=list)
 
 
 @dataclass
@@ -123,6 +146,7 @@ class PortfolioResult:
     portfolio: Portfolio
     frame: pl.DataFrame
     outcomes: list[SiteOutcome]
+    equipment: pl.DataFrame | None = None  # equipment_frame: the long form
 
     @property
     def failed(self) -> list[SiteOutcome]:
@@ -131,6 +155,9 @@ class PortfolioResult:
 
 def load_portfolio(path: str | Path) -> Portfolio:
     """A folder of site files, or a portfolio file listing them.
+
+    A folder's sites are every ``*.toml`` directly in it and every ``*/site.toml`` one level
+    down (a folder per building, each holding its site.toml).
 
     Raises:
         ConfigError: no such folder or file, no sites, a bad portfolio file, or two sites
@@ -143,6 +170,9 @@ def load_portfolio(path: str | Path) -> Portfolio:
     if path.is_dir():
         sites = sorted((p for p in path.glob("*.toml")
                         if p.is_file() and not p.name.startswith(".")), key=lambda p: p.name)
+        sites += sorted((p for p in path.glob("*/site.toml")
+                         if p.is_file() and not p.parent.name.startswith(".")),
+                        key=lambda p: p.parent.name)
         if not sites:
             raise ConfigError(f"{path}: no *.toml site files in this folder")
     elif path.is_file():
@@ -178,12 +208,14 @@ def load_portfolio(path: str | Path) -> Portfolio:
             history = (path.parent / h).resolve()
     else:
         raise ConfigError(f"{path}: no such folder or portfolio file")
+    pf = Portfolio(path, tuple(sites), history)
     seen: dict[str, Path] = {}
     for s in sites:
-        if s.stem in seen:
-            raise ConfigError(f"{path}: {seen[s.stem]} and {s} would both write to the output "
-                              f"folder {s.stem!r}; give the site files different names")
-        seen[s.stem] = s
+        name = pf.folder_name(s)
+        if name in seen:
+            raise ConfigError(f"{path}: {seen[name]} and {s} would both write to the output "
+                              f"folder {name!r}; give the site files different names")
+        seen[name] = s
     from disagg.present.history import site_id
 
     ids: dict[str, Path] = {}
@@ -194,7 +226,7 @@ def load_portfolio(path: str | Path) -> Portfolio:
                               "(file names that differ only in characters other than letters, "
                               "digits, '.', '_' and '-'); give the site files different names")
         ids[sid] = s
-    return Portfolio(path, tuple(sites), history)
+    return pf
 
 
 def run_site(job: SiteJob) -> SiteOutcome:
@@ -209,7 +241,7 @@ def run_site(job: SiteJob) -> SiteOutcome:
     written says so.
     """
     t0 = time.perf_counter()
-    folder = Path(job.site_file).stem
+    folder = job.folder
     try:
         outcome = _run_site(job)
     except (KeyboardInterrupt, SystemExit):
@@ -251,9 +283,10 @@ def _run_site(job: SiteJob) -> SiteOutcome:
     tariff = result.fit.get("tariff")
     alarms, alarmed, drift_note = _alarms(drift)
     return SiteOutcome(
-        site_file=job.site_file, folder=Path(job.site_file).stem, status="ok", site=site.name,
+        site_file=job.site_file, folder=job.folder, status="ok", site=site.name,
         period=f"{periods[0]}..{periods[-1]}", metered_kwh=float(table["kwh"].sum()),
         equipment_kwh={e: float(k) for e, k in totals.iter_rows()},
+        months=table.select(EQUIPMENT_COLUMNS[2:]).to_dicts(),
         alarms=alarms, cv_rmse_pct=hourly.get("cv_rmse_pct"), nmbe_pct=hourly.get("nmbe_pct"),
         peak_kw=float(month_peaks.max()) if month_peaks.len() else None,
         cost=float(sum(m["cost"] for m in tariff["months"])) if tariff else None,
@@ -314,6 +347,23 @@ def portfolio_frame(outcomes: list[SiteOutcome]) -> pl.DataFrame:
     return pl.DataFrame(data, schema=schema, orient="row") if data else pl.DataFrame(schema=schema)
 
 
+# portfolio_equipment.csv: one row per site, month and breakdown row.
+EQUIPMENT_COLUMNS = ["site", "site_name", "period", "equipment", "kwh", "kwh_low", "kwh_high",
+                     "share", "flags"]
+
+
+def equipment_frame(outcomes: list[SiteOutcome]) -> pl.DataFrame:
+    """The long form beside portfolio.csv: one row per site, month and breakdown row (columns
+    EQUIPMENT_COLUMNS; site = the output folder, which names the site uniquely; site_name = its
+    [site] name), so that equipment ids, which belong to their site, are never mixed."""
+    schema = {"site": pl.String, "site_name": pl.String, "period": pl.String,
+              "equipment": pl.String, "kwh": pl.Float64, "kwh_low": pl.Float64,
+              "kwh_high": pl.Float64, "share": pl.Float64, "flags": pl.String}
+    data = [{"site": o.folder, "site_name": o.site, **row}
+            for o in outcomes if o.status == "ok" for row in o.months]
+    return pl.DataFrame(data, schema=schema, orient="row") if data else pl.DataFrame(schema=schema)
+
+
 def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
                   workers: int | None = None, cluster: str | None = None,
                   date_from: dt.date | None = None, date_to: dt.date | None = None,
@@ -354,8 +404,9 @@ def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
     if cluster is not None:
         check_cluster_address(cluster)
     out = Path(out_dir).resolve()
-    jobs = [SiteJob(str(s), str(out / s.stem), date_from, date_to, drift,
-                    str(pf.history) if pf.history else None, drift_reference)
+    jobs = [SiteJob(str(s), str(out / pf.folder_name(s)), date_from, date_to, drift,
+                    str(pf.history) if pf.history else None, drift_reference,
+                    pf.folder_name(s))
             for s in pf.sites]
     total = len(jobs)
     report(progress, "sites", 0, total)
@@ -363,7 +414,8 @@ def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
         outcomes = _run_on_cluster(cluster, jobs, progress)
     else:
         outcomes = _run_locally(jobs, workers or os.cpu_count() or 1, start_method, progress)
-    return PortfolioResult(pf, portfolio_frame(outcomes), outcomes)
+    return PortfolioResult(pf, portfolio_frame(outcomes), outcomes,
+                           equipment_frame(outcomes))
 
 
 def _lost(job: SiteJob, exc: BaseException | str) -> SiteOutcome:

@@ -58,15 +58,18 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import polars as pl
+from scipy.special import ndtri
 
 from disagg import __version__
+from disagg.analyses.verdict import RULE as VERDICT_RULE
+from disagg.analyses.verdict import change_verdict
+from disagg.errors import DisaggError, InputError, OutputError
+from disagg.present import commit
 
 try:
     import fcntl
 except ImportError:  # not on this system (Windows): runs do not take turns there
     fcntl = None
-from disagg.errors import DisaggError, InputError, OutputError
-from disagg.present import commit
 
 KINDS = ("breakdown", "drift")
 # The lock file inside the history folder, and how long a run waits for another's lock [s].
@@ -98,9 +101,19 @@ DRIFT_SCHEMA = {
 _SCHEMAS = {"breakdown": BREAKDOWN_SCHEMA, "drift": DRIFT_SCHEMA}
 
 
+# A site file with this generic name (a folder per building, each holding site.toml) is
+# known by its folder's name instead.
+GENERIC_SITE_STEM = "site"
+
+
 def site_id(site_file: str | Path) -> str:
-    """The history's id of a site: its file name without .toml, filesystem-safe."""
-    text = re.sub(r"[^A-Za-z0-9._-]", "_", Path(site_file).stem).lstrip(".")
+    """The history's id of a site: its file name without .toml (for ``site.toml``, its
+    folder's name), filesystem-safe."""
+    path = Path(site_file)
+    stem = path.stem
+    if stem == GENERIC_SITE_STEM and path.parent.name:
+        stem = path.parent.name
+    text = re.sub(r"[^A-Za-z0-9._-]", "_", stem).lstrip(".")
     return text or "site"
 
 
@@ -466,10 +479,32 @@ class HistoryComparison:
 COMPARE_METHOD = (
     "from stored monthly draws, no refit: each period's draw is the run-hour-weighted mean of "
     "its months' kw, and its interval the run-hour-weighted means of kw_low and kw_high (as if "
-    "the months' errors were fully correlated: wider than a refit's); rising or falling only "
-    "when the two intervals do not overlap and the change is at least --min-change, else "
-    "unclear; months that were not stored are simply absent. disagg compare refits the "
-    "periods' data and is the exact method.")
+    "the months' errors were fully correlated: wider than a refit's); its standard error the "
+    "interval's larger half over the normal 97.5 % point; then the verdict rule shared with "
+    "disagg compare: " + VERDICT_RULE + "; unclear when a stored month of either period is "
+    "flagged prior-driven, schedule-bound, not-run or inseparable:<id> (disagg compare "
+    "compares such loads as their group); missing when a period has no stored run-hours. "
+    "Months that were not stored are simply absent. disagg compare refits the periods' data "
+    "and is the exact method.")
+# Stored rows with these flags (or inseparable:<id>) are unclear, as in disagg compare.
+UNCLEAR_FLAGS = ("prior-driven", "schedule-bound", "not-run")
+# Stored intervals are the breakdown's 95 % intervals (its default confidence).
+STORED_CONFIDENCE = 0.95
+
+
+def period_verdict(kw_before: float, low_before: float, high_before: float, kw_after: float,
+                   low_after: float, high_after: float, min_change: float = 0.05,
+                   confidence: float = STORED_CONFIDENCE) -> dict:
+    """The shared verdict (disagg.analyses.verdict) on two periods' stored draws.
+
+    Each period's standard error is the larger half of its interval over the normal
+    quantile of the stored intervals' level, as disagg compare takes the larger half over
+    the fit's critical value.
+    """
+    z = float(ndtri(0.5 + STORED_CONFIDENCE / 2.0))
+    se_b = max(high_before - kw_before, kw_before - low_before) / z
+    se_a = max(high_after - kw_after, kw_after - low_after) / z
+    return change_verdict(kw_before, se_b, kw_after, se_a, confidence, min_change)
 
 
 def parse_months(text: str, option: str) -> tuple[str, str]:
@@ -502,10 +537,11 @@ def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
     - its interval is the run-hour-weighted mean of the months' ``kw_low`` and ``kw_high``:
       the months' errors are treated as fully correlated, so the interval is never narrower
       than a month's and is wider than a fit over the whole period would give;
-    - the verdict is ``rising`` or ``falling`` only when the two intervals do not overlap
-      and the relative change is at least min_change; otherwise ``unclear``. Non-overlap
-      of two intervals is a stricter test than the interval of the difference, so a real
-      change can be called unclear; ``missing`` when a period has no stored run-hours;
+    - the verdict is the rule shared with ``disagg compare`` (period_verdict,
+      disagg.analyses.verdict.change_verdict): ``rising`` / ``falling`` when the change is
+      significant and at least min_change, ``steady`` when two one-sided tests put it
+      inside +-min_change, else ``unclear``; ``missing`` when a period has no stored
+      run-hours;
     - rows are matched by equipment name as stored (a combined row ``A+B`` is its own row).
 
     ``disagg compare`` refits the two periods' data and is the exact method.
@@ -536,19 +572,30 @@ def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
             ((pl.col("kw_low") * weight).sum() / weight.sum()).alias(f"kw_{name}_low"),
             ((pl.col("kw_high") * weight).sum() / weight.sum()).alias(f"kw_{name}_high"),
             weight.sum().alias(f"run_hours_{name}"),
-            pl.col("period").n_unique().alias(f"months_{name}"))
+            pl.col("period").n_unique().alias(f"months_{name}"),
+            pl.col("flags").fill_null("").str.join(";").alias(f"_flags_{name}"))
     table = frames["before"].join(frames["after"], on="equipment", how="full",
                                   coalesce=True, maintain_order="left_right")
     b, a = pl.col("kw_before"), pl.col("kw_after")
     usable = (pl.col("run_hours_before") > 0) & (pl.col("run_hours_after") > 0) & (b > 0)
     change = pl.when(usable).then(a / b - 1.0).otherwise(None)
-    table = table.with_columns(change.alias("change")).with_columns(
-        pl.when(~usable.fill_null(False)).then(pl.lit("missing"))
-        .when((pl.col("kw_after_low") > pl.col("kw_before_high"))
-              & (pl.col("change") >= min_change)).then(pl.lit("rising"))
-        .when((pl.col("kw_after_high") < pl.col("kw_before_low"))
-              & (pl.col("change") <= -min_change)).then(pl.lit("falling"))
-        .otherwise(pl.lit("unclear")).alias("verdict"))
+    table = table.with_columns(change.alias("change"), usable.fill_null(False).alias("_usable"))
+    verdicts = []
+    for r in table.iter_rows(named=True):
+        if not r["_usable"]:
+            verdicts.append("missing")
+            continue
+        flags = f"{r['_flags_before'] or ''};{r['_flags_after'] or ''}".split(";")
+        if any(f in UNCLEAR_FLAGS or f.startswith("inseparable:") for f in flags):
+            # As disagg compare: a draw the prior or the schedule decides is no evidence of
+            # a change (a group is compared as one row only by a refit, disagg compare).
+            verdicts.append("unclear")
+            continue
+        verdicts.append(period_verdict(r["kw_before"], r["kw_before_low"], r["kw_before_high"],
+                                       r["kw_after"], r["kw_after_low"], r["kw_after_high"],
+                                       min_change)["verdict"])
+    table = table.drop("_usable", "_flags_before", "_flags_after").with_columns(
+        pl.Series("verdict", verdicts, pl.String))
     periods = {name: sorted(hist.filter(pl.col("period").is_between(pl.lit(rng[0]),
                                                                     pl.lit(rng[1])))["period"]
                             .unique().to_list())

@@ -306,7 +306,8 @@ def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
 
 
 def write_portfolio(result, out_dir: Path) -> list[Path]:
-    """Write portfolio.csv (one row per site; see disagg.jobs.batch.portfolio_frame) into
+    """Write portfolio.csv (one row per site; see disagg.jobs.batch.portfolio_frame) and
+    portfolio_equipment.csv (one row per site, month and breakdown row; equipment_frame) into
     out_dir, atomically, with text cells neutralised for spreadsheets.
 
     Args:
@@ -314,9 +315,12 @@ def write_portfolio(result, out_dir: Path) -> list[Path]:
     """
     frame = result.frame
     inputs = [result.portfolio.source, *result.portfolio.sites]
-    return write_atomically(out_dir, {
-        "portfolio.csv": lambda p: neutralise_csv_text(frame).write_csv(p, float_precision=6),
-    }, [p for p in inputs if p.is_file()])
+    files = {
+        "portfolio.csv": lambda p: neutralise_csv_text(frame).write_csv(p, float_precision=6)}
+    if result.equipment is not None:
+        files["portfolio_equipment.csv"] = lambda p: neutralise_csv_text(
+            result.equipment).write_csv(p, float_precision=6)
+    return write_atomically(out_dir, files, [p for p in inputs if p.is_file()])
 
 
 def write_report(html: str, out_dir: Path, inputs: list[Path]) -> list[Path]:

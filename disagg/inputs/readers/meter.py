@@ -119,7 +119,8 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     path = settings.file
     raw = read_table(path, "meter", [settings.time_column, settings.value_column])
     require_columns(raw, path, [settings.time_column, settings.value_column])
-    times = parse_times(raw, settings.time_column, tz, path)
+    times = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
+                        setting="[meter] date_order")
     values = _numbers(raw, settings.value_column, path, f"energy in {settings.unit}")
     negative = vee.negative_readings(
         values, lambda i: f"{path}: {_row_label(path, i)}, column {settings.value_column!r}")
@@ -162,7 +163,7 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     else:
         df = df.with_columns(start_utc=pl.col("t"), end_utc=pl.col("t") + step)
     frame = df.select("start_utc", "end_utc", (pl.col("v") * scale).alias("energy_kwh"))
-    frame, more = vee.validate_frame(frame, interval_min, stamp, tz)
+    frame, more = vee.validate_frame(frame, interval_min, stamp, tz, settings.unit or "kWh")
     notes = [f.replaces for f in findings if f.replaces]
     return MeterData(frame, interval_min, path, rows_read, dropped, notes, findings + more)
 

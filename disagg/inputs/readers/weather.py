@@ -31,7 +31,8 @@ def read_weather(settings: WeatherSettings, tz: str) -> pl.DataFrame:
     path = settings.file
     raw = read_table(path, "weather", [settings.time_column, settings.temp_column])
     require_columns(raw, path, [settings.time_column, settings.temp_column])
-    t = parse_times(raw, settings.time_column, tz, path)
+    t = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
+                    setting="[weather] date_order")
     temp = _numbers(raw, settings.temp_column, path, f"a temperature in {settings.unit}")
     if settings.unit == "F":
         temp = (temp - 32.0) * 5.0 / 9.0
