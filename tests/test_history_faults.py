@@ -180,8 +180,8 @@ def test_site_files_whose_ids_would_collide_are_refused(tmp_path):
         history.store_drift(tmp_path / "hist", underscored, _drift_of([2]))
     assert str(exc.value) == (
         f"{underscored.path}: its history id 'a_b' is already used in {tmp_path / 'hist'} by "
-        "the site file a b.toml; file names that differ only in characters other than "
-        "letters, digits, '.', '_' and '-' share an id: rename one of the two site files")
+        "the site file a b.toml; names that differ only in characters other than "
+        "letters, digits, '.', '_' and '-' share an id: rename one of the two")
     stored = history.read_history(tmp_path / "hist", "a_b", kind="drift")
     assert stored["date"].to_list() == [dt.date(2025, 6, 1)]  # the first site's day, alone
     # The same file run again (even from another folder) is the same site.
@@ -224,3 +224,15 @@ def _dead_pid() -> int:
     proc = subprocess.Popen([sys.executable, "-c", "pass"])
     proc.wait()
     return proc.pid
+
+
+def test_site_toml_files_in_folders_whose_ids_would_collide_are_refused(tmp_path):
+    spaced = SimpleNamespace(name="A", path=tmp_path / "north wing" / "site.toml")
+    underscored = SimpleNamespace(name="B", path=tmp_path / "north_wing" / "site.toml")
+    assert history.site_id(spaced.path) == history.site_id(underscored.path) == "north_wing"
+    history.store_drift(tmp_path / "hist", spaced, _drift_of([1]))
+    with pytest.raises(OutputError) as exc:
+        history.store_drift(tmp_path / "hist", underscored, _drift_of([2]))
+    assert "by the site file north wing/site.toml;" in str(exc.value)
+    moved = SimpleNamespace(name="A", path=tmp_path / "elsewhere" / "north wing" / "site.toml")
+    history.store_drift(tmp_path / "hist", moved, _drift_of([2]))  # the same building

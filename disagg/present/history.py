@@ -224,9 +224,19 @@ def _replace_months(folder: Path, kind: str, site: str,
     return [target for _, target in moves]
 
 
+def _id_source(site_file: str | Path) -> str:
+    """The part of a site file's path its id is made from: the file name, or for
+    ``site.toml`` its folder's name and the file name (see site_id)."""
+    path = Path(site_file)
+    if path.stem == GENERIC_SITE_STEM and path.parent.name:
+        return f"{path.parent.name}/{path.name}"
+    return path.name
+
+
 def _check_id(folder: Path, kind: str, sid: str, site) -> None:
     """Refuse to store a site under an id that another site file's history already uses
-    (``a b.toml`` and ``a_b.toml`` both have the id ``a_b``).
+    (``a b.toml`` and ``a_b.toml`` both have the id ``a_b``; so do ``a b/site.toml`` and
+    ``a_b/site.toml``). The same file moved to another folder keeps its id and history.
 
     Raises:
         OutputError: naming both files.
@@ -237,14 +247,13 @@ def _check_id(folder: Path, kind: str, sid: str, site) -> None:
             stored = pl.read_parquet(part, columns=["site_file"]).get_column("site_file")
         except (OSError, pl.exceptions.PolarsError):
             return  # read (and reported) where the month itself is read
-        names = {Path(f).name for f in stored.drop_nulls().unique().to_list()}
-        mine = Path(site.path).name
-        if names and mine not in names:
+        names = {_id_source(f) for f in stored.drop_nulls().unique().to_list()}
+        if names and _id_source(site.path) not in names:
             other = sorted(names)[0]
             raise OutputError(
                 f"{site.path}: its history id {sid!r} is already used in {folder} by the site "
-                f"file {other}; file names that differ only in characters other than letters, "
-                "digits, '.', '_' and '-' share an id: rename one of the two site files")
+                f"file {other}; names that differ only in characters other than letters, "
+                "digits, '.', '_' and '-' share an id: rename one of the two")
 
 
 def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
