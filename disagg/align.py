@@ -155,12 +155,27 @@ def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
         seg = spell_segments(base.spells, tz, int(start_ns.min()), int(end_ns.max()), base.closed)
         occ, _ = overlap_hours(seg, start_ns, end_ns)
         return np.column_stack([occ, length_h - occ]), ["baseload_occupied_kw", "baseload_unoccupied_kw"]
-    if how is None:
-        how = hour_of_week(start_utc, tz)
-    cols = np.zeros((len(length_h), 168))
+    how = hour_of_week_codes(base, start_utc, tz, how)
+    n_levels = 168 + (24 if base.closed else 0)
+    cols = np.zeros((len(length_h), n_levels))
     cols[np.arange(len(length_h)), how] = length_h
     names = [f"baseload_how{h:03d}_kw" for h in range(168)]
+    names += [f"baseload_closed_h{h:02d}_kw" for h in range(n_levels - 168)]
     return cols, names
+
+
+def hour_of_week_codes(base: BaseloadSettings, start_utc: pl.Series, tz: str,
+                       how: np.ndarray | None = None) -> np.ndarray:
+    """The hour-of-week baseload's level of each interval: the local hour of the week
+    (0..167), or 168 + the local hour of the day on a declared closed date (closed days get
+    their own daily profile)."""
+    if how is None:
+        how = hour_of_week(start_utc, tz)
+    if not base.closed:
+        return how
+    local = start_utc.dt.convert_time_zone(tz)
+    shut = local.dt.date().is_in(list(base.closed)).to_numpy()
+    return np.where(shut, 168 + how % 24, how)
 
 
 def hour_of_week(start_utc: pl.Series, tz: str) -> np.ndarray:

@@ -281,7 +281,8 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         est = None
         if len(np.unique(day[mask])) >= MIN_MONTH_DAYS:
             try:
-                est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+                est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence,
+                                     form=whole.form)
             except ValueError:
                 est = None
         if est is None:

@@ -1,0 +1,234 @@
+"""Which baseload form the data support: compare forms by a penalised likelihood.
+
+Forms: a profile (constant, occupied, hour-of-week) alone, or plus a wandering level
+(disagg.wander). Every form is fitted on the same first differences of the metered kW, so
+their likelihoods are comparable: a form without the level is the wander model at q = 0
+(its intercept is the level's unknown start). The criterion is the Bayesian information
+criterion with the likelihood divided by an overdispersion factor c (the quasi-likelihood
+form, QBIC; Burnham & Anderson 2002, sec. 2.5, from memory): c is the ratio of the variance
+of the whitened residuals' local-day sums to the sum of their variances (1 for independent
+rows; meter noise that persists within a day makes the plain likelihood overconfident and
+would always pick the most flexible form).
+
+    QBIC = (-2 log L) / c + p log N
+
+with p the number of fitted coefficients (the level's q counts as one) and N the number of
+differences. Each form gets an Akaike-type weight exp(-dQBIC / 2) normalised over the forms
+(Burnham & Anderson 2002, sec. 2.9); forms with weight at least CREDIBLE_WEIGHT are credible
+and their disagreement widens the intervals (disagg.estimate).
+
+References:
+    Schwarz, G. (1978). Estimating the dimension of a model. Annals of Statistics 6(2).
+    Burnham, K. P. & Anderson, D. R. (2002). Model Selection and Multimodel Inference, 2nd
+    ed. Springer (QAIC/QBIC, model weights; from memory).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from disagg.model import solve_regularized
+from disagg.wander import Spacing, normal_solve, profile_q, whiten
+
+# A form whose weight is at least this is credible: its draws count in the intervals.
+# Common practice, no source (a model with 5 % weight is one the data do not rule out).
+CREDIBLE_WEIGHT = 0.05
+
+
+@dataclass(frozen=True)
+class Form:
+    """A baseload form: the profile, with or without the wandering level (noise ratio q)."""
+
+    profile: str
+    level: bool
+    q: float = 0.0
+
+    @property
+    def name(self) -> str:
+        return self.profile + ("+level" if self.level else "")
+
+    @classmethod
+    def parse(cls, name: str) -> Form:
+        profile, _, lv = name.partition("+")
+        return cls(profile, lv == "level")
+
+
+@dataclass
+class FormScore:
+    """One form's fit in the comparison."""
+
+    form: Form
+    neg2ll: float
+    n_params: int
+    criterion: float = float("nan")
+    delta: float = float("nan")
+    weight: float = float("nan")
+    draws_kw: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    se_kw: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+
+@dataclass
+class FormChoice:
+    """The form used, how it was chosen and how the others compared."""
+
+    form: Form
+    pinned: bool
+    scores: list[FormScore]
+    overdispersion: float
+    criterion: str = "QBIC on first differences (lower is better)"
+
+    def credible(self) -> list[FormScore]:
+        return [s for s in self.scores if s.weight >= CREDIBLE_WEIGHT]
+
+    def as_json(self) -> dict:
+        return {
+            "used": self.form.name, "q": self.form.q, "pinned": self.pinned,
+            "criterion": self.criterion, "overdispersion": self.overdispersion,
+            "credible_weight": CREDIBLE_WEIGHT,
+            "forms": [{"form": s.form.name, "q": s.form.q, "neg2_loglik": s.neg2ll,
+                       "parameters": s.n_params, "criterion": s.criterion,
+                       "delta": s.delta, "weight": s.weight} for s in self.scores],
+        }
+
+
+# The column of each profile that the level (or the intercept of the differences) replaces.
+CONSTANT_COLUMN = {"constant": 0, "occupied": 1, "hour-of-week": 0}
+
+
+def kept_columns(profile: str, m: int) -> list[int]:
+    """Indices of a profile's m baseload columns that stay beside the level: all but the
+    direction of the constant (constant: its one column; occupied: the unoccupied hours,
+    so the occupied column is the occupied kW above the unoccupied level; hour-of-week:
+    Monday 00:00-01:00, the others are kW above it). Extra columns (closed hours) stay."""
+    drop = CONSTANT_COLUMN[profile]
+    return [i for i in range(m) if i != drop]
+
+
+def drop_constant(profile: str, B: np.ndarray, h: np.ndarray) -> np.ndarray:
+    """The profile's columns in kW units (divided by interval hours) without the direction
+    of the constant (kept_columns)."""
+    return B[:, kept_columns(profile, B.shape[1])] / h[:, None]
+
+
+@dataclass
+class _Gram:
+    """W'W of the whitened [X, z] at one q, and log det T."""
+
+    G: np.ndarray
+    logdet: float
+    n: int
+    W: np.ndarray  # the whitened [X, z]
+
+    def fit(self, mean: np.ndarray, pen: np.ndarray, lower: np.ndarray) -> tuple[np.ndarray, float]:
+        """Bounded ridge solve from the Gram matrix; (coefficients, residual sum of squares)."""
+        p = self.G.shape[0] - 1
+        Gxx, gxz, gzz = self.G[:p, :p], self.G[:p, p], self.G[p, p]
+        if p == 0:
+            return np.zeros(0), float(gzz)
+        b = normal_solve(Gxx, gxz)
+        if (pen > 0).any() or np.any(b < lower):
+            # The compressed system R'R = Gxx, R'c = gxz has the same least-squares problem.
+            w, V = np.linalg.eigh(Gxx)
+            keep = w > w.max() * 1e-12 if w.size else w
+            R = (V[:, keep] * np.sqrt(w[keep])).T
+            c = (V[:, keep].T @ gxz) / np.sqrt(w[keep])
+            b = solve_regularized(R, c, mean, pen, lower)
+        rss = float(gzz - 2 * b @ gxz + b @ Gxx @ b)
+        return b, max(rss, 0.0)
+
+
+def _gram(Z: np.ndarray, z: np.ndarray, sp: Spacing, q: float) -> _Gram:
+    w = whiten(Z, z, sp, q)
+    return _Gram(w.W.T @ w.W, w.logdet, len(w.z), w.W)
+
+
+def neg2_loglik_n(n: int, rss: float, logdet: float) -> float:
+    return n * np.log(max(rss, 1e-300) / n) + logdet
+
+
+def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str, np.ndarray],
+                  days: np.ndarray, prior_mean: np.ndarray, prior_sd: np.ndarray,
+                  levels: bool = True, fixed_q: dict[str, float] | None = None
+                  ) -> tuple[list[FormScore], np.ndarray]:
+    """Fit every form on the same differences and score it.
+
+    Args:
+        H: (n, k) equipment-hours [h] of the fitted terms; y: (n,) metered energy [kWh].
+        profiles: profile name -> (n, m) baseload columns [h].
+        days: (n,) local-day labels (for the overdispersion factor).
+        prior_mean, prior_sd: (k,) the terms' priors [kW] (ridge, as the final fit).
+        levels: also score each profile plus the wandering level.
+        fixed_q: profile -> q to use instead of the profile-likelihood search.
+
+    Returns:
+        the scores (criterion not yet filled, see score) and the whitened residuals of the
+        most flexible form (the last profile's, with the level) for the overdispersion.
+    """
+    h = sp.h
+    z = y / h
+    E = H / h[:, None]
+    k = H.shape[1]
+    scores = []
+    residual = None
+    prec = np.where(np.isfinite(prior_sd) & (prior_sd > 0), 1.0 / np.square(prior_sd), 0.0)
+    for profile, B in profiles.items():
+        Zb = drop_constant(profile, B, h)
+        Z = np.column_stack([E, Zb])
+        mean = np.concatenate([prior_mean, np.zeros(Zb.shape[1])])
+        pr = np.concatenate([prec, np.zeros(Zb.shape[1])])
+        lower = np.concatenate([np.zeros(k), np.full(Zb.shape[1], -np.inf)])
+        for level in ((False, True) if levels else (False,)):
+            if level:
+                q = (fixed_q or {}).get(profile)
+                if q is None:
+                    rows = _window(sp, Z.shape[1])
+                    q = profile_q(Z[rows], z[rows], sp.rows(rows)).q
+            else:
+                q = 0.0
+            g = _gram(Z, z, sp, q)
+            b0, rss0 = g.fit(mean, np.zeros_like(pr), np.full(len(pr), -np.inf))
+            sigma2 = rss0 / max(g.n - Z.shape[1], 1)
+            b, rss = g.fit(mean, sigma2 * pr, lower)
+            A = g.G[:-1, :-1] + np.diag(sigma2 * pr)
+            se = np.sqrt(np.maximum(np.diag(np.linalg.pinv(A)) * sigma2, 0.0))
+            scores.append(FormScore(Form(profile, level, q), neg2_loglik_n(g.n, rss0, g.logdet),
+                                    Z.shape[1] + 1 + int(level), draws_kw=b[:k], se_kw=se[:k]))
+            if level or not levels:
+                residual = g.W[:, -1] - g.W[:, :-1] @ b0
+    return scores, residual
+
+
+# The noise ratio search uses a window of the rows (contiguous, in the middle of the range)
+# of at least Q_WINDOW_ROWS rows and Q_WINDOW_ROWS_PER_COLUMN per design column: the
+# likelihood's shape in q is set by the level's local behaviour, which a few weeks show
+# (the chosen form is then fitted and scored on every row).
+Q_WINDOW_ROWS = 6000
+Q_WINDOW_ROWS_PER_COLUMN = 25
+
+
+def _window(sp: Spacing, p: int) -> slice:
+    n = len(sp.h)
+    want = max(Q_WINDOW_ROWS, Q_WINDOW_ROWS_PER_COLUMN * p)
+    if n <= want:
+        return slice(0, n)
+    a = (n - want) // 2
+    return slice(a, a + want)
+
+
+def overdispersion(u: np.ndarray, days: np.ndarray) -> float:
+    """Variance of the residuals' day sums over the sum of their squares, at least 1."""
+    _, first = np.unique(days, return_index=True)
+    sums = np.add.reduceat(u, np.sort(first))
+    return max(1.0, float(np.sum(sums**2) / max(np.sum(u**2), 1e-300)))
+
+
+def score(scores: list[FormScore], c: float, n: int) -> None:
+    """Fill criterion, delta and weight (in place)."""
+    crit = np.array([s.neg2ll / c + s.n_params * np.log(n) for s in scores])
+    delta = crit - crit.min()
+    w = np.exp(-0.5 * delta)
+    w /= w.sum()
+    for s, cr, d, wt in zip(scores, crit, delta, w):
+        s.criterion, s.delta, s.weight = float(cr), float(d), float(wt)
