@@ -22,6 +22,7 @@ from disagg.align import Aligned, baseload_columns
 from disagg.config import SiteConfig
 from disagg.errors import ConfigError, InputError
 from disagg.estimate import degrees, estimate_draws, weather_columns, weather_specs
+from disagg.select import Form
 from disagg.model import quantile
 from disagg.pipeline import CAUTION, load_inputs, require_usable
 from disagg.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
@@ -113,7 +114,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         ref_aligned = dataclasses.replace(aligned, use=ref_mask)
         require_usable(site, ref_aligned)
         try:
-            est = estimate_draws(site, ref_aligned, confidence)
+            # The tracker's design carries the declared profile's columns (no wandering
+            # level): the reference fit uses that form.
+            est = estimate_draws(site, ref_aligned, confidence,
+                                 form=Form(site.baseload.profile, level=False))
         except ValueError as exc:
             raise InputError(f"{site.meter.file}: reference period {ref[0]}..{ref[1]}: {exc}") from None
         terms = [t for t in est.terms if t.column is not None]
