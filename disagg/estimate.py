@@ -762,10 +762,10 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
     else:
         profiles = [p for p in SIMPLER[declared]
                     if p != "occupied" or site.baseload.spells][::-1] + [declared]
-        # Without a declared schedule the hour-of-week profile is tried too, when the data
-        # can carry its 168 levels (with a schedule, the occupied profile is the engineer's
-        # statement of the shape, and hour-of-week stays a stability variant).
-        if (declared == "constant"
+        # The hour-of-week profile is tried too, when the data can carry its 168 levels: a
+        # declared schedule states when the building is occupied, not the baseload's shape
+        # within the day (lights that ramp, a daily swing).
+        if (declared != "hour-of-week"
                 and len(y) >= MIN_ROWS_PER_COLUMN * (Hx.shape[1] + HOW_LEVELS)):
             profiles.append("hour-of-week")
         pinned = site.baseload.form != "auto"

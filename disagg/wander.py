@@ -42,7 +42,7 @@ from scipy.linalg.lapack import dtbtrs
 # Bounds of the noise-ratio search (per interval): below Q_MIN the level is constant for all
 # practical purposes over a year of 15-minute data; above Q_MAX it follows every interval.
 Q_MIN = 1e-7
-Q_MAX = 1e2
+Q_MAX = 1e-2
 # Grid points of the profile-likelihood search (log-spaced), refined by a parabola.
 Q_GRID = 7
 
