@@ -1,4 +1,4 @@
-"""Peak memory and time of reading a very large events run log (disagg.readers.read_runlog).
+"""Peak memory and time of reading a very large events run log (disagg.inputs.readers.read_runlog).
 
 Usage: python bench/bigfile.py [ROWS]   (default 10,000,000)
 
@@ -41,8 +41,8 @@ SEED = 2025
 CHILD = r"""
 import json, resource, sys, time
 mode, site_path = sys.argv[1], sys.argv[2]
-from disagg.config import load_site
-from disagg.readers import read_runlog
+from disagg.inputs.config import load_site
+from disagg.inputs.readers import read_runlog
 site = load_site(site_path)
 out = {"mode": mode}
 if mode == "read":

@@ -17,8 +17,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 import numpy as np  # noqa: E402
 
-from disagg.estimate import estimate_draws  # noqa: E402
-from disagg.pipeline import monthly_fits  # noqa: E402
+from disagg.fit.estimate import estimate_draws  # noqa: E402
+from disagg.analyses.pipeline import monthly_fits  # noqa: E402
 from synthetic import make_building  # noqa: E402
 
 

@@ -8,7 +8,7 @@ Prints, as tables:
   alarmed in those runs;
 - false alarms on stationary 240-day buildings: runs with any alarm, load-runs with an alarm
   (well-specified, and the misspecified building of tests/synthetic.py for comparison);
-- the run time of the tracker (disagg.track.nlms alone) for a site-year of 15-minute
+- the run time of the tracker (disagg.analyses.track.nlms alone) for a site-year of 15-minute
   intervals with 30 pieces of equipment plus two baseload columns, median of 7 runs.
 """
 
@@ -24,8 +24,8 @@ import datetime as dt  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from disagg.drift import drift_aligned  # noqa: E402
-from disagg.track import nlms, step_from_memory  # noqa: E402
+from disagg.analyses.drift import drift_aligned  # noqa: E402
+from disagg.analyses.track import nlms, step_from_memory  # noqa: E402
 from synthetic import make_building  # noqa: E402
 
 START = dt.date(2025, 3, 3)

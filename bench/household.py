@@ -16,7 +16,7 @@ For each chosen month this script builds what an engineer would have for a build
   [Wh/min], one row per state change (naive local times, the minute's start);
 - a site TOML with the three circuits as equipment WITHOUT priors (no size, no draw), so the
   library's weak default prior applies, and a baseload profile;
-then runs ``disagg.pipeline.breakdown_site`` and compares each circuit's monthly kWh with the
+then runs ``disagg.analyses.pipeline.breakdown_site`` and compares each circuit's monthly kWh with the
 circuit's measured kWh (sum of Sub_metering_x Wh / 1000).
 
 Accuracy: "energy correctly assigned" (Kolter & Johnson 2011, REDD data set paper),
@@ -357,7 +357,7 @@ def coverage_by_circuit(results: list[MonthResult]) -> dict[str, tuple[int, int]
 def run_month(minutes: pl.DataFrame, month: str, folder: Path, threshold_wh: float,
               baseload: str) -> MonthResult:
     """Build one month's files, run the breakdown on them, compare with the measurements."""
-    from disagg.pipeline import breakdown_site
+    from disagg.analyses.pipeline import breakdown_site
 
     mm = month_of(minutes, month)
     site = write_site(folder / f"{month}_{threshold_wh:g}_{baseload}", mm, threshold_wh, baseload)

@@ -11,7 +11,7 @@ loads, then measures, and writes the table to bench/RESULTS.md (replaced on ever
   each site once: median seconds per site-year, max RSS of the process (os.wait4);
 - in a fresh process per site, each step alone (the second of two runs, so imports and
   caches are warm): reading, alignment, the whole-range fit, the 12 monthly fits, the drift
-  tracker (disagg.drift.drift_site, and disagg.track.nlms alone inside it);
+  tracker (disagg.analyses.drift.drift_site, and disagg.analyses.track.nlms alone inside it);
 - `disagg batch FOLDER --out DIR --workers 1` and `--workers 2`: portfolio throughput, and
   from it the time for 1,000 site-years on 2 cores;
 - max RSS of the breakdown of the 1-minute, 50-load site-year;
@@ -129,11 +129,11 @@ def stages(site_toml: Path) -> dict:
     """Each step of a breakdown and the drift tracker, timed alone (best of two runs)."""
     import dataclasses
 
-    import disagg.drift as drift_mod
-    from disagg.align import align
-    from disagg.config import load_site
-    from disagg.estimate import estimate_draws
-    from disagg.readers import read_meter, read_runlog
+    import disagg.analyses.drift as drift_mod
+    from disagg.fit.align import align
+    from disagg.inputs.config import load_site
+    from disagg.fit.estimate import estimate_draws
+    from disagg.inputs.readers import read_meter, read_runlog
 
     nlms_s = []
     real_nlms = drift_mod.nlms
@@ -341,7 +341,7 @@ def main() -> None:
 
     print("start-up: a process that only imports what a breakdown imports", flush=True)
     R["startup"] = statistics.median(
-        run([sys.executable, "-c", "import disagg.cli, disagg.pipeline, disagg.outputs"])["wall_s"]
+        run([sys.executable, "-c", "import disagg.cli, disagg.analyses.pipeline, disagg.present.outputs"])["wall_s"]
         for _ in range(3))
 
     def batch(folder: Path, workers: int, name: str) -> dict:

@@ -8,6 +8,7 @@ short line and exit status 2; ``--debug`` shows its full trace.
 from __future__ import annotations
 
 import datetime as dt
+import os
 import sys
 from pathlib import Path
 from typing import Annotated, Optional
@@ -15,6 +16,13 @@ from typing import Annotated, Optional
 import typer
 
 from disagg.errors import DisaggError
+
+# The fits multiply tall, narrow matrices, where BLAS threads cost more than they save (seen
+# here: a fit 5-8x slower with OpenBLAS's default threads on a 2-core machine). Set for the
+# command's own process (and the batch workers it starts) before numpy is first imported by
+# a command; a user's own setting wins. The library itself leaves the caller's settings alone.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
 
 app = typer.Typer(
     add_completion=False,
@@ -76,8 +84,9 @@ def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date 
                          as_json: bool = False) -> None:
     """Fit, write the files, then print the summary (built before writing, so a summary
     failure leaves no files)."""
-    from disagg.outputs import breakdown_json, breakdown_summary, write_breakdown
-    from disagg.pipeline import breakdown_site
+    from disagg.analyses.pipeline import breakdown_site
+    from disagg.present.outputs import write_breakdown
+    from disagg.present.terminal import breakdown_json, breakdown_summary
     from disagg.progress import terminal_bar
 
     bar = terminal_bar(quiet or as_json)
@@ -86,7 +95,7 @@ def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date 
                                 estimate=estimate, progress=bar)
         html = _report_html(result, bar) if report else None
         summary = breakdown_summary(result)
-        from disagg.history import check_configured, store_configured
+        from disagg.present.history import check_configured, store_configured
         check_configured(result.site)  # a bad history folder fails before any output
         paths = write_breakdown(result, out, xlsx=xlsx, report_html=html)
         stored = store_configured(result, d0, d1, paths)
@@ -105,7 +114,7 @@ def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date 
 
 def _report_html(result, bar) -> str:
     """The HTML report of a breakdown, with the drift page when the range allows one."""
-    from disagg.report import report_for
+    from disagg.present.report import report_for
 
     return report_for(result, progress=bar)
 
@@ -171,8 +180,8 @@ def check(
     on_duplicate: DupOpt = "error",
 ) -> None:
     """Read and align the inputs and report what was found, without fitting."""
-    from disagg.outputs import check_summary
-    from disagg.pipeline import check_site
+    from disagg.analyses.pipeline import check_site
+    from disagg.present.terminal import check_summary
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
     window = offset_window if find_offset else None
@@ -190,7 +199,7 @@ def demo(
 ) -> None:
     """Write the fictional demo building's year of data and run the breakdown on it, with
     its report (report.html)."""
-    from disagg.outputs import write_demo_site
+    from disagg.present.outputs import write_demo_site
 
     def run():
         toml = write_demo_site(out / "demo_site")
@@ -226,10 +235,11 @@ def drift(
     """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
     import json
 
-    from disagg.config import parse_period
-    from disagg.drift import drift_site
+    from disagg.analyses.drift import drift_site
     from disagg.errors import InputError
-    from disagg.outputs import drift_summary, write_drift
+    from disagg.inputs.config import parse_period
+    from disagg.present.outputs import write_drift
+    from disagg.present.terminal import drift_summary
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
@@ -244,10 +254,10 @@ def drift(
         result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1,
                             log_offset)
         text = drift_summary(result)
-        from disagg.config import load_site
+        from disagg.inputs.config import load_site
 
         cfg = load_site(site)
-        from disagg.history import check_configured, store_drift_configured
+        from disagg.present.history import check_configured, store_drift_configured
         check_configured(cfg)  # a bad history folder fails before any output
         paths = write_drift(result, out, cfg.input_files(), state)
         paths += store_drift_configured(cfg, result, paths)
@@ -280,8 +290,10 @@ def compare(
 ) -> None:
     """Each equipment's draw in two periods and whether it rose, fell or held; writes
     compare.csv and compare.json."""
-    from disagg.compare import compare_site, compare_summary, write_compare
-    from disagg.config import parse_period
+    from disagg.analyses.compare import compare_site
+    from disagg.inputs.config import parse_period
+    from disagg.present.outputs import write_compare
+    from disagg.present.terminal import compare_summary
 
     if from_history:
         _guard(lambda: _compare_from_history(site, before, after, out, min_change))
@@ -327,9 +339,10 @@ def batch(
     site's files; exit 1 when any site failed, 130 when interrupted."""
     import time
 
-    from disagg.config import parse_period
-    from disagg.outputs import write_portfolio
-    from disagg.portfolio import BatchInterrupted, portfolio_summary, run_portfolio
+    from disagg.inputs.config import parse_period
+    from disagg.jobs.batch import BatchInterrupted, run_portfolio
+    from disagg.present.outputs import write_portfolio
+    from disagg.present.terminal import portfolio_summary
     from disagg.progress import terminal_bar
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
@@ -392,11 +405,12 @@ def history(
 ) -> None:
     """Each equipment's stored monthly kWh and draw; with --before/--after, an approximate
     comparison of stored months (disagg compare refits and is exact)."""
-    from disagg import history as hist
-    from disagg.config import load_site
+    from disagg.analyses.pipeline import CAUTION
     from disagg.errors import ConfigError, InputError
-    from disagg.outputs import neutralise_csv_text, write_atomically
-    from disagg.pipeline import CAUTION
+    from disagg.inputs.config import load_site
+    from disagg.present import history as hist
+    from disagg.present import terminal
+    from disagg.present.outputs import neutralise_csv_text, write_atomically
 
     def run():
         cfg = load_site(site)
@@ -411,7 +425,7 @@ def history(
             result = hist.compare_from_history(store, sid, hist.parse_months(before, "--before"),
                                                hist.parse_months(after, "--after"), min_change)
             table = hist.select_equipment(result.table, equipment)
-            text = hist.comparison_summary(
+            text = terminal.comparison_summary(
                 result if equipment is None else
                 hist.HistoryComparison(table, result.before, result.after,
                                        result.months_before, result.months_after,
@@ -422,7 +436,7 @@ def history(
                 raise InputError(f"{store}: no stored breakdown of site {sid!r}; run disagg "
                                  "breakdown or batch with this history folder set")
             table = hist.select_equipment(stored, equipment)
-            text = hist.history_summary(table, store, CAUTION)
+            text = terminal.history_summary(table, store, CAUTION)
         if out is None:
             typer.echo(text)
             return
@@ -456,11 +470,12 @@ def report(
 ) -> None:
     """Write report.html: one self-contained page (breakdown, costs, drift, fit quality,
     cautions) to read in a browser or print to PDF."""
-    from disagg.config import parse_period
-    from disagg.outputs import write_report
-    from disagg.pipeline import breakdown_site
+    from disagg.analyses.pipeline import breakdown_site
+    from disagg.inputs.config import parse_period
+    from disagg.present.outputs import write_report
+    from disagg.present.report import drift_for, render_report
+    from disagg.present.terminal import report_summary
     from disagg.progress import terminal_bar
-    from disagg.report import drift_for, render_report, report_summary
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
@@ -488,12 +503,13 @@ def report(
 
 def _compare_from_history(site: Path, before: str, after: str, out: Path,
                           min_change: float) -> None:
-    """compare --from-history: the stored months' draws, no refit (disagg.history)."""
-    from disagg import history as hist
-    from disagg.config import load_site
+    """compare --from-history: the stored months' draws, no refit (disagg.present.history)."""
+    from disagg.analyses.pipeline import CAUTION
     from disagg.errors import ConfigError
-    from disagg.outputs import neutralise_csv_text, write_atomically
-    from disagg.pipeline import CAUTION
+    from disagg.inputs.config import load_site
+    from disagg.present import history as hist
+    from disagg.present import terminal
+    from disagg.present.outputs import neutralise_csv_text, write_atomically
 
     cfg = load_site(site)
     if cfg.history is None:
@@ -502,7 +518,7 @@ def _compare_from_history(site: Path, before: str, after: str, out: Path,
     result = hist.compare_from_history(cfg.history, hist.site_id(cfg.path),
                                        hist.parse_months(before, "--before"),
                                        hist.parse_months(after, "--after"), min_change)
-    text = hist.comparison_summary(result, CAUTION)
+    text = terminal.comparison_summary(result, CAUTION)
     paths = write_atomically(out, {"compare.csv": lambda p: neutralise_csv_text(result.table)
                                    .write_csv(p, float_precision=6)},
                              cfg.input_files())

@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from disagg.align import Aligned
-from disagg.config import (BaseloadSettings, Equipment, MeterSettings, Prior, RunlogSettings,
+from disagg.fit.align import Aligned
+from disagg.inputs.config import (BaseloadSettings, Equipment, MeterSettings, Prior, RunlogSettings,
                            SiteConfig, parse_spell)
 
 TZ = "America/Chicago"

@@ -1,4 +1,4 @@
-"""Tests for disagg.align: exact overlap of run-log states with meter intervals, DST days in the
+"""Tests for disagg.fit.align: exact overlap of run-log states with meter intervals, DST days in the
 site's time zone (through the real readers), weekly spells and the baseload columns.
 
 Hand-computed values are in hours. DST facts (common practice, references.md section 7, and
@@ -19,9 +19,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from disagg.align import align, baseload_columns, overlap_hours, spell_segments
-from disagg.config import BaseloadSettings, load_site, parse_spell
-from disagg.readers import Segments, read_meter, read_runlog
+from disagg.fit.align import align, baseload_columns, overlap_hours, spell_segments
+from disagg.inputs.config import BaseloadSettings, load_site, parse_spell
+from disagg.inputs.readers import Segments, read_meter, read_runlog
 
 TZ = "America/Chicago"
 ZONE = ZoneInfo(TZ)

@@ -23,7 +23,7 @@ import typer
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 CAUTION_LINE = ("Caution: Estimates are not measurements. Any work on electrical equipment "

@@ -1,10 +1,10 @@
-"""Tests for disagg.clock: the clock offset between the run logs and the meter.
+"""Tests for disagg.analyses.clock: the clock offset between the run logs and the meter.
 
 A synthetic site with known truth is written into a temporary folder: a 15-minute meter CSV
 with UTC offsets and an events run log CSV with naive local times, 14 days in May (no
 daylight-saving change), three on-off loads switching at arbitrary whole seconds, an
 occupied/unoccupied baseload and small meter noise. The meter energy is integrated
-second by second here, independently of disagg.align. The same log is then written with its
+second by second here, independently of disagg.fit.align. The same log is then written with its
 clock off by a known amount and the search must find the shift that puts it back.
 
 Sign convention under test: the log's clock runs `offset` minutes behind the meter's, so the
@@ -23,11 +23,11 @@ import numpy as np
 import polars as pl
 import pytest
 
-from disagg.align import align, baseload_columns
-from disagg.clock import FLAT_CONTRAST, estimate_log_offset
-from disagg.config import load_site
+from disagg.fit.align import align, baseload_columns
+from disagg.analyses.clock import FLAT_CONTRAST, estimate_log_offset
+from disagg.inputs.config import load_site
 from disagg.errors import InputError
-from disagg.readers import read_meter, read_runlog
+from disagg.inputs.readers import read_meter, read_runlog
 
 TZ = "America/Chicago"
 START_LOCAL = dt.datetime(2025, 5, 5)  # a Monday; Chicago is on CDT (UTC-5) all fortnight

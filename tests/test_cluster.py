@@ -18,9 +18,9 @@ from polars.testing import assert_frame_equal
 from test_portfolio import break_meter, write_site_files
 from typer.testing import CliRunner
 
-from disagg import portfolio
+from disagg.jobs import batch as portfolio
 from disagg.cli import app
-from disagg.portfolio import run_portfolio
+from disagg.jobs.batch import run_portfolio
 
 runner = CliRunner()
 
@@ -98,7 +98,7 @@ def test_a_web_server_address_is_one_error_line_within_the_timeout(tmp_path, sit
 def test_no_trace_is_printed_when_the_command_exits(tmp_path, sites, web_server):
     # In a process of its own, so anything printed while Python shuts down is seen too.
     _, folder = sites
-    code = ("import sys; from disagg import portfolio; portfolio.CLUSTER_CONNECT_TIMEOUT_S = 1; "
+    code = ("import sys; from disagg.jobs import batch as portfolio; portfolio.CLUSTER_CONNECT_TIMEOUT_S = 1; "
             "from disagg.cli import app; sys.argv[0] = 'disagg'; app()")
     for address in (web_server, "notanaddress"):
         # timeout: only a guard against hanging the suite if the bug came back (the command

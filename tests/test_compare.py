@@ -1,4 +1,4 @@
-"""Season comparison (disagg.compare and `disagg compare`).
+"""Season comparison (disagg.analyses.compare and `disagg compare`).
 
 The rule is checked on hand-made estimates (exact p-values, every verdict, matching by id);
 the whole chain on synthetic buildings with known truth (tests/synthetic.py: a +30 % step in
@@ -24,9 +24,9 @@ from scipy.stats import norm
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.compare import COLUMNS, DEFAULT_MIN_CHANGE, compare_estimates, parse_period
+from disagg.analyses.compare import COLUMNS, DEFAULT_MIN_CHANGE, compare_estimates, parse_period
 from disagg.errors import ConfigError
-from disagg.estimate import Term, estimate_draws
+from disagg.fit.estimate import Term, estimate_draws
 from synthetic import TZ, make_building
 from test_cli import CAUTION_LINE, README, TRUE_DRAW_KW, write_site
 

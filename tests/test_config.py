@@ -1,4 +1,4 @@
-"""Tests for disagg.config: nameplate priors, weekly spells, and ConfigError messages."""
+"""Tests for disagg.inputs.config: nameplate priors, weekly spells, and ConfigError messages."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from disagg.config import Spell, load_site, parse_spell
+from disagg.inputs.config import Spell, load_site, parse_spell
 from disagg.errors import ConfigError
 
 # --- Outside check values (references.md section 5) ------------------------------------------

@@ -5,8 +5,8 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from disagg.outputs import write_demo_site
-from disagg.pipeline import breakdown_site
+from disagg.present.outputs import write_demo_site
+from disagg.analyses.pipeline import breakdown_site
 
 ROOT = Path(__file__).resolve().parents[1]
 

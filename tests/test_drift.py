@@ -1,4 +1,4 @@
-"""Drift tracking and alarms (disagg.drift) on synthetic buildings with known truth.
+"""Drift tracking and alarms (disagg.analyses.drift) on synthetic buildings with known truth.
 
 All data here is invented (tests/synthetic.py). The stable range 0 < mu < 2 of normalized LMS
 is from references.md section 4 (vendor DSP documentation [read]; Haykin, Adaptive Filter
@@ -16,9 +16,9 @@ import numpy as np
 import polars as pl
 import pytest
 
-from disagg.drift import drift_aligned
+from disagg.analyses.drift import drift_aligned
 from disagg.errors import ConfigError
-from disagg.outputs import to_json
+from disagg.present.outputs import to_json
 from synthetic import TZ, make_building
 
 START = dt.date(2025, 3, 3)  # make_building's first day

@@ -21,9 +21,9 @@ import pytest
 from scipy.optimize import lsq_linear
 from synthetic import make_building
 
-from disagg.align import Aligned
-from disagg.estimate import _project_out_days, estimate_draws
-from disagg.model import (
+from disagg.fit.align import Aligned
+from disagg.fit.estimate import _project_out_days, estimate_draws
+from disagg.fit.solvers import (
     Indicators,
     _factor_levels,
     chi2_upper_quantile,
@@ -32,7 +32,7 @@ from disagg.model import (
     quantile,
     solve_regularized,
 )
-from disagg.readers import _parse_offset_times
+from disagg.inputs.readers.tables import _parse_offset_times
 
 # Printed statistical tables, three decimals (from memory; any t / chi-square table, e.g.
 # NIST/SEMATECH e-Handbook 1.3.6.7.2 and 1.3.6.7.4): two-sided 95 % t for 9 and 29 degrees of

@@ -23,10 +23,10 @@ from polars.testing import assert_frame_equal
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import ConfigError, InputError
-from disagg.pipeline import breakdown_site
-from disagg.readers import read_greenbutton, read_meter
+from disagg.analyses.pipeline import breakdown_site
+from disagg.inputs.readers import read_greenbutton, read_meter
 
 DATA = Path(__file__).resolve().parent / "data"
 WH_FILE = DATA / "greenbutton_15min_wh.xml"

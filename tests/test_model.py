@@ -1,4 +1,4 @@
-"""Tests for disagg.model: the solver and covariance against statsmodels, scipy and NIST StRD.
+"""Tests for disagg.fit.solvers: the solver and covariance against statsmodels, scipy and NIST StRD.
 
 Digits are compared as the log relative error LRE = -log10(|x - c| / |c|), the measure NIST
 uses for its certified values.
@@ -15,7 +15,7 @@ from scipy.optimize import nnls
 from statsmodels.datasets import longley
 from statsmodels.stats import sandwich_covariance as sw
 
-from disagg.model import (block_sums, collinearity, fit_model, fit_quality, hac_meat,
+from disagg.fit.solvers import (block_sums, collinearity, fit_model, fit_quality, hac_meat,
                           solve_regularized)
 
 # --- Outside check values --------------------------------------------------------------------

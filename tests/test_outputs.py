@@ -9,7 +9,7 @@ import polars as pl
 import pytest
 
 from disagg.errors import OutputError
-from disagg.outputs import neutralise_csv_text, write_atomically
+from disagg.present.outputs import neutralise_csv_text, write_atomically
 
 # OWASP "CSV Injection" page (from memory; references.md section 10): cells starting with
 # =, +, -, @, tab or carriage return get a leading single quote.
@@ -51,7 +51,7 @@ def test_an_output_that_would_replace_an_input_is_refused(tmp_path):
 def test_a_failing_move_into_place_puts_the_previous_run_back(tmp_path, monkeypatch):
     # The second file's move into place fails (a full disk, a file locked by a spreadsheet):
     # the first new file is taken out again and both previous files are back.
-    import disagg.outputs as outputs
+    import disagg.present.outputs as outputs
 
     for name in ("breakdown.csv", "fit.json"):
         (tmp_path / name).write_text(f"previous {name}\n")

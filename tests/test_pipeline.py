@@ -1,4 +1,4 @@
-"""Month-by-month fits over a multi-month range (disagg.pipeline.monthly_fits).
+"""Month-by-month fits over a multi-month range (disagg.analyses.pipeline.monthly_fits).
 All data invented (tests/synthetic.py)."""
 
 from __future__ import annotations
@@ -9,8 +9,8 @@ import numpy as np
 import polars as pl
 import pytest
 
-from disagg.estimate import estimate_draws
-from disagg.pipeline import MIN_MONTH_DAYS, monthly_fits
+from disagg.fit.estimate import estimate_draws
+from disagg.analyses.pipeline import MIN_MONTH_DAYS, monthly_fits
 from synthetic import TZ, make_building
 
 

@@ -1,4 +1,4 @@
-"""`disagg batch` and disagg.portfolio: many sites in parallel processes, failure isolation,
+"""`disagg batch` and disagg.jobs.batch: many sites in parallel processes, failure isolation,
 the portfolio table.
 
 All data invented: the sites are tests/synthetic.py buildings (five on-off loads with seeded
@@ -21,19 +21,19 @@ from polars.testing import assert_frame_equal
 from synthetic import SPELLS, TZ, make_building
 from typer.testing import CliRunner
 
-from disagg import history, portfolio
+from disagg.jobs import batch as portfolio
+from disagg.present import history
+from disagg.present.terminal import DRIFT_NOT_RUN, portfolio_summary
 from disagg.cli import app
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import ConfigError
-from disagg.portfolio import (
-    DRIFT_NOT_RUN,
+from disagg.jobs.batch import (
     Portfolio,
     PortfolioResult,
     SiteJob,
     SiteOutcome,
     load_portfolio,
     portfolio_frame,
-    portfolio_summary,
     run_portfolio,
     run_site,
 )

@@ -47,7 +47,7 @@ from hypothesis import strategies as st
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.pipeline import breakdown_site
+from disagg.analyses.pipeline import breakdown_site
 from test_cli import write_site
 
 runner = CliRunner()

@@ -1,7 +1,7 @@
-"""Tests for disagg.readers: meter and run-log files -> UTC frames and state segments.
+"""Tests for disagg.inputs.readers: meter and run-log files -> UTC frames and state segments.
 
 Every file here is small and invented, written into tmp_path next to a site TOML that is
-read with disagg.config.load_site, so paths in messages are the resolved paths the user sees.
+read with disagg.inputs.config.load_site, so paths in messages are the resolved paths the user sees.
 Error messages are checked in full: they start with the file path, then the CSV line (the
 header is line 1) or the Parquet row, the column, the bad value and what was expected.
 """
@@ -15,9 +15,9 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import InputError
-from disagg.readers import read_meter, read_runlog
+from disagg.inputs.readers import read_meter, read_runlog
 
 UTC = dt.timezone.utc
 NS_PER_MIN = 60_000_000_000
@@ -620,8 +620,8 @@ def test_a_null_in_a_typed_parquet_time_column_is_an_error(tmp_path):
 
     import polars as _pl
 
-    from disagg.config import MeterSettings
-    from disagg.readers import read_meter as _read_meter
+    from disagg.inputs.config import MeterSettings
+    from disagg.inputs.readers import read_meter as _read_meter
 
     path = tmp_path / "meter.parquet"
     t0 = _dt.datetime(2025, 1, 6, 0, 15)

@@ -10,9 +10,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from disagg.breakdown import monthly_breakdown
-from disagg.estimate import estimate_draws
-from disagg.model import quantile
+from disagg.analyses.breakdown import monthly_breakdown
+from disagg.fit.estimate import estimate_draws
+from disagg.fit.solvers import quantile
 from synthetic import TZ, make_building
 
 SEEDS = range(30)

@@ -1,4 +1,4 @@
-"""The HTML report (disagg.report) and `disagg report`.
+"""The HTML report (disagg.present.report) and `disagg report`.
 
 The site here is invented: three loads with random on/off spells from a seeded numpy
 generator, a constant baseload and small meter noise over 40 days (two calendar months),
@@ -27,9 +27,9 @@ import pytest
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.config import to_celsius
-from disagg.pipeline import CAUTION, breakdown_site
-from disagg.report import (
+from disagg.inputs.config import to_celsius
+from disagg.analyses.pipeline import CAUTION, breakdown_site
+from disagg.present.report import (
     LOCKOUT,
     UNEXPLAINED_PEAK,
     drift_for,

@@ -1,6 +1,6 @@
 """Run-log validation: each finding from a small file that has exactly that problem.
 
-Findings land in RunLog.notes (or come from disagg.logcheck.coverage_findings) as one line
+Findings land in RunLog.notes (or come from disagg.inputs.logcheck.coverage_findings) as one line
 each; errors raise InputError / ConfigError. Every message is checked in full. The site's
 time zone is UTC so the times in the files are the times in the messages.
 """
@@ -12,10 +12,10 @@ from pathlib import Path
 
 import pytest
 
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import ConfigError, InputError
-from disagg.logcheck import coverage_findings
-from disagg.readers import read_meter, read_runlog
+from disagg.inputs.logcheck import coverage_findings
+from disagg.inputs.readers import read_meter, read_runlog
 
 UTC = dt.timezone.utc
 EVENTS = ('layout = "events"\ntime_column = "time"\nequipment_column = "point"\n'
@@ -300,7 +300,7 @@ def test_samples_without_long_silences_have_no_finding(tmp_path):
 
 
 # ---------------------------------------------------------------------------------------
-# Logs that do not cover the meter period: disagg.logcheck.coverage_findings
+# Logs that do not cover the meter period: disagg.inputs.logcheck.coverage_findings
 
 # End-stamped readings 00:15 to 03:00: intervals 00:00 to 03:00.
 METER_3H = tuple(f"2025-01-06 {(i + 1) // 4:02d}:{15 * ((i + 1) % 4):02d}:00,1.0"

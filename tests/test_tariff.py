@@ -1,4 +1,4 @@
-"""Money: a month computed by hand, reproduced to the cent (disagg.tariff, [tariff]).
+"""Money: a month computed by hand, reproduced to the cent (disagg.analyses.tariff, [tariff]).
 
 The month is February 2025 in America/Chicago (no clock change; 1 Feb is a Saturday, so 20
 weekdays and 8 weekend days, 672 hours). The invented building, noise-free:
@@ -40,10 +40,10 @@ import pytest
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import ConfigError
-from disagg.pipeline import breakdown_site
-from disagg.tariff import interval_prices, month_costs
+from disagg.analyses.pipeline import breakdown_site
+from disagg.analyses.tariff import interval_prices, month_costs
 
 CENT = 0.005  # "to the cent": within half a cent
 
@@ -163,7 +163,7 @@ def test_an_interval_straddling_a_period_edge_pays_both_prices():
                'name = "peak"\nprice = 0.25\nspells = ["Mon 12:00-18:00"]\n'
     import tomllib
 
-    from disagg.config import _Table, _tariff
+    from disagg.inputs.config import _Table, _tariff
     t = _tariff(_Table(Path("x.toml"), "tariff", tomllib.loads(site_tou)["tariff"]))
     start = pl.Series([dt.datetime(2025, 2, 3, 11, 30)]).dt.replace_time_zone(TZ)
     s_ns = start.dt.epoch("ns").to_numpy()
@@ -244,7 +244,7 @@ def test_interval_prices_equal_a_minute_by_minute_count_across_a_clock_change():
     import tomllib
     from zoneinfo import ZoneInfo
 
-    from disagg.config import _Table, _tariff
+    from disagg.inputs.config import _Table, _tariff
     text = ('currency = "USD"\nenergy_price = 0.08\nholidays = ["2025-03-17"]\n'
             '[[periods]]\nname = "peak"\nprice = 0.21\nspells = ["Mon-Fri 12:15-18:45"]\n'
             '[[periods]]\nname = "night"\nprice = 0.05\nspells = ["Sun 01:30-03:15"]\n')

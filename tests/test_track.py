@@ -1,4 +1,4 @@
-"""The normalized LMS tracker and the alarm rule (disagg.track) on arrays with known truth.
+"""The normalized LMS tracker and the alarm rule (disagg.analyses.track) on arrays with known truth.
 
 All data here is invented. Outside facts (references.md section 4, LMS and normalized LMS):
 - normalized LMS, w <- w + mu e x / (delta + x'x), is stable for 0 < mu < 2 [read, vendor DSP
@@ -16,7 +16,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from disagg.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
+from disagg.analyses.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
 
 # Normalized LMS stable range 0 < mu < 2 (references.md section 4; Haykin, from memory).
 NLMS_MU_BOUND = 2.0

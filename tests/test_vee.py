@@ -1,7 +1,7 @@
-"""Tests for disagg.vee: meter-data validation (VEE), one small file per finding.
+"""Tests for disagg.inputs.vee: meter-data validation (VEE), one small file per finding.
 
 Every meter file here is invented and has exactly the problem under test; it is written into
-tmp_path next to a site TOML read with disagg.config.load_site, as in tests/test_readers.py.
+tmp_path next to a site TOML read with disagg.inputs.config.load_site, as in tests/test_readers.py.
 Each finding's message is checked in full. Times in messages are local (America/Chicago: CST
 is UTC-06:00 in January) and show the file's stamp, the interval's end by default.
 """
@@ -15,12 +15,12 @@ import numpy as np
 import polars as pl
 import pytest
 
-from disagg.config import load_site
+from disagg.inputs.config import load_site
 from disagg.errors import ConfigError, InputError
-from disagg.outputs import check_summary
-from disagg.pipeline import breakdown_site, check_site, load_inputs
-from disagg.readers import read_meter
-from disagg.vee import (
+from disagg.present.terminal import check_summary
+from disagg.analyses.pipeline import breakdown_site, check_site, load_inputs
+from disagg.inputs.readers import read_meter
+from disagg.inputs.vee import (
     ESTIMATE_MAX_GAP,
     MAD_CONSISTENCY,
     SPIKE_MADS,

@@ -10,13 +10,13 @@ import numpy as np
 import polars as pl
 import pytest
 
-from disagg.align import interval_temperature
-from disagg.breakdown import monthly_breakdown
-from disagg.config import WeatherSettings, load_site
-from disagg.drift import drift_aligned
+from disagg.fit.align import interval_temperature
+from disagg.analyses.breakdown import monthly_breakdown
+from disagg.inputs.config import WeatherSettings, load_site
+from disagg.analyses.drift import drift_aligned
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import degrees, estimate_draws
-from disagg.readers import read_weather
+from disagg.fit.estimate import degrees, estimate_draws
+from disagg.inputs.readers import read_weather
 from synthetic import TZ, make_building
 
 BALANCE_C = 18.0
@@ -165,8 +165,8 @@ def test_conflicting_weather_readings_are_an_error(tmp_path):
 
 
 def test_closure_calendar_removes_the_occupied_spell(tmp_path):
-    from disagg.align import baseload_columns
-    from disagg.config import BaseloadSettings, parse_spell
+    from disagg.fit.align import baseload_columns
+    from disagg.inputs.config import BaseloadSettings, parse_spell
 
     spells = (parse_spell("Mon-Fri 07:00-19:00"),)
     day = pl.datetime_range(dt.datetime(2025, 12, 24), dt.datetime(2025, 12, 26, 23, 45), "15m",

@@ -20,12 +20,11 @@ import polars as pl
 from scipy.special import ndtr, ndtri
 
 from disagg import __version__
-from disagg.align import BASELOAD_COLUMN_COUNT, Aligned
-from disagg.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
+from disagg.analyses.pipeline import CAUTION, load_inputs
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import Estimates, estimate_draws
-from disagg.outputs import neutralise_csv_text, to_json, write_atomically
-from disagg.pipeline import CAUTION, load_inputs
+from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
+from disagg.fit.estimate import Estimates, estimate_draws
+from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 
 COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
            "kw_after_low", "kw_after_high", "change", "p_value", "verdict"]
@@ -163,7 +162,7 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
         otherwise ``steady``. No correction for testing several loads at once.
 
     Args:
-        before, after: the two periods' fits (``disagg.estimate.estimate_draws``).
+        before, after: the two periods' fits (``disagg.fit.estimate.estimate_draws``).
         confidence: two-sided level of the intervals and of the test, a fraction.
         min_change: smallest |change| called rising or falling, a fraction of the earlier draw.
 
@@ -331,67 +330,3 @@ def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
     return CompareResult(site, table, report)
 
 
-def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
-    """Write compare.csv and compare.json into out_dir, all or nothing.
-
-    Raises:
-        OutputError: the folder cannot be written, or a name would replace an input.
-    """
-    t = result.table.with_columns(
-        pl.col("kw_before", "kw_before_low", "kw_before_high", "kw_after", "kw_after_low",
-               "kw_after_high", "change").round(6),
-        pl.col("p_value").round_sig_figs(4))
-    site = result.site
-    files = {
-        "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
-        "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
-    }
-    return write_atomically(out_dir, files, site.input_files())
-
-
-def _num(x: float | None, spec: str) -> str:
-    return "-" if x is None or not math.isfinite(x) else format(x, spec)
-
-
-def compare_summary(result: CompareResult) -> str:
-    """A short readable table of both periods' draws, the verdicts, notes and the caution."""
-    r = result.report
-    pb, pa = r["periods"]["before"], r["periods"]["after"]
-    level = f"{100 * r['confidence']:g} %"
-    lines = [(f"{r['site']}: draws before {pb['from']} to {pb['to']} ({pb['intervals_used']:,} "
-             f"intervals used) and after {pa['from']} to {pa['to']} ({pa['intervals_used']:,} "
-             "intervals used)"),
-             "",
-             f"kW: running draw [kW] and its {level} range; change: after / before - 1 [%]",
-             (f"{'equipment':<22} {'kW before':>9} {'range':>15} {'kW after':>9} {'range':>15} "
-             f"{'change':>8} {'p-value':>8}  verdict")]
-
-    def rng(lo, hi):
-        return "-" if lo is None else f"{_num(lo, ',.2f')}-{_num(hi, ',.2f')}"
-
-    for row in result.table.iter_rows(named=True):
-        p = row["p_value"]
-        p_text = "-" if p is None else ("<0.001" if p < 0.001 else f"{p:.3f}")
-        change = "-" if row["change"] is None else f"{100 * row['change']:+.1f} %"
-        lines.append(f"{row['equipment'][:22]:<22} {_num(row['kw_before'], ',.2f'):>9} "
-                     f"{rng(row['kw_before_low'], row['kw_before_high']):>15} "
-                     f"{_num(row['kw_after'], ',.2f'):>9} "
-                     f"{rng(row['kw_after_low'], row['kw_after_high']):>15} "
-                     f"{change:>8} {p_text:>8}  {row['verdict']}")
-    lines.append(f"rising/falling: p-value under {1 - r['confidence']:.3g} and a change of at "
-                 f"least {100 * r['min_change']:g} %; steady: neither; unclear: the data cannot "
-                 "tell (why below).")
-    for d in r["equipment"]:
-        if d.get("reference_temp_c") is not None:
-            lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
-                         "outdoor temperature")
-    for d in r["equipment"]:
-        if d["reason"]:
-            lines.append(f"unclear {d['equipment']}: {d['reason']}")
-    for name, p in (("before", pb), ("after", pa)):
-        for w in p["warnings"]:
-            lines.append(f"Note ({name}): {w}")
-    for n in r["data_notes"]:
-        lines.append(f"Note: {n}")
-    lines += ["", f"Caution: {CAUTION}"]
-    return "\n".join(lines)

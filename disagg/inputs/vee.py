@@ -5,7 +5,7 @@ spikes, short or long intervals after a time reset and register (pulse) overflow
 (references.md section 7, read from their tables of contents). Each check here is a pure
 function over the meter readings that returns a :class:`Finding`: what was found, how many,
 the first few times (local ISO 8601 with the UTC offset, as the file's stamp edge) and the
-policy the tool applies, all in one readable line. ``disagg.readers.read_meter`` runs them.
+policy the tool applies, all in one readable line. ``disagg.inputs.readers.read_meter`` runs them.
 
 Policies, one per finding kind:
 

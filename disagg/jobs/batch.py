@@ -38,6 +38,7 @@ from pathlib import Path
 import polars as pl
 
 from disagg.errors import ConfigError, DisaggError
+from disagg.present.terminal import DRIFT_NOT_RUN
 from disagg.progress import Progress, report
 
 # Start method of the local worker processes. "forkserver": every worker is forked from a
@@ -185,8 +186,8 @@ def load_portfolio(path: str | Path) -> Portfolio:
 def run_site(job: SiteJob) -> SiteOutcome:
     """One site's whole job; never raises for the site's own problems.
 
-    Reads and fits the site (disagg.pipeline.breakdown_site), tracks drift when asked
-    (disagg.drift.drift_aligned on the same aligned data, default settings), writes the
+    Reads and fits the site (disagg.analyses.pipeline.breakdown_site), tracks drift when asked
+    (disagg.analyses.drift.drift_aligned on the same aligned data, default settings), writes the
     outputs into job.out_dir, and stores the months in the history store when the site file
     or the job names a history folder (checked before any output is written). Any exception
     becomes a failed outcome with a one-line error; nothing is written for a site whose fit,
@@ -210,7 +211,7 @@ def run_site(job: SiteJob) -> SiteOutcome:
 
 
 def _site_name(site_file: str) -> str | None:
-    from disagg.config import load_site
+    from disagg.inputs.config import load_site
 
     try:
         return load_site(site_file).name
@@ -219,13 +220,13 @@ def _site_name(site_file: str) -> str | None:
 
 
 def _run_site(job: SiteJob) -> SiteOutcome:
-    from disagg.outputs import write_breakdown, write_drift
-    from disagg.pipeline import breakdown_site
+    from disagg.analyses.pipeline import breakdown_site
+    from disagg.present.outputs import write_breakdown, write_drift
 
     result = breakdown_site(job.site_file, job.date_from, job.date_to)
     drift = None
     if job.drift:
-        from disagg.drift import drift_aligned
+        from disagg.analyses.drift import drift_aligned
 
         drift = drift_aligned(result.site, result.aligned, reference=job.drift_reference)
     out = Path(job.out_dir)
@@ -233,7 +234,7 @@ def _run_site(job: SiteJob) -> SiteOutcome:
     history = site.history or (Path(job.history) if job.history else None)
     stored = None
     if history is not None:
-        from disagg import history as hist
+        from disagg.present import history as hist
 
         hist.check_folder(history)  # a bad history folder fails before any output
     files = write_breakdown(result, out)
@@ -264,9 +265,6 @@ def _run_site(job: SiteJob) -> SiteOutcome:
         alarm_equipment=alarmed, drift_note=drift_note,
         history_note=" | ".join(stored.notes) if stored and stored.notes else None,
         files=[str(p) for p in files])
-
-
-DRIFT_NOT_RUN = "drift not tracked (batch --drift tracks it)"
 
 
 def _alarms(drift) -> tuple[int | None, list[str] | None, str]:
@@ -329,7 +327,7 @@ def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
     """Run every site of a portfolio; return the portfolio table and each site's outcome.
 
     Writes each site's outputs into out_dir/<site file name without .toml>/ (and its history)
-    from inside its job; writes nothing else (see disagg.outputs.write_portfolio).
+    from inside its job; writes nothing else (see disagg.present.outputs.write_portfolio).
 
     Args:
         workers: local worker processes (default: all cores; at most the number of sites).
@@ -540,47 +538,3 @@ def _run_on_cluster(address: str, jobs: list[SiteJob],
     return outcomes  # type: ignore[return-value]
 
 
-# Sites listed one per line in the terminal summary; portfolio.csv always has them all.
-SUMMARY_MAX_SITES = 50
-
-
-def _f(x: float | None, digits: int = 1) -> str:
-    return "-" if x is None else f"{x:,.{digits}f}"
-
-
-def portfolio_summary(result: PortfolioResult, seconds: float | None = None) -> str:
-    """A short table of the sites (the first SUMMARY_MAX_SITES), counts and the caution."""
-    from disagg.pipeline import CAUTION
-
-    n, failed = len(result.outcomes), len(result.failed)
-    took = f" in {seconds:,.1f} s" if seconds is not None else ""
-    lines = [(f"{result.portfolio.source}: {n} site{'s' * (n != 1)}, {n - failed} ok, "
-              f"{failed} failed{took}"),
-             (f"{'file':<18} {'site':<24} {'period':<16} {'metered kWh':>12} {'peak kW':>8} "
-              f"{'cost':>14} {'alarms':>6} {'CV(RMSE) %':>10} {'NMBE %':>7}  status")]
-    for o in result.outcomes[:SUMMARY_MAX_SITES]:
-        cost = "-" if o.cost is None else f"{_f(o.cost, 0)} {(o.currency or '')[:4]}"
-        lines.append(f"{o.folder[:18]:<18} {(o.site or '-')[:24]:<24} {o.period or '-':<16} "
-                     f"{_f(o.metered_kwh, 0):>12} {_f(o.peak_kw):>8} {cost:>14} "
-                     f"{'-' if o.alarms is None else o.alarms:>6} {_f(o.cv_rmse_pct):>10} "
-                     f"{_f(o.nmbe_pct, 2):>7}  {o.status}")
-    if n > SUMMARY_MAX_SITES:
-        lines.append(f"... and {n - SUMMARY_MAX_SITES} more sites: see portfolio.csv")
-    ok = [o for o in result.outcomes if o.status == "ok"]
-    if ok and all(o.drift_note == DRIFT_NOT_RUN for o in ok):
-        lines.append("alarms: drift not tracked (add --drift to count drift alarms)")
-    elif any(o.alarms is None for o in ok):
-        lines.append("alarms: - where no day was tracked after the drift reference period; "
-                     "see drift_note in portfolio.csv")
-    unstored = sum(1 for o in ok if o.history_note)
-    if unstored:
-        lines.append(f"history: {unstored} site{'s' * (unstored != 1)} with months not stored "
-                     "(a --from/--to range that cuts a month short, or a stored month with "
-                     "more data); see history_note in portfolio.csv")
-    lines.append("file: the site file's name (its output folder); peak kW: the highest "
-                 "monthly peak demand of the intervals used; cost: over the range (sites "
-                 "with a [tariff])")
-    lines.append("CV(RMSE) and NMBE: hourly, as ASHRAE Guideline 14 defines them (criteria 30 % "
-                 "and 10 %); each site's details are in its folder's fit.json")
-    lines += ["", f"Caution: {CAUTION}"]
-    return "\n".join(lines)

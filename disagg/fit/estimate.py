@@ -14,15 +14,14 @@ from dataclasses import dataclass, field
 import numpy as np
 import polars as pl
 
-from disagg.align import (
+from disagg.fit.align import (
     NS_PER_H,
     Aligned,
     baseload_columns,
     frame_arrays,
     frame_baseload,
 )
-from disagg.config import BaseloadSettings, SiteConfig
-from disagg.select import (
+from disagg.fit.select import (
     Form,
     FormChoice,
     compare_forms,
@@ -30,8 +29,7 @@ from disagg.select import (
     overdispersion,
     score,
 )
-from disagg.wander import Spacing, smooth_level, whiten
-from disagg.model import (
+from disagg.fit.solvers import (
     Fit,
     Indicators,
     chi2_upper_quantile,
@@ -41,6 +39,8 @@ from disagg.model import (
     jackknife_cov,
     quantile,
 )
+from disagg.fit.wander import Spacing, smooth_level, whiten
+from disagg.inputs.config import BaseloadSettings, SiteConfig
 
 # Two equipment hour series correlated at or above this cannot be told apart; the same
 # bound on R^2 against the baseload columns, and on R^2 against everything (VIF >= 20).
@@ -127,7 +127,7 @@ class Estimates:
     weather_hours: np.ndarray | None = None
     weather: dict = field(default_factory=dict)
     design_coef: np.ndarray | None = None  # the full coefficient vector [kW, kW/degC, kW]
-    # The baseload form used and how the others compared (disagg.select).
+    # The baseload form used and how the others compared (disagg.fit.select).
     form: FormChoice | None = None
     # (n_used,) the wandering level's energy in each interval [kWh] (zero without a level);
     # the baseload row is base @ base_kw + level_kwh.
@@ -230,7 +230,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
 
     form: the baseload form to use (with its noise ratio q), or a range's FormChoice (a
     month's fit: the same form, the same rivals); None = choose it from the data (or take
-    the one pinned by [baseload] form), see disagg.select.
+    the one pinned by [baseload] form), see disagg.fit.select.
 
     Raises:
         ValueError: too few usable intervals to fit.
@@ -413,7 +413,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     p_mean, p_sd = priors(B.shape[1])
     lower = np.zeros(X.shape[1])
     if choice.form.level:
-        # GLS on whitened differences of the kW (disagg.wander); the profile's columns are
+        # GLS on whitened differences of the kW (disagg.fit.wander); the profile's columns are
         # kW above the level and may be negative.
         lower[kx:] = -np.inf
         wz = whiten(X / interval_h[:, None], y / interval_h, sp, choice.form.q)
@@ -741,7 +741,7 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
                 prior: tuple[np.ndarray, np.ndarray], base_for,
                 given: Form | FormChoice | None) -> FormChoice:
     """The baseload form: compare the declared profile and the simpler ones it nests, each
-    with and without the wandering level (disagg.select), and take the lowest criterion, or
+    with and without the wandering level (disagg.fit.select), and take the lowest criterion, or
     the form pinned by [baseload] form. given: a Form to use; or a FormChoice (a month's
     fit: the range's chosen form and its credible rivals, at the range's noise ratios).
     """

@@ -1,7 +1,7 @@
 """Run log against meter: does each equipment's log cover the meter period?
 
 The readers know one file at a time; this check needs both. Time a log does not cover is
-already unknown for that equipment (disagg.align leaves the meter intervals there out of the
+already unknown for that equipment (disagg.fit.align leaves the meter intervals there out of the
 fit); these findings say where that time is, so the engineer sees it named.
 """
 
@@ -12,7 +12,7 @@ import datetime as dt
 import numpy as np
 import polars as pl
 
-from disagg.readers import RunLog
+from disagg.inputs.readers import RunLog
 
 _NS_PER_H = 3_600_000_000_000
 _EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc)
@@ -39,7 +39,7 @@ def coverage_findings(runlog: RunLog, meter_frame: pl.DataFrame) -> list[str]:
     gaps between its states (a samples log silent beyond max_hold, missing runtime rows).
 
     Args:
-        runlog: as read by ``disagg.readers.read_runlog`` (times already on the meter's clock).
+        runlog: as read by ``disagg.inputs.readers.read_runlog`` (times already on the meter's clock).
         meter_frame: columns start_utc, end_utc [datetime, UTC], e.g. ``MeterData.frame``, or
             ``Aligned.frame`` for the dates a run selected.
 

@@ -15,8 +15,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import polars as pl
 
-from disagg.config import BaseloadSettings, SiteConfig, Spell
-from disagg.readers import MeterData, RunLog, Segments
+from disagg.inputs.config import BaseloadSettings, SiteConfig, Spell
+from disagg.inputs.readers import MeterData, RunLog, Segments
 
 NS_PER_H = 3_600_000_000_000
 # An interval whose midpoint is further than this from every temperature reading has no

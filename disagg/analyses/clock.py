@@ -7,7 +7,7 @@ offset with the smallest residual sum of squares is the estimate. This is a sear
 reported fit: no prior, no weather columns.
 
 Sign convention: the offset is the number of minutes to ADD to the run-log times to put them
-on the meter's clock, as ``disagg.readers.read_runlog(..., offset_min=...)`` applies it. A log
+on the meter's clock, as ``disagg.inputs.readers.read_runlog(..., offset_min=...)`` applies it. A log
 whose clock runs 7 minutes behind the meter's (it records 10:00 for what the meter calls
 10:07) has an offset of +7.
 """
@@ -21,10 +21,10 @@ import numpy as np
 import polars as pl
 from scipy.optimize import nnls
 
-from disagg.align import align, baseload_columns
-from disagg.config import SiteConfig
 from disagg.errors import InputError
-from disagg.readers import MeterData, RunLog, Segments
+from disagg.fit.align import align, baseload_columns
+from disagg.inputs.config import SiteConfig
+from disagg.inputs.readers import MeterData, RunLog, Segments
 
 NS_PER_MIN = 60_000_000_000
 # The curve is flat (no offset claimed) when its best RSS is within this fraction of its worst
@@ -131,7 +131,7 @@ def estimate_log_offset(site: SiteConfig, meter: MeterData, runlog: RunLog,
     """Minutes to add to the run-log times so that they best explain the meter.
 
     For each offset on a grid of step_min over [-window_min, +window_min] the run-log segments
-    are shifted, aligned with the meter intervals (disagg.align.align) and the interval energy
+    are shifted, aligned with the meter intervals (disagg.fit.align.align) and the interval energy
     is fitted by non-negative least squares on [equipment-hours, baseload columns]; the score is
     the residual sum of squares (RSS). Every offset is scored on the same intervals: those with
     a reading that the log covers at every candidate offset, so that a shift does not win by

@@ -1,400 +1,38 @@
-"""The hand-over report: one self-contained HTML file a facilities manager can read and print.
-
-``render_report`` turns a breakdown (and, when given, a drift result) into a single HTML
-document: no script, no network reference, no font or image files; every chart is an inline
-SVG drawn with matplotlib's SVG backend with text kept as text (``svg.fonttype = none``, so
-the browser's own sans-serif font draws it and names stay searchable). Print CSS puts each
-section on its own page and keeps charts and table rows whole.
-
-Every text that comes from data (site and equipment names, notes, warnings) is HTML-escaped;
-matplotlib escapes the text it writes into the SVG, and mathtext parsing is switched off so a
-``$`` in a name is just a dollar sign.
-"""
+"""The report's HTML sections: at a glance, months, drift, fit quality, priors, cautions."""
 
 from __future__ import annotations
 
 import datetime as dt
-import html
-import io
 import math
-import re
-from collections.abc import Callable
-from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 import polars as pl
 
-from disagg.pipeline import CAUTION, BreakdownResult
-from disagg.progress import report as _report_progress
+from disagg.analyses.pipeline import CAUTION, BreakdownResult
 
 if TYPE_CHECKING:
-    from disagg.drift import DriftResult
+    from disagg.analyses.drift import DriftResult
+from disagg.present.report.charts import (
+    _Charts,
+    _drift_chart,
+    _fit_charts,
+    _is_base,
+    _monthly_chart,
+    _num,
+    _range_chart,
+    e,
+)
+from disagg.present.report.styles import (
+    CHART_LABEL_CHARS,
+    DRIFT_PANELS_PER_CHART,
+    MIN_DAYS_FOR_DAILY,
+    MONTHS_PER_TABLE,
+)
 
 LOCKOUT = ("Before anyone services a piece of equipment, it is isolated from every energy "
            "source and locked and tagged out (lockout/tagout), and the isolation is verified "
            "before work starts.")
-
-# One colour per equipment, assigned in the order of the fit's draws: the Okabe & Ito
-# colour-blind-safe set (without black; its yellow, faint as a line on white, moved to the
-# end), then further distinct hues (common practice, no source). More equipment than colours
-# reuses them in order.
-PALETTE = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#882255",
-           "#44AA99", "#117733", "#332288", "#AA4499", "#999933", "#661100", "#6699CC",
-           "#DDCC77", "#F0E442")
-BASELOAD_COLOUR = "#8C8C8C"
-UNEXPLAINED_COLOUR = "#D8D2C4"
-ESTIMATED_COLOUR = "#C6C9E6"
-ALARM_COLOUR = "#C0001A"
-METERED_COLOUR = "#1D2433"
-
-DRIFT_PANELS_PER_CHART = 6
-MONTHS_PER_TABLE = 6  # columns of months per table: fits a printed page
-# Fewer local days than this: the fit page shows hourly sums instead of daily sums.
-MIN_DAYS_FOR_DAILY = 10
-
-_WIDTH_IN = 7.2  # chart width [in]; scaled to the page width by CSS
-CHART_LABEL_CHARS = 30  # longer names are cut in charts
-LEGEND_CHARS = 90  # about the characters of legend text across a chart
-
-_RC = {
-    "svg.fonttype": "none",  # text as <text>: no embedded glyphs, no font files
-    "svg.hashsalt": "disagg-report",  # stable clip-path ids (prefixed per chart below)
-    "text.parse_math": False,  # a '$' in a name is a dollar sign, not mathtext
-    "font.family": "sans-serif",
-    "font.sans-serif": ["DejaVu Sans", "Liberation Sans", "Arial", "Helvetica"],
-    "font.size": 9.0,
-    "axes.titlesize": 9.5,
-    "axes.labelsize": 9.0,
-    "axes.spines.top": False,
-    "axes.spines.right": False,
-    "axes.edgecolor": "#555555",
-    "axes.labelcolor": "#222222",
-    "axes.grid": True,
-    "axes.axisbelow": True,
-    "grid.color": "#E4E6EA",
-    "grid.linewidth": 0.6,
-    "xtick.color": "#444444",
-    "ytick.color": "#444444",
-    "legend.frameon": False,
-    "legend.fontsize": 8.5,
-}
-
-e = html.escape
-
-
-def _num(x: float | None, digits: int = 0) -> str:
-    """A number with thousands separators; '-' for missing or non-finite; no '-0'."""
-    if x is None or not math.isfinite(x):
-        return "-"
-    text = f"{x:,.{digits}f}"
-    return text[1:] if text.startswith("-") and float(text[1:].replace(",", "")) == 0 else text
-
-
-def _short(name: str) -> str:
-    """A name as a chart label: at most CHART_LABEL_CHARS characters (tables give it whole)."""
-    return name if len(name) <= CHART_LABEL_CHARS else name[:CHART_LABEL_CHARS - 1] + "…"
-
-
-def _is_base(name: str) -> bool:
-    return name.startswith("baseload")
-
-
-# ---------------------------------------------------------------------------------------
-# Colours and ordering
-
-
-def equipment_order(result: BreakdownResult, extra: list[str] | None = None) -> list[str]:
-    """Row names in report order: the fit's draws, other names met in the table or in
-    `extra`, then the baseload row(s), estimated gaps and unexplained."""
-    names = [d["equipment"] for d in result.fit.get("draws", [])]
-    seen = set(names)
-    for n in list(result.breakdown["equipment"].unique(maintain_order=True)) + (extra or []):
-        if n not in seen:
-            names.append(n)
-            seen.add(n)
-    loads = [n for n in names if not _is_base(n) and n not in ("unexplained", "estimated-gaps")]
-    tail = ([n for n in names if _is_base(n)]
-            + [n for n in names if n == "estimated-gaps"]
-            + [n for n in names if n == "unexplained"])
-    return loads + tail
-
-
-def colour_map(names: list[str]) -> dict[str, str]:
-    """One fixed colour per row name: loads from PALETTE in order, baseload grey, estimated
-    gaps lavender, unexplained a light neutral."""
-    colours, k = {}, 0
-    for n in names:
-        if _is_base(n):
-            colours[n] = BASELOAD_COLOUR
-        elif n == "unexplained":
-            colours[n] = UNEXPLAINED_COLOUR
-        elif n == "estimated-gaps":
-            colours[n] = ESTIMATED_COLOUR
-        else:
-            colours[n] = PALETTE[k % len(PALETTE)]
-            k += 1
-    return colours
-
-
-# ---------------------------------------------------------------------------------------
-# SVG charts
-
-_TAG = re.compile(r"<[^>]+>")
-
-
-def _svg_text(fig, key: str, label: str) -> str:
-    """The figure as an inline <svg> element: no XML prolog, DOCTYPE, namespaces, fixed
-    size, comments or global style; every id prefixed with `key` so that charts in one page
-    never share an id."""
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg",
-                metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
-    text = buf.getvalue()
-    text = text[text.index("<svg"):]
-    text = re.sub(r"<!--.*?-->", "", text, flags=re.DOTALL)
-    text = re.sub(r"<defs>\s*<style[^>]*>.*?</style>\s*</defs>", "", text, count=1, flags=re.DOTALL)
-    text = re.sub(r"<metadata>.*?</metadata>", "", text, flags=re.DOTALL)
-
-    def fix(m: re.Match) -> str:
-        # Only inside tags: text content is escaped by matplotlib (no raw '<' or '>'), and
-        # attribute values are escaped too, so a tag never holds a '>' of its own.
-        t = m.group(0)
-        t = t.replace(' id="', f' id="{key}-').replace("url(#", f"url(#{key}-")
-        return t.replace('href="#', f'href="#{key}-')
-
-    text = _TAG.sub(fix, text)
-    head_end = text.index(">")
-    head = re.sub(r'\s(?:xmlns(?::\w+)?|width|height|version)="[^"]*"', "", text[:head_end])
-    return (f'{head} class="chart" role="img" aria-label="{e(label)}"'
-            + text[head_end:].rstrip())
-
-
-class _Charts:
-    """Draws the report's charts with one set of colours, counting them for progress."""
-
-    def __init__(self, colours: dict[str, str], total: int,
-                 progress: Callable[[str, int, int], None] | None):
-        self.colours = colours
-        self.total = total
-        self.done = 0
-        self.progress = progress
-
-    def colour(self, name: str) -> str:
-        return self.colours.get(name, PALETTE[0])
-
-    def finish(self, fig, label: str) -> str:
-        self.done += 1
-        svg = _svg_text(fig, f"c{self.done}", label)
-        _report_progress(self.progress, "drawing", self.done, self.total)
-        return svg
-
-
-def _label(ax, x: str | None, y: str | None, tag: str = "") -> None:
-    """Axis labels with ids (xlabel*/ylabel*) so that tests can find them in the SVG."""
-    if x is not None:
-        ax.set_xlabel(x)
-        ax.xaxis.label.set_gid(f"xlabel{tag}")
-    if y is not None:
-        ax.set_ylabel(y)
-        ax.yaxis.label.set_gid(f"ylabel{tag}")
-
-
-def _thousands(axis) -> None:
-    from matplotlib.ticker import FuncFormatter
-
-    axis.set_major_formatter(FuncFormatter(lambda v, _: _num(v, 0) if abs(v) >= 10
-                                           else f"{v:g}"))
-
-
-def _range_chart(ch: _Charts, rows: list[dict]) -> str:
-    """Horizontal bars of each row's kWh over the range with interval whiskers."""
-    from matplotlib.figure import Figure
-
-    n = len(rows)
-    fig = Figure(figsize=(_WIDTH_IN, 0.9 + 0.32 * n), layout="constrained")
-    ax = fig.add_subplot()
-    ypos = np.arange(n)[::-1]
-    kwh = np.array([r["kwh"] for r in rows])
-    ax.barh(ypos, kwh, height=0.64, color=[ch.colour(r["equipment"]) for r in rows],
-            edgecolor="#33333355", linewidth=0.5)
-    for y, r in zip(ypos, rows):
-        if r["kwh_low"] is not None and r["kwh_high"] is not None:
-            ax.errorbar([r["kwh"]], [y], xerr=[[r["kwh"] - r["kwh_low"]],
-                                               [r["kwh_high"] - r["kwh"]]],
-                        fmt="none", ecolor="#222222", elinewidth=1.0, capsize=3)
-    ax.axvline(0, color="#555555", linewidth=0.8)
-    ax.set_yticks(ypos, [_short(r["equipment"]) for r in rows])
-    ax.grid(axis="y", visible=False)
-    top = max([abs(r["kwh_high"] if r["kwh_high"] is not None else r["kwh"]) for r in rows]
-              + [abs(float(v)) for v in kwh] + [1.0])
-    for y, r in zip(ypos, rows):
-        end = r["kwh_high"] if r["kwh_high"] is not None else max(r["kwh"], 0.0)
-        share = (f" ({_num(100 * r['share'], 1)} %)" if math.isfinite(r["share"]) else "")
-        ax.text(end + 0.01 * top, y, f"{_num(r['kwh'])} kWh{share}",
-                va="center", ha="left", fontsize=8, color="#333333")
-    low = min([0.0] + [float(v) for v in kwh])
-    ax.set_xlim(low - 0.02 * top if low < 0 else 0, 1.32 * top)
-    _thousands(ax.xaxis)
-    _label(ax, "Energy over the range [kWh]  (whiskers: interval)", None)
-    return ch.finish(fig, "Energy per equipment over the range with intervals, kWh")
-
-
-def _monthly_chart(ch: _Charts, periods: list[str], names: list[str],
-                   kwh: dict[tuple[str, str], float]) -> str:
-    """Stacked kWh per month: positive parts upward from zero, negative parts (an
-    unexplained rest below zero) downward; the metered total marked."""
-    from matplotlib.figure import Figure
-    from matplotlib.lines import Line2D
-    from matplotlib.patches import Patch
-
-    fig = Figure(figsize=(_WIDTH_IN, 4.6), layout="constrained")
-    ax = fig.add_subplot()
-    x = np.arange(len(periods))
-    up = np.zeros(len(periods))
-    down = np.zeros(len(periods))
-    width = 0.72
-    for name in names:
-        v = np.array([kwh.get((p, name), 0.0) for p in periods])
-        pos, neg = np.where(v > 0, v, 0.0), np.where(v < 0, v, 0.0)
-        hatch = "////" if name == "unexplained" else None
-        style = {"width": width, "color": ch.colour(name), "edgecolor": "#33333355",
-                 "linewidth": 0.4, "hatch": hatch}
-        if pos.any():
-            ax.bar(x, pos, bottom=up, **style)
-        if neg.any():
-            ax.bar(x, neg, bottom=down, **style)
-        up += pos
-        down += neg
-    metered = np.array([sum(kwh.get((p, n), 0.0) for n in names) for p in periods])
-    ax.scatter(x, metered, marker="_", s=260, color=METERED_COLOUR, linewidths=2, zorder=5)
-    ax.axhline(0, color="#555555", linewidth=0.8)
-    centre, half = (len(periods) - 1) / 2, max(len(periods), 3) / 2
-    ax.set_xlim(centre - half, centre + half)  # one month: a bar, not a wall
-    ax.set_xticks(x, periods, rotation=45 if len(periods) > 6 else 0,
-                  ha="right" if len(periods) > 6 else "center")
-    ax.grid(axis="x", visible=False)
-    _thousands(ax.yaxis)
-    _label(ax, "Month [YYYY-MM, local]", "Energy per month [kWh]")
-    handles = [Patch(facecolor=ch.colour(n), edgecolor="#33333355",
-                     hatch="////" if n == "unexplained" else None, label=_short(n))
-               for n in names]
-    handles.append(Line2D([], [], color=METERED_COLOUR, marker="_", linestyle="none",
-                          markersize=14, markeredgewidth=2, label="metered total"))
-    longest = max(len(h.get_label()) for h in handles)
-    ncol = max(1, min(6, len(handles), LEGEND_CHARS // (longest + 6)))
-    fig.legend(handles=handles, loc="outside lower center", ncol=ncol)
-    return ch.finish(fig, "Energy per month, stacked by equipment, kWh")
-
-
-def _date_axis(ax) -> None:
-    import matplotlib.dates as mdates
-
-    loc = mdates.AutoDateLocator(minticks=3, maxticks=8)
-    ax.xaxis.set_major_locator(loc)
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc))
-
-
-def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: dict,
-                 part: int) -> str:
-    """Small multiples: each load's tracked daily draw, its band, the reference draw, the
-    reference period shaded and alarm days marked."""
-    from matplotlib.figure import Figure
-    from matplotlib.lines import Line2D
-    from matplotlib.patches import Patch
-
-    cols = 2 if len(names) > 1 else 1
-    nrows = math.ceil(len(names) / cols)
-    fig = Figure(figsize=(_WIDTH_IN, 0.7 + 2.0 * nrows), layout="constrained")
-    axes = fig.subplots(nrows, cols, squeeze=False, sharex=True)
-    ref = summary.get("reference", {})
-    ref0 = dt.date.fromisoformat(ref["from"]) if ref.get("from") else None
-    ref1 = dt.date.fromisoformat(ref["to"]) if ref.get("to") else None
-    alarms = {a["equipment"]: a for a in summary.get("alarms", [])}
-    for k, name in enumerate(names):
-        ax = axes[k // cols][k % cols]
-        rows = table.filter(pl.col("equipment") == name).sort("date")
-        days = rows["date"].to_numpy()
-        kw = rows["kw_tracked"].to_numpy().astype(float)
-        lo = rows["kw_low"].to_numpy().astype(float)
-        hi = rows["kw_high"].to_numpy().astype(float)
-        ref_kw = float(rows["kw_reference"][0])
-        alarm = rows["alarm"].to_numpy().astype(bool)
-        c = ch.colour(name)
-        if ref0 is not None and ref1 is not None:
-            ax.axvspan(np.datetime64(ref0), np.datetime64(ref1 + dt.timedelta(days=1)),
-                       color="#EEF1F5", zorder=0)
-        ax.fill_between(days, lo, hi, color=c, alpha=0.22, linewidth=0)
-        ax.plot(days, kw, color=c, linewidth=1.4)
-        ax.axhline(ref_kw, color="#333333", linestyle="--", linewidth=1.0)
-        if alarm.any():
-            ax.plot(days[alarm], kw[alarm], linestyle="none", marker="o", markersize=3,
-                    color=ALARM_COLOUR)
-        # Axis limits from the draws themselves; a band much wider than their spread would
-        # flatten the line, so it is cut at the axis and the title says so.
-        values = np.concatenate([kw[np.isfinite(kw)], [ref_kw]])
-        v0, v1 = float(values.min()), float(values.max())
-        span = max(v1 - v0, 0.1 * abs(ref_kw), 0.5)
-        y0, y1 = v0 - 0.5 * span, v1 + 0.5 * span
-        band_lo, band_hi = float(np.nanmin(lo)), float(np.nanmax(hi))
-        clipped = band_lo < y0 - span or band_hi > y1 + span
-        if not clipped:
-            y0, y1 = min(y0, band_lo), max(y1, band_hi)
-        ax.set_ylim(y0, y1)
-        title = _short(name)
-        if name in alarms:
-            title += f": alarm from {alarms[name]['first_alarm_date']}"
-        if clipped:
-            title += " (band wider than shown)"
-        ax.set_title(title, loc="left", color=ALARM_COLOUR if name in alarms else "#222222")
-        # Each panel has its own draw scale, so each has its own y label; the date axis is
-        # shared, so dates and their label go under the lowest panel of each column only.
-        lowest = k + cols >= len(names)
-        _label(ax, "Date [local]" if lowest else None, "Draw [kW]", tag=f"-{k}")
-        _date_axis(ax)
-        ax.tick_params(labelbottom=lowest)
-    for k in range(len(names), nrows * cols):
-        axes[k // cols][k % cols].set_visible(False)
-    handles = [Line2D([], [], color="#555555", linewidth=1.4, label="tracked draw (daily)"),
-               Patch(facecolor="#555555", alpha=0.22, label="band"),
-               Line2D([], [], color="#333333", linestyle="--", label="reference draw"),
-               Line2D([], [], color=ALARM_COLOUR, marker="o", markersize=3, linestyle="none",
-                      label="alarm day"),
-               Patch(facecolor="#EEF1F5", label="reference period")]
-    fig.legend(handles=handles, loc="outside upper center", ncol=5)
-    return ch.finish(fig, f"Tracked draws over time, part {part}, kW")
-
-
-def _fit_charts(ch: _Charts, when: np.ndarray, metered: np.ndarray, fitted: np.ndarray,
-                unit: str) -> tuple[str, str]:
-    """Metered and fitted energy per day (or hour) over time, and their difference."""
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(_WIDTH_IN, 3.0), layout="constrained")
-    ax = fig.add_subplot()
-    ax.plot(when, metered, color="#9AA3B0", linewidth=2.4, label="metered")
-    ax.plot(when, fitted, color="#D55E00", linewidth=0.9, label="fitted")
-    _date_axis(ax)
-    _thousands(ax.yaxis)
-    _label(ax, "Date [local]", f"Energy per {unit} [kWh]")
-    fig.legend(loc="outside upper right", ncol=2)
-    first = ch.finish(fig, f"Metered and fitted energy per {unit}, kWh")
-
-    fig = Figure(figsize=(_WIDTH_IN, 2.4), layout="constrained")
-    ax = fig.add_subplot()
-    resid = metered - fitted
-    ax.bar(when, resid, width=0.9 if unit == "day" else 0.9 / 24,
-           color=np.where(resid >= 0, "#0072B2", "#D55E00"), linewidth=0)
-    ax.axhline(0, color="#555555", linewidth=0.8)
-    _date_axis(ax)
-    _thousands(ax.yaxis)
-    _label(ax, "Date [local]", f"Metered - fitted [kWh per {unit}]")
-    second = ch.finish(fig, f"Residual energy per {unit}, kWh")
-    return first, second
-
-
-# ---------------------------------------------------------------------------------------
-# Data for the sections
 
 
 def _range_rows(table: pl.DataFrame, names: list[str], total_kwh: float) -> list[dict]:
@@ -456,10 +94,6 @@ def _fit_series(result: BreakdownResult) -> tuple[np.ndarray, np.ndarray, np.nda
     return g["k"].to_numpy(), g["y"].to_numpy(), g["f"].to_numpy(), unit
 
 
-# ---------------------------------------------------------------------------------------
-# HTML pieces
-
-
 def _swatch(colour: str) -> str:
     return f'<span class="swatch" style="background:{colour}"></span>'
 
@@ -512,211 +146,6 @@ def _flag_text(flags: str | list[str]) -> str:
     return e(", ".join(out))
 
 
-CSS = """
-:root { --ink:#1d2433; --muted:#5b6475; --rule:#d8dce3; --accent:#1f4e79; --warn:#a3001a; }
-* { box-sizing: border-box; }
-html { background:#eef0f3; }
-body { margin:0; color:var(--ink);
-  font: 15px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, "Helvetica Neue", Arial, sans-serif; }
-main { max-width: 880px; margin: 0 auto; background:#fff; padding: 28px 40px 40px; }
-header.top h1 { font-size: 25px; margin: 0 0 4px; line-height: 1.2; }
-header.top p { margin: 2px 0; color: var(--muted); }
-nav.toc { margin: 14px 0 0; font-size: 13.5px; }
-nav.toc ol { margin: 4px 0 0; padding-left: 22px; columns: 2; }
-nav.toc a { color: var(--accent); text-decoration: none; }
-section.page { border-top: 3px solid var(--accent); margin-top: 34px; padding-top: 6px; }
-h2 { font-size: 20px; margin: 8px 0 10px; color: var(--accent); }
-h3 { font-size: 15.5px; margin: 18px 0 6px; }
-p { margin: 6px 0 10px; }
-.muted, figcaption { color: var(--muted); }
-figcaption { font-size: 12.5px; margin-top: 2px; }
-figure { margin: 14px 0; }
-svg.chart { display: block; width: 100%; height: auto; }
-svg.chart * { stroke-linejoin: round; stroke-linecap: butt; }
-table { border-collapse: collapse; width: 100%; margin: 8px 0 14px; font-size: 13px;
-  font-variant-numeric: tabular-nums; }
-th, td { padding: 3px 6px; border-bottom: 1px solid var(--rule); text-align: left;
-  vertical-align: top; }
-th { font-weight: 600; border-bottom: 1.5px solid #9aa3b0; background: #f6f7f9; }
-th.num { text-align: right; }
-td.num { text-align: right; white-space: nowrap; }
-.eq { white-space: nowrap; }
-.long { overflow-wrap: anywhere; }
-.name { font-size: 0.88em; color: var(--muted); }
-table.wide { font-size: 11.5px; }
-table.wide th, table.wide td { padding: 2px 4px; }
-tr.total td { font-weight: 600; border-top: 1.5px solid #9aa3b0; }
-.swatch { display: inline-block; width: 11px; height: 11px; margin-right: 6px;
-  border: 1px solid rgba(0,0,0,.3); vertical-align: -1px;
-  -webkit-print-color-adjust: exact; print-color-adjust: exact; }
-.kpis { display: flex; flex-wrap: wrap; gap: 10px; margin: 10px 0 14px; }
-.kpi { border: 1px solid var(--rule); border-radius: 4px; padding: 8px 12px; min-width: 160px; }
-.kpi span { display: block; font-size: 12px; color: var(--muted); }
-.kpi b { display: block; font-size: 19px; font-variant-numeric: tabular-nums; }
-.meets { color: #0b6b2e; font-weight: 600; }
-.fails { color: var(--warn); font-weight: 600; }
-.alarm { color: var(--warn); font-weight: 600; }
-.scroll { overflow-x: auto; }
-.caution { border-left: 5px solid var(--warn); background: #fff5f5; padding: 10px 14px;
-  margin: 10px 0; -webkit-print-color-adjust: exact; print-color-adjust: exact; }
-.caution p { margin: 4px 0; font-size: 16px; }
-footer { margin-top: 30px; font-size: 12px; color: var(--muted); }
-@page { margin: 14mm 12mm; }
-@media print {
-  html, body { background: #fff; }
-  body { font-size: 10pt; }
-  main { max-width: none; margin: 0; padding: 0; }
-  nav.toc { display: none; }
-  section.page { break-before: page; border-top: none; margin-top: 0; padding-top: 0; }
-  h2, h3 { break-after: avoid; }
-  figure, tr, .kpis, .caution { break-inside: avoid; }
-  thead { display: table-header-group; }
-  table { font-size: 8.5pt; }
-  table.wide { font-size: 7.5pt; }
-  .scroll { overflow: visible; }
-  a { color: inherit; text-decoration: none; }
-}
-"""
-
-
-# ---------------------------------------------------------------------------------------
-# The report
-
-
-# A default-reference drift run needs at least this many days of data after the reference
-# period to have anything to show (common practice, no source: four weeks).
-MIN_TRACKED_DAYS = 28
-
-
-def drift_for(result: BreakdownResult, memory_days: float = 30.0,
-              reference: tuple[dt.date, dt.date] | None = None,
-              threshold: float = 0.10) -> tuple[DriftResult | None, str | None]:
-    """The drift result for a breakdown's own intervals, or None and the reason why not.
-
-    With the default reference (the first 90 days) the data must reach MIN_TRACKED_DAYS past
-    it; a given reference period must hold enough usable intervals for a fit (else the
-    reason names the period and the dates the data cover). A drift run that fails on these
-    data (disagg.errors.DisaggError: a memory that needs an unstable step, ...) is left out
-    with its message.
-
-    Raises:
-        ConfigError: memory_days not above 0 (a bad option, not a property of the data).
-    """
-    from disagg.align import BASELOAD_COLUMN_COUNT
-    from disagg.drift import DEFAULT_REFERENCE_DAYS, drift_aligned
-    from disagg.errors import ConfigError, DisaggError
-
-    if not (math.isfinite(memory_days) and memory_days > 0):
-        raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
-    first, last = _local_span(result)
-    span_days = (dt.date.fromisoformat(last) - dt.date.fromisoformat(first)).days + 1
-    if reference is None and span_days < DEFAULT_REFERENCE_DAYS + MIN_TRACKED_DAYS:
-        return None, (f"Drift is left out: the data cover {span_days} days, and tracking "
-                      f"needs the {DEFAULT_REFERENCE_DAYS}-day reference period plus at least "
-                      f"{MIN_TRACKED_DAYS} days after it; a shorter reference period can be "
-                      "given with --reference FROM:TO.")
-    if reference is not None:
-        # Said here in the reference period's terms: drift_aligned would blame the files.
-        aligned = result.aligned
-        local_day = aligned.frame["start_utc"].dt.convert_time_zone(result.site.timezone).dt.date()
-        inside = int((aligned.use & ((local_day >= reference[0])
-                                     & (local_day <= reference[1])).to_numpy()).sum())
-        needed = (len(aligned.equipment_ids)
-                  + BASELOAD_COLUMN_COUNT[result.site.baseload.profile] + 2)
-        period = f"the reference period {reference[0]} to {reference[1]}"
-        if inside == 0:
-            return None, (f"Drift is left out: {period} has no usable intervals in the data, "
-                          f"which cover {first} to {last}; give a reference period inside "
-                          "them with --reference FROM:TO.")
-        if inside < needed:
-            return None, (f"Drift is left out: {period} has only {inside:,} usable intervals "
-                          f"in the data, which cover {first} to {last}; a fit needs at least "
-                          f"{needed:,}.")
-    try:
-        drift = drift_aligned(result.site, result.aligned, memory_days, None, reference,
-                              threshold, result.estimates.confidence)
-    except DisaggError as exc:
-        return None, f"Drift is left out: {exc}"
-    return drift, None
-
-
-def report_for(result: BreakdownResult, *, progress: Callable[[str, int, int], None] | None = None,
-               memory_days: float = 30.0, reference: tuple[dt.date, dt.date] | None = None,
-               drift: bool = True) -> str:
-    """The report of a breakdown with its drift page when the data allow one (drift_for).
-
-    drift: False leaves the drift page out (saying so).
-    """
-    if not drift:
-        return render_report(result, None, progress=progress,
-                             drift_note="Drift tracking was not asked for in this report.")
-    tracked, note = drift_for(result, memory_days, reference)
-    return render_report(result, tracked, progress=progress, drift_note=note)
-
-
-def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
-    """One line for the terminal: site, months, metered kWh, cost, drift alarms."""
-    table = result.breakdown
-    periods = sorted(table["period"].unique().to_list())
-    line = (f"{result.site.name}: {periods[0]} to {periods[-1]}, metered "
-            f"{_num(_metered_total(table))} kWh")
-    if _has_cost(table):
-        line += f", cost {_num(float(table['cost'].sum()), 2)} {_currency(result)}"
-    if drift is None:
-        return line + "; drift left out"
-    alarms = [a["equipment"] for a in drift.summary.get("alarms", [])]
-    return line + (f"; drift alarms: {', '.join(alarms)}" if alarms else "; no drift alarm")
-
-
-def render_report(result: BreakdownResult, drift: DriftResult | None = None, *,
-                  progress: Callable[[str, int, int], None] | None = None,
-                  drift_note: str | None = None) -> str:
-    """One self-contained HTML document of a breakdown (and its drift), ready to print.
-
-    Args:
-        result: the breakdown (disagg.pipeline.breakdown_site).
-        drift: the drift result (disagg.drift); None leaves the drift page out.
-        progress: called as progress("drawing", done, total) as each chart is drawn.
-        drift_note: why the drift page is left out (shown in its place when drift is None).
-
-    Returns:
-        The HTML text (UTF-8, no script, no external reference).
-    """
-    import matplotlib as mpl
-
-    table = result.breakdown
-    fit = result.fit
-    site_name = result.site.name
-    drift_names = (list(drift.table["equipment"].unique(maintain_order=True))
-                   if drift is not None else [])
-    names = equipment_order(result, drift_names)
-    colours = colour_map(names)
-    table_names = [n for n in names if n in set(table["equipment"].to_list())]
-    periods = sorted(table["period"].unique().to_list())
-    n_drift_charts = math.ceil(len(drift_names) / DRIFT_PANELS_PER_CHART)
-    ch = _Charts(colours, 4 + n_drift_charts, progress)
-
-    with mpl.rc_context(_RC):
-        parts = [
-            _header(result, periods),
-            _glance(result, ch, table_names),
-            _months(result, ch, table_names, periods),
-            _drift_section(drift, ch, drift_names, drift_note,
-                           {str(w) for w in result.fit.get("warnings", [])}),
-            _fit_section(result, ch),
-            _priors_section(result),
-            _caution_section(result),
-        ]
-    title = f"Energy breakdown: {site_name}"
-    return ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
-            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n"
-            f"<title>{e(title)}</title>\n<style>{CSS}</style>\n</head>\n<body>\n<main>\n"
-            + "\n".join(parts)
-            + f"\n<footer>Produced by {e(str(fit.get('tool', 'disagg')))} from the site file "
-              f"{e(Path(str(fit.get('site_file', ''))).name)}. Every figure in this report is an "
-              "estimate from the meter and the run logs.</footer>\n</main>\n</body>\n</html>\n")
-
-
 def _currency(result: BreakdownResult) -> str:
     return str((result.fit.get("tariff") or {}).get("currency") or "currency")
 
@@ -735,7 +164,7 @@ def _metered_total(table: pl.DataFrame) -> float:
 
 def interval_counts(c: dict) -> str:
     """'1,466 of 1,486 meter intervals used (20 without a reading)' from the interval counts
-    of fit.json (disagg.align: intervals in the file, absent from it, used, no_reading,
+    of fit.json (disagg.fit.align: intervals in the file, absent from it, used, no_reading,
     log_unknown, weather_unknown; spikes, which are among no_reading)."""
     used = int(c.get("used", 0))
     in_range = int(c.get("intervals", 0)) + int(c.get("absent", 0))
@@ -1158,7 +587,7 @@ def _weight(w: float | None) -> str:
 
 def from_celsius(value_c: float, unit: str) -> float:
     """A temperature [degC] -> the site's weather unit ("F" or "C"); the inverse of
-    disagg.config.to_celsius."""
+    disagg.inputs.config.to_celsius."""
     return value_c * 9.0 / 5.0 + 32.0 if unit == "F" else value_c
 
 

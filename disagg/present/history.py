@@ -44,7 +44,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
-import math
 import os
 import re
 import shutil
@@ -200,7 +199,7 @@ def month_coverage(aligned, tz: str) -> pl.DataFrame:
     least one interval used), first_date and last_date of those days.
 
     Args:
-        aligned: disagg.align.Aligned; its ``use`` mask says which intervals the fit used.
+        aligned: disagg.fit.align.Aligned; its ``use`` mask says which intervals the fit used.
         tz: the site's time zone.
     """
     local = aligned.frame["start_utc"].dt.convert_time_zone(tz)
@@ -236,13 +235,13 @@ def _days(n: int | None, first, last) -> str:
 
 def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None,
                     date_to: dt.date | None = None) -> Stored:
-    """Store each month of a breakdown result (disagg.pipeline.BreakdownResult) with its
+    """Store each month of a breakdown result (disagg.analyses.pipeline.BreakdownResult) with its
     coverage, replacing what was stored for those months of that site; see the module
     docstring for the months that are left as they were.
 
     Args:
         date_from, date_to: the run's requested range (local dates, inclusive; None:
-            unbounded), as given to disagg.pipeline.breakdown_site.
+            unbounded), as given to disagg.analyses.pipeline.breakdown_site.
 
     Returns:
         The month files written and the months not stored, with why.
@@ -288,11 +287,11 @@ def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None
 
 
 def store_drift(folder: str | Path, site, drift_result) -> list[Path]:
-    """Store a drift run's daily tracked draws (disagg.drift.DriftResult.table) by local
+    """Store a drift run's daily tracked draws (disagg.analyses.drift.DriftResult.table) by local
     month; a day already stored is replaced, the month's other stored days are kept.
 
     Args:
-        site: the site's settings (disagg.config.SiteConfig): its name, file and id.
+        site: the site's settings (disagg.inputs.config.SiteConfig): its name, file and id.
 
     Returns:
         The month files written.
@@ -476,57 +475,6 @@ def select_equipment(frame: pl.DataFrame, equipment: str | None) -> pl.DataFrame
         known = ", ".join(frame["equipment"].unique(maintain_order=True).to_list())
         raise InputError(f"--equipment {equipment!r}: no stored rows of it; stored: {known}")
     return rows
-
-
-def _f(x: float | None, digits: int = 1) -> str:
-    return "-" if x is None or math.isnan(x) else f"{x:,.{digits}f}"
-
-
-def history_summary(frame: pl.DataFrame, folder: Path, caution: str) -> str:
-    """Each equipment's stored months, one block per equipment, for a terminal.
-
-    Args:
-        frame: read_history rows of one site (optionally one equipment).
-    """
-    periods = frame["period"].unique().sort()
-    site = frame["site"][0]
-    lines = [(f"{frame['site_name'][-1]} (history id {site}): {len(periods)} stored month"
-              f"{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}, in {folder}"),
-             ("kWh [kWh] and draw kW [kW] of each month's own run; run h [h]; days: days with "
-              "data in the month; stored: when the month was last run (UTC)")]
-    for (eq,), g in frame.group_by("equipment", maintain_order=True):
-        lines += ["", eq,
-                  (f"  {'period':<8} {'kWh':>10} {'kWh range':>19} {'kW':>8} {'kW range':>15} "
-                   f"{'run h':>7} {'days':>4}  {'stored':<16}  flags")]
-        for r in g.iter_rows(named=True):
-            kwh_rng = ("-" if r["kwh_low"] is None
-                       else f"{_f(r['kwh_low'], 0)}-{_f(r['kwh_high'], 0)}")
-            kw_rng = "-" if r["kw_low"] is None else f"{_f(r['kw_low'])}-{_f(r['kw_high'])}"
-            stored = r["run_utc"].strftime("%Y-%m-%d %H:%M") if r["run_utc"] else "-"
-            days = "-" if r["days_with_data"] is None else r["days_with_data"]
-            lines.append(f"  {r['period']:<8} {_f(r['kwh'], 0):>10} {kwh_rng:>19} "
-                         f"{_f(r['kw']):>8} {kw_rng:>15} {_f(r['run_hours'], 0):>7} {days:>4}  "
-                         f"{stored:<16}  {r['flags'] or ''}")
-    lines += ["", f"Caution: {caution}"]
-    return "\n".join(lines)
-
-
-def comparison_summary(result: HistoryComparison, caution: str) -> str:
-    """compare_from_history's table for a terminal, with its method and the caution."""
-    b0, b1 = result.before
-    a0, a1 = result.after
-    lines = [(f"Draws from stored months: before {b0} to {b1} ({len(result.months_before)} "
-              f"stored), after {a0} to {a1} ({len(result.months_after)} stored)"),
-             (f"{'equipment':<22} {'before kW':>9} {'range':>13} {'after kW':>9} {'range':>13} "
-              f"{'change':>8}  verdict")]
-    for r in result.table.iter_rows(named=True):
-        rng = {k: "-" if r[f"kw_{k}_low"] is None or math.isnan(r[f"kw_{k}_low"])
-               else f"{_f(r[f'kw_{k}_low'])}-{_f(r[f'kw_{k}_high'])}" for k in ("before", "after")}
-        change = "-" if r["change"] is None else f"{100 * r['change']:+.1f} %"
-        lines.append(f"{r['equipment'][:22]:<22} {_f(r['kw_before']):>9} {rng['before']:>13} "
-                     f"{_f(r['kw_after']):>9} {rng['after']:>13} {change:>8}  {r['verdict']}")
-    lines += ["", f"Method: {result.method}", "", f"Caution: {caution}"]
-    return "\n".join(lines)
 
 
 def check_configured(site) -> None:

@@ -1,7 +1,7 @@
 """`disagg drift`: track every draw through time from a reference fit, and raise drift alarms.
 
 The reference is the batch fit over a reference period (default the first 90 days). The
-normalized LMS tracker (disagg.track) starts from it, so there is no burn-in, and walks every
+normalized LMS tracker (disagg.analyses.track) starts from it, so there is no burn-in, and walks every
 usable interval in time order. Each local day's last tracked value is compared with the
 reference by an EWMA control-chart rule plus a practical relative-change threshold.
 A saved state lets next month's export continue exactly where this one stopped.
@@ -18,14 +18,21 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from disagg.align import Aligned, baseload_columns
-from disagg.config import SiteConfig
+from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
+from disagg.analyses.track import (
+    EWMA_L,
+    MU_MAX,
+    ewma_alarms,
+    mean_gains,
+    nlms,
+    step_from_memory,
+)
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import degrees, estimate_draws, weather_columns, weather_specs
-from disagg.select import Form
-from disagg.model import quantile
-from disagg.pipeline import CAUTION, load_inputs, require_usable
-from disagg.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
+from disagg.fit.align import Aligned, baseload_columns
+from disagg.fit.estimate import degrees, estimate_draws, weather_columns, weather_specs
+from disagg.fit.select import Form
+from disagg.fit.solvers import quantile
+from disagg.inputs.config import SiteConfig
 
 DEFAULT_REFERENCE_DAYS = 90
 # Regularization of the normalized step: 1e-6 of the mean squared input norm, small enough

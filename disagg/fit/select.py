@@ -1,7 +1,7 @@
 """Which baseload form the data support: compare forms by a penalised likelihood.
 
 Forms: a profile (constant, occupied, hour-of-week) alone, or plus a wandering level
-(disagg.wander). Every form is fitted on the same first differences of the metered kW, so
+(disagg.fit.wander). Every form is fitted on the same first differences of the metered kW, so
 their likelihoods are comparable: a form without the level is the wander model at q = 0
 (its intercept is the level's unknown start). The criterion is Akaike's, with the
 likelihood divided by an overdispersion factor c (the quasi-likelihood form, QAIC; Burnham &
@@ -19,7 +19,7 @@ refused the 168-level profile on a month of data even where it was the true shap
 scheduled fan of tests/synthetic.py's misspecified building then came out 30 % high). Each
 form gets the weight exp(-dQAIC / 2) normalised over the forms (Burnham & Anderson 2002,
 sec. 2.9); forms with weight at least CREDIBLE_WEIGHT are credible and their disagreement
-widens the intervals (disagg.estimate).
+widens the intervals (disagg.fit.estimate).
 
 References:
     Akaike, H. (1974). A new look at the statistical model identification. IEEE
@@ -36,8 +36,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from disagg.model import solve_regularized
-from disagg.wander import Spacing, normal_solve, profile_q, whiten
+from disagg.fit.solvers import solve_regularized
+from disagg.fit.wander import Spacing, normal_solve, profile_q, whiten
 
 # A form whose weight is at least this is credible: its draws count in the intervals.
 # Common practice, no source (a model with 5 % weight is one the data do not rule out).

@@ -18,9 +18,10 @@ from pathlib import Path
 
 import polars as pl
 
+from disagg.analyses.compare import CompareResult
+from disagg.analyses.drift import DriftResult
+from disagg.analyses.pipeline import CAUTION, BreakdownResult
 from disagg.errors import OutputError
-from disagg.drift import DriftResult
-from disagg.pipeline import CAUTION, BreakdownResult, CheckResult
 
 # Cells starting with these can run as formulas when a spreadsheet opens a CSV; OWASP
 # ("CSV Injection" page, from memory) recommends a leading single quote.
@@ -196,149 +197,6 @@ def write_workbook(sheets: dict[str, pl.DataFrame], path: Path) -> None:
                               float_precision=6)
 
 
-def _fmt(x: float | None, digits: int = 1) -> str:
-    return "-" if x is None or not math.isfinite(x) else f"{x:,.{digits}f}"
-
-
-def breakdown_summary(result: BreakdownResult) -> str:
-    """A short readable table of the whole range, the fit quality, warnings and the caution."""
-    t = result.breakdown
-    totals = (t.group_by("equipment", maintain_order=True)
-              .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(),
-                   pl.col("kwh_low").sum(), pl.col("kwh_high").sum(),
-                   pl.col("kwh_low").null_count().alias("no_range"), pl.col("flags"),
-                   pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")))
-    metered = float(result.estimates.y.sum())
-    tariff = result.fit.get("tariff")
-    currency = tariff["currency"] if tariff else ""
-    draws = {d["equipment"]: d for d in result.fit["draws"]}
-    order = {e: i for i, e in enumerate(draws)}
-    last = len(order) + 1
-    totals = totals.with_columns(
-        pl.col("equipment").replace_strict(order, default=len(order), return_dtype=pl.Int64)
-        .alias("o")).with_columns(
-        pl.when(pl.col("equipment").str.starts_with("baseload")).then(last)
-        .when(pl.col("equipment") == "unexplained").then(last + 1)
-        .otherwise(pl.col("o")).alias("o")).sort("o", maintain_order=True)
-    periods = t["period"].unique().sort()
-    own = any(m.get("own_fit") for m in result.fit.get("months", {}).values())
-    lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
-             f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
-             "",
-             ("kWh: sum of each month's own fit; " if own else "")
-             + "kW: the draw fitted over the whole range; run h [h], kWh [kWh], kW [kW]",
-             f"{'equipment':<22} {'run h':>7} {'kWh':>10} {'kWh range':>19} {'share':>6} "
-             f"{'kW':>7} {'kW range':>13}  "
-             + (f"{'cost ' + currency[:5]:>11}  " if tariff else "") + "flags"]
-    any_variable = False
-    for r in totals.iter_rows(named=True):
-        d = draws.get(r["equipment"])
-        kw, kw_rng = "-", "-"
-        if d and d["kw"] is not None:
-            kw = _fmt(d["kw"])
-            if d["kw_low"] is not None:
-                kw_rng = f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}"
-        kwh_rng = "-" if r["no_range"] else f"{_fmt(r['kwh_low'], 0)}-{_fmt(r['kwh_high'], 0)}"
-        flags = ";".join(d["flags"]) if d else ";".join(dict.fromkeys(
-            f for cell in r["flags"] for f in (cell or "").split(";") if f))
-        any_variable |= "variable" in flags
-        kwh = r["kwh"] + 0.0 if abs(r["kwh"]) >= 0.5 else 0.0  # no "-0"
-        share = 100 * kwh / metered if metered else 0.0
-        cost = ""
-        if tariff:
-            cost = f"{'-' if r['no_cost'] else _fmt(r['cost'] + 0.0, 2):>11}  "
-        lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>7} {_fmt(kwh, 0):>10} "
-                     f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {cost}{flags}")
-    lines.append("flags: whole-range fit; each month's are in breakdown.csv. baseload and "
-                 "unexplained run h: interval hours.")
-    if any_variable:
-        lines.append("run h of variable equipment: equivalent full-load hours "
-                     "(integral of status ** exponent).")
-    if tariff:
-        months_cost = tariff["months"]
-        total = sum(m["cost"] for m in months_cost)
-        demand = sum(m["demand_cost"] for m in months_cost)
-        lines += ["", f"Cost of the intervals used: {_fmt(total, 2)} {currency} (energy "
-                      f"{_fmt(total - demand, 2)}, demand {_fmt(demand, 2)} over "
-                      f"{len(months_cost)} month{'s' if len(months_cost) != 1 else ''}); "
-                      "each row's peak_kw and cost are in breakdown.csv."]
-    q = result.fit["fit_quality"]
-    hq = q.get("hourly")
-    if hq:
-        meets = "meets" if q["ashrae_guideline_14"]["hourly_meets"] else "does not meet"
-        lines += ["", f"Hourly fit: CV(RMSE) {hq['cv_rmse_pct']:.1f} %, NMBE {hq['nmbe_pct']:.2f} %,"
-                      f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
-                      "30 % / 10 %)"]
-    lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
-    months = result.fit.get("months", {})
-    if months:
-        n_own = sum(1 for m in months.values() if m.get("own_fit"))
-        lines.append(f"{n_own} of {len(months)} months fitted on their own data; their draws, "
-                     "flags and notes are in fit.json (months).")
-    for w in result.fit["warnings"]:
-        lines.append(f"Note: {w}")
-    lines += ["", f"Caution: {CAUTION}"]
-    return "\n".join(lines)
-
-
-def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
-    """The summary for scripts (``--json``): totals per row over the range, cost, fit quality,
-    notes, the caution and the files written."""
-    t = result.breakdown
-    totals = (t.group_by("equipment", maintain_order=True)
-              .agg(pl.col("run_hours").sum(), pl.col("kwh").sum(), pl.col("kwh_low").sum(),
-                   pl.col("kwh_high").sum(), pl.col("kwh_low").null_count().alias("no_range"),
-                   pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost"),
-                   pl.col("flags")))
-    metered = float(result.estimates.y.sum())
-    rows = [{"equipment": r["equipment"], "run_hours": r["run_hours"], "kwh": r["kwh"],
-             "kwh_low": None if r["no_range"] else r["kwh_low"],
-             "kwh_high": None if r["no_range"] else r["kwh_high"],
-             "share": r["kwh"] / metered if metered else None,
-             "cost": None if r["no_cost"] else r["cost"],
-             "flags": sorted({f for cell in r["flags"] for f in (cell or "").split(";") if f})}
-            for r in totals.iter_rows(named=True)]
-    tariff = result.fit.get("tariff")
-    periods = t["period"].unique().sort().to_list()
-    return to_json({
-        "site": result.site.name, "first_period": periods[0], "last_period": periods[-1],
-        "intervals_used": result.aligned.counts["used"],
-        "metered_kwh": metered,
-        "currency": tariff["currency"] if tariff else None,
-        "cost": sum(m["cost"] for m in tariff["months"]) if tariff else None,
-        "equipment": rows, "fit_quality": result.fit["fit_quality"],
-        "warnings": result.fit["warnings"], "caution": CAUTION,
-        "files": [str(p) for p in paths]})
-
-
-def check_summary(result: CheckResult) -> str:
-    r = result.report
-    c = r["intervals"]
-    lines = [f"{r['site']}: {r['period']['start_utc']} to {r['period']['end_utc']} (UTC), "
-             f"{r['interval_min']}-minute meter intervals",
-             f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
-             f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
-    for e, h in r["run_hours"].items():
-        lines.append(f"  {e:<20} {h:>10,.1f} run h")
-    for a, b, rho in r["inseparable_pairs"]:
-        lines.append(f"cannot be told apart: {a} and {b} (correlation of hours {rho:.3f})")
-    for e in r["inseparable_from_baseload"]:
-        lines.append(f"cannot be told apart from the baseload schedule: {e}")
-    for e in r["not_run"]:
-        lines.append(f"never ran in this period: {e}")
-    findings = r.get("findings", [])
-    if findings:
-        lines.append(f"Meter validation: {len(findings)} finding{'s' * (len(findings) != 1)}")
-        lines += [f"  {f['message']}" for f in findings]
-    else:
-        lines.append("Meter validation: no gaps, duplicates, spikes, zero runs, interval "
-                     "changes, daylight-saving hours or register rollovers found")
-    lines += [f"Note: {n}" for n in r["notes"]]
-    if "clock_offset" in r:
-        lines.append(f"Run-log clock: {r['clock_offset']['verdict']}")
-    return "\n".join(lines)
-
-
 def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | None = None) -> Path:
     """Simulate the demo building and write meter.csv, runlog.csv, weather.csv, truth.csv,
     truth_monthly.csv (in folder) and demo.toml (in toml_folder, default folder).
@@ -381,41 +239,12 @@ def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
     return paths
 
 
-def drift_summary(result: DriftResult) -> str:
-    """Step size, per-equipment latest tracked draw and change, alarms, notes, caution."""
-    s = result.summary
-    t = result.table
-    lines = [f"{s['site']}: step size mu = {s['step_size_mu']:.4g} "
-             f"(stable range {s['stable_range']}), reference {s['reference']['from']} to "
-             f"{s['reference']['to']}, threshold {100 * s['threshold']:g} %",
-             "",
-             f"{'equipment':<22} {'reference kW':>12} {'latest kW':>10} {'change':>8} "
-             f"{'memory d':>9}  alarm"]
-    alarmed = {a["equipment"]: a for a in s["alarms"]}
-    for eq in t["equipment"].unique(maintain_order=True):
-        rows = t.filter(pl.col("equipment") == eq)
-        last = rows.row(-1, named=True)
-        mem = s["memory_days_per_equipment"].get(eq)
-        change = last["change"]
-        lines.append(f"{eq[:22]:<22} {last['kw_reference']:>12.2f} {last['kw_tracked']:>10.2f} "
-                     f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
-                     f"{'-' if mem is None else f'{mem:.0f}':>9}  "
-                     + (f"since {alarmed[eq]['first_alarm_date']}" if eq in alarmed else ""))
-    for a in s["alarms"]:
-        lines.append(f"Alarm: {a['equipment']} from {a['first_alarm_date']}: draw "
-                     f"{100 * a['change']:+.1f} % ({100 * a['change_low']:+.1f} to "
-                     f"{100 * a['change_high']:+.1f} %) as of {a['as_of']}")
-    lines += [f"Note: {n}" for n in s["notes"]]
-    lines += ["", f"Caution: {CAUTION}"]
-    return "\n".join(lines)
-
-
 def write_portfolio(result, out_dir: Path) -> list[Path]:
-    """Write portfolio.csv (one row per site; see disagg.portfolio.portfolio_frame) into
+    """Write portfolio.csv (one row per site; see disagg.jobs.batch.portfolio_frame) into
     out_dir, atomically, with text cells neutralised for spreadsheets.
 
     Args:
-        result: a disagg.portfolio.PortfolioResult.
+        result: a disagg.jobs.batch.PortfolioResult.
     """
     frame = result.frame
     inputs = [result.portfolio.source, *result.portfolio.sites]
@@ -425,6 +254,24 @@ def write_portfolio(result, out_dir: Path) -> list[Path]:
 
 
 def write_report(html: str, out_dir: Path, inputs: list[Path]) -> list[Path]:
-    """Write report.html (disagg.report) into out_dir atomically; never over an input."""
+    """Write report.html (disagg.present.report) into out_dir atomically; never over an input."""
     return write_atomically(out_dir, {
         "report.html": lambda p: p.write_text(html, encoding="utf-8")}, inputs)
+
+
+def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
+    """Write compare.csv and compare.json into out_dir, all or nothing.
+
+    Raises:
+        OutputError: the folder cannot be written, or a name would replace an input.
+    """
+    t = result.table.with_columns(
+        pl.col("kw_before", "kw_before_low", "kw_before_high", "kw_after", "kw_after_low",
+               "kw_after_high", "change").round(6),
+        pl.col("p_value").round_sig_figs(4))
+    site = result.site
+    files = {
+        "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
+        "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
+    }
+    return write_atomically(out_dir, files, site.input_files())

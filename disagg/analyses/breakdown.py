@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
-from disagg.config import TariffSettings
-from disagg.estimate import Estimates
-from disagg.tariff import interval_prices, price_table
+from disagg.analyses.tariff import interval_prices, price_table
+from disagg.fit.estimate import Estimates
+from disagg.inputs.config import TariffSettings
 
 COLUMNS = ["period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh", "kwh_low",
            "kwh_high", "share", "flags", "peak_kw", "cost"]
@@ -57,7 +57,7 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     peak_kw [kW] (the row's estimated draw in the interval of the month's highest metered
     demand among the intervals used; the rows add up to that peak), cost [currency] (energy
     at each interval's price plus the demand price x peak_kw; null without a tariff; see
-    disagg.tariff).
+    disagg.analyses.tariff).
     """
     local = est.frame["start_utc"].dt.convert_time_zone(tz)
     month = (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy()

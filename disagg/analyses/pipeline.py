@@ -16,15 +16,21 @@ import numpy as np
 import polars as pl
 
 from disagg import __version__
-from disagg.align import BASELOAD_COLUMN_COUNT, Aligned, align, baseload_columns, frame_arrays
-from disagg.breakdown import monthly_breakdown
-from disagg.config import SiteConfig, load_site
+from disagg.analyses.breakdown import monthly_breakdown
 from disagg.errors import ConfigError, InputError
-from disagg.estimate import Estimates, estimate_draws, inseparable
-from disagg.logcheck import coverage_findings
+from disagg.fit.align import (
+    BASELOAD_COLUMN_COUNT,
+    Aligned,
+    align,
+    baseload_columns,
+    frame_arrays,
+)
+from disagg.fit.estimate import Estimates, estimate_draws, inseparable
+from disagg.inputs.config import SiteConfig, load_site
+from disagg.inputs.logcheck import coverage_findings
+from disagg.inputs.readers import read_meter, read_runlog, read_weather
+from disagg.inputs.vee import Finding
 from disagg.progress import Progress, report
-from disagg.readers import read_meter, read_runlog, read_weather
-from disagg.vee import Finding
 
 CAUTION = ("Estimates are not measurements. Any work on electrical equipment must follow local "
            "codes and be done by licensed, qualified people.")
@@ -44,7 +50,7 @@ class BreakdownResult:
     fit: dict
     estimates: Estimates
     aligned: Aligned
-    findings: list[Finding] = field(default_factory=list)  # the meter validation's (disagg.vee)
+    findings: list[Finding] = field(default_factory=list)  # the meter validation's (disagg.inputs.vee)
 
 
 def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
@@ -57,7 +63,7 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
     on_duplicate: different meter readings at one time are an error (``error``), or the
         first or last such row is kept (``keep-first``, ``keep-last``).
 
-    The meter validation's findings (disagg.vee) lead aligned.notes, one line each;
+    The meter validation's findings (disagg.inputs.vee) lead aligned.notes, one line each;
     aligned.counts["spikes"] counts the intervals left out as spikes (they are also in
     ``no_reading``: their energy was set to null).
 
@@ -155,11 +161,11 @@ def require_usable(site: SiteConfig, aligned: Aligned) -> None:
 def _add_estimated_gaps(table: pl.DataFrame, aligned: Aligned,
                         tz: str) -> tuple[pl.DataFrame, list[str]]:
     """Add, for each month with short meter gaps, an `estimated-gaps` row holding their energy
-    filled by linear interpolation (disagg.vee.estimate_short_gaps), flagged `estimated`.
+    filled by linear interpolation (disagg.inputs.vee.estimate_short_gaps), flagged `estimated`.
 
     The fit never sees estimated energy; only the month's total grows by it.
     """
-    from disagg.vee import ESTIMATE_MAX_GAP, estimate_short_gaps, monthly_totals
+    from disagg.inputs.vee import ESTIMATE_MAX_GAP, estimate_short_gaps, monthly_totals
 
     frame = aligned.frame.select("start_utc", "end_utc", "energy_kwh")
     filled = estimate_short_gaps(frame, aligned.interval_min)
@@ -407,7 +413,7 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
                on_duplicate: str = "error") -> CheckResult:
     """Read and align everything and say what was found, without fitting.
 
-    The report's "findings" are the meter validation's (disagg.vee, as dicts with kind,
+    The report's "findings" are the meter validation's (disagg.inputs.vee, as dicts with kind,
     count, times, policy and message); its "notes" are the other notes.
 
     Raises:
@@ -463,12 +469,12 @@ def check_log_offset(offset_min: float) -> None:
 def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,
                     on_duplicate: str = "error") -> dict:
     """Search the run-log clock offset (minutes to add to the log's times, on top of
-    log_offset_min) over +-window_min; see disagg.clock.
+    log_offset_min) over +-window_min; see disagg.analyses.clock.
 
     Raises:
         ConfigError: a window that is not a positive number of minutes.
     """
-    from disagg.clock import estimate_log_offset
+    from disagg.analyses.clock import estimate_log_offset
 
     if not (math.isfinite(window_min) and 0 < window_min <= MAX_OFFSET_WINDOW_MIN):
         raise ConfigError(f"--offset-window {window_min:g}: expected minutes above 0 and at "

@@ -23,8 +23,8 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
-from disagg.align import NS_PER_H, overlap_hours, spell_segments
-from disagg.config import TariffSettings
+from disagg.fit.align import NS_PER_H, overlap_hours, spell_segments
+from disagg.inputs.config import TariffSettings
 
 
 def interval_prices(tariff: TariffSettings, tz: str, start_ns: np.ndarray,

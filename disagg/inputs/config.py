@@ -19,7 +19,7 @@ from disagg.errors import ConfigError
 
 METER_UNITS = ("kWh", "Wh", "kW")
 # A cumulative register: each reading is the meter's running total [kWh x multiplier], and an
-# interval's energy is the difference of consecutive readings (disagg.vee.register_energy).
+# interval's energy is the difference of consecutive readings (disagg.inputs.vee.register_energy).
 REGISTER_UNIT = "kWh-register"
 # A float64 holds whole numbers exactly up to 2^53 (about 9 x 10^15): 15 digits at most.
 MAX_REGISTER_DIGITS = 15
@@ -27,8 +27,8 @@ STAMPS = ("end", "start")
 ALLOWED_INTERVALS_MIN = (1, 5, 10, 15, 30, 60)
 RUNLOG_LAYOUTS = ("events", "samples", "runtime")
 BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
-# Baseload forms: a profile, alone or plus a wandering level (disagg.wander); "auto" lets
-# the data choose among the declared profile and the simpler ones (disagg.select).
+# Baseload forms: a profile, alone or plus a wandering level (disagg.fit.wander); "auto" lets
+# the data choose among the declared profile and the simpler ones (disagg.fit.select).
 BASELOAD_FORMS = ("auto",) + tuple(f"{p}{lv}" for p in BASELOAD_PROFILES for lv in ("", "+level"))
 CONTROLS = ("on-off", "variable")
 WEATHER_MODES = ("cooling", "heating")
@@ -182,7 +182,7 @@ class SiteConfig:
     extra: dict = field(default_factory=dict)
     weather: WeatherSettings | None = None
     tariff: TariffSettings | None = None
-    history: Path | None = None  # [history] folder: the history store (disagg.history)
+    history: Path | None = None  # [history] folder: the history store (disagg.present.history)
 
     def equipment_ids(self) -> list[str]:
         return [e.id for e in self.equipment]

@@ -1,0 +1,1 @@
+"""Analyses on fitted draws: monthly breakdown, tariff, drift tracking, comparison, clock offset."""

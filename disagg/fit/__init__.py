@@ -1,0 +1,1 @@
+"""Fit: exact overlap of run logs with meter intervals, the design, solvers and intervals."""

@@ -1,0 +1,1 @@
+"""Jobs: one function per command, used by the CLI and by batch."""

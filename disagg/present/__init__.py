@@ -1,0 +1,1 @@
+"""Presentation: the one place that writes result files, terminal summaries, the report, history."""
