@@ -318,3 +318,41 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
         notes.append(f"{weather_unknown} intervals have no outdoor temperature within "
                      f"{MAX_WEATHER_GAP_H:g} h: left out")
     return Aligned(frame, ids, hours, use, meter.interval_min, counts, unknown_by, notes, temp_c)
+
+
+# The occupied-edges profile: the baseload's own shape around each declared schedule edge,
+# EDGE_HOURS either side, in slots of EDGE_SLOT_MIN minutes (or the meter interval if longer).
+# Project choice (lights that ramp over an hour or two around the edges), no outside source.
+EDGE_HOURS = 2.0
+EDGE_SLOT_MIN = 15
+
+
+def edge_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
+                 length_h: np.ndarray) -> tuple[np.ndarray, list[str]]:
+    """Extra baseload columns [h] for the occupied-edges profile: for each declared spell's
+    start and end, one column per slot from EDGE_HOURS before to EDGE_HOURS after the edge
+    (by the interval's local start), on the days the spell applies and that are not closed.
+    With the occupied/unoccupied columns they let the baseload ramp around the schedule's
+    edges instead of stepping exactly on them."""
+    local = start_utc.dt.convert_time_zone(tz)
+    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
+    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
+    open_day = np.ones(len(minute), dtype=bool)
+    if base.closed:
+        open_day = ~local.dt.date().is_in(list(base.closed)).to_numpy()
+    step = max(EDGE_SLOT_MIN, int(round(float(np.median(length_h)) * 60))) if len(minute) else 15
+    slots = int(EDGE_HOURS * 60 // step)
+    cols, names = [], []
+    for s_i, spell in enumerate(base.spells):
+        on_day = np.isin(weekday, spell.days) & open_day
+        for label, edge in (("start", spell.start_min), ("end", spell.end_min)):
+            for j in range(-slots, slots):
+                a = edge + j * step
+                hit = on_day & (minute >= a) & (minute < a + step)
+                if not hit.any():
+                    continue
+                cols.append(np.where(hit, length_h, 0.0))
+                names.append(f"baseload_edge{s_i}_{label}{j * step:+d}min_kw")
+    if not cols:
+        return np.zeros((len(minute), 0)), []
+    return np.column_stack(cols), names

@@ -19,6 +19,7 @@ from disagg.fit.align import (
     Aligned,
     baseload_columns,
     frame_arrays,
+    edge_columns,
     frame_baseload,
 )
 from disagg.fit.select import (
@@ -65,13 +66,20 @@ NUMERICAL_TOL = 1e-6
 # collinearity diagnostics: collinearity() reads them a chunk of rows at a time.
 LONG_DESIGN_ROWS = 65536
 MORE_FLEXIBLE = {"constant": ("occupied", "hour-of-week"), "occupied": ("hour-of-week",),
-                 "hour-of-week": ()}
+                 "occupied-edges": ("hour-of-week",), "hour-of-week": (),
+                 "hour-of-week-edges": ()}
 # Profiles the form comparison tries beside the declared one (the simpler ones it nests).
 SIMPLER = {"constant": (), "occupied": ("constant",), "hour-of-week": ("occupied", "constant")}
 # A draw that moves by more than this fraction between credible baseload forms (and by more
 # than its own interval's half-width) is flagged form-sensitive. Common practice, no source.
 FORM_SENSITIVE = 0.10
 HOW_LEVELS = 168
+# A load with at least this share of its switching within SCHEDULE_EDGE_MIN minutes of the
+# declared schedule's edges (and at least SCHEDULE_EDGE_MIN_SWITCHES switches) is flagged
+# schedule-edge. Common practice, no source.
+SCHEDULE_EDGE_SHARE = 0.5
+SCHEDULE_EDGE_MIN = 60
+SCHEDULE_EDGE_MIN_SWITCHES = 8
 
 
 @dataclass
@@ -263,6 +271,11 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
         return full[:, 0] - shut[:, 0]
 
     def base_for(profile: str) -> tuple[np.ndarray, list[str]]:
+        if profile.endswith("-edges"):
+            cols, names = base_for(profile[:-len("-edges")])
+            more, more_names = edge_columns(site.baseload, tz, frame["start_utc"],
+                                            (end_ns - start_ns) / NS_PER_H)
+            return np.column_stack([cols, more]), names + more_names
         if profile == site.baseload.profile:
             return base_cols(site.baseload)
         cols, names = base_cols(BaseloadSettings(profile, site.baseload.spells,
@@ -509,15 +522,16 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     # (closures, holidays, events) in ways no weekly profile knows. Profile out a separate
     # baseload level for each day (occupied and unoccupied separately when spells are
     # declared) by Frisch-Waugh-Lovell projection, and refit the draws on what is left.
-    n_day_cols = n_days * (B.shape[1] if profile == "occupied" else 1)
+    n_day_cols = n_days * (2 if profile.startswith("occupied") else 1)
     if (k and not choice.form.level and n_days >= 7
             and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + kx)):
-        if profile == "occupied":
-            C = B  # occupied and unoccupied hours, one level each per day
-            rest = np.zeros((n, 0))
+        if profile.startswith("occupied"):
+            C = B[:, :2]  # occupied and unoccupied hours, one level each per day
+            rest = B[:, 2:]
         else:
             C = interval_h[:, None]
             rest = B if profile == "hour-of-week" else np.zeros((n, 0))
+        rest = np.ascontiguousarray(rest)
         Xd = _project_out_days(np.column_stack([Hx, rest, y]), C, days)
         yd = Xd[:, -1]
         Xd = Xd[:, :-1]
@@ -547,6 +561,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     # of their draws about the chosen form's is added to the interval in quadrature.
     chosen = next(sc for sc in choice.scores if sc.form.name == choice.form.name)
     form_moves: dict[int, list[str]] = {}
+    edge_moves: dict[int, str] = {}
     for c in range(k):
         spread2 = sum(sc.weight * (sc.draws_kw[c] - chosen.draws_kw[c]) ** 2
                       for sc in choice.credible() if sc is not chosen)
@@ -564,6 +579,22 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                     f"{sc.draws_kw[c]:.3g} kW with the {sc.form.name} baseload "
                     f"(weight {sc.weight:.2f})")
                 moved.setdefault(c, []).append(f"{sc.draws_kw[c]:.3g} kW with {sc.form.name}")
+    # Loads that switch near the declared schedule's edges: their draw depends on the
+    # baseload's shape around the edges, which only the occupied-edges form states.
+    edge_share = schedule_edge_share(Hf, interval_h, site.baseload, tz, frame["start_utc"])
+    edge_rival = min((sc for sc in choice.scores if sc.form.profile.endswith("-edges")),
+                     key=lambda sc: sc.criterion, default=None)
+    for c in range(k):
+        if edge_share[c] < SCHEDULE_EDGE_SHARE:
+            continue
+        edge_moves.setdefault(c, f"{100 * edge_share[c]:.0f} % of its switching")
+        if edge_rival is not None and not profile.endswith("-edges"):
+            b_e, s_e = float(edge_rival.draws_kw[c]), float(edge_rival.se_kw[c])
+            if abs(b_e - coef[c]) > half_hac[c]:
+                low[c] = min(low[c], b_e - q_hac * s_e)
+                high[c] = max(high[c], b_e + q_hac * s_e)
+                widened[c] = True
+                moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (arrays["local_date"].astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = y - fitted_of(X, coef, level_kwh)
@@ -615,6 +646,14 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                             f"{choice.form.name} baseload, {'; '.join(form_moves[c])}; the "
                             "data cannot tell which baseload shape is right, and the interval "
                             "includes both")
+        if c in edge_moves:
+            t.flags.append("schedule-edge")
+            warnings.append(f"{t.id} switches near the declared schedule's edges "
+                            f"({edge_moves[c]} happens within {SCHEDULE_EDGE_MIN} minutes of "
+                            "a start or end of the occupied hours): the data can mix it up "
+                            "with the baseload changing at those times; its interval "
+                            f"{low[c]:.3g}-{high[c]:.3g} kW includes the estimate with the "
+                            "baseload's own shape around the edges")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
         if c in wspecs:
@@ -737,6 +776,30 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
     return tau2
 
 
+def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
+                        start_utc: pl.Series) -> np.ndarray:
+    """Share of each load's switching (its on-fraction changing by at least half an interval
+    from one interval to the next) that happens within SCHEDULE_EDGE_MIN minutes of a
+    declared spell's start or end, on the days the spell applies; 0 without spells."""
+    k = H.shape[1]
+    if not base.spells or len(interval_h) < 2 or k == 0:
+        return np.zeros(k)
+    local = start_utc.dt.convert_time_zone(tz)
+    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
+    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
+    near = np.zeros(len(minute), dtype=bool)
+    for spell in base.spells:
+        on_day = np.isin(weekday, spell.days)
+        for edge in (spell.start_min, spell.end_min):
+            d = np.abs(minute - edge)
+            near |= on_day & (np.minimum(d, 1440 - d) <= SCHEDULE_EDGE_MIN)
+    frac = H / interval_h[:, None]
+    switch = np.abs(np.diff(frac, axis=0)) >= 0.5
+    total = switch.sum(axis=0)
+    at_edge = (switch & (near[1:] | near[:-1])[:, None]).sum(axis=0)
+    return np.where(total >= SCHEDULE_EDGE_MIN_SWITCHES, at_edge / np.maximum(total, 1), 0.0)
+
+
 def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, days: np.ndarray,
                 prior: tuple[np.ndarray, np.ndarray], base_for,
                 given: Form | FormChoice | None) -> FormChoice:
@@ -762,12 +825,16 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
     else:
         profiles = [p for p in SIMPLER[declared]
                     if p != "occupied" or site.baseload.spells][::-1] + [declared]
+        if declared == "occupied" and len(y) >= MIN_ROWS_PER_COLUMN * (Hx.shape[1] + 70):
+            profiles.append("occupied-edges")
         # The hour-of-week profile is tried too, when the data can carry its 168 levels: a
         # declared schedule states when the building is occupied, not the baseload's shape
         # within the day (lights that ramp, a daily swing).
+        # With a declared schedule, it has the occupied-edges columns too.
         if (declared != "hour-of-week"
-                and len(y) >= MIN_ROWS_PER_COLUMN * (Hx.shape[1] + HOW_LEVELS)):
-            profiles.append("hour-of-week")
+                and len(y) >= MIN_ROWS_PER_COLUMN * (Hx.shape[1] + HOW_LEVELS + 70)):
+            profiles.append("hour-of-week-edges" if "occupied-edges" in profiles
+                            else "hour-of-week")
         pinned = site.baseload.form != "auto"
         form = Form.parse(site.baseload.form) if pinned else None
     cols = {p: base_for(p)[0] for p in profiles}
@@ -777,7 +844,7 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
     if isinstance(given, FormChoice):
         names = {sc.form.name for sc in rivals} | {given.form.name}
         scores = [sc for sc in scores if sc.form.name in names]
-    c = overdispersion(resid, days[1:]) if len(resid) else 1.0
+    c = overdispersion(resid) if resid is not None else 1.0
     score(scores, c, max(len(y) - 1, 1))
     if form is not None:
         match = [sc for sc in scores if sc.form.name == form.name]

@@ -5,10 +5,10 @@ Forms: a profile (constant, occupied, hour-of-week) alone, or plus a wandering l
 their likelihoods are comparable: a form without the level is the wander model at q = 0
 (its intercept is the level's unknown start). The criterion is Akaike's, with the
 likelihood divided by an overdispersion factor c (the quasi-likelihood form, QAIC; Burnham &
-Anderson 2002, sec. 2.5, from memory): c is the ratio of the variance of the whitened
-residuals' local-day sums to the sum of their variances, at least 1 (1 for independent
-rows; meter noise that persists within a day makes the plain likelihood overconfident and
-would pick the most flexible form).
+Anderson 2002, sec. 2.5, from memory): c is the long-run variance of the most flexible
+form's whitened residuals over their variance (Bartlett weights, Newey-West lag), at least 1
+(1 for independent rows; meter noise that persists over hours makes the plain likelihood
+overconfident and would pick the most flexible form).
 
     QAIC = (-2 log L) / c + 2 p
 
@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from disagg.fit.solvers import solve_regularized
+from disagg.fit.solvers import newey_west_lag, solve_regularized
 from disagg.fit.wander import Spacing, normal_solve, profile_q, whiten
 
 # A form whose weight is at least this is credible: its draws count in the intervals.
@@ -101,7 +101,8 @@ class FormChoice:
 
 
 # The column of each profile that the level (or the intercept of the differences) replaces.
-CONSTANT_COLUMN = {"constant": 0, "occupied": 1, "hour-of-week": 0}
+CONSTANT_COLUMN = {"constant": 0, "occupied": 1, "occupied-edges": 1, "hour-of-week": 0,
+                   "hour-of-week-edges": 0}
 
 
 def kept_columns(profile: str, m: int) -> list[int]:
@@ -169,6 +170,11 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
         levels: also score each profile plus the wandering level.
         fixed_q: profile -> q to use instead of the profile-likelihood search.
 
+    A profile of more than WIDE_PROFILE_COLUMNS columns (hour-of-week) after a narrower one
+    is scored with the level only, at the narrower profile's noise ratio: q describes the
+    level's slow wander, which the narrower profile's fit already shows, and each of its
+    likelihood evaluations on a year of rows costs about 0.2 s here.
+
     Returns:
         the scores (criterion not yet filled, see score) and the whitened residuals of the
         most flexible form (the last profile's, with the level) for the overdispersion.
@@ -179,6 +185,7 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
     k = H.shape[1]
     scores = []
     residual = None
+    last_q = None
     prec = np.where(np.isfinite(prior_sd) & (prior_sd > 0), 1.0 / np.square(prior_sd), 0.0)
     for profile, B in profiles.items():
         Zb = drop_constant(profile, B, h)
@@ -186,12 +193,16 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
         mean = np.concatenate([prior_mean, np.zeros(Zb.shape[1])])
         pr = np.concatenate([prec, np.zeros(Zb.shape[1])])
         lower = np.concatenate([np.zeros(k), np.full(Zb.shape[1], -np.inf)])
-        for level in ((False, True) if levels else (False,)):
+        wide = Zb.shape[1] > WIDE_PROFILE_COLUMNS and last_q is not None and levels
+        for level in ((True,) if wide else (False, True) if levels else (False,)):
             if level:
                 q = (fixed_q or {}).get(profile)
-                if q is None:
+                if q is None and wide:
+                    q = last_q
+                elif q is None:
                     rows = _window(sp, Z.shape[1])
                     q = profile_q(Z[rows], z[rows], sp.rows(rows)).q
+                last_q = q
             else:
                 q = 0.0
             g = _gram(Z, z, sp, q)
@@ -207,6 +218,8 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
     return scores, residual
 
 
+# See compare_forms.
+WIDE_PROFILE_COLUMNS = 40
 # The noise ratio search uses a window of the rows (contiguous, in the middle of the range)
 # of at least Q_WINDOW_ROWS rows and Q_WINDOW_ROWS_PER_COLUMN per design column: the
 # likelihood's shape in q is set by the level's local behaviour, which a few weeks show
@@ -224,11 +237,20 @@ def _window(sp: Spacing, p: int) -> slice:
     return slice(a, a + want)
 
 
-def overdispersion(u: np.ndarray, days: np.ndarray) -> float:
-    """Variance of the residuals' day sums over the sum of their squares, at least 1."""
-    _, first = np.unique(days, return_index=True)
-    sums = np.add.reduceat(u, np.sort(first))
-    return max(1.0, float(np.sum(sums**2) / max(np.sum(u**2), 1e-300)))
+def overdispersion(u: np.ndarray) -> float:
+    """Long-run variance of the whitened residuals over their variance, at least 1: the
+    Bartlett-weighted sum of their autocorrelations, 1 + 2 sum_l (1 - l / (L + 1)) r_l, at
+    the Newey-West (1994) lag L (Newey & West 1987)."""
+    n = len(u)
+    if n < 3:
+        return 1.0
+    lag = min(newey_west_lag(n), n - 1)
+    u = u - u.mean()
+    v = float(u @ u)
+    if v <= 0:
+        return 1.0
+    acf = [float(u[l:] @ u[:-l]) / v for l in range(1, lag + 1)]
+    return max(1.0, 1.0 + 2.0 * sum((1 - l / (lag + 1.0)) * r for l, r in enumerate(acf, 1)))
 
 
 def score(scores: list[FormScore], c: float, n: int) -> None:

@@ -29,7 +29,9 @@ RUNLOG_LAYOUTS = ("events", "samples", "runtime")
 BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
 # Baseload forms: a profile, alone or plus a wandering level (disagg.fit.wander); "auto" lets
 # the data choose among the declared profile and the simpler ones (disagg.fit.select).
-BASELOAD_FORMS = ("auto",) + tuple(f"{p}{lv}" for p in BASELOAD_PROFILES for lv in ("", "+level"))
+BASELOAD_FORMS = ("auto",) + tuple(f"{p}{lv}" for p in BASELOAD_PROFILES
+                                    + ("occupied-edges", "hour-of-week-edges")
+                                    for lv in ("", "+level"))
 CONTROLS = ("on-off", "variable")
 WEATHER_MODES = ("cooling", "heating")
 SMALLEST_SIZE = 1e-6
@@ -542,8 +544,8 @@ def load_site(path: str | Path) -> SiteConfig:
     b.only({"profile", "occupied", "closed", "form"} if profile == "occupied"
            else {"profile", "closed", "form"} if profile == "hour-of-week" else {"profile", "form"})
     form = b.choice("form", BASELOAD_FORMS, required=False, default="auto")
-    if form != "auto" and form.split("+")[0] == "occupied" and profile != "occupied":
-        raise ConfigError(f"{b.where('form')} = {form!r}: the occupied form needs "
+    if form != "auto" and (form.startswith("occupied") or "-edges" in form) and profile != "occupied":
+        raise ConfigError(f"{b.where('form')} = {form!r}: the occupied and edges forms need "
                           "profile = \"occupied\" and its spells")
     spells: list[Spell] = []
     spell_text: list[str] = []
