@@ -132,7 +132,42 @@ _FLAG_WORDS = {
     "prior-driven": "decided by its prior",
     "range-draw": "whole-range draw",
     "estimated": "estimated",
+    "form-sensitive": "depends on the baseload's shape",
+    "schedule-edge": "switches near the schedule's edges",
+    "at-zero": "at zero",
+    "schedule-bound": "on the baseload's schedule",
 }
+
+# Plain words for the baseload forms (disagg.fit.select).
+FORM_WORDS = {
+    "constant": "one constant level",
+    "occupied": "one level while occupied and one while unoccupied",
+    "occupied-edges": "occupied and unoccupied levels with their own shape around the "
+                      "schedule's starts and ends",
+    "hour-of-week": "its own level for each hour of the week",
+    "hour-of-week-edges": "its own level for each hour of the week, with its own shape "
+                          "around the schedule's starts and ends",
+}
+
+
+def form_sentence(form: dict) -> str:
+    """One plain sentence on the baseload form used and how the others compared."""
+    used = str(form.get("used", ""))
+    profile, _, level = used.partition("+")
+    words = FORM_WORDS.get(profile, profile)
+    how = ("as the engineer pinned it in the site file" if form.get("pinned")
+           else "chosen by the data")
+    text = (f"The baseload (load no run log explains) was modelled as {words}"
+            + (", plus a level that wanders slowly over time" if level else "")
+            + f" ({e(used)}, {how}).")
+    others = sorted((f for f in form.get("forms", []) if f.get("form") != used),
+                    key=lambda f: f.get("delta", 0.0))
+    if others:
+        text += (" The other forms fitted the meter worse by "
+                 + ", ".join(f"{_num(f.get('delta'), 0)} ({e(str(f.get('form')))})"
+                             for f in others[:4])
+                 + " on the criterion (QAIC; differences above about 10 are clear).")
+    return text
 
 
 def _flag_text(flags: str | list[str]) -> str:
@@ -566,6 +601,9 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
         parts.append("<p>The meter validation (gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours, register rollovers) raised no finding; "
                      "intervals left out for other reasons are counted above.</p>")
+    form = fit.get("baseload", {}).get("form")
+    if form:
+        parts.append("<h3>The baseload's form</h3><p>" + form_sentence(form) + "</p>")
     if other_warnings:
         parts.append("<h3>Notes from the fit</h3>" + _list([e(str(w)) for w in other_warnings]))
     parts.append("</section>")
