@@ -486,7 +486,12 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
             moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
 
     variants: dict[str, dict] = {}
-    for variant in () if choice.form.level else MORE_FLEXIBLE[profile]:
+    # With the wandering level, the declared profile without it and the more flexible
+    # profiles are the rival forms an engineer would have used: a significant difference
+    # widens the interval to theirs too.
+    rivals = ((site.baseload.profile,) + MORE_FLEXIBLE[site.baseload.profile]
+              if choice.form.level else MORE_FLEXIBLE[profile])
+    for variant in rivals:
         if variant == "occupied" and not site.baseload.spells:
             continue
         ind = None
@@ -850,7 +855,10 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
         match = [sc for sc in scores if sc.form.name == form.name]
         best = match[0].form
     else:
-        best = min(scores, key=lambda sc: sc.criterion).form
+        # Ties (to rounding) go to the declared profile, then to the simpler form.
+        low = min(sc.criterion for sc in scores)
+        tied = [sc for sc in scores if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
+        best = min(tied, key=lambda sc: (sc.form.profile != declared, sc.n_params)).form
     return FormChoice(form=best, pinned=pinned, scores=scores, overdispersion=c)
 
 

@@ -12,7 +12,9 @@ overconfident and would pick the most flexible form).
 
     QAIC = (-2 log L) / c + 2 p
 
-with p the number of fitted coefficients (the level's q counts as one). Akaike's penalty,
+with p the number of fitted coefficients the data can tell apart (the rank of the design;
+the level's q counts as one); among forms with the same criterion the declared profile is
+taken. Akaike's penalty,
 not Schwarz's log N: the aim is the form that predicts the meter best, and AIC is
 asymptotically equivalent to leave-one-out cross-validation (Stone 1977); the log N penalty
 refused the 168-level profile on a month of data even where it was the true shape (the
@@ -152,6 +154,17 @@ def _gram(Z: np.ndarray, z: np.ndarray, sp: Spacing, q: float) -> _Gram:
     return _Gram(w.W.T @ w.W, w.logdet, len(w.z), w.W)
 
 
+def _rank(G: np.ndarray) -> int:
+    """Numerical rank of a Gram matrix (columns scaled to unit norm first): a profile column
+    that repeats a load's hours (a fan locked to the schedule) adds no parameter the data
+    can fit, so it is not penalised either."""
+    if G.shape[0] == 0:
+        return 0
+    d = np.sqrt(np.maximum(np.diag(G), 1e-300))
+    w = np.linalg.eigvalsh(G / np.outer(d, d))
+    return int(np.sum(w > w.max() * 1e-9))
+
+
 def neg2_loglik_n(n: int, rss: float, logdet: float) -> float:
     return n * np.log(max(rss, 1e-300) / n) + logdet
 
@@ -212,7 +225,8 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
             A = g.G[:-1, :-1] + np.diag(sigma2 * pr)
             se = np.sqrt(np.maximum(np.diag(np.linalg.pinv(A)) * sigma2, 0.0))
             scores.append(FormScore(Form(profile, level, q), neg2_loglik_n(g.n, rss0, g.logdet),
-                                    Z.shape[1] + 1 + int(level), draws_kw=b[:k], se_kw=se[:k]))
+                                    _rank(g.G[:-1, :-1]) + 1 + int(level), draws_kw=b[:k],
+                                    se_kw=se[:k]))
             if level or not levels:
                 residual = g.W[:, -1] - g.W[:, :-1] @ b0
     return scores, residual
