@@ -74,6 +74,9 @@ SIMPLER = {"constant": (), "occupied": ("constant",), "hour-of-week": ("occupied
 # than its own interval's half-width) is flagged form-sensitive. Common practice, no source.
 FORM_SENSITIVE = 0.10
 HOW_LEVELS = 168
+# Rows above which the forms are compared on a sample of whole weeks (choose_form): about
+# 13 weeks of 15-minute data. Project choice for speed, no outside source.
+COMPARE_MAX_ROWS = 9000
 # A load with at least this share of its switching within SCHEDULE_EDGE_MIN minutes of the
 # declared schedule's edges (and at least SCHEDULE_EDGE_MIN_SWITCHES switches) is flagged
 # schedule-edge. Common practice, no source.
@@ -256,32 +259,43 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     arrays = {k: v if everything else v[use] for k, v in frame_arrays(aligned, tz).items()}
     start_ns, end_ns = arrays["start_ns"], arrays["end_ns"]
 
-    def base_cols(settings: BaseloadSettings) -> tuple[np.ndarray, list[str]]:
+    def base_cols(settings: BaseloadSettings,
+                  rows: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """A profile's columns over the rows used (or over a selection of them)."""
         if settings.profile == "hour-of-week":
-            return baseload_columns(settings, tz, frame["start_utc"], start_ns, end_ns,
-                                    how=arrays["hour_of_week"])
+            if rows is None:
+                return baseload_columns(settings, tz, frame["start_utc"], start_ns, end_ns,
+                                        how=arrays["hour_of_week"])
+            return baseload_columns(settings, tz, frame["start_utc"].filter(pl.Series(rows)),
+                                    start_ns[rows], end_ns[rows],
+                                    how=arrays["hour_of_week"][rows])
         cols, names = frame_baseload(aligned, settings, tz)
-        return (cols if everything else cols[use]), names
+        cols = cols if everything else cols[use]
+        return (cols if rows is None else cols[rows]), names
 
-    def closure_column() -> np.ndarray:
+    def closure_column(rows: np.ndarray | None = None) -> np.ndarray:
         """A variant must nest the declared profile: it gets the declared closures too, as
         the spell hours that the closure calendar removes."""
-        full, _ = base_cols(BaseloadSettings("occupied", site.baseload.spells))
-        shut, _ = base_cols(site.baseload)
+        full, _ = base_cols(BaseloadSettings("occupied", site.baseload.spells), rows)
+        shut, _ = base_cols(site.baseload, rows)
         return full[:, 0] - shut[:, 0]
 
-    def base_for(profile: str) -> tuple[np.ndarray, list[str]]:
+    def base_for(profile: str, rows: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """The baseload columns of a profile [h] (rows: a boolean selection of the rows)."""
         if profile.endswith("-edges"):
-            cols, names = base_for(profile[:-len("-edges")])
-            more, more_names = edge_columns(site.baseload, tz, frame["start_utc"],
-                                            (end_ns - start_ns) / NS_PER_H)
+            cols, names = base_for(profile[:-len("-edges")], rows)
+            sel = slice(None) if rows is None else rows
+            starts = frame["start_utc"] if rows is None else frame["start_utc"].filter(
+                pl.Series(rows))
+            more, more_names = edge_columns(site.baseload, tz, starts,
+                                            (end_ns[sel] - start_ns[sel]) / NS_PER_H)
             return np.column_stack([cols, more]), names + more_names
         if profile == site.baseload.profile:
-            return base_cols(site.baseload)
+            return base_cols(site.baseload, rows)
         cols, names = base_cols(BaseloadSettings(profile, site.baseload.spells,
-                                                 site.baseload.spell_text))
+                                                 site.baseload.spell_text), rows)
         if site.baseload.closed and site.baseload.spells:
-            cols = np.column_stack([cols, closure_column()])
+            cols = np.column_stack([cols, closure_column(rows)])
             names = names + ["baseload_closed_kw"]
         return cols, names
 
@@ -410,7 +424,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     sp = Spacing.from_ns(start_ns, end_ns)
 
     # --- baseload form: compare, choose (or take the pinned one) -------------------------
-    choice = choose_form(site, Hx, y, sp, days, priors(0), base_for, form)
+    choice = choose_form(site, Hx, y, sp, days, priors(0), base_for, form,
+                         (start_ns, end_ns, arrays["local_date"]))
     profile = choice.form.profile
     if profile != site.baseload.profile:
         B, base_names = base_for(profile)
@@ -807,12 +822,33 @@ def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSet
 
 def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, days: np.ndarray,
                 prior: tuple[np.ndarray, np.ndarray], base_for,
-                given: Form | FormChoice | None) -> FormChoice:
+                given: Form | FormChoice | None,
+                when: tuple[np.ndarray, np.ndarray, np.ndarray]) -> FormChoice:
     """The baseload form: compare the declared profile and the simpler ones it nests, each
     with and without the wandering level (disagg.fit.select), and take the lowest criterion, or
     the form pinned by [baseload] form. given: a Form to use; or a FormChoice (a month's
     fit: the range's chosen form and its credible rivals, at the range's noise ratios).
+    when: (start_ns, end_ns, local_date) of the rows.
+
+    A range of more than COMPARE_MAX_ROWS rows is compared on a systematic sample of whole
+    local weeks (every k-th week, at least COMPARE_MAX_ROWS rows): the level walks across
+    the weeks left out (its step variance grows with the time between rows), so every form
+    fits the same sample as it would the whole range; the chosen form is then fitted on
+    every row.
     """
+    start_ns, end_ns, local_date = when
+    if len(y) > COMPARE_MAX_ROWS:
+        week = (local_date.astype(np.int64) + 3) // 7
+        _, week_no = np.unique(week, return_inverse=True)
+        step = max(1, int(len(y) // COMPARE_MAX_ROWS))
+        sel = (week_no.reshape(-1) % step) == (step // 2)
+        if sel.sum() > 2 * Hx.shape[1] + 400:
+            inner = base_for
+            Hx, y, days = Hx[sel], y[sel], days[sel]
+            sp = Spacing.from_ns(start_ns[sel], end_ns[sel])
+
+            def base_for(p: str, _inner=inner, _sel=sel):
+                return _inner(p, _sel)
     declared = site.baseload.profile
     fixed: dict[str, float] = {}
     levels = True
