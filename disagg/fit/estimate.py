@@ -444,15 +444,14 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
         # GLS on whitened differences of the kW (disagg.fit.wander); the profile's columns are
         # kW above the level and may be negative.
         lower[kx:] = -np.inf
-        wz = whiten(X / interval_h[:, None], y / interval_h, sp, choice.form.q)
+        wz = whiten(X, y, sp, choice.form.q, scale=1.0 / interval_h)
         Xs, ys, blk = wz.X, wz.z, days[1:]
     else:
         Xs, ys, blk = X, y, days
     fit = fit_model(Xs, ys, p_mean, p_sd, lower, block=blk)
     coef = fit.coef
     if choice.form.level:
-        level_kw = smooth_level(y / interval_h - (X / interval_h[:, None]) @ coef, sp,
-                                choice.form.q)
+        level_kw = smooth_level((y - X @ coef) / interval_h, sp, choice.form.q)
         level_kwh = level_kw * interval_h
     se_hac = fit.se
     cov = fit.cov.copy()

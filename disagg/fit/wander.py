@@ -105,16 +105,25 @@ class Whitened:
         return self.W[:, -1]
 
 
-def whiten(X: np.ndarray, z: np.ndarray, sp: Spacing, q: float) -> Whitened:
+def whiten(X: np.ndarray, z: np.ndarray, sp: Spacing, q: float,
+           scale: np.ndarray | None = None) -> Whitened:
     """GLS whitening of the differenced model at noise ratio q.
 
     Args:
         X: (n, p) design in kW units (columns divided by interval hours); z: (n,) kW.
+        scale: (n,) row factors applied first (1 / interval hours for a design in kWh and
+            hours), without a scaled copy of X.
     """
     lower = cholesky_banded(_band(sp, q), lower=True, check_finite=False)
     rhs = np.empty((len(z) - 1, X.shape[1] + 1), order="F")
-    np.subtract(X[1:], X[:-1], out=rhs[:, :-1])
-    np.subtract(z[1:], z[:-1], out=rhs[:, -1])
+    if scale is None:
+        np.subtract(X[1:], X[:-1], out=rhs[:, :-1])
+        np.subtract(z[1:], z[:-1], out=rhs[:, -1])
+    else:
+        a, b = scale[1:], scale[:-1]
+        for j in range(X.shape[1]):  # one column at a time: no n x p temporary
+            np.subtract(X[1:, j] * a, X[:-1, j] * b, out=rhs[:, j])
+        np.subtract(z[1:] * a, z[:-1] * b, out=rhs[:, -1])
     # L is lower bidiagonal, stored as LAPACK's triangular band (diagonal, sub-diagonal):
     # the triangular band solve (dtbtrs) is the forward substitution, O(n) per column.
     out, info = dtbtrs(lower, rhs, uplo="L", overwrite_b=1)
