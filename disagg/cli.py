@@ -77,46 +77,29 @@ def _date(value: str | None, option: str) -> dt.date | None:
     return None
 
 
-def _breakdown_and_write(site: Path, out: Path, d0: dt.date | None, d1: dt.date | None,
-                         confidence: float, log_offset: float = 0.0,
-                         on_duplicate: str = "error", estimate: bool = False, *,
-                         xlsx: bool = False, report: bool = False, quiet: bool = False,
-                         as_json: bool = False) -> None:
-    """Fit, write the files, then print the summary (built before writing, so a summary
-    failure leaves no files)."""
-    from disagg.analyses.pipeline import breakdown_site
-    from disagg.present.outputs import write_breakdown
-    from disagg.present.terminal import breakdown_json, breakdown_summary
-    from disagg.progress import terminal_bar
-
-    bar = terminal_bar(quiet or as_json)
-    try:
-        result = breakdown_site(site, d0, d1, confidence, log_offset, on_duplicate=on_duplicate,
-                                estimate=estimate, progress=bar)
-        html = _report_html(result, bar) if report else None
-        summary = breakdown_summary(result)
-        from disagg.present.history import check_configured, store_configured
-        check_configured(result.site)  # a bad history folder fails before any output
-        paths = write_breakdown(result, out, xlsx=xlsx, report_html=html)
-        stored = store_configured(result, d0, d1, paths)
-        paths += stored.files
-    finally:
-        if bar is not None:
-            bar.close()
+def _print_run(run, *, quiet: bool = False, as_json: bool = False) -> None:
+    """Print a job's summary, the files written and its notes."""
     if as_json:
-        typer.echo(breakdown_json(result, paths), nl=False)
+        from disagg.present.terminal import breakdown_json
+
+        typer.echo(breakdown_json(run.result, run.paths), nl=False)
     elif not quiet:
-        typer.echo(summary)
-        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
-    for note in [] if quiet else stored.notes:
+        typer.echo(run.summary)
+        typer.echo("\nWrote " + ", ".join(str(p) for p in run.paths))
+    for note in [] if quiet else run.notes:
         typer.echo(f"Note: {note}", err=as_json)
 
 
-def _report_html(result, bar) -> str:
-    """The HTML report of a breakdown, with the drift page when the range allows one."""
-    from disagg.present.report import report_for
+def _with_bar(quiet: bool, job):
+    """Run job(bar) with a terminal progress bar (only when stderr is a terminal)."""
+    from disagg.progress import terminal_bar
 
-    return report_for(result, progress=bar)
+    bar = terminal_bar(quiet)
+    try:
+        return job(bar)
+    finally:
+        if bar is not None:
+            bar.close()
 
 
 SiteArg = Annotated[Path, typer.Argument(help="The site TOML file.", show_default=False)]
@@ -160,11 +143,17 @@ def breakdown(
     as_json: JsonOpt = False,
 ) -> None:
     """Monthly kWh per equipment with intervals; writes breakdown.csv/.parquet and fit.json."""
+    from disagg.jobs.site import BreakdownOptions, run_breakdown
+
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
-    _guard(lambda: _breakdown_and_write(site, out, d0, d1, confidence, log_offset,
-                                        on_duplicate, estimate, xlsx=xlsx, report=report,
-                                        quiet=quiet, as_json=as_json))
+    def run():
+        opts = BreakdownOptions(site, out, d0, d1, confidence, log_offset, on_duplicate,
+                                estimate, xlsx=xlsx, report=report)
+        _print_run(_with_bar(quiet or as_json, lambda bar: run_breakdown(opts, bar)),
+                   quiet=quiet, as_json=as_json)
+
+    _guard(run)
 
 
 @app.command()
@@ -180,13 +169,12 @@ def check(
     on_duplicate: DupOpt = "error",
 ) -> None:
     """Read and align the inputs and report what was found, without fitting."""
-    from disagg.analyses.pipeline import check_site
-    from disagg.present.terminal import check_summary
+    from disagg.jobs.site import CheckOptions, run_check
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
     window = offset_window if find_offset else None
-    _guard(lambda: typer.echo(check_summary(check_site(site, d0, d1, log_offset, window,
-                                                       on_duplicate=on_duplicate))))
+    _guard(lambda: typer.echo(run_check(CheckOptions(site, d0, d1, log_offset, window,
+                                                     on_duplicate)).summary))
 
 
 @app.command()
@@ -199,14 +187,14 @@ def demo(
 ) -> None:
     """Write the fictional demo building's year of data and run the breakdown on it, with
     its report (report.html)."""
-    from disagg.present.outputs import write_demo_site
+    from disagg.jobs.site import DemoOptions, run_demo
 
     def run():
-        toml = write_demo_site(out / "demo_site")
+        opts = DemoOptions(out, confidence, xlsx)
+        toml, result = _with_bar(quiet, lambda bar: run_demo(opts, bar))
         if not quiet:
             typer.echo(f"Demo site written to {toml.parent} (all data invented).")
-        _breakdown_and_write(toml, out, None, None, confidence, xlsx=xlsx, report=True,
-                             quiet=quiet)
+        _print_run(result, quiet=quiet)
 
     _guard(run)
 
@@ -233,36 +221,15 @@ def drift(
     log_offset: OffsetOpt = 0.0,
 ) -> None:
     """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
-    import json
-
-    from disagg.analyses.drift import drift_site
-    from disagg.errors import InputError
     from disagg.inputs.config import parse_period
-    from disagg.present.outputs import write_drift
-    from disagg.present.terminal import drift_summary
+    from disagg.jobs.site import DriftOptions, run_drift
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     def run():
         ref = parse_period(reference, "--reference") if reference else None
-        saved = None
-        if state is not None and state.exists():
-            try:
-                saved = json.loads(state.read_text(encoding="utf-8"))
-            except (OSError, ValueError) as exc:
-                raise InputError(f"{state}: cannot read the tracker state ({exc})") from None
-        result = drift_site(site, memory, step, ref, threshold, confidence, saved, d0, d1,
-                            log_offset)
-        text = drift_summary(result)
-        from disagg.inputs.config import load_site
-
-        cfg = load_site(site)
-        from disagg.present.history import check_configured, store_drift_configured
-        check_configured(cfg)  # a bad history folder fails before any output
-        paths = write_drift(result, out, cfg.input_files(), state)
-        paths += store_drift_configured(cfg, result, paths)
-        typer.echo(text)
-        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+        _print_run(run_drift(DriftOptions(site, out, memory, step, ref, threshold, state, d0,
+                                          d1, confidence, log_offset)))
 
     _guard(run)
 
@@ -290,23 +257,18 @@ def compare(
 ) -> None:
     """Each equipment's draw in two periods and whether it rose, fell or held; writes
     compare.csv and compare.json."""
-    from disagg.analyses.compare import compare_site
     from disagg.inputs.config import parse_period
-    from disagg.present.outputs import write_compare
-    from disagg.present.terminal import compare_summary
-
-    if from_history:
-        _guard(lambda: _compare_from_history(site, before, after, out, min_change))
-        return
+    from disagg.jobs.site import CompareOptions, run_compare
+    from disagg.present.history import parse_months
 
     def run():
-        periods = parse_period(before, "--before"), parse_period(after, "--after")
-        result = compare_site(site, *periods, confidence=confidence, min_change=min_change,
-                              log_offset_min=log_offset)
-        summary = compare_summary(result)
-        paths = write_compare(result, out)
-        typer.echo(summary)
-        typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
+        if from_history:
+            periods = parse_months(before, "--before"), parse_months(after, "--after")
+        else:
+            periods = parse_period(before, "--before"), parse_period(after, "--after")
+        _print_run(run_compare(CompareOptions(site, out, *periods, confidence=confidence,
+                                              min_change=min_change, log_offset_min=log_offset,
+                                              from_history=from_history)))
 
     _guard(run)
 
@@ -337,40 +299,27 @@ def batch(
 ) -> None:
     """Breakdown of every site of a portfolio in parallel; writes DIR/portfolio.csv and each
     site's files; exit 1 when any site failed, 130 when interrupted."""
-    import time
-
     from disagg.inputs.config import parse_period
-    from disagg.jobs.batch import BatchInterrupted, run_portfolio
-    from disagg.present.outputs import write_portfolio
-    from disagg.present.terminal import portfolio_summary
-    from disagg.progress import terminal_bar
+    from disagg.jobs.batch import BatchInterrupted, BatchOptions, run_batch
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     def run():
-        t0 = time.perf_counter()
         ref = parse_period(reference, "--reference") if reference else None
-        bar = terminal_bar(quiet)
+        opts = BatchOptions(portfolio, out, workers, cluster, d0, d1, drift_too, ref)
         try:
-            result = run_portfolio(portfolio, out, workers, cluster, d0, d1, drift_too,
-                                   progress=bar, drift_reference=ref)
+            done = _with_bar(quiet, lambda bar: run_batch(opts, bar))
         except BatchInterrupted as stop:
             # No portfolio.csv for part of the sites: a previous complete one stays, and a
             # script never reads a partial table as the portfolio's.
-            if bar is not None:
-                bar.close()
             typer.echo(f"Interrupted: {stop.finished} site{'s' * (stop.finished != 1)} "
                        f"finished, {stop.not_run} not run; portfolio.csv not written",
                        err=True)
             raise typer.Exit(130) from None
-        finally:
-            if bar is not None:
-                bar.close()
-        paths = write_portfolio(result, out)
         if not quiet:
-            typer.echo(portfolio_summary(result, time.perf_counter() - t0))
-            typer.echo(f"\nWrote {paths[0]} and each site's files in {out.resolve()}/<site>/")
-        return result
+            typer.echo(done.summary)
+            typer.echo(f"\nWrote {done.paths[0]} and each site's files in {out.resolve()}/<site>/")
+        return done.result
 
     result = _guard(run)
     for o in result.failed:
@@ -405,49 +354,12 @@ def history(
 ) -> None:
     """Each equipment's stored monthly kWh and draw; with --before/--after, an approximate
     comparison of stored months (disagg compare refits and is exact)."""
-    from disagg.analyses.pipeline import CAUTION
-    from disagg.errors import ConfigError, InputError
-    from disagg.inputs.config import load_site
-    from disagg.present import history as hist
-    from disagg.present import terminal
-    from disagg.present.outputs import neutralise_csv_text, write_atomically
+    from disagg.jobs.site import HistoryOptions, run_history
 
     def run():
-        cfg = load_site(site)
-        store = folder.resolve() if folder is not None else cfg.history
-        if store is None:
-            raise ConfigError(f"{cfg.path}: no [history] folder; add [history] folder = "
-                              "\"history\" to the site file or give --folder")
-        sid = hist.site_id(cfg.path)
-        if (before is None) != (after is None):
-            raise ConfigError("--before and --after: give both to compare stored months")
-        if before is not None:
-            result = hist.compare_from_history(store, sid, hist.parse_months(before, "--before"),
-                                               hist.parse_months(after, "--after"), min_change)
-            table = hist.select_equipment(result.table, equipment)
-            text = terminal.comparison_summary(
-                result if equipment is None else
-                hist.HistoryComparison(table, result.before, result.after,
-                                       result.months_before, result.months_after,
-                                       result.method), CAUTION)
-        else:
-            stored = hist.read_history(store, sid)
-            if stored.is_empty():
-                raise InputError(f"{store}: no stored breakdown of site {sid!r}; run disagg "
-                                 "breakdown or batch with this history folder set")
-            table = hist.select_equipment(stored, equipment)
-            text = terminal.history_summary(table, store, CAUTION)
-        if out is None:
-            typer.echo(text)
-            return
-        target = out.resolve()
-        if target.is_dir():
-            raise ConfigError(f"--out {out}: {target} is a folder; give a CSV file name such as "
-                              f"{target / 'history.csv'}")
-        write_atomically(target.parent, {
-            target.name: lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6)},
-            cfg.input_files())
-        typer.echo(f"Wrote {target}")
+        result = run_history(HistoryOptions(site, equipment, out, before, after, min_change,
+                                            folder))
+        typer.echo(f"Wrote {result.paths[0]}" if result.paths else result.summary)
 
     _guard(run)
 
@@ -470,60 +382,22 @@ def report(
 ) -> None:
     """Write report.html: one self-contained page (breakdown, costs, drift, fit quality,
     cautions) to read in a browser or print to PDF."""
-    from disagg.analyses.pipeline import breakdown_site
     from disagg.inputs.config import parse_period
-    from disagg.present.outputs import write_report
-    from disagg.present.report import drift_for, render_report
-    from disagg.present.terminal import report_summary
-    from disagg.progress import terminal_bar
+    from disagg.jobs.site import ReportOptions, run_report
 
     d0, d1 = _date(date_from, "--from"), _date(date_to, "--to")
 
     def run():
         ref = parse_period(reference, "--reference") if reference else None
-        bar = terminal_bar(quiet)
-        try:
-            result = breakdown_site(site, d0, d1, confidence, log_offset, progress=bar)
-            if no_drift:
-                tracked, note = None, "Drift tracking was not asked for in this report."
-            else:
-                tracked, note = drift_for(result, memory, ref)
-            html = render_report(result, tracked, progress=bar, drift_note=note)
-            line = report_summary(result, tracked)
-        finally:
-            if bar is not None:
-                bar.close()
-        paths = write_report(html, out, result.site.input_files())
+        opts = ReportOptions(site, out, d0, d1, confidence, log_offset, memory, ref,
+                             not no_drift)
+        result = _with_bar(quiet, lambda bar: run_report(opts, bar))
         if not quiet:
-            typer.echo(line)
-            typer.echo(f"Wrote {paths[0]} ({len(html.encode('utf-8')):,} bytes)")
+            html = result.result[2]
+            typer.echo(result.summary)
+            typer.echo(f"Wrote {result.paths[0]} ({len(html.encode('utf-8')):,} bytes)")
 
     _guard(run)
-
-
-def _compare_from_history(site: Path, before: str, after: str, out: Path,
-                          min_change: float) -> None:
-    """compare --from-history: the stored months' draws, no refit (disagg.present.history)."""
-    from disagg.analyses.pipeline import CAUTION
-    from disagg.errors import ConfigError
-    from disagg.inputs.config import load_site
-    from disagg.present import history as hist
-    from disagg.present import terminal
-    from disagg.present.outputs import neutralise_csv_text, write_atomically
-
-    cfg = load_site(site)
-    if cfg.history is None:
-        raise ConfigError(f"{cfg.path}: --from-history needs a [history] folder in the site "
-                          "file, such as [history] folder = \"history\"")
-    result = hist.compare_from_history(cfg.history, hist.site_id(cfg.path),
-                                       hist.parse_months(before, "--before"),
-                                       hist.parse_months(after, "--after"), min_change)
-    text = terminal.comparison_summary(result, CAUTION)
-    paths = write_atomically(out, {"compare.csv": lambda p: neutralise_csv_text(result.table)
-                                   .write_csv(p, float_precision=6)},
-                             cfg.input_files())
-    typer.echo(text)
-    typer.echo("\nWrote " + ", ".join(str(p) for p in paths))
 
 
 def main() -> None:  # pragma: no cover - console entry point

@@ -105,7 +105,7 @@ def test_the_graph_reader_sees_a_known_edge():
     # Guards the checks above against a reader that finds no imports at all.
     graph = import_graph()
     assert "disagg.inputs.config" in graph["disagg.fit.align"]
-    assert "disagg.analyses.pipeline" in graph["disagg.jobs.batch"]
+    assert "disagg.jobs.site" in graph["disagg.jobs.batch"]
 
 
 def test_every_module_imports():

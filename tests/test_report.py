@@ -26,13 +26,13 @@ import polars as pl
 import pytest
 from typer.testing import CliRunner
 
+from disagg.analyses.pipeline import CAUTION, breakdown_site
 from disagg.cli import app
 from disagg.inputs.config import to_celsius
-from disagg.analyses.pipeline import CAUTION, breakdown_site
+from disagg.jobs.site import drift_for
 from disagg.present.report import (
     LOCKOUT,
     UNEXPLAINED_PEAK,
-    drift_for,
     from_celsius,
     interval_counts,
     render_report,

@@ -20,7 +20,7 @@ import polars as pl
 from scipy.special import ndtr, ndtri
 
 from disagg import __version__
-from disagg.analyses.pipeline import CAUTION, load_inputs
+from disagg.analyses.pipeline import CAUTION, check_confidence, load_inputs
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
 from disagg.fit.estimate import Estimates, estimate_draws
@@ -299,8 +299,7 @@ def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
         ConfigError: bad settings or overlapping periods; InputError: bad files, or a period
         with no (or too little) usable data.
     """
-    if not 0.5 <= confidence < 1.0:
-        raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
+    check_confidence(confidence)
     if not (math.isfinite(min_change) and min_change >= 0.0):
         raise ConfigError(f"--min-change {min_change}: expected a fraction of 0 or more, "
                           "such as 0.05 for 5 %")

@@ -82,8 +82,7 @@ def load_validated(site_path: str | Path, date_from: dt.date | None = None,
     """load_inputs, and the meter validation's findings as well. progress: called as
     progress("reading", done, 4) after the meter, the run log, the weather and the alignment."""
     site = load_site(site_path)
-    if date_from and date_to and date_to < date_from:
-        raise ConfigError(f"--to {date_to} is before --from {date_from}")
+    check_range(date_from, date_to)
     check_log_offset(log_offset_min)
     report(progress, "reading", 0, 4)
     meter = read_meter(site.meter, site.timezone, on_duplicate=on_duplicate)
@@ -121,8 +120,7 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     Raises:
         ConfigError, InputError: bad settings, files, or too little usable data.
     """
-    if not 0.5 <= confidence < 1.0:
-        raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
+    check_confidence(confidence)
     site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
                                              on_duplicate=on_duplicate, progress=progress)
     require_usable(site, aligned)
@@ -473,6 +471,18 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
 # the offset search's window is capped at 12 h, its cost growing with the window.
 MAX_LOG_OFFSET_MIN = 7 * 24 * 60
 MAX_OFFSET_WINDOW_MIN = 12 * 60
+
+
+def check_range(date_from: dt.date | None, date_to: dt.date | None) -> None:
+    """Raise ConfigError when the last date to use comes before the first."""
+    if date_from and date_to and date_to < date_from:
+        raise ConfigError(f"--to {date_to} is before --from {date_from}")
+
+
+def check_confidence(confidence: float) -> None:
+    """Raise ConfigError for a confidence level outside 0.5 <= level < 1."""
+    if not 0.5 <= confidence < 1.0:
+        raise ConfigError(f"--confidence {confidence}: expected a fraction from 0.5 to 0.999")
 
 
 def check_log_offset(offset_min: float) -> None:

@@ -220,32 +220,14 @@ def _site_name(site_file: str) -> str | None:
 
 
 def _run_site(job: SiteJob) -> SiteOutcome:
-    from disagg.analyses.pipeline import breakdown_site
-    from disagg.present.outputs import write_breakdown, write_drift
+    from disagg.jobs.site import BreakdownOptions, run_breakdown
 
-    result = breakdown_site(job.site_file, job.date_from, job.date_to)
-    drift = None
-    if job.drift:
-        from disagg.analyses.drift import drift_aligned
-
-        drift = drift_aligned(result.site, result.aligned, reference=job.drift_reference)
-    out = Path(job.out_dir)
-    site = result.site
-    history = site.history or (Path(job.history) if job.history else None)
-    stored = None
-    if history is not None:
-        from disagg.present import history as hist
-
-        hist.check_folder(history)  # a bad history folder fails before any output
-    files = write_breakdown(result, out)
-    if drift is not None:
-        files += write_drift(drift, out, site.input_files())
-    if history is not None:
-        with hist.outputs_already_written(files):
-            stored = hist.store_breakdown(history, result, job.date_from, job.date_to)
-            files += stored.files
-            if drift is not None:
-                files += hist.store_drift(history, site, drift)
+    run = run_breakdown(BreakdownOptions(
+        Path(job.site_file), Path(job.out_dir), job.date_from, job.date_to,
+        history=Path(job.history) if job.history else None, drift=job.drift,
+        drift_reference=job.drift_reference))
+    result, drift = run.result if job.drift else (run.result, None)
+    site, files = result.site, run.paths
     table = result.breakdown
     periods = table["period"].unique().sort()
     totals = table.group_by("equipment", maintain_order=True).agg(pl.col("kwh").sum())
@@ -263,7 +245,7 @@ def _run_site(job: SiteJob) -> SiteOutcome:
         cost=float(sum(m["cost"] for m in tariff["months"])) if tariff else None,
         currency=tariff["currency"] if tariff else None,
         alarm_equipment=alarmed, drift_note=drift_note,
-        history_note=" | ".join(stored.notes) if stored and stored.notes else None,
+        history_note=" | ".join(run.notes) if run.notes else None,
         files=[str(p) for p in files])
 
 
@@ -538,3 +520,33 @@ def _run_on_cluster(address: str, jobs: list[SiteJob],
     return outcomes  # type: ignore[return-value]
 
 
+
+
+@dataclass(frozen=True)
+class BatchOptions:
+    """Settings of disagg batch (see run_portfolio)."""
+
+    portfolio: Path
+    out: Path
+    workers: int | None = None
+    cluster: str | None = None
+    date_from: dt.date | None = None
+    date_to: dt.date | None = None
+    drift: bool = False
+    drift_reference: tuple[dt.date, dt.date] | None = None
+
+
+def run_batch(opts: BatchOptions, progress: Progress | None = None):
+    """Every site's job (run_portfolio), then portfolio.csv; returns a disagg.jobs.site.Run
+    whose result is the PortfolioResult. An interrupt (BatchInterrupted) writes no
+    portfolio.csv, so a partial table never passes for the portfolio's."""
+    from disagg.jobs.site import Run
+    from disagg.present.outputs import write_portfolio
+    from disagg.present.terminal import portfolio_summary
+
+    t0 = time.perf_counter()
+    result = run_portfolio(opts.portfolio, opts.out, opts.workers, opts.cluster, opts.date_from,
+                           opts.date_to, opts.drift, progress=progress,
+                           drift_reference=opts.drift_reference)
+    paths = write_portfolio(result, opts.out)
+    return Run(result, portfolio_summary(result, time.perf_counter() - t0), paths)

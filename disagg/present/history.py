@@ -181,8 +181,7 @@ def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
 class Stored:
     """What storing a breakdown did.
 
-    files: the month files written (store_configured: the site's folder in the store, when
-        any month was stored). skipped: period -> why that month was left as it was.
+    files: the month files written. skipped: period -> why that month was left as it was.
     """
 
     files: list[Path] = field(default_factory=list)
@@ -477,35 +476,16 @@ def select_equipment(frame: pl.DataFrame, equipment: str | None) -> pl.DataFrame
     return rows
 
 
+def site_folder(folder: str | Path, kind: str, site_file: str | Path) -> Path:
+    """The site's folder of one kind (breakdown or drift) in the history store."""
+    return Path(folder).resolve() / f"kind={kind}" / f"site={site_id(site_file)}"
+
+
 def check_configured(site) -> None:
     """check_folder on the site's [history] folder, when its file names one."""
     folder = getattr(site, "history", None)
     if folder is not None:
         check_folder(folder)
-
-
-def store_configured(result, date_from: dt.date | None = None, date_to: dt.date | None = None,
-                     written: list[Path] | None = None) -> Stored:
-    """store_breakdown into the site's [history] folder when its file names one.
-
-    Args:
-        date_from, date_to: the run's requested range (see store_breakdown).
-        written: the outputs already written by this run, named in an error.
-
-    Returns:
-        Stored with files = [the site's breakdown folder in the store] when any month was
-        stored, and the months not stored; empty without a [history] table.
-
-    Raises:
-        OutputError: the history cannot be written (saying the outputs were written).
-    """
-    folder = getattr(result.site, "history", None)
-    if folder is None:
-        return Stored()
-    with outputs_already_written(written or []):
-        stored = store_breakdown(folder, result, date_from, date_to)
-    site_dir = Path(folder).resolve() / "kind=breakdown" / f"site={site_id(result.site.path)}"
-    return Stored([site_dir] if stored.files else [], stored.skipped)
 
 
 def store_drift_configured(site, drift_result, written: list[Path] | None = None) -> list[Path]:
@@ -522,4 +502,4 @@ def store_drift_configured(site, drift_result, written: list[Path] | None = None
         return []
     with outputs_already_written(written or []):
         store_drift(folder, site, drift_result)
-    return [Path(folder).resolve() / "kind=drift" / f"site={site_id(site.path)}"]
+    return [site_folder(folder, "drift", site.path)]

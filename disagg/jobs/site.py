@@ -1,0 +1,413 @@
+"""One job per command for one site: read, fit, analyse, write, store.
+
+Each ``run_*`` function takes a small options dataclass (validated once, when it is made) and
+returns a ``Run``: the analysis result, the terminal summary (built before anything is
+written, so a summary that fails leaves the output folder untouched), the files written and
+the notes for the person running it. The command line (disagg/cli.py) only parses, calls one
+of these and prints; ``disagg batch`` (disagg/jobs/batch.py) calls the same ones per site.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from disagg.analyses.pipeline import (
+    CAUTION,
+    BreakdownResult,
+    breakdown_site,
+    check_confidence,
+    check_log_offset,
+    check_range,
+    check_site,
+)
+from disagg.errors import ConfigError, DisaggError, InputError
+from disagg.inputs.config import load_site
+from disagg.inputs.vee import check_on_duplicate
+from disagg.present import history as hist
+from disagg.present import terminal
+from disagg.present.outputs import (
+    neutralise_csv_text,
+    write_atomically,
+    write_breakdown,
+    write_compare,
+    write_demo_site,
+    write_drift,
+    write_report,
+)
+from disagg.present.report.sections import _local_span
+from disagg.progress import Progress
+
+if TYPE_CHECKING:
+    from disagg.analyses.drift import DriftResult
+
+Period = tuple[dt.date, dt.date]
+
+
+@dataclass
+class Run:
+    """What a job did.
+
+    result: the analysis result (BreakdownResult, DriftResult, CompareResult, ...).
+    summary: the terminal text, built before any file was written.
+    paths: every file (or history folder) written, in order.
+    notes: lines for the person running the job (months not stored in the history, ...).
+    """
+
+    result: Any
+    summary: str
+    paths: list[Path] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+
+# A default-reference drift run needs at least this many days of data after the reference
+# period to have anything to show (common practice, no source: four weeks).
+MIN_TRACKED_DAYS = 28
+
+
+def drift_for(result: BreakdownResult, memory_days: float = 30.0,
+              reference: tuple[dt.date, dt.date] | None = None,
+              threshold: float = 0.10) -> tuple[DriftResult | None, str | None]:
+    """The drift result for a breakdown's own intervals, or None and the reason why not.
+
+    With the default reference (the first 90 days) the data must reach MIN_TRACKED_DAYS past
+    it; a given reference period must hold enough usable intervals for a fit (else the
+    reason names the period and the dates the data cover). A drift run that fails on these
+    data (disagg.errors.DisaggError: a memory that needs an unstable step, ...) is left out
+    with its message.
+
+    Raises:
+        ConfigError: memory_days not above 0 (a bad option, not a property of the data).
+    """
+    from disagg.analyses.drift import DEFAULT_REFERENCE_DAYS, drift_aligned
+    from disagg.fit.align import BASELOAD_COLUMN_COUNT
+
+    if not (math.isfinite(memory_days) and memory_days > 0):
+        raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
+    first, last = _local_span(result)
+    span_days = (dt.date.fromisoformat(last) - dt.date.fromisoformat(first)).days + 1
+    if reference is None and span_days < DEFAULT_REFERENCE_DAYS + MIN_TRACKED_DAYS:
+        return None, (f"Drift is left out: the data cover {span_days} days, and tracking "
+                      f"needs the {DEFAULT_REFERENCE_DAYS}-day reference period plus at least "
+                      f"{MIN_TRACKED_DAYS} days after it; a shorter reference period can be "
+                      "given with --reference FROM:TO.")
+    if reference is not None:
+        # Said here in the reference period's terms: drift_aligned would blame the files.
+        aligned = result.aligned
+        local_day = aligned.frame["start_utc"].dt.convert_time_zone(result.site.timezone).dt.date()
+        inside = int((aligned.use & ((local_day >= reference[0])
+                                     & (local_day <= reference[1])).to_numpy()).sum())
+        needed = (len(aligned.equipment_ids)
+                  + BASELOAD_COLUMN_COUNT[result.site.baseload.profile] + 2)
+        period = f"the reference period {reference[0]} to {reference[1]}"
+        if inside == 0:
+            return None, (f"Drift is left out: {period} has no usable intervals in the data, "
+                          f"which cover {first} to {last}; give a reference period inside "
+                          "them with --reference FROM:TO.")
+        if inside < needed:
+            return None, (f"Drift is left out: {period} has only {inside:,} usable intervals "
+                          f"in the data, which cover {first} to {last}; a fit needs at least "
+                          f"{needed:,}.")
+    try:
+        drift = drift_aligned(result.site, result.aligned, memory_days, None, reference,
+                              threshold, result.estimates.confidence)
+    except DisaggError as exc:
+        return None, f"Drift is left out: {exc}"
+    return drift, None
+
+
+@dataclass(frozen=True)
+class BreakdownOptions:
+    """Settings of one breakdown run (disagg breakdown, demo, and each site of a batch).
+
+    history: a history folder to use when the site file names none (a portfolio's).
+    drift: also track the draws (batch --drift), with drift_reference as the reference.
+    """
+
+    site: Path
+    out: Path
+    date_from: dt.date | None = None
+    date_to: dt.date | None = None
+    confidence: float = 0.95
+    log_offset_min: float = 0.0
+    on_duplicate: str = "error"
+    estimate_gaps: bool = False
+    xlsx: bool = False
+    report: bool = False
+    history: Path | None = None
+    drift: bool = False
+    drift_reference: Period | None = None
+
+    def __post_init__(self) -> None:
+        check_range(self.date_from, self.date_to)
+        check_confidence(self.confidence)
+        check_log_offset(self.log_offset_min)
+        check_on_duplicate(self.on_duplicate)
+
+
+def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> Run:
+    """Fit the site, write its files (and report), then store its months in the history.
+
+    A bad history folder fails before any output is written; an error storing the history
+    after the outputs were written says so (disagg.present.history.outputs_already_written).
+    With opts.drift the result is a (BreakdownResult, DriftResult) pair.
+    """
+    result = breakdown_site(opts.site, opts.date_from, opts.date_to, opts.confidence,
+                            opts.log_offset_min, on_duplicate=opts.on_duplicate,
+                            estimate=opts.estimate_gaps, progress=progress)
+    drift = None
+    if opts.drift:
+        from disagg.analyses.drift import drift_aligned
+
+        drift = drift_aligned(result.site, result.aligned, reference=opts.drift_reference)
+    html = None
+    if opts.report:
+        from disagg.present.report import render_report
+
+        tracked, note = drift_for(result)
+        html = render_report(result, tracked, progress=progress, drift_note=note)
+    summary = terminal.breakdown_summary(result)
+    folder = result.site.history or opts.history
+    if folder is not None:
+        hist.check_folder(folder)  # a bad history folder fails before any output
+    paths = write_breakdown(result, opts.out, xlsx=opts.xlsx, report_html=html)
+    if drift is not None:
+        paths += write_drift(drift, opts.out, result.site.input_files())
+    notes: list[str] = []
+    if folder is not None:
+        with hist.outputs_already_written(paths):
+            stored = hist.store_breakdown(folder, result, opts.date_from, opts.date_to)
+            if stored.files:
+                paths.append(hist.site_folder(folder, "breakdown", result.site.path))
+            notes += stored.notes
+            if drift is not None:
+                hist.store_drift(folder, result.site, drift)
+                paths.append(hist.site_folder(folder, "drift", result.site.path))
+    return Run(result if drift is None else (result, drift), summary, paths, notes)
+
+
+@dataclass(frozen=True)
+class CheckOptions:
+    """Settings of disagg check; offset_window_min None = no clock-offset search."""
+
+    site: Path
+    date_from: dt.date | None = None
+    date_to: dt.date | None = None
+    log_offset_min: float = 0.0
+    offset_window_min: float | None = None
+    on_duplicate: str = "error"
+
+    def __post_init__(self) -> None:
+        check_range(self.date_from, self.date_to)
+
+
+def run_check(opts: CheckOptions) -> Run:
+    """Read and align the inputs and say what was found, without fitting; writes nothing."""
+    result = check_site(opts.site, opts.date_from, opts.date_to, opts.log_offset_min,
+                        opts.offset_window_min, on_duplicate=opts.on_duplicate)
+    return Run(result, terminal.check_summary(result))
+
+
+@dataclass(frozen=True)
+class DemoOptions:
+    """Settings of disagg demo: the demo site goes to out/demo_site, its results to out."""
+
+    out: Path
+    confidence: float = 0.95
+    xlsx: bool = False
+
+    def __post_init__(self) -> None:
+        check_confidence(self.confidence)
+
+
+def run_demo(opts: DemoOptions, progress: Progress | None = None) -> tuple[Path, Run]:
+    """Write the invented demo building's files, then run the breakdown with its report.
+
+    Returns the demo's site file and the breakdown's Run.
+    """
+    toml = write_demo_site(opts.out / "demo_site")
+    run = run_breakdown(BreakdownOptions(toml, opts.out, confidence=opts.confidence,
+                                         xlsx=opts.xlsx, report=True), progress)
+    return toml, run
+
+
+@dataclass(frozen=True)
+class DriftOptions:
+    """Settings of disagg drift (see disagg.analyses.drift.drift_site)."""
+
+    site: Path
+    out: Path
+    memory_days: float = 30.0
+    step: float | None = None
+    reference: Period | None = None
+    threshold: float = 0.10
+    state: Path | None = None
+    date_from: dt.date | None = None
+    date_to: dt.date | None = None
+    confidence: float = 0.95
+    log_offset_min: float = 0.0
+
+    def __post_init__(self) -> None:
+        check_range(self.date_from, self.date_to)
+
+
+def _read_state(path: Path | None) -> dict | None:
+    if path is None or not path.exists():
+        return None
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: cannot read the tracker state ({exc})") from None
+
+
+def run_drift(opts: DriftOptions) -> Run:
+    """Track every draw, write drift.csv/.json (and the state), store the days tracked."""
+    from disagg.analyses.drift import drift_site
+
+    saved = _read_state(opts.state)
+    result = drift_site(opts.site, opts.memory_days, opts.step, opts.reference, opts.threshold,
+                        opts.confidence, saved, opts.date_from, opts.date_to,
+                        opts.log_offset_min)
+    summary = terminal.drift_summary(result)
+    site = load_site(opts.site)
+    hist.check_configured(site)  # a bad history folder fails before any output
+    paths = write_drift(result, opts.out, site.input_files(), opts.state)
+    paths += hist.store_drift_configured(site, result, paths)
+    return Run(result, summary, paths)
+
+
+@dataclass(frozen=True)
+class CompareOptions:
+    """Settings of disagg compare. from_history: before/after are (FROM, TO) months such as
+    ("2024-06", "2024-08") and the draws come from the stored months, no refit."""
+
+    site: Path
+    out: Path
+    before: Period | tuple[str, str]
+    after: Period | tuple[str, str]
+    confidence: float = 0.95
+    min_change: float = 0.05
+    log_offset_min: float = 0.0
+    from_history: bool = False
+
+
+def run_compare(opts: CompareOptions) -> Run:
+    """Each draw in two periods and the verdict; writes compare.csv (and compare.json)."""
+    if opts.from_history:
+        site = load_site(opts.site)
+        if site.history is None:
+            raise ConfigError(f"{site.path}: --from-history needs a [history] folder in the "
+                              "site file, such as [history] folder = \"history\"")
+        result = hist.compare_from_history(site.history, hist.site_id(site.path), opts.before,
+                                           opts.after, opts.min_change)
+        summary = terminal.comparison_summary(result, CAUTION)
+        paths = write_atomically(opts.out, {
+            "compare.csv": lambda p: neutralise_csv_text(result.table)
+            .write_csv(p, float_precision=6)}, site.input_files())
+        return Run(result, summary, paths)
+    from disagg.analyses.compare import compare_site
+
+    result = compare_site(opts.site, opts.before, opts.after, confidence=opts.confidence,
+                          min_change=opts.min_change, log_offset_min=opts.log_offset_min)
+    summary = terminal.compare_summary(result)
+    return Run(result, summary, write_compare(result, opts.out))
+
+
+@dataclass(frozen=True)
+class HistoryOptions:
+    """Settings of disagg history: show stored months, or compare two spans of them
+    (before/after as months FROM:TO such as "2024-06:2024-08"), optionally for one
+    equipment, to a CSV file."""
+
+    site: Path
+    equipment: str | None = None
+    out: Path | None = None
+    before: str | None = None
+    after: str | None = None
+    min_change: float = 0.05
+    folder: Path | None = None
+
+    def __post_init__(self) -> None:
+        if (self.before is None) != (self.after is None):
+            raise ConfigError("--before and --after: give both to compare stored months")
+
+
+def run_history(opts: HistoryOptions) -> Run:
+    """The stored months (or their comparison) as a table; written to opts.out when given."""
+    site = load_site(opts.site)
+    store = opts.folder.resolve() if opts.folder is not None else site.history
+    if store is None:
+        raise ConfigError(f"{site.path}: no [history] folder; add [history] folder = "
+                          "\"history\" to the site file or give --folder")
+    sid = hist.site_id(site.path)
+    if opts.before is not None:
+        result = hist.compare_from_history(store, sid, hist.parse_months(opts.before, "--before"),
+                                           hist.parse_months(opts.after, "--after"),
+                                           opts.min_change)
+        table = hist.select_equipment(result.table, opts.equipment)
+        if opts.equipment is not None:
+            result = hist.HistoryComparison(table, result.before, result.after,
+                                            result.months_before, result.months_after,
+                                            result.method)
+        text = terminal.comparison_summary(result, CAUTION)
+    else:
+        stored = hist.read_history(store, sid)
+        if stored.is_empty():
+            raise InputError(f"{store}: no stored breakdown of site {sid!r}; run disagg "
+                             "breakdown or batch with this history folder set")
+        table = result = hist.select_equipment(stored, opts.equipment)
+        text = terminal.history_summary(table, store, CAUTION)
+    if opts.out is None:
+        return Run(result, text)
+    target = opts.out.resolve()
+    if target.is_dir():
+        raise ConfigError(f"--out {opts.out}: {target} is a folder; give a CSV file name such "
+                          f"as {target / 'history.csv'}")
+    paths = write_atomically(target.parent, {
+        target.name: lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6)},
+        site.input_files())
+    return Run(result, text, paths)
+
+
+@dataclass(frozen=True)
+class ReportOptions:
+    """Settings of disagg report; drift=False leaves the drift page out."""
+
+    site: Path
+    out: Path
+    date_from: dt.date | None = None
+    date_to: dt.date | None = None
+    confidence: float = 0.95
+    log_offset_min: float = 0.0
+    memory_days: float = 30.0
+    reference: Period | None = None
+    drift: bool = True
+
+    def __post_init__(self) -> None:
+        check_range(self.date_from, self.date_to)
+        check_confidence(self.confidence)
+        check_log_offset(self.log_offset_min)
+
+
+def run_report(opts: ReportOptions, progress: Progress | None = None) -> Run:
+    """Fit the site, track drift on the same intervals, write report.html.
+
+    Returns a Run whose result is (BreakdownResult, DriftResult or None, the HTML).
+    """
+    from disagg.present.report import render_report
+
+    result: BreakdownResult = breakdown_site(opts.site, opts.date_from, opts.date_to,
+                                             opts.confidence, opts.log_offset_min,
+                                             progress=progress)
+    if opts.drift:
+        tracked, note = drift_for(result, opts.memory_days, opts.reference)
+    else:
+        tracked, note = None, "Drift tracking was not asked for in this report."
+    html = render_report(result, tracked, progress=progress, drift_note=note)
+    summary = terminal.report_summary(result, tracked)
+    paths = write_report(html, opts.out, result.site.input_files())
+    return Run((result, tracked, html), summary, paths)
