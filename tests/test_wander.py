@@ -173,3 +173,17 @@ def test_office_whose_baseload_moves_recovers_and_covers(scenario):
     # About 40 equipment-months: at a true 0.93, 0.80 is three binomial sd below.
     assert len(hits) >= 30
     assert np.mean(hits) >= 0.80, (scenario, np.mean(hits))
+
+
+def test_one_design_builder_gives_the_breakdowns_design_and_level():
+    from disagg.fit.estimate import baseload_level, design
+
+    s = make_building(2, misspecified=True)
+    e = estimate_draws(s.site, s.aligned)
+    fitted = [t for t in e.terms if t.column is not None]
+    d = design(s.site, s.aligned, [t.members for t in fitted], e.form.form)
+    assert d.X.shape[1] == len(e.design_coef)
+    assert d.X[:, :len(fitted)] == pytest.approx(e.hours[:, [e.terms.index(t) for t in fitted]])
+    level = baseload_level(d, e.design_coef)
+    assert level == pytest.approx(e.level_kwh, abs=1e-9)
+    assert d.X @ e.design_coef + level == pytest.approx(e.fitted, abs=1e-9)

@@ -953,3 +953,66 @@ def _partner(ids: list[str], active: list[int], corr: np.ndarray, j: int) -> dic
 def _wider(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """The covariance with the larger total variance (for sums of baseload columns)."""
     return a if np.trace(a) >= np.trace(b) else b
+
+
+@dataclass
+class Design:
+    """One design for every caller (breakdown, drift, compare): the used intervals, their
+    design rows in the order estimate_draws uses (term hours [h], weather slope columns
+    [h degC], baseload columns [h]) and energy [kWh].
+
+    form: the baseload form; with the level, the baseload columns are the profile's without
+    its constant direction (select.kept_columns) and the level is not in X (baseload_level).
+    """
+
+    frame: pl.DataFrame
+    X: np.ndarray
+    y: np.ndarray
+    term_members: list[list[str]]
+    n_weather: int
+    base_names: list[str]
+    form: Form
+
+
+def design(site: SiteConfig, aligned: Aligned, term_members: list[list[str]],
+           form: Form | None = None) -> Design:
+    """The design of the intervals aligned.use for the given terms (each a list of equipment
+    ids whose hours are averaged, as a combined row) and baseload form (default: the
+    declared profile without the level)."""
+    form = form or Form(site.baseload.profile, level=False)
+    use = aligned.use
+    frame = aligned.frame.filter(pl.Series(use))
+    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
+    H = aligned.hours[use]
+    cols = [H[:, [index[m] for m in members]].mean(axis=1) for members in term_members]
+    Hf = np.column_stack(cols) if cols else np.zeros((frame.height, 0))
+    temp = aligned.temp_c[use] if aligned.temp_c is not None else None
+    Wf = weather_columns(Hf, temp, weather_specs(site, term_members))
+    start_ns = frame["start_utc"].dt.epoch("ns").to_numpy()
+    end_ns = frame["end_utc"].dt.epoch("ns").to_numpy()
+    profile = form.profile.removesuffix("-edges")
+    settings = BaseloadSettings(profile, site.baseload.spells, site.baseload.spell_text,
+                                site.baseload.closed if profile == site.baseload.profile
+                                else (), site.baseload.form)
+    B, names = baseload_columns(settings, site.timezone, frame["start_utc"], start_ns, end_ns)
+    if form.profile.endswith("-edges"):
+        more, more_names = edge_columns(site.baseload, site.timezone, frame["start_utc"],
+                                        (end_ns - start_ns) / NS_PER_H)
+        B, names = np.column_stack([B, more]), names + more_names
+    if form.level:
+        keep = kept_columns(form.profile, B.shape[1])
+        B, names = B[:, keep], [names[i] for i in keep]
+    return Design(frame, np.column_stack([Hf, Wf, B]),
+                  frame["energy_kwh"].to_numpy().astype(float), term_members, Wf.shape[1],
+                  names, form)
+
+
+def baseload_level(d: Design, coef: np.ndarray) -> np.ndarray:
+    """The wandering level's energy in each interval [kWh] given the design's coefficients
+    (zero without the level): the smoother's mean of the residual kW (disagg.fit.wander)."""
+    if not d.form.level:
+        return np.zeros(len(d.y))
+    start_ns = d.frame["start_utc"].dt.epoch("ns").to_numpy()
+    end_ns = d.frame["end_utc"].dt.epoch("ns").to_numpy()
+    sp = Spacing.from_ns(start_ns, end_ns)
+    return smooth_level((d.y - d.X @ coef) / sp.h, sp, d.form.q) * sp.h
