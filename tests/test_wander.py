@@ -187,3 +187,15 @@ def test_one_design_builder_gives_the_breakdowns_design_and_level():
     level = baseload_level(d, e.design_coef)
     assert level == pytest.approx(e.level_kwh, abs=1e-9)
     assert d.X @ e.design_coef + level == pytest.approx(e.fitted, abs=1e-9)
+
+
+def test_the_report_says_which_form_was_used_and_how_the_others_compared():
+    from disagg.present.report.sections import form_sentence
+
+    s = make_building(2, misspecified=True)
+    e = estimate_draws(s.site, s.aligned)
+    text = form_sentence(e.form.as_json())
+    assert f"({e.form.form.name}, chosen by the data)" in text
+    assert "wanders slowly" in text
+    others = [f.form.name for f in e.form.scores if f.form.name != e.form.form.name]
+    assert others and all(name in text for name in others[:4])

@@ -645,7 +645,7 @@ def _priors_section(result: BreakdownResult) -> str:
     unit = result.site.weather.unit if result.site.weather is not None else "C"
     sentences: list[str] = []
     groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
-                                    "meter": []}
+                                    "meter": [], "form-sensitive": [], "schedule-edge": []}
     for d in draws:
         n = d["equipment"]
         flags = d.get("flags", [])
@@ -684,7 +684,7 @@ def _priors_section(result: BreakdownResult) -> str:
         if "not-run" in flags:
             groups["not-run"].append(n)
             continue
-        for f in ("unstable", "variable"):
+        for f in ("unstable", "variable", "form-sensitive", "schedule-edge"):
             if f in flags:
                 groups[f].append(n)
         if not decided_by_prior and w is not None and w < 0.05:
@@ -698,6 +698,16 @@ def _priors_section(result: BreakdownResult) -> str:
                             "hours and its draw is the full-speed draw." if one else
                             "run at variable speed: their run-hours are equivalent full-load "
                             "hours and their draws are full-speed draws."))
+    if groups["form-sensitive"]:
+        sentences.append(f"The estimate of {_names(groups['form-sensitive'])} depends on which "
+                         "shape the baseload is given: forms of the baseload that the data "
+                         "cannot rule out give draws more than 10 % apart, and the interval "
+                         "spans them.")
+    if groups["schedule-edge"]:
+        sentences.append(f"{_names(groups['schedule-edge'])} switch mostly within an hour of "
+                         "the occupied schedule's starts and ends, where a change of the "
+                         "baseload looks the same to the meter; their intervals include the "
+                         "estimate with the baseload's own shape around those times.")
     if groups["unstable"]:
         one = len(groups["unstable"]) == 1
         sentences.append(f"The estimate{'' if one else 's'} of {_names(groups['unstable'])} "
