@@ -328,12 +328,16 @@ EDGE_SLOT_MIN = 15
 
 
 def edge_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
-                 length_h: np.ndarray) -> tuple[np.ndarray, list[str]]:
+                 length_h: np.ndarray, hourly: bool = False) -> tuple[np.ndarray, list[str]]:
     """Extra baseload columns [h] for the occupied-edges profile: for each declared spell's
     start and end, one column per slot from EDGE_HOURS before to EDGE_HOURS after the edge
     (by the interval's local start), on the days the spell applies and that are not closed.
     With the occupied/unoccupied columns they let the baseload ramp around the schedule's
-    edges instead of stepping exactly on them."""
+    edges instead of stepping exactly on them.
+
+    hourly: beside hour-of-week columns, which already carry each clock hour's level, the
+    slots starting on the hour are left out (the shape within the hour needs the others only;
+    with them the columns would repeat the hour-of-week ones exactly)."""
     local = start_utc.dt.convert_time_zone(tz)
     minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
     weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
@@ -348,6 +352,8 @@ def edge_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
         for label, edge in (("start", spell.start_min), ("end", spell.end_min)):
             for j in range(-slots, slots):
                 a = edge + j * step
+                if hourly and a % 60 == 0:
+                    continue
                 hit = on_day & (minute >= a) & (minute < a + step)
                 if not hit.any():
                     continue

@@ -288,7 +288,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
             starts = frame["start_utc"] if rows is None else frame["start_utc"].filter(
                 pl.Series(rows))
             more, more_names = edge_columns(site.baseload, tz, starts,
-                                            (end_ns[sel] - start_ns[sel]) / NS_PER_H)
+                                            (end_ns[sel] - start_ns[sel]) / NS_PER_H,
+                                            hourly=profile.startswith("hour-of-week"))
             return np.column_stack([cols, more]), names + more_names
         if profile == site.baseload.profile:
             return base_cols(site.baseload, rows)
@@ -997,7 +998,8 @@ def design(site: SiteConfig, aligned: Aligned, term_members: list[list[str]],
     B, names = baseload_columns(settings, site.timezone, frame["start_utc"], start_ns, end_ns)
     if form.profile.endswith("-edges"):
         more, more_names = edge_columns(site.baseload, site.timezone, frame["start_utc"],
-                                        (end_ns - start_ns) / NS_PER_H)
+                                        (end_ns - start_ns) / NS_PER_H,
+                                        hourly=form.profile.startswith("hour-of-week"))
         B, names = np.column_stack([B, more]), names + more_names
     if form.level:
         keep = kept_columns(form.profile, B.shape[1])
