@@ -501,11 +501,10 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
             moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
 
     variants: dict[str, dict] = {}
-    # With the wandering level, the declared profile without it and the more flexible
-    # profiles are the rival forms an engineer would have used: a significant difference
-    # widens the interval to theirs too.
-    rivals = ((site.baseload.profile,) + MORE_FLEXIBLE[site.baseload.profile]
-              if choice.form.level else MORE_FLEXIBLE[profile])
+    # With the wandering level, the rival forms are the credible ones of the comparison
+    # (below): a static profile the data rule out would only widen the interval (tried: the
+    # misspecified building's scheduled fan then had a 16 kW wide interval for an 11 kW draw).
+    rivals = () if choice.form.level else MORE_FLEXIBLE[profile]
     for variant in rivals:
         if variant == "occupied" and not site.baseload.spells:
             continue
