@@ -18,8 +18,8 @@ from disagg.fit.align import (
     NS_PER_H,
     Aligned,
     baseload_columns,
-    frame_arrays,
     edge_columns,
+    frame_arrays,
     frame_baseload,
 )
 from disagg.fit.select import (
