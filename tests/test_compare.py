@@ -28,7 +28,7 @@ from disagg.analyses.compare import COLUMNS, DEFAULT_MIN_CHANGE, compare_estimat
 from disagg.errors import ConfigError
 from disagg.fit.estimate import Term, estimate_draws
 from synthetic import TZ, make_building
-from test_cli import CAUTION_LINE, README, TRUE_DRAW_KW, write_site
+from test_cli import CAUTION_LINE, GUIDE, TRUE_DRAW_KW, write_site
 
 runner = CliRunner()
 
@@ -123,7 +123,9 @@ VERDICTS = {
     "10 % up, z = 7": (10.0, 0.1, 11.0, 0.1, [], "rising"),
     "10 % down, z = -7": (10.0, 0.1, 9.0, 0.1, [], "falling"),
     "3 % up, z = 4: significant but under min_change": (10.0, 0.05, 10.3, 0.05, [], "steady"),
-    "6 % up, z = 0.85: not significant": (10.0, 0.5, 10.6, 0.5, [], "steady"),
+    "6 % up, z = 0.85: not significant, not shown inside +-5 %": (10.0, 0.5, 10.6, 0.5, [],
+                                                                   "unclear"),
+    "1 % up, narrow: shown inside +-5 % (equivalence)": (10.0, 0.1, 10.1, 0.1, [], "steady"),
     "change interval about +-100 %": (10.0, 3.0, 14.0, 3.0, [], "unclear"),
     "prior-driven after": (10.0, 0.1, 11.0, 0.1, ["prior-driven"], "unclear"),
     "inseparable after": (10.0, 0.1, 11.0, 0.1, ["inseparable:P-1"], "unclear"),
@@ -154,8 +156,8 @@ def test_unclear_reasons_name_the_cause():
               ("C", 1.0, 0.1, [])]))
     rows = _by_id(table, details)
     assert rows["A"]["reason"] == "the after estimate is prior-driven, inseparable:B"
-    assert re.fullmatch(r"the change's interval -\d+% to \+\d+% reaches beyond \+-50% of the "
-                        r"earlier draw", rows["B"]["reason"]), rows["B"]["reason"]
+    assert re.fullmatch(r"the change's interval -\d+\.\d% to \+\d+\.\d% is neither clearly "
+                        r"beyond nor clearly inside \+-5%", rows["B"]["reason"]), rows["B"]["reason"]
     assert rows["C"]["reason"] == "the earlier draw is 0 kW: no relative change"
     assert rows["C"]["change"] is None
 
@@ -164,8 +166,12 @@ def test_min_change_and_confidence_move_the_verdict():
     before, after = _est([("CH-1", 10.0, 0.1, [])]), _est([("CH-1", 10.6, 0.2, [])])
     # z = 0.6 / 0.2236 = 2.68, p = 0.0073; change 6 %.
     assert compare_estimates(before, after, 0.95, 0.05)[0]["verdict"][0] == "rising"
+    # Against +-10 %: the 90 % interval 0.06 +- 1.645 x 0.0229 = 2.2 % to 9.8 % lies inside
+    # (two one-sided tests at 5 %): steady.
     assert compare_estimates(before, after, 0.95, 0.10)[0]["verdict"][0] == "steady"
-    assert compare_estimates(before, after, 0.999, 0.05)[0]["verdict"][0] == "steady"
+    # At 99.9 % the change is not significant (p = 0.0073) and its 99.8 % interval
+    # (-1.1 % to 13.1 %) is not inside +-5 %: unclear.
+    assert compare_estimates(before, after, 0.999, 0.05)[0]["verdict"][0] == "unclear"
 
 
 def test_the_widened_interval_widens_the_test():
@@ -176,7 +182,8 @@ def test_the_widened_interval_widens_the_test():
     table, details = compare_estimates(before, after)
     assert details[0]["se_before_kw"] == pytest.approx(0.3, rel=1e-12)
     assert details[0]["z"] == pytest.approx(0.6 / math.hypot(0.3, 0.1), rel=1e-12)
-    assert table["verdict"][0] == "steady"
+    # Not significant, and too wide to show it inside +-5 %: unclear (not steady).
+    assert table["verdict"][0] == "unclear"
     # Without the widening the same step would be called.
     t2, _ = compare_estimates(_est([("F-1", 10.0, 0.1, [])]), after)
     assert t2["verdict"][0] == "rising"
@@ -265,8 +272,12 @@ def test_a_30_percent_step_is_called_rising_and_the_rest_steady():
     assert h["kw_before_low"] <= truth[("2025-03", "H-1")] <= h["kw_before_high"]
     assert h["kw_after_low"] <= truth[("2025-04", "H-1")] <= h["kw_after_high"]
     assert truth[("2025-04", "H-1")] / truth[("2025-03", "H-1")] == pytest.approx(STEP[1])
-    assert {eq: r["verdict"] for eq, r in rows.items() if eq != "H-1"} == {
-        "CH-1": "steady", "F-1": "steady", "C-1": "steady", "P-1": "steady"}
+    # The untouched loads are not called rising or falling; steady only where a month's data
+    # show them inside +-5 % (two one-sided tests), else unclear.
+    others = {eq: r["verdict"] for eq, r in rows.items() if eq != "H-1"}
+    assert set(others) == {"CH-1", "F-1", "C-1", "P-1"}
+    assert set(others.values()) <= {"steady", "unclear"}, others
+    assert others["CH-1"] == "steady"  # the best-determined load (60 kW)
 
 
 # Measured on 2026-12-01 over seeds 0..19 (4 untouched loads each, truth from the synthetic
@@ -284,7 +295,11 @@ SEEDS = range(20)
 MAX_FALSE_CALL_RATE = 0.10
 MIN_DETECTION_RATE = 0.90
 MIN_CHANGE_COVERAGE = 0.85
-MIN_CLEAR_SHARE = 0.60  # a rule that said "unclear" to everything would never be wrong
+# A rule that said "unclear" to everything would never be wrong. With steady only when two
+# one-sided tests put the change inside +-5 % (Schuirmann 1987), one month against the next
+# shows that for 32 of 80 untouched well-specified load-runs (measured 2026-12-04; 0 of 80
+# on the misspecified building, whose weather and wandering baseload widen every interval).
+MIN_CLEAR_SHARE = 0.25
 # The same bound as tests/test_recovery.py: ~200 intervals at a nominal 95 % have sd 1.5 %.
 MIN_KW_COVERAGE = 0.90
 
@@ -310,8 +325,9 @@ def test_false_calls_on_untouched_loads_are_rare(many_seeds):
                 continue
             clear += 1
             false_calls += r["verdict"] in ("rising", "falling")
-    rate = false_calls / clear
-    assert clear >= MIN_CLEAR_SHARE * (clear + unclear), (clear, unclear)
+    rate = false_calls / max(clear + unclear, 1)
+    if not misspecified:
+        assert clear >= MIN_CLEAR_SHARE * (clear + unclear), (clear, unclear)
     assert rate <= MAX_FALSE_CALL_RATE, (misspecified, false_calls, clear, unclear, real_changes)
     assert real_changes == 0 or misspecified
 
@@ -428,16 +444,16 @@ def test_bad_input_gives_one_error_line_exit_1_and_no_output(site, tmp_path, cas
     assert not out.exists()
 
 
-def test_compare_has_help_text_and_a_readme_row():
+def test_compare_has_help_text_and_a_guide_entry():
     cmd = typer.main.get_command(app).commands["compare"]  # type: ignore[attr-defined]
     result = runner.invoke(app, ["compare", "--help"])
     assert result.exit_code == 0, result.output
     text = " ".join(result.stdout.replace("│", " ").split())
     assert cmd.help and " ".join(cmd.help.split()) in text
     assert [p.name for p in cmd.params if not getattr(p, "help", None)] == []
-    readme = README.read_text(encoding="utf-8")
-    assert re.search(r"^\| `disagg compare SITE\.toml --before FROM:TO --after FROM:TO --out DIR",
-                     readme, re.MULTILINE)
+    guide = GUIDE.read_text(encoding="utf-8")
+    assert re.search(r"^    disagg compare SITE\.toml --before FROM:TO --after FROM:TO --out DIR",
+                     guide, re.MULTILINE)
 
 
 def test_each_periods_intervals_cover_its_true_draws(many_seeds):
@@ -450,3 +466,74 @@ def test_each_periods_intervals_cover_its_true_draws(many_seeds):
                     hits.append(r[f"kw_{side}_low"] <= truth[(month, eq)] <= r[f"kw_{side}_high"])
     assert len(hits) >= 0.9 * len(runs) * 5 * 2
     assert np.mean(hits) >= MIN_KW_COVERAGE, np.mean(hits)
+
+
+# ---------------------------------------------------------------------------------------
+# The verdict rule shared with history (disagg.analyses.verdict), and groups
+
+from scipy.stats import t as student_t  # noqa: E402
+
+from disagg.analyses.compare import compare_aligned  # noqa: E402
+from disagg.analyses.verdict import change_verdict  # noqa: E402
+
+
+@pytest.mark.parametrize("df", [None, 9])
+def test_the_tost_verdict_against_a_hand_computation(df):
+    # Outside reference: scipy.stats.norm / scipy.stats.t quantiles and tails [ran].
+    dist = norm if df is None else student_t(df)
+    b, sb, a, sa, m, conf = 20.0, 0.2, 20.3, 0.25, 0.05, 0.95
+    alpha = 1 - conf
+    c = a / b - 1
+    se_c = math.hypot(sa, (a / b) * sb) / b  # delta method for a ratio
+    t_low, t_high = (c + m) / se_c, (m - c) / se_c
+    p_tost = max(dist.sf(t_low), dist.sf(t_high))
+    v = change_verdict(b, sb, a, sa, conf, m, df)
+    assert v["change"] == pytest.approx(c, rel=1e-12)
+    assert v["se_change"] == pytest.approx(se_c, rel=1e-12)
+    assert v["p_equivalence"] == pytest.approx(p_tost, rel=1e-9)
+    z = (a - b) / math.hypot(sa, sb)
+    assert v["p_value"] == pytest.approx(2 * dist.sf(abs(z)), rel=1e-9)
+    # By hand: c = 1.5 %, se 1.63 %; the 90 % interval c +- q(0.95) se lies inside +-5 %.
+    q = dist.ppf(1 - alpha)
+    assert -m < c - q * se_c and c + q * se_c < m
+    assert v["verdict"] == "steady"
+    assert v["change_low"] == pytest.approx(c - dist.ppf(1 - alpha / 2) * se_c, rel=1e-12)
+    # Schuirmann's equivalence: steady exactly when the 1 - 2 alpha interval is inside.
+    for a2 in np.linspace(19.0, 21.0, 41):
+        v2 = change_verdict(b, sb, a2, sa, conf, m, df)
+        c2 = a2 / b - 1
+        s2 = math.hypot(sa, (a2 / b) * sb) / b
+        inside = -m < c2 - q * s2 and c2 + q * s2 < m
+        significant = 2 * dist.sf(abs((a2 - b) / math.hypot(sa, sb))) < alpha
+        expected = ("rising" if c2 > 0 else "falling") if significant and abs(c2) >= m else (
+            "steady" if inside else "unclear")
+        assert v2["verdict"] == expected, (a2, v2)
+    # Both kinds of call happen in that sweep (the check is not vacuous).
+    calls = {change_verdict(b, sb, a2, sa, conf, m, df)["verdict"]
+             for a2 in np.linspace(19, 21, 41)}
+    assert calls == {"rising", "falling", "steady", "unclear"}
+
+
+def test_the_group_is_compared_and_its_members_say_so():
+    # The synthetic office year: the lead chiller CH-1 and its pump CWP-1 run together
+    # (both with nameplate priors); CH-1 +15 % from 2025-07-25: the group's true change
+    # is 18 / 135 = +13.3 %. April-July against August-October, as in the issue.
+    import datetime as dt
+
+    from synthetic_year import CHILLER_STEP_ON, make_year
+    s = make_year(0, steps={"CH-1": (1.15, CHILLER_STEP_ON)})
+    result = compare_aligned(s.site, s.aligned, (dt.date(2025, 4, 1), dt.date(2025, 7, 24)),
+                             (dt.date(2025, 8, 1), dt.date(2025, 10, 31)))
+    rows = {r["equipment"]: r for r in result.report["equipment"]}
+    assert result.report["groups"] == ["CH-1+CWP-1"]
+    g = rows["CH-1+CWP-1"]
+    assert g["verdict"] == "rising", g
+    assert g["change_low"] <= 18.0 / 135.0 <= g["change_high"], g
+    for m in ("CH-1", "CWP-1"):
+        assert rows[m]["verdict"] == "unclear"
+        assert rows[m]["reason"].startswith("covered by the group row 'CH-1+CWP-1'")
+    eqs = result.table["equipment"].to_list()
+    assert eqs[eqs.index("CH-1+CWP-1") + 1:eqs.index("CH-1+CWP-1") + 3] == ["CH-1", "CWP-1"]
+    # The loads that did not change are never called rising or falling.
+    for eq in ("AC-1", "FZ-1", "AHU-1"):
+        assert rows[eq]["verdict"] in ("steady", "unclear"), rows[eq]

@@ -17,10 +17,12 @@ from pathlib import Path
 
 import numpy as np
 import polars as pl
-from scipy.special import ndtr, ndtri
 
 from disagg import __version__
+from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
 from disagg.analyses.pipeline import CAUTION, check_confidence, load_inputs
+from disagg.analyses.verdict import RULE as VERDICT_RULE
+from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: F401 - VERDICTS: API
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
 from disagg.fit.estimate import Estimates, estimate_draws
@@ -28,14 +30,10 @@ from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part o
 
 COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
            "kw_after_low", "kw_after_high", "change", "p_value", "verdict"]
-VERDICTS = ("rising", "falling", "steady", "unclear")
 # An estimate with one of these flags says more about the prior or the schedule than about
 # the draw, so a change between two of them is no evidence (the flags of estimate.py).
 UNCLEAR_FLAGS = ("prior-driven", "schedule-bound", "not-run")
 UNCLEAR_FLAG_PREFIXES = ("inseparable:",)
-# A change whose interval reaches further than +-50 % of the earlier draw is too vague to
-# call either way (common practice, no source).
-MAX_CHANGE_HALF_WIDTH = 0.5
 # Smallest relative change called rising or falling by default: 5 % of the earlier draw
 # (common practice, no source: below that, metering and weather noise dominate in practice).
 DEFAULT_MIN_CHANGE = 0.05
@@ -51,9 +49,11 @@ METHOD = {
     "change": "after / before - 1 (fraction); interval by the delta method for a ratio",
     "verdict": ("unclear when an id is fitted in only one period, or either estimate is "
                 "prior-driven, inseparable:<id>, schedule-bound or not-run, or the earlier draw "
-                "is 0 kW, or the change's interval reaches beyond +-50 % of the earlier draw; "
-                "else rising or falling when p_value < 1 - confidence and |change| >= "
-                "min_change; else steady"),
+                "is 0 kW; else the rule shared with disagg history --compare "
+                "(disagg.analyses.verdict): " + VERDICT_RULE),
+    "groups": ("loads whose run-hours are correlated at |r| >= 0.95 over the two periods are "
+               "compared as their group A+B (its combined draw, fitted with the members' "
+               "priors set aside); the members' rows say so"),
     "weather": ("a draw that varies with outdoor temperature is compared at the earlier "
                 "fit's reference temperature (the site's [weather] reference_temp when set)"),
     "multiple_comparisons": "none: each equipment is tested on its own",
@@ -155,11 +155,13 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
     Verdict:
         ``unclear`` when the id is fitted in only one period (absent, not run, combined or
         folded into the baseload in the other), when either estimate is flagged
-        ``prior-driven``, ``inseparable:<id>``, ``schedule-bound`` or ``not-run``, when the
-        earlier draw is 0 kW, or when the change's interval reaches beyond +-50 % of the
-        earlier draw (MAX_CHANGE_HALF_WIDTH; common practice, no source); otherwise
-        ``rising`` or ``falling`` when p_value < 1 - confidence and |change| >= min_change;
-        otherwise ``steady``. No correction for testing several loads at once.
+        ``prior-driven``, ``inseparable:<id>``, ``schedule-bound`` or ``not-run``, or when
+        the earlier draw is 0 kW; otherwise the shared rule of
+        ``disagg.analyses.verdict.change_verdict`` (also used by ``disagg history
+        --compare``): ``rising`` or ``falling`` when p_value < 1 - confidence and
+        |change| >= min_change; ``steady`` when two one-sided tests (Schuirmann 1987) put
+        the change inside +-min_change; else ``unclear``. No correction for testing several
+        loads at once.
 
     Args:
         before, after: the two periods' fits (``disagg.fit.estimate.estimate_draws``).
@@ -175,8 +177,6 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
         Casella, G. & Berger, R. L. (2002). Statistical Inference, 2nd ed., Duxbury,
         section 5.5.4 (the delta method; from memory).
     """
-    q = float(ndtri(0.5 + confidence / 2.0))
-    alpha = 1.0 - confidence
     ids: list[str] = []
     for est in (before, after):
         for eq_id in [t.id for t in est.terms] + est.base_id.split("+")[1:]:
@@ -205,20 +205,13 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
                 reasons.append(f"no draw of its own in the {name} period ({s['where']})")
         change = p = None
         if not reasons:
-            diff = a["kw"] - b["kw"]
-            se_diff = math.hypot(a["se_kw"], b["se_kw"])
-            z = diff / se_diff if se_diff > 0 else (0.0 if diff == 0 else math.copysign(math.inf, diff))
-            p = float(2.0 * ndtr(-abs(z)))
-            detail["z"] = z
-            if b["kw"] > 0:
-                change = a["kw"] / b["kw"] - 1.0
-                half = q * math.hypot(a["se_kw"], (a["kw"] / b["kw"]) * b["se_kw"]) / b["kw"]
-                detail["change_low"], detail["change_high"] = change - half, change + half
-                if half > MAX_CHANGE_HALF_WIDTH:
-                    reasons.append(f"the change's interval {change - half:+.0%} to "
-                                   f"{change + half:+.0%} reaches beyond +-"
-                                   f"{MAX_CHANGE_HALF_WIDTH:.0%} of the earlier draw")
-            else:
+            v = change_verdict(b["kw"], b["se_kw"], a["kw"], a["se_kw"], confidence,
+                               min_change)
+            p, change = v["p_value"], v["change"]
+            detail["z"] = v["z"]
+            detail["change_low"], detail["change_high"] = v["change_low"], v["change_high"]
+            detail["p_equivalence"] = v["p_equivalence"]
+            if change is None:
                 reasons.append("the earlier draw is 0 kW: no relative change")
             for name, s in (("before", b), ("after", a)):
                 bad = _unclear_flags(s["flags"])
@@ -227,16 +220,42 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
         if reasons:
             verdict = "unclear"
             detail["reason"] = "; ".join(reasons)
-        elif p < alpha and abs(change) >= min_change:
-            verdict = "rising" if change > 0 else "falling"
         else:
-            verdict = "steady"
+            verdict = v["verdict"]
+            if verdict == "unclear":
+                detail["reason"] = (f"the change's interval {v['change_low']:+.1%} to "
+                                    f"{v['change_high']:+.1%} is neither clearly beyond nor "
+                                    f"clearly inside +-{min_change:.0%}")
         row.update(change=change, p_value=p, verdict=verdict)
         detail.update(change=change, p_value=p, verdict=verdict)
         rows.append(row)
         details.append(detail)
     schema = {c: (pl.String if c in ("equipment", "verdict") else pl.Float64) for c in COLUMNS}
     return pl.DataFrame(rows, schema=schema, orient="row"), details
+
+
+def add_member_rows(table: pl.DataFrame, details: list[dict],
+                    groups: list[list[str]]) -> tuple[pl.DataFrame, list[dict]]:
+    """After each group's row, one row per member saying it is covered by the group."""
+    rows, out = [], []
+    for row, d in zip(table.iter_rows(named=True), details):
+        rows.append(row)
+        out.append(d)
+        for g in groups:
+            if row["equipment"] == group_id(g):
+                for m in g:
+                    rows.append({c: None for c in COLUMNS} | {"equipment": m,
+                                                             "verdict": "unclear"})
+                    out.append({"equipment": m, "flags_before": [], "flags_after": [],
+                                "se_before_kw": None, "se_after_kw": None, "z": None,
+                                "change_low": None, "change_high": None, "change": None,
+                                "p_value": None, "verdict": "unclear",
+                                "covered_by": row["equipment"],
+                                "reason": (f"covered by the group row {row['equipment']!r}: "
+                                           "its members run together and the data cannot "
+                                           "tell them apart")})
+    schema = {c: (pl.String if c in ("equipment", "verdict") else pl.Float64) for c in COLUMNS}
+    return pl.DataFrame(rows, schema=schema, orient="row"), out
 
 
 def _period_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
@@ -283,7 +302,7 @@ def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> dict:
 def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
                  after: tuple[dt.date, dt.date], confidence: float = 0.95,
                  min_change: float = DEFAULT_MIN_CHANGE,
-                 log_offset_min: float = 0.0) -> CompareResult:
+                 log_offset_min: float | None = None) -> CompareResult:
     """Fit each period on its own and say, per equipment, whether its draw changed.
 
     Args:
@@ -307,11 +326,24 @@ def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
         raise ConfigError(f"--before {before[0]}:{before[1]} and --after {after[0]}:{after[1]} "
                           "overlap; expected two separate periods")
     site, aligned = load_inputs(site_path, log_offset_min=log_offset_min)
+    return compare_aligned(site, aligned, before, after, confidence, min_change)
+
+
+def compare_aligned(site: SiteConfig, aligned: Aligned, before: tuple[dt.date, dt.date],
+                    after: tuple[dt.date, dt.date], confidence: float = 0.95,
+                    min_change: float = DEFAULT_MIN_CHANGE) -> CompareResult:
+    """compare_site on intervals already read and aligned (see compare_site)."""
     local_day = (aligned.frame["start_utc"].dt.convert_time_zone(site.timezone).dt.date()
                  .to_numpy())
-    est_before = _period_fit(site, aligned, local_day, before, "--before", confidence)
-    est_after = _period_fit(site, aligned, local_day, after, "--after", confidence)
+    # Loads the two periods' data cannot tell apart are compared as their group.
+    both = (((local_day >= before[0]) & (local_day <= before[1]))
+            | ((local_day >= after[0]) & (local_day <= after[1])))
+    groups = inseparable_groups(site, dataclasses.replace(aligned, use=aligned.use & both))
+    gsite = grouped_site(site, groups)
+    est_before = _period_fit(gsite, aligned, local_day, before, "--before", confidence)
+    est_after = _period_fit(gsite, aligned, local_day, after, "--after", confidence)
     table, details = compare_estimates(est_before, est_after, confidence, min_change)
+    table, details = add_member_rows(table, details, groups)
     report = {
         "tool": f"disagg {__version__}",
         "site": site.name,
@@ -320,6 +352,7 @@ def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
         "confidence": confidence,
         "min_change": min_change,
         "method": METHOD,
+        "groups": [group_id(g) for g in groups],
         "periods": {"before": _period_report(est_before, before),
                     "after": _period_report(est_after, after)},
         "equipment": details,

@@ -11,7 +11,9 @@ letters, digits, ``.``, ``_`` and ``-`` replaced by ``_`` (``Main Library.toml``
 ``Main_Library``). The file name, not the ``[site] name``, so that renaming a building's
 display name does not split its history and the id is the same as the folder ``disagg batch``
 writes the site's outputs into. Two site files with the same name in different folders that
-share one history folder would share an id: give them different file names.
+share one history folder would share an id: give them different file names. Two file names
+that differ only in the characters replaced (``a b.toml`` and ``a_b.toml``) would also share
+one; storing the second is refused with an error naming both files.
 
 A period is a local calendar month of the site. Storing a month replaces everything stored
 for that site, kind and month, so running a month twice leaves one copy. Each stored breakdown
@@ -35,29 +37,40 @@ writes any output, so a bad history folder fails with nothing written; if storin
 after the outputs were written, its error says so (:func:`outputs_already_written`).
 
 Writes are atomic per run: every new month file is first written in full into a hidden
-temporary folder inside FOLDER, and only then renamed into place (``os.replace``, atomic on one
-file system). An error or interruption while writing leaves the stored history exactly as it
-was; one during the renames leaves each month either wholly old or wholly new.
+staging folder inside FOLDER, and then all of them are put in place as one set behind one
+commit point (disagg.present.commit): an error, Ctrl-C or kill leaves all of the run's months
+stored or none of them. Runs storing into one folder take turns on its lock file
+(``FOLDER/.disagg-lock``, fcntl.flock): the read of stored months, the merge and the write of
+one run never interleave with another's, so two runs at once lose no month or day.
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import fcntl
 import os
 import re
 import shutil
 import tempfile
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import polars as pl
+from scipy.special import ndtri
 
 from disagg import __version__
+from disagg.analyses.verdict import RULE as VERDICT_RULE
+from disagg.analyses.verdict import change_verdict
 from disagg.errors import DisaggError, InputError, OutputError
+from disagg.present import commit
 
 KINDS = ("breakdown", "drift")
+# The lock file inside the history folder, and how long a run waits for another's lock [s].
+LOCK_FILE = ".disagg-lock"
+LOCK_TIMEOUT_S = 600.0
 # Partition keys (taken from the folder names, never stored inside the files).
 HIVE_SCHEMA = {"site": pl.String, "period": pl.String}
 
@@ -84,9 +97,19 @@ DRIFT_SCHEMA = {
 _SCHEMAS = {"breakdown": BREAKDOWN_SCHEMA, "drift": DRIFT_SCHEMA}
 
 
+# A site file with this generic name (a folder per building, each holding site.toml) is
+# known by its folder's name instead.
+GENERIC_SITE_STEM = "site"
+
+
 def site_id(site_file: str | Path) -> str:
-    """The history's id of a site: its file name without .toml, filesystem-safe."""
-    text = re.sub(r"[^A-Za-z0-9._-]", "_", Path(site_file).stem).lstrip(".")
+    """The history's id of a site: its file name without .toml (for ``site.toml``, its
+    folder's name), filesystem-safe."""
+    path = Path(site_file)
+    stem = path.stem
+    if stem == GENERIC_SITE_STEM and path.parent.name:
+        stem = path.parent.name
+    text = re.sub(r"[^A-Za-z0-9._-]", "_", stem).lstrip(".")
     return text or "site"
 
 
@@ -135,35 +158,86 @@ def _write_part(frame: pl.DataFrame, path: Path) -> None:
     frame.write_parquet(path)
 
 
+@contextlib.contextmanager
+def _locked(folder: Path) -> Iterator[None]:
+    """Hold the history folder's lock file (fcntl.flock on FOLDER/.disagg-lock) inside the
+    block: runs storing into one folder take turns, so none loses another's months or days.
+
+    Raises:
+        OutputError: the lock file cannot be opened, or another run held it for
+            LOCK_TIMEOUT_S seconds.
+    """
+    path = folder / LOCK_FILE
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
+    except OSError as exc:
+        raise OutputError(f"{path}: cannot open the history's lock file ({exc.strerror})") from None
+    try:
+        deadline = time.monotonic() + LOCK_TIMEOUT_S
+        while True:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                break
+            except BlockingIOError:
+                if time.monotonic() > deadline:
+                    raise OutputError(f"{path}: another run has held the history's lock for "
+                                      f"{LOCK_TIMEOUT_S:g} s; try again when it has finished") from None
+                time.sleep(0.05)
+            except OSError as exc:  # a file system without locks
+                raise OutputError(f"{path}: cannot lock the history ({exc.strerror})") from None
+        yield
+    finally:
+        os.close(fd)  # releases the lock
+
+
 def _replace_months(folder: Path, kind: str, site: str,
                     months: dict[str, pl.DataFrame]) -> list[Path]:
-    """Write every month's file into a temporary folder inside folder, then rename each into
-    place; see the module docstring.
+    """Write every month's file into a staging folder inside folder, then put them all in
+    place as one set (disagg.present.commit): all the run's months or none.
 
     Raises:
         OutputError: the folder cannot be created or written.
     """
     folder = check_folder(folder)
+    tmp = commit.staging(folder, "history folder")
+    moves = []
     try:
-        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=folder))
-    except OSError as exc:
-        raise OutputError(f"{folder}: cannot write in the history folder ({exc.strerror})") from None
-    targets = []
-    try:
-        staged = []
         for i, (period, frame) in enumerate(sorted(months.items())):
-            part = tmp / f"{i}.parquet"
-            _write_part(frame, part)
-            staged.append((part, _month_dir(folder, kind, site, period) / "part.parquet"))
-        for part, target in staged:
-            target.parent.mkdir(parents=True, exist_ok=True)
-            os.replace(part, target)
-            targets.append(target)
-    except OSError as exc:
-        raise OutputError(f"{folder}: cannot write the history ({exc.strerror})") from None
+            name = f"{i}.parquet"
+            _write_part(frame, tmp / name)
+            moves.append((name, _month_dir(folder, kind, site, period) / "part.parquet"))
+        commit._step("staged")
+        commit.commit(tmp, moves)
+    except (OSError, pl.exceptions.PolarsError) as exc:
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else \
+            (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+        raise OutputError(f"{folder}: cannot write the history ({reason})") from None
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    return targets
+    return [target for _, target in moves]
+
+
+def _check_id(folder: Path, kind: str, sid: str, site) -> None:
+    """Refuse to store a site under an id that another site file's history already uses
+    (``a b.toml`` and ``a_b.toml`` both have the id ``a_b``).
+
+    Raises:
+        OutputError: naming both files.
+    """
+    site_dir = folder / f"kind={kind}" / f"site={sid}"
+    for part in sorted(site_dir.glob("period=*/part.parquet"))[:1]:
+        try:
+            stored = pl.read_parquet(part, columns=["site_file"]).get_column("site_file")
+        except (OSError, pl.exceptions.PolarsError):
+            return  # read (and reported) where the month itself is read
+        names = {Path(f).name for f in stored.drop_nulls().unique().to_list()}
+        mine = Path(site.path).name
+        if names and mine not in names:
+            other = sorted(names)[0]
+            raise OutputError(
+                f"{site.path}: its history id {sid!r} is already used in {folder} by the site "
+                f"file {other}; file names that differ only in characters other than letters, "
+                "digits, '.', '_' and '-' share an id: rename one of the two site files")
 
 
 def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
@@ -258,30 +332,33 @@ def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None
         table = table.with_columns(pl.lit(tariff.currency).alias("currency"))
     coverage = month_coverage(result.aligned, site.timezone)
     table = table.join(coverage, on="period", how="left", maintain_order="left")
-    months, skipped = {}, {}
-    for (period,), g in table.group_by("period", maintain_order=True):
-        new = g.row(0, named=True)
-        have = _days(new["days_with_data"] or 0, new["first_date"], new["last_date"])
-        cut = _cut_short(period, date_from, date_to)
-        if cut is not None:
-            skipped[period] = (f"{period} not stored in the history: {cut}, so this run has "
-                               f"only part of the month (data on {have}); a month is stored "
-                               "only from a run whose range holds all of it, and any stored "
-                               "run of it is kept")
-            continue
-        old_path = _month_dir(root, "breakdown", sid, period) / "part.parquet"
-        if old_path.exists():
-            old = _read_file(old_path, BREAKDOWN_SCHEMA).row(0, named=True)
-            if (old["days_with_data"] is not None
-                    and (new["days_with_data"] or 0) < old["days_with_data"]):
-                skipped[period] = (
-                    f"{period} not stored in the history: the stored run of this month has "
-                    f"data on {_days(old['days_with_data'], old['first_date'], old['last_date'])}"
-                    f", this run only on {have}; the stored month is kept (delete "
-                    f"{old_path.parent} to replace it)")
+    root = check_folder(root)
+    with _locked(root):
+        _check_id(root, "breakdown", sid, site)
+        months, skipped = {}, {}
+        for (period,), g in table.group_by("period", maintain_order=True):
+            new = g.row(0, named=True)
+            have = _days(new["days_with_data"] or 0, new["first_date"], new["last_date"])
+            cut = _cut_short(period, date_from, date_to)
+            if cut is not None:
+                skipped[period] = (f"{period} not stored in the history: {cut}, so this run has "
+                                   f"only part of the month (data on {have}); a month is stored "
+                                   "only from a run whose range holds all of it, and any stored "
+                                   "run of it is kept")
                 continue
-        months[period] = _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
-    files = _replace_months(root, "breakdown", sid, months) if months else []
+            old_path = _month_dir(root, "breakdown", sid, period) / "part.parquet"
+            if old_path.exists():
+                old = _read_file(old_path, BREAKDOWN_SCHEMA).row(0, named=True)
+                if (old["days_with_data"] is not None
+                        and (new["days_with_data"] or 0) < old["days_with_data"]):
+                    skipped[period] = (
+                        f"{period} not stored in the history: the stored run of this month has "
+                        f"data on {_days(old['days_with_data'], old['first_date'], old['last_date'])}"
+                        f", this run only on {have}; the stored month is kept (delete "
+                        f"{old_path.parent} to replace it)")
+                    continue
+            months[period] = _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
+        files = _replace_months(root, "breakdown", sid, months) if months else []
     return Stored(files, skipped)
 
 
@@ -298,26 +375,50 @@ def store_drift(folder: str | Path, site, drift_result) -> list[Path]:
     Raises:
         OutputError: the history folder cannot be written.
     """
-    folder = Path(folder)
+    folder = check_folder(folder)
     sid = site_id(site.path)
-    table = drift_result.table.with_columns(pl.col("date").dt.strftime("%Y-%m").alias("period"))
-    months = {}
-    for (period,), g in table.group_by("period", maintain_order=True):
-        new = _stamp(g.drop("period"), site, DRIFT_SCHEMA)
-        old_path = _month_dir(folder.resolve(), "drift", sid, period) / "part.parquet"
-        if old_path.exists():
-            old = _read_file(old_path, DRIFT_SCHEMA)
-            new = pl.concat([old.filter(~pl.col("date").is_in(new["date"].implode())), new])
-            new = new.sort("date", maintain_order=True)
-        months[period] = new
-    return _replace_months(folder, "drift", sid, months)
+    with _locked(folder):
+        _check_id(folder, "drift", sid, site)
+        table = drift_result.table.with_columns(pl.col("date").dt.strftime("%Y-%m").alias("period"))
+        months = {}
+        for (period,), g in table.group_by("period", maintain_order=True):
+            new = _stamp(g.drop("period"), site, DRIFT_SCHEMA)
+            old_path = _month_dir(folder, "drift", sid, period) / "part.parquet"
+            if old_path.exists():
+                old = _read_file(old_path, DRIFT_SCHEMA)
+                new = pl.concat([old.filter(~pl.col("date").is_in(new["date"].implode())), new])
+                new = new.sort("date", maintain_order=True)
+            months[period] = new
+        return _replace_months(folder, "drift", sid, months)
 
 
 def _read_file(path: Path, schema: dict) -> pl.DataFrame:
     try:
         frame = pl.read_parquet(path)
     except (OSError, pl.exceptions.PolarsError) as exc:
-        raise InputError(f"{path}: cannot read this history file ({exc})") from None
+        raise InputError(f"{path}: cannot read this history file ({_first_line(exc)})") from None
+    return _conform(frame, schema, path)
+
+
+def _first_line(exc: BaseException) -> str:
+    lines = str(exc).strip().splitlines()
+    return lines[0] if lines else type(exc).__name__
+
+
+def _conform(frame: pl.DataFrame, schema: dict, where: Path) -> pl.DataFrame:
+    """frame with exactly the schema's columns (missing ones null).
+
+    Raises:
+        InputError: a column holds values of another kind (a file not written by disagg).
+    """
+    for c, t in schema.items():
+        if c in frame.columns:
+            try:
+                frame.get_column(c).cast(t, strict=True)
+            except (pl.exceptions.PolarsError, ValueError, TypeError):
+                raise InputError(f"{where}: not a disagg history file: its column {c!r} holds "
+                                 f"{frame.schema[c]}, expected {t}; move it out of the history "
+                                 "folder") from None
     return frame.select(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
                         for c, t in schema.items())
 
@@ -348,10 +449,9 @@ def read_history(folder: str | Path, site: str | None = None,
             lf = lf.filter(pl.col("site") == site)
         frame = lf.collect()
     except (OSError, pl.exceptions.PolarsError) as exc:
-        raise InputError(f"{root}: cannot read the history ({exc})") from None
-    frame = frame.select(*(pl.col(c).cast(t) for c, t in HIVE_SCHEMA.items()),
-                         *(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
-                           for c, t in schema.items()))
+        raise InputError(f"{root}: cannot read the history ({_first_line(exc)})") from None
+    frame = pl.concat([frame.select(*(pl.col(c).cast(t) for c, t in HIVE_SCHEMA.items())),
+                       _conform(frame, schema, root)], how="horizontal")
     return frame.sort("site", "period", maintain_order=True)
 
 
@@ -370,10 +470,32 @@ class HistoryComparison:
 COMPARE_METHOD = (
     "from stored monthly draws, no refit: each period's draw is the run-hour-weighted mean of "
     "its months' kw, and its interval the run-hour-weighted means of kw_low and kw_high (as if "
-    "the months' errors were fully correlated: wider than a refit's); rising or falling only "
-    "when the two intervals do not overlap and the change is at least --min-change, else "
-    "unclear; months that were not stored are simply absent. disagg compare refits the "
-    "periods' data and is the exact method.")
+    "the months' errors were fully correlated: wider than a refit's); its standard error the "
+    "interval's larger half over the normal 97.5 % point; then the verdict rule shared with "
+    "disagg compare: " + VERDICT_RULE + "; unclear when a stored month of either period is "
+    "flagged prior-driven, schedule-bound, not-run or inseparable:<id> (disagg compare "
+    "compares such loads as their group); missing when a period has no stored run-hours. "
+    "Months that were not stored are simply absent. disagg compare refits the periods' data "
+    "and is the exact method.")
+# Stored rows with these flags (or inseparable:<id>) are unclear, as in disagg compare.
+UNCLEAR_FLAGS = ("prior-driven", "schedule-bound", "not-run")
+# Stored intervals are the breakdown's 95 % intervals (its default confidence).
+STORED_CONFIDENCE = 0.95
+
+
+def period_verdict(kw_before: float, low_before: float, high_before: float, kw_after: float,
+                   low_after: float, high_after: float, min_change: float = 0.05,
+                   confidence: float = STORED_CONFIDENCE) -> dict:
+    """The shared verdict (disagg.analyses.verdict) on two periods' stored draws.
+
+    Each period's standard error is the larger half of its interval over the normal
+    quantile of the stored intervals' level, as disagg compare takes the larger half over
+    the fit's critical value.
+    """
+    z = float(ndtri(0.5 + STORED_CONFIDENCE / 2.0))
+    se_b = max(high_before - kw_before, kw_before - low_before) / z
+    se_a = max(high_after - kw_after, kw_after - low_after) / z
+    return change_verdict(kw_before, se_b, kw_after, se_a, confidence, min_change)
 
 
 def parse_months(text: str, option: str) -> tuple[str, str]:
@@ -406,10 +528,11 @@ def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
     - its interval is the run-hour-weighted mean of the months' ``kw_low`` and ``kw_high``:
       the months' errors are treated as fully correlated, so the interval is never narrower
       than a month's and is wider than a fit over the whole period would give;
-    - the verdict is ``rising`` or ``falling`` only when the two intervals do not overlap
-      and the relative change is at least min_change; otherwise ``unclear``. Non-overlap
-      of two intervals is a stricter test than the interval of the difference, so a real
-      change can be called unclear; ``missing`` when a period has no stored run-hours;
+    - the verdict is the rule shared with ``disagg compare`` (period_verdict,
+      disagg.analyses.verdict.change_verdict): ``rising`` / ``falling`` when the change is
+      significant and at least min_change, ``steady`` when two one-sided tests put it
+      inside +-min_change, else ``unclear``; ``missing`` when a period has no stored
+      run-hours;
     - rows are matched by equipment name as stored (a combined row ``A+B`` is its own row).
 
     ``disagg compare`` refits the two periods' data and is the exact method.
@@ -440,19 +563,30 @@ def compare_from_history(folder: str | Path, site: str, before: tuple[str, str],
             ((pl.col("kw_low") * weight).sum() / weight.sum()).alias(f"kw_{name}_low"),
             ((pl.col("kw_high") * weight).sum() / weight.sum()).alias(f"kw_{name}_high"),
             weight.sum().alias(f"run_hours_{name}"),
-            pl.col("period").n_unique().alias(f"months_{name}"))
+            pl.col("period").n_unique().alias(f"months_{name}"),
+            pl.col("flags").fill_null("").str.join(";").alias(f"_flags_{name}"))
     table = frames["before"].join(frames["after"], on="equipment", how="full",
                                   coalesce=True, maintain_order="left_right")
     b, a = pl.col("kw_before"), pl.col("kw_after")
     usable = (pl.col("run_hours_before") > 0) & (pl.col("run_hours_after") > 0) & (b > 0)
     change = pl.when(usable).then(a / b - 1.0).otherwise(None)
-    table = table.with_columns(change.alias("change")).with_columns(
-        pl.when(~usable.fill_null(False)).then(pl.lit("missing"))
-        .when((pl.col("kw_after_low") > pl.col("kw_before_high"))
-              & (pl.col("change") >= min_change)).then(pl.lit("rising"))
-        .when((pl.col("kw_after_high") < pl.col("kw_before_low"))
-              & (pl.col("change") <= -min_change)).then(pl.lit("falling"))
-        .otherwise(pl.lit("unclear")).alias("verdict"))
+    table = table.with_columns(change.alias("change"), usable.fill_null(False).alias("_usable"))
+    verdicts = []
+    for r in table.iter_rows(named=True):
+        if not r["_usable"]:
+            verdicts.append("missing")
+            continue
+        flags = f"{r['_flags_before'] or ''};{r['_flags_after'] or ''}".split(";")
+        if any(f in UNCLEAR_FLAGS or f.startswith("inseparable:") for f in flags):
+            # As disagg compare: a draw the prior or the schedule decides is no evidence of
+            # a change (a group is compared as one row only by a refit, disagg compare).
+            verdicts.append("unclear")
+            continue
+        verdicts.append(period_verdict(r["kw_before"], r["kw_before_low"], r["kw_before_high"],
+                                       r["kw_after"], r["kw_after_low"], r["kw_after_high"],
+                                       min_change)["verdict"])
+    table = table.drop("_usable", "_flags_before", "_flags_after").with_columns(
+        pl.Series("verdict", verdicts, pl.String))
     periods = {name: sorted(hist.filter(pl.col("period").is_between(pl.lit(rng[0]),
                                                                     pl.lit(rng[1])))["period"]
                             .unique().to_list())

@@ -6,7 +6,9 @@ fails leaves the output folder untouched.
 
 from __future__ import annotations
 
+import datetime as dt
 import math
+import zoneinfo
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -143,7 +145,10 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
 def check_summary(result: CheckResult) -> str:
     r = result.report
     c = r["intervals"]
-    lines = [f"{r['site']}: {r['period']['start_utc']} to {r['period']['end_utc']} (UTC), "
+    zone = zoneinfo.ZoneInfo(result.site.timezone)
+    start, end = (dt.datetime.fromisoformat(r["period"][k]).astimezone(zone).isoformat()
+                  for k in ("start_utc", "end_utc"))
+    lines = [f"{r['site']}: {start} to {end} ({result.site.timezone}), "
              f"{r['interval_min']}-minute meter intervals",
              f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
              f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
@@ -172,25 +177,31 @@ def drift_summary(result: DriftResult) -> str:
     s = result.summary
     t = result.table
     lines = [f"{s['site']}: step size mu = {s['step_size_mu']:.4g} "
-             f"(stable range {s['stable_range']}), reference {s['reference']['from']} to "
-             f"{s['reference']['to']}, threshold {100 * s['threshold']:g} %",
+             f"(stable range 0 < mu < 2), threshold {100 * s['threshold']:g} %; each load "
+             "tracked from its own reference period",
              "",
-             f"{'equipment':<22} {'reference kW':>12} {'latest kW':>10} {'change':>8} "
-             f"{'memory d':>9}  alarm"]
+             f"{'equipment':<22} {'reference period':>23} {'reference kW':>12} {'latest kW':>10} "
+             f"{'change':>8} {'memory d':>9}  alarm"]
+    windows = s.get("reference_per_equipment", {})
     alarmed = {a["equipment"]: a for a in s["alarms"]}
     for eq in t["equipment"].unique(maintain_order=True):
         rows = t.filter(pl.col("equipment") == eq)
         last = rows.row(-1, named=True)
         mem = s["memory_days_per_equipment"].get(eq)
         change = last["change"]
-        lines.append(f"{eq[:22]:<22} {last['kw_reference']:>12.2f} {last['kw_tracked']:>10.2f} "
+        w = windows.get(eq)
+        period = f"{w[0]} to {w[1]}" if w else "-"
+        lines.append(f"{eq[:22]:<22} {period:>23} {last['kw_reference']:>12.2f} "
+                     f"{last['kw_tracked']:>10.2f} "
                      f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
                      f"{'-' if mem is None else f'{mem:.0f}':>9}  "
                      + (f"since {alarmed[eq]['first_alarm_date']}" if eq in alarmed else ""))
     for a in s["alarms"]:
         lines.append(f"Alarm: {a['equipment']} from {a['first_alarm_date']}: draw "
                      f"{100 * a['change']:+.1f} % ({100 * a['change_low']:+.1f} to "
-                     f"{100 * a['change_high']:+.1f} %) as of {a['as_of']}")
+                     f"{100 * a['change_high']:+.1f} %) as of {a['as_of']}"
+                     + (f" (mean of its last {a['recent_days']} days, the tracker's lag taken "
+                        "out)" if "recent_days" in a else ""))
     lines += [f"Note: {n}" for n in s["notes"]]
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
@@ -222,8 +233,9 @@ def compare_summary(result: CompareResult) -> str:
                      f"{rng(row['kw_after_low'], row['kw_after_high']):>15} "
                      f"{change:>8} {p_text:>8}  {row['verdict']}")
     lines.append(f"rising/falling: p-value under {1 - r['confidence']:.3g} and a change of at "
-                 f"least {100 * r['min_change']:g} %; steady: neither; unclear: the data cannot "
-                 "tell (why below).")
+                 f"least {100 * r['min_change']:g} %; steady: two one-sided tests put the change "
+                 f"inside +-{100 * r['min_change']:g} %; unclear: the data cannot tell (why "
+                 "below).")
     for d in r["equipment"]:
         if d.get("reference_temp_c") is not None:
             lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
@@ -288,7 +300,7 @@ def portfolio_summary(result: PortfolioResult, seconds: float | None = None) -> 
         lines.append(f"history: {unstored} site{'s' * (unstored != 1)} with months not stored "
                      "(a --from/--to range that cuts a month short, or a stored month with "
                      "more data); see history_note in portfolio.csv")
-    lines.append("file: the site file's name (its output folder); peak kW: the highest "
+    lines.append("file: the site file's path in the portfolio without .toml (its output folder); peak kW: the highest "
                  "monthly peak demand of the intervals used; cost: over the range (sites "
                  "with a [tariff])")
     lines.append("CV(RMSE) and NMBE: hourly, as ASHRAE Guideline 14 defines them (criteria 30 % "

@@ -277,8 +277,11 @@ def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: di
     ref0 = dt.date.fromisoformat(ref["from"]) if ref.get("from") else None
     ref1 = dt.date.fromisoformat(ref["to"]) if ref.get("to") else None
     alarms = {a["equipment"]: a for a in summary.get("alarms", [])}
+    own = summary.get("reference_per_equipment", {})
     for k, name in enumerate(names):
         ax = axes[k // cols][k % cols]
+        ref0, ref1 = (tuple(dt.date.fromisoformat(d) for d in own[name]) if name in own
+                      else (ref0, ref1))
         rows = table.filter(pl.col("equipment") == name).sort("date")
         days = rows["date"].to_numpy()
         kw = rows["kw_tracked"].to_numpy().astype(float)
