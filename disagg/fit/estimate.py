@@ -581,15 +581,16 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     chosen = next(sc for sc in choice.scores if sc.form.name == choice.form.name)
     form_moves: dict[int, list[str]] = {}
     edge_moves: dict[int, str] = {}
+    credible = choice.credible()
     for c in range(k):
         spread2 = sum(sc.weight * (sc.draws_kw[c] - chosen.draws_kw[c]) ** 2
-                      for sc in choice.credible() if sc is not chosen)
+                      for sc in credible if sc is not chosen)
         if spread2 > (NUMERICAL_TOL * max(abs(coef[c]), 1.0)) ** 2:
             extra = q_hac * np.sqrt(spread2)
             low[c] = coef[c] - np.hypot(coef[c] - low[c], extra)
             high[c] = coef[c] + np.hypot(high[c] - coef[c], extra)
             widened[c] = True
-        for sc in choice.credible():
+        for sc in credible:
             if sc is chosen:
                 continue
             d = abs(sc.draws_kw[c] - chosen.draws_kw[c])
