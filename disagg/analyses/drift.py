@@ -200,7 +200,7 @@ def _fit_window(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
     require_usable(site, ref_aligned)
     try:
         # The tracker's design carries the declared profile's columns (no wandering level):
-        # the reference fit uses that form.
+        # its reference fits use that form, so their baseload weights fit the design.
         return estimate_draws(site, ref_aligned, confidence,
                               form=Form(site.baseload.profile, level=False))
     except ValueError as exc:
