@@ -771,22 +771,23 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
         return tau2
     _, wfirst = np.unique(week, return_index=True)
     wfirst = np.sort(wfirst)
-    hh = np.add.reduceat(H * H, wfirst, axis=0)
-    hu = H * u[:, None]
     _, dfirst = np.unique(days, return_index=True)
     dfirst = np.sort(dfirst)
-    dsum = np.add.reduceat(hu, dfirst, axis=0)  # per day
     day_week = week[dfirst]
     _, dw = np.unique(day_week, return_inverse=True)
-    var_num = np.zeros((len(wfirst), k))
-    np.add.at(var_num, dw.reshape(-1), dsum**2)
-    run = np.add.reduceat(H, wfirst, axis=0)
-    for j in range(k):
-        ok = (run[:, j] >= 1.0) & (hh[:, j] > 0) & (var_num[:, j] > 0)
+    dw = dw.reshape(-1)
+    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
+        h = H[:, j]
+        hu = h * u
+        hh = np.add.reduceat(h * h, wfirst)
+        run = np.add.reduceat(h, wfirst)
+        var_num = np.bincount(dw, weights=np.add.reduceat(hu, dfirst) ** 2,
+                              minlength=len(wfirst))
+        ok = (run >= 1.0) & (hh > 0) & (var_num > 0)
         if ok.sum() < 3:
             continue
-        est = b[j] + np.add.reduceat(hu[:, j], wfirst)[ok] / hh[ok, j]
-        var = var_num[ok, j] / hh[ok, j] ** 2
+        est = b[j] + np.add.reduceat(hu, wfirst)[ok] / hh[ok]
+        var = var_num[ok] / hh[ok] ** 2
         w = 1.0 / var
         mean = np.sum(w * est) / np.sum(w)
         Q = float(np.sum(w * (est - mean) ** 2))
@@ -813,10 +814,13 @@ def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSet
         for edge in (spell.start_min, spell.end_min):
             d = np.abs(minute - edge)
             near |= on_day & (np.minimum(d, 1440 - d) <= SCHEDULE_EDGE_MIN)
-    frac = H / interval_h[:, None]
-    switch = np.abs(np.diff(frac, axis=0)) >= 0.5
-    total = switch.sum(axis=0)
-    at_edge = (switch & (near[1:] | near[:-1])[:, None]).sum(axis=0)
+    edge_step = near[1:] | near[:-1]
+    total = np.zeros(k)
+    at_edge = np.zeros(k)
+    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
+        switch = np.abs(np.diff(H[:, j] / interval_h)) >= 0.5
+        total[j] = switch.sum()
+        at_edge[j] = (switch & edge_step).sum()
     return np.where(total >= SCHEDULE_EDGE_MIN_SWITCHES, at_edge / np.maximum(total, 1), 0.0)
 
 
