@@ -75,8 +75,8 @@ SIMPLER = {"constant": (), "occupied": ("constant",), "hour-of-week": ("occupied
 FORM_SENSITIVE = 0.10
 HOW_LEVELS = 168
 # Rows above which the forms are compared on a sample of whole weeks (choose_form): about
-# 13 weeks of 15-minute data. Project choice for speed, no outside source.
-COMPARE_MAX_ROWS = 9000
+# 9 weeks of 15-minute data. Project choice for speed, no outside source.
+COMPARE_MAX_ROWS = 6000
 # A load with at least this share of its switching within SCHEDULE_EDGE_MIN minutes of the
 # declared schedule's edges (and at least SCHEDULE_EDGE_MIN_SWITCHES switches) is flagged
 # schedule-edge. Common practice, no source.
