@@ -826,3 +826,11 @@ def test_the_summary_points_at_a_run_log_clock_offset_first(result):
     html = _summary(dataclasses.replace(result, fit=fit), None, [])
     look = html[html.index("What to look at:"):]
     assert look.index("run-log clock seems off") < look.index("note")
+
+
+@pytest.mark.parametrize("key", ["months", "draws", "warnings", "fit_quality", "intervals"])
+def test_a_missing_fit_key_fails_loudly_instead_of_an_empty_section(result, key):
+    # fit.json's content is read by key: a renamed key must not give a silently empty page.
+    broken = dataclasses.replace(result, fit={k: v for k, v in result.fit.items() if k != key})
+    with pytest.raises(KeyError):
+        render_report(broken, None)

@@ -277,7 +277,7 @@ def _run_site(job: SiteJob) -> SiteOutcome:
     table = result.breakdown
     periods = table["period"].unique().sort()
     totals = table.group_by("equipment", maintain_order=True).agg(pl.col("kwh").sum())
-    hourly = result.fit.get("fit_quality", {}).get("hourly") or {}
+    hourly = result.fit["fit_quality"].get("hourly") or {}
     month_peaks = (table.filter(pl.col("peak_kw").is_not_null())
                    .group_by("period").agg(pl.col("peak_kw").sum())["peak_kw"])
     tariff = result.fit.get("tariff")

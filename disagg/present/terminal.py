@@ -55,7 +55,7 @@ def breakdown_summary(result: BreakdownResult) -> str:
         .when(pl.col("equipment") == "unexplained").then(last + 1)
         .otherwise(pl.col("o")).alias("o")).sort("o", maintain_order=True)
     periods = t["period"].unique().sort()
-    own = any(m.get("own_fit") for m in result.fit.get("months", {}).values())
+    own = any(m.get("own_fit") for m in result.fit["months"].values())
     lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
              f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
              "",
@@ -108,7 +108,7 @@ def breakdown_summary(result: BreakdownResult) -> str:
                       f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
                       "30 % / 10 %)"]
     lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
-    months = result.fit.get("months", {})
+    months = result.fit["months"]
     if months:
         n_own = sum(1 for m in months.values() if m.get("own_fit"))
         lines.append(f"{n_own} of {len(months)} months fitted on their own data; their draws, "

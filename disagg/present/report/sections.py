@@ -261,7 +261,7 @@ def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
         parts = [f"{e(a['equipment'])} {_pct(a['change'])} since the reference period "
                  f"(first alarm {e(a['first_alarm_date'])})" for a in drift.summary["alarms"]]
         return "drift alarms for " + "; ".join(parts) + " (see Drift over time)."
-    months = {p: m for p, m in sorted(result.fit.get("months", {}).items()) if m.get("own_fit")}
+    months = {p: m for p, m in sorted(result.fit["months"].items()) if m.get("own_fit")}
     if len(months) >= 2:
         (p0, m0), (p1, m1) = next(iter(months.items())), list(months.items())[-1]
         first = {d["equipment"]: d["kw"] for d in m0["draws"] if d.get("kw")}
@@ -282,16 +282,16 @@ def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
 def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[str]:
     fit = result.fit
     out = []
-    clock = [w for w in fit.get("warnings", []) if "match the meter best" in str(w)
+    clock = [w for w in fit["warnings"] if "match the meter best" in str(w)
              or "run-log clock looks off" in str(w)]
     if clock:
         out.append("the run-log clock seems off from the meter's (see the notes on the fit "
                    "page): fix it first, it biases every draw.")
-    grouped = [d["equipment"] for d in fit.get("draws", []) if "+" in d["equipment"]]
+    grouped = [d["equipment"] for d in fit["draws"] if "+" in d["equipment"]]
     if grouped:
         out.append(f"{_names(grouped)} run together and are shown as one row: a separate "
                    "run-log point or a spot measurement would split them.")
-    hourly = (fit.get("fit_quality") or {}).get("ashrae_guideline_14") or {}
+    hourly = (fit["fit_quality"] or {}).get("ashrae_guideline_14") or {}
     if hourly and hourly.get("hourly_meets") is False:
         out.append("the hourly fit does not meet the ASHRAE Guideline 14 criteria: read the "
                    "figures as rough.")
@@ -299,7 +299,7 @@ def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[
     if metered and abs(unexplained) / metered >= UNEXPLAINED_WORTH_NAMING:
         out.append(f"{_num(100 * unexplained / metered, 0)} % of the metered energy is "
                    "unexplained: a load without a run log may be missing.")
-    n_notes = len(group_kinds(fit.get("warnings", [])))
+    n_notes = len(group_kinds(fit["warnings"]))
     if n_notes:
         out.append(f"{n_notes} note{'s' * (n_notes != 1)} on the data and the fit (fit page).")
     return out[:LOOK_AT]
@@ -308,7 +308,7 @@ def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[
 def _header(result: BreakdownResult, periods: list[str]) -> str:
     first, last = local_span(result)
     fit = result.fit
-    c = fit.get("intervals", {})
+    c = fit["intervals"]
     months = (f"{len(periods)} month{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}"
               if periods else "no months")
     sections = ["The range at a glance", "Month by month", "Drift over time", "How good the fit is",
@@ -317,7 +317,7 @@ def _header(result: BreakdownResult, periods: list[str]) -> str:
     toc = "".join(f'<li><a href="#{i}">{s}</a></li>' for i, s in zip(ids, sections))
     made = dt.datetime.now(_zone(result.site.timezone)).date().isoformat()
     return (f'<header class="top"><h1>{e(result.site.name)}</h1>'
-            f"<p>Generated on {made} by {e(str(fit.get('tool', 'disagg')))}.</p>"
+            f"<p>Generated on {made} by {e(str(fit['tool']))}.</p>"
             f"<p>Energy by equipment, {e(first)} to {e(last)} (local dates, "
             f"{e(result.site.timezone)}): {e(months)}.</p>"
             f"<p>{interval_counts(c)}; intervals at {100 * result.estimates.confidence:g} % "
@@ -331,7 +331,7 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
     rows = _range_rows(table, names, metered)
     has_cost, has_peak = _has_cost(table), _has_peak(table)
     cur = _currency(result)
-    draws = {d["equipment"]: d for d in result.fit.get("draws", [])}
+    draws = {d["equipment"]: d for d in result.fit["draws"]}
     full_names = {eq.id: eq.name for eq in result.site.equipment}
     loads_kwh = sum(r["kwh"] for r in rows if not _is_base(r["equipment"])
                     and r["equipment"] not in ("unexplained", "estimated-gaps"))
@@ -393,7 +393,7 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
     tab = tab.replace("</tbody>", "<tr class=\"total\">" + "".join(
         f'<td class="num">{c}</td>' if headers[i][1] else f"<td>{c}</td>"
         for i, c in enumerate(total)) + "</tr></tbody>")
-    own = any(m.get("own_fit") for m in result.fit.get("months", {}).values())
+    own = any(m.get("own_fit") for m in result.fit["months"].values())
     notes = [
         "Energy and its interval are sums over the months"
         + (" of each month's own fit" if own else "")
@@ -562,7 +562,7 @@ def _months(result: BreakdownResult, ch: _Charts, names: list[str], periods: lis
                        "peak share [kW] is its estimated draw during that interval (coincident "
                        "with the billing peak, not the load's own maximum), and its demand cost "
                        f"is that share times the demand price. {UNEXPLAINED_PEAK}</p>")]
-    not_own = {p: m for p, m in result.fit.get("months", {}).items() if not m.get("own_fit")}
+    not_own = {p: m for p, m in result.fit["months"].items() if not m.get("own_fit")}
     if not_own:
         parts.append("<p class=\"muted\">"
                      + "; ".join(f"{e(p)}: {e(str(m.get('reason', '')))}"
@@ -634,7 +634,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
     fit = result.fit
     when, y, f, unit = _fit_series(result)
     svg1, svg2 = _fit_charts(ch, when, y, f, unit)
-    q = fit.get("fit_quality", {})
+    q = fit["fit_quality"]
     g14 = q.get("ashrae_guideline_14", {})
     hc = g14.get("hourly_criteria", {"cv_rmse_pct": 30.0, "nmbe_pct": 10.0})
     mc = g14.get("monthly_criteria", {"cv_rmse_pct": 15.0, "nmbe_pct": 5.0})
@@ -664,7 +664,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
     quality = _table([("level", False), ("points [count]", True), ("CV(RMSE) [%]", True),
                       ("limit [%]", True), ("NMBE [%]", True), ("limit [%]", True),
                       ("ASHRAE Guideline 14 criteria", False)], rows)
-    c = fit.get("intervals", {})
+    c = fit["intervals"]
     words = [("in_range", "meter intervals in the range (first to last reading)"),
              ("intervals", "in the meter file"),
              ("used", "used by the fit"),
@@ -675,9 +675,9 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
              ("weather_unknown", "no outdoor temperature near them (left out)")]
     c = {**c, "in_range": int(c.get("intervals", 0)) + int(c.get("absent", 0))}
     count_rows = [[e(w), _num(c.get(k))] for k, w in words if k in c]
-    unknown = {k: v for k, v in fit.get("unknown_intervals_by_equipment", {}).items() if v}
-    findings = fit.get("meter_validation", [])
-    warnings = fit.get("warnings", [])
+    unknown = {k: v for k, v in fit["unknown_intervals_by_equipment"].items() if v}
+    findings = fit["meter_validation"]
+    warnings = fit["warnings"]
     finding_messages = {str(fd.get("message", "")) for fd in findings}
     other_warnings = group_kinds([w for w in warnings if str(w) not in finding_messages])
     parts = ['<section class="page" id="fit"><h2>4. How good the fit is</h2>',
@@ -705,7 +705,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
         parts.append("<p>The meter validation (gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours, register rollovers) raised no finding; "
                      "intervals left out for other reasons are counted above.</p>")
-    form = fit.get("baseload", {}).get("form")
+    form = fit["baseload"].get("form")
     if form:
         parts.append("<h3>The baseload's form</h3><p>" + form_sentence(form) + "</p>")
     if other_warnings:
@@ -742,10 +742,10 @@ def _temp(value_c: float | None, unit: str) -> str:
 
 def _priors_section(result: BreakdownResult) -> str:
     fit = result.fit
-    ident = fit.get("identifiability", {})
+    ident = fit["identifiability"]
     bound = ident.get("correlation_bound", 0.95)
     pd_weight = ident.get("prior_driven_weight", 0.5)
-    draws = fit.get("draws", [])
+    draws = fit["draws"]
     unit = result.site.weather.unit if result.site.weather is not None else "C"
     sentences: list[str] = []
     groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
@@ -820,7 +820,7 @@ def _priors_section(result: BreakdownResult) -> str:
                          "cover those results (the notes on the fit page say by how much).")
     folded = ident.get("folded_into_baseload", [])
     if folded:
-        base = fit.get("baseload", {}).get("row", "baseload")
+        base = fit["baseload"].get("row", "baseload")
         sentences.append(f"{_names(folded)} ran on the same schedule as the baseload and have "
                          f"no prior: their energy is reported in the row <b>{e(base)}</b>.")
     if groups["meter"]:
