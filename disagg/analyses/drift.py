@@ -408,6 +408,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         first_alarm: dict[str, str] = {}
         tail: list[list[float]] = []
         stats_tail: list = []
+        min_run_h = min_reference_run_h
     else:
         _check_state(state, site)
         ids, members, flags = state["ids"], state["members"], state["flags"]
@@ -425,6 +426,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         sd = np.array(state["sd_kw"])
         tau_intervals = np.array(state["tau_intervals"], dtype=float)
         tail = state["daily_tail"]
+        min_run_h = float(state.get("min_reference_run_h", MIN_REFERENCE_RUN_H))
         ls_factor = np.array(state["ls_factor"], dtype=float)
         stats_tail = [(np.array(S_), np.array(b_), c_, n_)
                       for S_, b_, c_, n_ in state["day_stats_tail"]]
@@ -481,7 +483,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     rows = []
     alarms = []
     for j, eq in enumerate(ids):
-        why = _not_alarmed(flags[j], ref_run_h[j])
+        why = _not_alarmed(flags[j], ref_run_h[j], min_run_h)
         if why is None:
             alarm = ewma_alarms(recent[:, j], ref_kw[j], sd_alarm[:, j], threshold,
                                 chart_limit(tau_days[j]))
@@ -593,6 +595,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "first_alarm": first_alarm,
         "daily_tail": series[-n_tail:].tolist(),
         "ls_factor": ls_factor.tolist(),
+        "min_reference_run_h": min_run_h,
         "day_stats_tail": [[S_.tolist(), b_.tolist(), c_, n_]
                            for S_, b_, c_, n_ in (stats_tail + day_stats)[-n_tail:]],
         "last_row": {"end_utc": frame["end_utc"][-1].isoformat(),
@@ -690,13 +693,13 @@ def _status(site, aligned, ids, members, groups, no_reference, main_est, run_tot
     return rows
 
 
-def _not_alarmed(flags: list[str], run_h: float) -> str | None:
+def _not_alarmed(flags: list[str], run_h: float,
+                 min_run_h: float = MIN_REFERENCE_RUN_H) -> str | None:
     for f in flags:
         if any(f.startswith(p) for p in NOT_ALARMED_FLAGS):
             return f"its reference draw is {f}: the data cannot pin it down"
-    if run_h < MIN_REFERENCE_RUN_H:
-        return (f"only {run_h:.0f} run-hours in its reference period, under "
-                f"{MIN_REFERENCE_RUN_H:g}")
+    if run_h < min_run_h:
+        return f"only {run_h:.0f} run-hours in its reference period, under {min_run_h:g}"
     return None
 
 
