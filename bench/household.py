@@ -50,7 +50,7 @@ from pathlib import Path
 
 import polars as pl
 
-# The data's clock: fixed UTC+1 without daylight saving (references.md section 11; [ran]:
+# The data's clock: fixed UTC+1 without daylight saving (docs/references.md section 11; [ran]:
 # all 2,075,258 steps between rows are exactly one minute, so no hour repeats or is skipped). IANA "Etc/GMT-1" is UTC+1 (the sign is inverted).
 TIMEZONE = "Etc/GMT-1"
 UTC_OFFSET = "+01:00"

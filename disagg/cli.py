@@ -46,7 +46,26 @@ def _fail(message: str, code: int = 1) -> None:
 
 
 def _guard(fn):
-    """Run fn(); turn library errors into one Error line (exit 1)."""
+    """Run fn(); turn library errors into one Error line (exit 1).
+
+    Python and library warnings (numpy's RuntimeWarning, ...) are not printed: what matters
+    to the engineer is in the outputs' notes and an error is an Error line; --debug shows
+    them after the command.
+    """
+    import warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            return _guarded(fn)
+        finally:
+            if _state["debug"]:
+                for w in caught:
+                    typer.echo(warnings.formatwarning(w.message, w.category, w.filename,
+                                                      w.lineno).rstrip(), err=True)
+
+
+def _guarded(fn):
     try:
         return fn()
     except DisaggError as exc:
@@ -65,6 +84,15 @@ def _guard(fn):
             raise
         _fail(f"internal error ({type(exc).__name__}: {exc}); run `disagg --debug ...` for the "
               "full trace and report it", code=2)
+
+
+def _signal_name(signum: int) -> str:
+    import signal
+
+    try:
+        return signal.Signals(signum).name
+    except ValueError:
+        return f"signal {signum}"
 
 
 def _date(value: str | None, option: str) -> dt.date | None:
@@ -109,11 +137,14 @@ ToOpt = Annotated[Optional[str], typer.Option("--to", help="Last local date to u
                                               "(YYYY-MM-DD), inclusive; default: the meter's last.")]
 ConfOpt = Annotated[float, typer.Option("--confidence", help="Confidence level of the "
                                         "intervals, a fraction.")]
-DupOpt = Annotated[str, typer.Option("--on-duplicate", help="Meter readings repeated with "
-                                     "different values: error, keep-first or keep-last.")]
-OffsetOpt = Annotated[float, typer.Option("--log-offset", help="Minutes to add to every "
-                                          "run-log time to put it on the meter's clock (see "
-                                          "check --find-offset).")]
+DupOpt = Annotated[Optional[str], typer.Option(
+    "--on-duplicate", show_default=False, help="Meter readings repeated with different "
+    "values: error, keep-first or keep-last; default: the site file's [meter] on_duplicate, "
+    "else error.")]
+OffsetOpt = Annotated[Optional[float], typer.Option(
+    "--log-offset", show_default=False, help="Minutes to add to every run-log time to put it "
+    "on the meter's clock (see check --find-offset); default: the site file's [runlog] "
+    "log_offset_minutes, else 0.")]
 XlsxOpt = Annotated[bool, typer.Option("--xlsx", help="Also write breakdown.xlsx: one sheet "
                                        "per table, units in the headers.")]
 ReportOpt = Annotated[bool, typer.Option("--report", help="Also write report.html, the "
@@ -132,8 +163,8 @@ def breakdown(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
-    log_offset: OffsetOpt = 0.0,
-    on_duplicate: DupOpt = "error",
+    log_offset: OffsetOpt = None,
+    on_duplicate: DupOpt = None,
     estimate: Annotated[bool, typer.Option("--estimate", help="Fill meter gaps of at most 4 "
                                            "intervals by linear interpolation, for the monthly "
                                            "totals only (an estimated-gaps row per month).")] = False,
@@ -161,12 +192,12 @@ def check(
     site: SiteArg,
     date_from: FromOpt = None,
     date_to: ToOpt = None,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
     find_offset: Annotated[bool, typer.Option("--find-offset", help="Also search the run "
                                               "log's clock offset from the meter.")] = False,
     offset_window: Annotated[float, typer.Option("--offset-window", help="Search the offset "
                                                  "over plus/minus this many minutes.")] = 30.0,
-    on_duplicate: DupOpt = "error",
+    on_duplicate: DupOpt = None,
 ) -> None:
     """Read and align the inputs and report what was found, without fitting."""
     from disagg.jobs.site import CheckOptions, run_check
@@ -225,7 +256,7 @@ def drift(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
 ) -> None:
     """Track every draw day by day with a delta-rule tracker and raise drift alarms."""
     from disagg.inputs.config import parse_period
@@ -256,7 +287,7 @@ def compare(
     min_change: Annotated[float, typer.Option("--min-change", help="Smallest change called "
                                               "rising or falling, a fraction of the earlier "
                                               "draw.")] = 0.05,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
     from_history: Annotated[bool, typer.Option("--from-history", help="Take the periods' "
                                                "draws from the stored months of the site's "
                                                "[history] (--before/--after as months such "
@@ -284,10 +315,13 @@ def compare(
 @app.command()
 def batch(
     portfolio: Annotated[Path, typer.Argument(help="A folder of site TOML files (every *.toml "
-                                              "directly in it), or a portfolio TOML listing "
-                                              "them.", show_default=False)],
-    out: Annotated[Path, typer.Option("--out", help="Folder for portfolio.csv and one output "
-                                      "folder per site (named after its site file).")],
+                                              "directly in it and every */site.toml one level "
+                                              "down), or a portfolio TOML listing them.",
+                                              show_default=False)],
+    out: Annotated[Path, typer.Option("--out", help="Folder for portfolio.csv, "
+                                      "portfolio_equipment.csv and one output folder per site "
+                                      "(its site file's path in the portfolio without "
+                                      ".toml).")],
     workers: Annotated[int | None, typer.Option("--workers", help="Local worker processes; "
                                                 "default: all cores.")] = None,
     cluster: Annotated[str | None, typer.Option("--cluster", help="Address of a running "
@@ -320,10 +354,12 @@ def batch(
         except BatchInterrupted as stop:
             # No portfolio.csv for part of the sites: a previous complete one stays, and a
             # script never reads a partial table as the portfolio's.
-            typer.echo(f"Interrupted: {stop.finished} site{'s' * (stop.finished != 1)} "
+            signum = getattr(stop, "signum", None)
+            what = "Interrupted" if signum is None else f"Stopped by {_signal_name(signum)}"
+            typer.echo(f"{what}: {stop.finished} site{'s' * (stop.finished != 1)} "
                        f"finished, {stop.not_run} not run; portfolio.csv not written",
                        err=True)
-            raise typer.Exit(130) from None
+            raise typer.Exit(130 if signum is None else 128 + signum) from None
         if not quiet:
             typer.echo(done.summary)
             typer.echo(f"\nWrote {done.paths[0]} and each site's files in {out.resolve()}/<site>/")
@@ -379,7 +415,7 @@ def report(
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,
-    log_offset: OffsetOpt = 0.0,
+    log_offset: OffsetOpt = None,
     memory: Annotated[float, typer.Option("--memory", help="Drift tracker memory in days.")] = 30.0,
     reference: Annotated[str | None, typer.Option("--reference", help="Drift reference "
                                                   "period FROM:TO (local dates); default "

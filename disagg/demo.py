@@ -119,7 +119,8 @@ spells = ["Mon-Fri 07:00-12:00", "Mon-Fri 19:00-21:00"]
 
 
 def _cycler(n: int, on_s: float, off_s: float, rng: np.random.Generator) -> np.ndarray:
-    """Alternating on/off spells with gamma-distributed lengths, on a 10-second grid."""
+    """Alternating on/off spells with gamma-distributed lengths, on a 10-second grid (0/1 as
+    int8: one byte a step)."""
     mean = (on_s + off_s) / STEP_S
     m = int(n / mean * 1.3) + 10
     on = np.maximum(1, rng.gamma(4.0, on_s / STEP_S / 4.0, m).round().astype(int))
@@ -127,110 +128,208 @@ def _cycler(n: int, on_s: float, off_s: float, rng: np.random.Generator) -> np.n
     lengths = np.column_stack([on, off]).ravel()
     while lengths.sum() < n:
         lengths = np.concatenate([lengths, lengths])
-    states = np.tile([1, 0], len(lengths) // 2)
+    states = np.tile(np.array([1, 0], dtype=np.int8), len(lengths) // 2)
     out = np.repeat(states, lengths)[:n]
     return np.roll(out, int(rng.integers(0, len(lengths))))
 
 
+# Steps per chunk of the calendar arithmetic (about a month): the year's 3.15 million steps
+# are handled a month at a time, so that only a few whole-year arrays exist at once.
+_CHUNK = 8640 * 31
+
+
+def _calendar(n: int, epoch0: int, ar: np.ndarray, day_shift: np.ndarray,
+              closed: np.ndarray) -> dict[str, np.ndarray]:
+    """Per-step temperature [C] and the schedule masks, computed a month at a time.
+
+    Returns temp_c (float64), the boolean masks occupied, occ_open (occupied on a day the
+    building is open), cool_hours (the chiller's daytime window), ahu2, hwp (heating-pump
+    hours in the heating season), ef_sched (the exhaust fan's schedule) and month (int8).
+    """
+    out = {"temp_c": np.empty(n)}
+    for k in ("occupied", "occ_open", "cool_hours", "ahu2", "hwp", "ef_sched"):
+        out[k] = np.empty(n, dtype=bool)
+    out["month"] = np.empty(n, dtype=np.int8)
+    for a in range(0, n, _CHUNK):
+        b = min(a + _CHUNK, n)
+        i = np.arange(a, b, dtype=np.int64)
+        utc_s = epoch0 + STEP_S * i
+        local = (pl.Series(utc_s * 1_000_000).cast(pl.Datetime("us", "UTC"))
+                 .dt.convert_time_zone(TZ))
+        hour = (local.dt.hour().to_numpy() + local.dt.minute().to_numpy() / 60.0)
+        wday = local.dt.weekday().to_numpy() - 1  # 0 = Monday
+        doy = local.dt.ordinal_day().to_numpy()
+        out["month"][a:b] = local.dt.month().to_numpy()
+        day_index = (utc_s - epoch0) // 86400
+        # Outdoor temperature [C]: season, day-night swing, and weather spells (hourly AR(1)).
+        temp_c = (13.0 - 13.0 * np.cos(2 * np.pi * (doy - 20) / 365.0)
+                  + 5.0 * np.sin(2 * np.pi * (hour - 9.0) / 24.0)
+                  + ar[(utc_s - epoch0) // 3600])
+        out["temp_c"][a:b] = temp_c
+        weekday = wday < 5
+        saturday = wday == 5
+        occupied = ((weekday & (hour >= 7) & (hour < 19))
+                    | (saturday & (hour >= 8) & (hour < 13)))
+        open_today = ~closed[day_index]
+        shift = day_shift[day_index]
+        out["occupied"][a:b] = occupied
+        out["occ_open"][a:b] = occupied & open_today
+        out["cool_hours"][a:b] = ((hour >= 6) & (hour < 20) & weekday) | (temp_c > 27.0)
+        out["ahu2"][a:b] = ((weekday & (hour >= 6.5 + shift) & (hour < 19.5 + 0.5 * shift))
+                            | (saturday & (hour >= 7.5 + shift) & (hour < 13.5))) & open_today
+        out["hwp"][a:b] = (temp_c < 14.0) & (hour >= 5) & (hour < 21)
+        out["ef_sched"][a:b] = occupied & open_today & (hour >= 7.0 + np.abs(shift))
+    return out
+
+
+class _Loads:
+    """Each load's per-step draw [kW] x status ** exponent folded into one running sum the
+    moment the load is simulated (in LOADS order, as a left-to-right sum), with its event
+    rows and its truth (energy, run-hours, by month) kept; no per-load whole-year array is
+    kept. The arithmetic is element by element in chunks; the sums over the year are taken
+    over whole-year arrays, as numpy's pairwise summation would take them in one piece."""
+
+    def __init__(self, n: int, epoch0: int, starts: np.ndarray):
+        self.n, self.epoch0, self.starts = n, epoch0, starts
+        self.total_kw = np.zeros(n)
+        self.first = True
+        self.events: dict[str, pl.DataFrame] = {}
+        self.truth: dict[str, tuple[float, float, np.ndarray, np.ndarray]] = {}
+
+    def add(self, eq: str, status: np.ndarray, draw, exponent: float = 1.0) -> None:
+        """status: bool (on/off) or float (0..1); draw: kW, or a function (a, b) -> the
+        draws of steps a..b-1."""
+        n = self.n
+        step_h = STEP_S / 3600.0
+        change = np.flatnonzero(status[1:] != status[:-1]) + 1
+        idx = np.concatenate([[0], change, [n - 1]])
+        times = self.epoch0 + STEP_S * idx.astype(np.int64)
+        times[-1] = self.epoch0 + STEP_S * (n - 1) + STEP_S  # the closing state, Jan 1 00:00
+        self.events[eq] = pl.DataFrame({"utc_s": times, "point": eq,
+                                        "state": status[idx].astype(float)})
+        buf = np.empty(n)
+        for a in range(0, n, _CHUNK):
+            b = min(a + _CHUNK, n)
+            powered = np.power(status[a:b].astype(float), exponent)
+            per_step = (draw(a, b) if callable(draw) else draw) * powered
+            if self.first:
+                self.total_kw[a:b] = per_step
+            else:
+                self.total_kw[a:b] += per_step
+            buf[a:b] = per_step * step_h
+        self.first = False
+        e_total, e_months = float(buf.sum()), np.add.reduceat(buf, self.starts)
+        for a in range(0, n, _CHUNK):
+            b = min(a + _CHUNK, n)
+            buf[a:b] = np.power(status[a:b].astype(float), exponent) * step_h
+        self.truth[eq] = (e_total, float(buf.sum()), e_months, np.add.reduceat(buf, self.starts))
+
+
 def simulate(seed: int = SEED) -> dict:
-    """Simulate the year. Returns the meter frame, event frame and truth frames."""
+    """Simulate the year. Returns the meter frame, event frame and truth frames.
+
+    Memory: the year is 3.15 million 10-second steps; the calendar is computed a month at a
+    time and each load is folded into the running total as soon as it is simulated, so that
+    the peak stays near ten whole-year arrays (bench/RESULTS.md). The random draws are made
+    in a fixed order, so the files are the same on every machine.
+    """
     rng = np.random.default_rng(seed)
     zone = zoneinfo.ZoneInfo(TZ)
     t0 = dt.datetime(YEAR, 1, 1, tzinfo=zone)
     t1 = dt.datetime(YEAR + 1, 1, 1, tzinfo=zone)
     n = int((t1 - t0).total_seconds()) // STEP_S
     epoch0 = int(t0.timestamp())
-    utc_s = epoch0 + STEP_S * np.arange(n, dtype=np.int64)
-    local = pl.Series(utc_s * 1_000_000).cast(pl.Datetime("us", "UTC")).dt.convert_time_zone(TZ)
-    hour = (local.dt.hour().to_numpy() + local.dt.minute().to_numpy() / 60.0)
-    wday = local.dt.weekday().to_numpy() - 1  # 0 = Monday
-    doy = local.dt.ordinal_day().to_numpy()
-    day_index = (utc_s - epoch0) // 86400
+    n_days = (STEP_S * (n - 1)) // 86400 + 1
 
-    # Outdoor temperature [C]: season, day-night swing, and weather spells (hourly AR(1)).
     n_hours = n * STEP_S // 3600 + 2
     ar = np.zeros(n_hours)
     shocks = rng.normal(0.0, 0.9, n_hours)
     for i in range(1, n_hours):
         ar[i] = 0.97 * ar[i - 1] + shocks[i]
-    temp_c = (13.0 - 13.0 * np.cos(2 * np.pi * (doy - 20) / 365.0)
-              + 5.0 * np.sin(2 * np.pi * (hour - 9.0) / 24.0)
-              + ar[(utc_s - epoch0) // 3600])
+    day_shift = rng.normal(0.0, 0.4, n_days)  # optimum start, hours
+    closed = rng.random(n_days) < 0.03  # holidays and closures
+    cal = _calendar(n, epoch0, ar, day_shift, closed)
+    temp_c, occupied = cal["temp_c"], cal["occupied"]
+    month_no = cal.pop("month")
+    starts = np.searchsorted(month_no, np.arange(1, 13))
+    del month_no
+    loads = _Loads(n, epoch0, starts)
 
-    weekday = wday < 5
-    saturday = wday == 5
-    day_shift = rng.normal(0.0, 0.4, int(day_index.max()) + 1)  # optimum start, hours
-    closed = rng.random(int(day_index.max()) + 1) < 0.03  # holidays and closures
-    occupied = ((weekday & (hour >= 7) & (hour < 19)) | (saturday & (hour >= 8) & (hour < 13)))
-    open_today = ~closed[day_index]
-
-    status: dict[str, np.ndarray] = {}
-    draw: dict[str, np.ndarray] = {}
     # Chiller and its pump: cooling season, daytime, cycling on load.
-    cool = (temp_c > 17.0) & (((hour >= 6) & (hour < 20) & weekday) | (temp_c > 27.0))
+    cool = (temp_c > 17.0) & cal.pop("cool_hours")
     ch = cool & (_cycler(n, 2400, 900, rng) == 1)
-    status["CH-1"] = ch.astype(float)
-    draw["CH-1"] = 78.0 * (1.0 + 0.015 * (temp_c - 27.0))
-    status["CHWP-1"] = status["CH-1"].copy()
-    draw["CHWP-1"] = np.full(n, 14.5)
+    del cool
+    loads.add("CH-1", ch, lambda a, b: 78.0 * (1.0 + 0.015 * (temp_c[a:b] - 27.0)))
+    loads.add("CHWP-1", ch, 14.5)
     ct = ch & (_cycler(n, 1200, 900, rng) == 1)  # fans stage on condenser pressure
-    status["CT-1"] = ct.astype(float)
-    draw["CT-1"] = np.full(n, 10.6)
+    del ch
+    loads.add("CT-1", ct, 10.6)
+    del ct
     # VFD supply fan for the stacks: runs always, speed follows load and occupancy.
-    speed_slow = np.repeat(rng.uniform(0.0, 1.0, n // 90 + 1), 90)[:n]
-    speed = np.clip(0.45 + 0.25 * occupied + 0.012 * np.abs(temp_c - 20.0) + 0.15 * speed_slow,
-                    0.3, 1.0)
-    speed = np.round(speed, 2)
-    status["AHU-1"] = speed
-    draw["AHU-1"] = np.full(n, 34.0)
+    slow = rng.uniform(0.0, 1.0, n // 90 + 1)  # one value per 15 minutes
+    speed = np.empty(n)
+    for a in range(0, n, _CHUNK):
+        b = min(a + _CHUNK, n)
+        speed_slow = slow[np.arange(a, b) // 90]
+        speed[a:b] = np.round(np.clip(0.45 + 0.25 * occupied[a:b]
+                                      + 0.012 * np.abs(temp_c[a:b] - 20.0) + 0.15 * speed_slow,
+                                      0.3, 1.0), 2)
+    loads.add("AHU-1", speed, 34.0, 2.5)
+    del speed
     # Office fan: occupied hours with a start that moves a little each day, off on closures.
-    shift = day_shift[day_index]
-    ahu2 = ((weekday & (hour >= 6.5 + shift) & (hour < 19.5 + 0.5 * shift))
-            | (saturday & (hour >= 7.5 + shift) & (hour < 13.5))) & open_today
-    status["AHU-2"] = ahu2.astype(float)
-    draw["AHU-2"] = np.full(n, 10.2)
-    heat_season = temp_c < 14.0
-    hwp = heat_season & (hour >= 5) & (hour < 21)
-    status["HWP-1"] = hwp.astype(float)
-    draw["HWP-1"] = np.full(n, 4.6)
+    loads.add("AHU-2", cal.pop("ahu2"), 10.2)
+    hwp = cal.pop("hwp")
+    loads.add("HWP-1", hwp, 4.6)
     duty_cold = np.clip((10.0 - temp_c) / 18.0, 0.0, 0.9)
-    boiler = hwp & (rng.random(n // 180 + 1)[np.arange(n) // 180] < duty_cold)
-    status["EB-1"] = boiler.astype(float)
-    draw["EB-1"] = np.full(n, 57.0)
-    status["DHW-1"] = (_cycler(n, 1500, 9000, rng) == 1).astype(float)
-    draw["DHW-1"] = np.full(n, 17.6)
+    boiler = hwp & (np.repeat(rng.random(n // 180 + 1), 180)[:n] < duty_cold)
+    del duty_cold, hwp
+    loads.add("EB-1", boiler, 57.0)
+    del boiler
+    loads.add("DHW-1", _cycler(n, 1500, 9000, rng) == 1, 17.6)
     ac = _cycler(n, 300, 700, rng) == 1
-    status["AC-1"] = (ac & (occupied | (_cycler(n, 600, 2400, rng) == 1))).astype(float)
-    draw["AC-1"] = np.full(n, 7.4)
+    loads.add("AC-1", ac & (occupied | (_cycler(n, 600, 2400, rng) == 1)), 7.4)
+    del ac
     humid = np.clip(0.25 + 0.5 * np.clip((temp_c - 10.0) / 20.0, 0.0, 1.0), 0.1, 0.85)
     dh_cycle = _cycler(n, 1800, 1800, rng) == 1
-    dh = dh_cycle & (rng.random(n // 360 + 1)[np.arange(n) // 360] < humid * 1.4)
-    status["DH-1"] = dh.astype(float)
+    dh = dh_cycle & (np.repeat(rng.random(n // 360 + 1), 360)[:n] < humid * 1.4)
+    del humid, dh_cycle
     degrade_from = int(dt.datetime(YEAR, 8, 1, tzinfo=zone).timestamp())
-    draw["DH-1"] = np.where(utc_s >= degrade_from, 12.0 * 1.15, 12.0)
-    ef = (occupied & open_today & (hour >= 7.0 + np.abs(shift))) | (_cycler(n, 3600, 30000, rng) == 1)
-    status["EF-1"] = ef.astype(float)
-    draw["EF-1"] = np.full(n, 3.1)
+    first_degraded = -(-(degrade_from - epoch0) // STEP_S)  # first step at or after it
+    loads.add("DH-1", dh, lambda a, b: np.where(np.arange(a, b) >= first_degraded,
+                                                12.0 * 1.15, 12.0))
+    del dh
+    loads.add("EF-1", cal.pop("ef_sched") | (_cycler(n, 3600, 30000, rng) == 1), 3.1)
+    hourly = np.arange(0, n, 360)
+    temp_hourly_c = temp_c[hourly]
+    occ_open = cal.pop("occ_open")
+    del cal, temp_c, occupied
 
-    exponents = {"AHU-1": 2.5}
     # Baseload: occupied 42 kW, unoccupied 21 kW, plus a slow wander (plugs, lights, IT).
     wander = np.repeat(np.cumsum(rng.normal(0, 0.25, n // 360 + 2)), 360)[:n]
     # Remove the slow trend (one-day moving mean) so the wander has no net drift.
     c = np.concatenate([[0.0], np.cumsum(wander)])
-    lo = np.clip(np.arange(n) - 4320, 0, n)
-    hi = np.clip(np.arange(n) + 4320, 0, n)
-    wander = wander - (c[hi] - c[lo]) / (hi - lo)
-    base_kw = np.where(occupied & open_today, 42.0, 21.0) + np.clip(wander, -4, 4)
+    for a in range(0, n, _CHUNK):
+        b = min(a + _CHUNK, n)
+        i = np.arange(a, b)
+        lo = np.clip(i - 4320, 0, n)
+        hi = np.clip(i + 4320, 0, n)
+        wander[a:b] = wander[a:b] - (c[hi] - c[lo]) / (hi - lo)
+    del c
+    base_kw = np.where(occ_open, 42.0, 21.0)
+    base_kw += np.clip(wander, -4, 4)
+    del wander, occ_open
 
     step_h = STEP_S / 3600.0
-    per_step = {k: draw[k] * np.power(status[k], exponents.get(k, 1.0)) for k in status}
-    total_kw = base_kw + sum(per_step.values())
+    total_kw = loads.total_kw
+    total_kw += base_kw  # the same sum as base + (sum of the loads), a + b being b + a
     # Meter: 15-minute sums (90 steps), small reading noise, 0.01 kWh resolution.
     k = 90
     m = n // k
     kwh = total_kw[: m * k].reshape(m, k).sum(axis=1) * step_h
+    del total_kw
+    loads.total_kw = np.empty(0)
     kwh = np.round(kwh + rng.normal(0.0, 0.15, m), 2)
-    ends = utc_s[: m * k : k] + k * STEP_S
+    ends = epoch0 + STEP_S * np.arange(0, m * k, k, dtype=np.int64) + k * STEP_S
     end_local = (pl.Series(ends * 1_000_000).cast(pl.Datetime("us", "UTC"))
                  .dt.convert_time_zone(TZ))
     meter = pl.DataFrame({
@@ -238,15 +337,9 @@ def simulate(seed: int = SEED) -> dict:
         "kwh": kwh,
     })
 
-    rows = []
-    for load in LOADS:
-        s = status[load.id]
-        change = np.flatnonzero(np.diff(s) != 0) + 1
-        idx = np.concatenate([[0], change, [n - 1]])
-        times = utc_s[idx]
-        times[-1] = utc_s[-1] + STEP_S  # the export's closing state, at midnight on Jan 1
-        rows.append(pl.DataFrame({"utc_s": times, "point": load.id, "state": s[idx]}))
-    ev = pl.concat(rows).sort("utc_s", "point", maintain_order=True)
+    exponents = {"AHU-1": 2.5}
+    ev = pl.concat([loads.events[load.id] for load in LOADS]).sort("utc_s", "point",
+                                                                   maintain_order=True)
     ev_local = (pl.Series(ev["utc_s"] * 1_000_000).cast(pl.Datetime("us", "UTC"))
                 .dt.convert_time_zone(TZ).dt.replace_time_zone(None))
     on_off = {load.id for load in LOADS if load.id not in exponents}
@@ -257,9 +350,7 @@ def simulate(seed: int = SEED) -> dict:
                   for p, v in zip(ev["point"], ev["state"])],
     })
 
-    month_no = local.dt.month().to_numpy().astype(np.int64)
     periods = [f"{YEAR}-{mm:02d}" for mm in range(1, 13)]
-    starts = np.searchsorted(month_no, np.arange(1, 13))
 
     def by_month(x: np.ndarray) -> np.ndarray:
         return np.add.reduceat(x, starts)
@@ -267,12 +358,10 @@ def simulate(seed: int = SEED) -> dict:
     truth_rows = []
     monthly_rows = []
     for load in LOADS:
-        e = per_step[load.id] * step_h
-        run = np.power(status[load.id], exponents.get(load.id, 1.0)) * step_h
-        truth_rows.append({"equipment": load.id, "kwh": float(e.sum()),
-                           "run_hours": float(run.sum()),
-                           "mean_draw_kw": float(e.sum() / run.sum()) if run.sum() else None})
-        for p, ek, rk in zip(periods, by_month(e), by_month(run)):
+        kwh_total, run_total, kwh_months, run_months = loads.truth[load.id]
+        truth_rows.append({"equipment": load.id, "kwh": kwh_total, "run_hours": run_total,
+                           "mean_draw_kw": kwh_total / run_total if run_total else None})
+        for p, ek, rk in zip(periods, kwh_months, run_months):
             monthly_rows.append({"period": p, "equipment": load.id, "kwh": float(ek),
                                  "run_hours": float(rk)})
     base_e = base_kw * step_h
@@ -281,15 +370,15 @@ def simulate(seed: int = SEED) -> dict:
     for p, ek, hk in zip(periods, by_month(base_e), by_month(np.full(n, step_h))):
         monthly_rows.append({"period": p, "equipment": "baseload", "kwh": float(ek),
                              "run_hours": float(hk)})
-    hourly = np.arange(0, n, 360)
-    hour_local = (pl.Series(utc_s[hourly] * 1_000_000).cast(pl.Datetime("us", "UTC"))
+    del base_e, base_kw
+    hour_local = (pl.Series((epoch0 + STEP_S * hourly) * 1_000_000).cast(pl.Datetime("us", "UTC"))
                   .dt.convert_time_zone(TZ))
     weather = pl.DataFrame({"time": hour_local.dt.to_string("%Y-%m-%dT%H:%M:%S%:z"),
-                            "temp_f": np.round(temp_c[hourly] * 9.0 / 5.0 + 32.0, 1)})
+                            "temp_f": np.round(temp_hourly_c * 9.0 / 5.0 + 32.0, 1)})
     # The building's closure calendar (the facility manager knows it), Mon-Sat only: on
     # Sundays no occupied spell applies anyway.
     first_day = dt.date(YEAR, 1, 1)
     closed_dates = [first_day + dt.timedelta(days=int(i)) for i in np.flatnonzero(closed)]
     closed_dates = [d.isoformat() for d in closed_dates if d.year == YEAR and d.weekday() < 6]
-    return {"meter": meter, "events": events, "weather": weather, "closed": closed_dates, "truth": pl.DataFrame(truth_rows),
-            "truth_monthly": pl.DataFrame(monthly_rows)}
+    return {"meter": meter, "events": events, "weather": weather, "closed": closed_dates,
+            "truth": pl.DataFrame(truth_rows), "truth_monthly": pl.DataFrame(monthly_rows)}

@@ -1,7 +1,7 @@
 """Tests for disagg.fit.align: exact overlap of run-log states with meter intervals, DST days in the
 site's time zone (through the real readers), weekly spells and the baseload columns.
 
-Hand-computed values are in hours. DST facts (common practice, references.md section 7, and
+Hand-computed values are in hours. DST facts (common practice, docs/references.md section 7, and
 the IANA tz database for America/Chicago): in 2025 clocks go forward at 02:00 on Sunday
 9 March (a 23-hour local day, 92 fifteen-minute intervals) and back at 02:00 on Sunday
 2 November (a 25-hour day, 100 intervals).
@@ -28,7 +28,7 @@ ZONE = ZoneInfo(TZ)
 UTC = dt.timezone.utc
 SPRING_FORWARD = dt.date(2025, 3, 9)
 FALL_BACK = dt.date(2025, 11, 2)
-# 23 h x 4 and 25 h x 4 fifteen-minute intervals (references.md section 7).
+# 23 h x 4 and 25 h x 4 fifteen-minute intervals (docs/references.md section 7).
 INTERVALS_ON_DST_DAY = {SPRING_FORWARD: 92, FALL_BACK: 100}
 HOURS_ON_DST_DAY = {SPRING_FORWARD: 23.0, FALL_BACK: 25.0}
 # Float sums of ns / 3.6e12 over a day: exact to well below a microsecond.

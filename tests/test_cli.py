@@ -26,6 +26,8 @@ from disagg.cli import app
 from disagg.inputs.config import load_site
 
 README = Path(__file__).resolve().parents[1] / "README.md"
+COMMANDS_DOC = Path(__file__).resolve().parents[1] / "docs" / "commands.md"
+GUIDE = Path(__file__).resolve().parents[1] / "docs" / "guide.md"
 CAUTION_LINE = ("Caution: Estimates are not measurements. Any work on electrical equipment "
                 "must follow local codes and be done by licensed, qualified people.")
 CSV_COLUMNS = ["period", "equipment", "run_hours", "kw", "kw_low", "kw_high", "kwh", "kwh_low",
@@ -170,10 +172,9 @@ def test_each_command_has_help_text(command):
     assert undocumented == []
 
 
-def test_every_command_appears_in_the_readme():
-    # README.md is written by the lead engineer; this test fails until it lands.
-    assert README.exists(), f"{README} is missing"
-    text = README.read_text(encoding="utf-8")
+def test_every_command_appears_in_the_command_reference():
+    # The full reference lives in docs/commands.md (generated; tests/test_docs.py checks it).
+    text = COMMANDS_DOC.read_text(encoding="utf-8")
     missing = [c for c in _commands() if not re.search(rf"\bdisagg {re.escape(c)}\b", text)]
     assert missing == []
 
@@ -199,6 +200,8 @@ def test_breakdown_exits_0_and_prints_the_summary_and_caution(main_run):
     assert CAUTION_LINE in lines
     assert lines[0].startswith("Synthetic test site: 2025-01 to 2025-02, 2,016 intervals used")
     assert lines[-1] == "Wrote " + ", ".join(str(out.resolve() / f) for f in OUTPUT_FILES)
+    # The logs are on the meter's clock: the quick clock test stays silent.
+    assert "match the meter best" not in result.stdout
 
 
 def test_breakdown_writes_exactly_the_three_files_and_no_temporary_folder(main_run):
@@ -401,8 +404,9 @@ def test_check_reports_the_intervals_and_exits_0(main_run):
     assert result.exit_code == 0, result.output
     assert result.stderr == ""
     lines = result.stdout.splitlines()
-    assert lines[0] == ("Synthetic test site: 2025-01-20T06:00:00+00:00 to "
-                        "2025-02-10T06:00:00+00:00 (UTC), 15-minute meter intervals")
+    # Times in the site's zone (America/Chicago: UTC-6 in winter).
+    assert lines[0] == ("Synthetic test site: 2025-01-20T00:00:00-06:00 to "
+                        "2025-02-10T00:00:00-06:00 (America/Chicago), 15-minute meter intervals")
     assert lines[1] == ("intervals 2,016: used 2,016, absent 0, no reading 0, run-log state "
                         "unknown 0")
     assert [ln.split()[0] for ln in lines[2:5]] == ["CH-1", "AHU-1", "P-1"]
@@ -457,7 +461,8 @@ def test_a_header_only_run_log_is_an_error_line_not_a_crash(tmp_path):
         assert result.stderr == (
             f"Error: {s['runlog']} (288 meter intervals: 0 without a reading, 288 with a "
             "run-log state unknown): no interval has both a meter reading and a known state "
-            "for every equipment\n")
+            "for every equipment; no known state at all for CH-1, AHU-1, P-1 (expected "
+            "run-log rows with CH-1, AHU-1, P-1 in column 'point')\n")
         assert "Traceback" not in result.output
     assert not (tmp_path / "out").exists()
 
@@ -506,6 +511,77 @@ def test_on_duplicate_keep_first_turns_the_conflict_error_into_a_finding(tmp_pat
     assert bad.exit_code == 1
     assert bad.stderr == ("Error: --on-duplicate 'keep-middle': expected one of error, "
                           "keep-first, keep-last\n")
+
+
+# Each command with arguments that run it on the 4-day synthetic site of write_site.
+EVERY_FIT_COMMAND = {
+    "breakdown": ["--out", "{out}"],
+    "check": [],
+    "report": ["--out", "{out}", "--no-drift"],
+    "drift": ["--out", "{out}", "--reference", "2025-01-20:2025-01-21"],
+    "compare": ["--out", "{out}", "--before", "2025-01-20:2025-01-21",
+                "--after", "2025-01-22:2025-01-23"],
+    "batch": ["--out", "{out}", "--workers", "1"],
+}
+
+
+@pytest.mark.parametrize("command", sorted(EVERY_FIT_COMMAND))
+def test_the_site_files_duplicate_policy_reaches_every_command(tmp_path, command):
+    s = write_site(tmp_path / "data", days=4, seed=5)
+    message = _conflicting_duplicate(s)
+    target = str(s["folder"]) if command == "batch" else str(s["site"])
+    args = [a.format(out=tmp_path / "out") for a in EVERY_FIT_COMMAND[command]]
+    refused = runner.invoke(app, [command, target] + args)
+    assert refused.exit_code == 1, refused.output
+    assert message in refused.stderr
+    text = s["site"].read_text(encoding="utf-8")
+    s["site"].write_text(text.replace('stamp = "end"', 'stamp = "end"\non_duplicate = "keep-first"'),
+                         encoding="utf-8")
+    kept = runner.invoke(app, [command, target] + args)
+    assert kept.exit_code == 0, kept.output
+    # The command line still wins over the site file.
+    if command in ("breakdown", "check"):
+        again = runner.invoke(app, [command, target] + args + ["--on-duplicate", "error"])
+        assert again.exit_code == 1 and message in again.stderr
+
+
+def test_site_file_settings_are_checked(tmp_path):
+    s = write_site(tmp_path / "data", days=2, seed=5)
+    text = s["site"].read_text(encoding="utf-8")
+    for old, new, message in [
+        ('stamp = "end"', 'stamp = "end"\non_duplicate = "keep-middle"',
+         "[meter] on_duplicate = 'keep-middle': expected one of error, keep-first, keep-last"),
+        ('state_column = "state"', 'state_column = "state"\nlog_offset_minutes = 20000',
+         "[runlog] log_offset_minutes = 20000.0: expected a number of minutes from -10080 to "
+         "10080"),
+    ]:
+        s["site"].write_text(text.replace(old, new), encoding="utf-8")
+        result = runner.invoke(app, ["check", str(s["site"])])
+        assert result.exit_code == 1
+        assert result.stderr == f"Error: {s['site']}: {message}\n"
+
+
+def test_breakdown_warns_of_a_run_log_clock_offset_and_the_site_file_can_apply_it(tmp_path):
+    s = write_site(tmp_path / "data", days=7, seed=8)
+    text = s["site"].read_text(encoding="utf-8")
+    # The log read 4 minutes early (as a building automation clock 4 minutes ahead would be).
+    s["site"].write_text(text.replace('state_column = "state"',
+                                      'state_column = "state"\nlog_offset_minutes = -4'),
+                         encoding="utf-8")
+    out = tmp_path / "out"
+    result = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    warning = [ln for ln in result.stdout.splitlines() if "match the meter best" in ln]
+    assert len(warning) == 1, result.stdout
+    # The search finds +4 on top of the -4 applied: the suggested total is 0 (within a minute).
+    suggested = float(warning[0].split("--log-offset ")[1].split(" ")[0])
+    assert abs(suggested) <= 1.0, warning
+    assert "shifted by -4 min onto the meter's clock" in result.stdout
+    # The command line overrides the site file: the true clock gives no warning.
+    fixed = runner.invoke(app, ["breakdown", str(s["site"]), "--out", str(out), "--log-offset",
+                                f"{suggested:g}"])
+    assert fixed.exit_code == 0, fixed.output
+    assert "match the meter best" not in fixed.stdout
 
 
 def test_estimate_fills_short_gaps_for_the_monthly_totals_only(tmp_path):

@@ -28,7 +28,7 @@ from disagg.analyses.compare import COLUMNS, DEFAULT_MIN_CHANGE, compare_estimat
 from disagg.errors import ConfigError
 from disagg.fit.estimate import Term, estimate_draws
 from synthetic import TZ, make_building
-from test_cli import CAUTION_LINE, README, TRUE_DRAW_KW, write_site
+from test_cli import CAUTION_LINE, GUIDE, TRUE_DRAW_KW, write_site
 
 runner = CliRunner()
 
@@ -444,16 +444,16 @@ def test_bad_input_gives_one_error_line_exit_1_and_no_output(site, tmp_path, cas
     assert not out.exists()
 
 
-def test_compare_has_help_text_and_a_readme_row():
+def test_compare_has_help_text_and_a_guide_entry():
     cmd = typer.main.get_command(app).commands["compare"]  # type: ignore[attr-defined]
     result = runner.invoke(app, ["compare", "--help"])
     assert result.exit_code == 0, result.output
     text = " ".join(result.stdout.replace("│", " ").split())
     assert cmd.help and " ".join(cmd.help.split()) in text
     assert [p.name for p in cmd.params if not getattr(p, "help", None)] == []
-    readme = README.read_text(encoding="utf-8")
-    assert re.search(r"^\| `disagg compare SITE\.toml --before FROM:TO --after FROM:TO --out DIR",
-                     readme, re.MULTILINE)
+    guide = GUIDE.read_text(encoding="utf-8")
+    assert re.search(r"^    disagg compare SITE\.toml --before FROM:TO --after FROM:TO --out DIR",
+                     guide, re.MULTILINE)
 
 
 def test_each_periods_intervals_cover_its_true_draws(many_seeds):

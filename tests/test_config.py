@@ -10,7 +10,7 @@ import pytest
 from disagg.inputs.config import Spell, load_site, parse_spell
 from disagg.errors import ConfigError
 
-# --- Outside check values (references.md section 5) ------------------------------------------
+# --- Outside check values (docs/references.md section 5) ------------------------------------------
 # US DOE, "Determining Electric Motor Load and Efficiency", Eq. 1: three-phase input power
 # P = sqrt(3) x V x I x PF / 1000. The check 480 V, 100 A, PF 0.9 -> 74.82 kW is printed to
 # 2 decimals, so the tolerance is half a unit in the last place.
@@ -163,9 +163,80 @@ EQ = '\n[[equipment]]\nid = "CH-1"\nrated_kw = 100\n'
 
 
 def test_missing_meter_table(tmp_path):
-    text = SITE_HEAD.replace("[meter]", "[meter_settings]") + EQ
+    head, rest = SITE_HEAD.split("[meter]")
+    text = head + rest[rest.index("[runlog]"):] + EQ
     msg, path = _error(tmp_path, text)
     assert msg == f"{path}: the [meter] table is missing; add it to the file"
+
+
+TABLES = ("[site], [meter], [runlog], [baseload], [[equipment]], [weather], [tariff], "
+          "[history]")
+
+
+@pytest.mark.parametrize("bad, hint", [
+    ("[meter_settings]", ""), ("[histroy]", " (did you mean [history]?)"),
+    ("[tarif]", " (did you mean [tariff]?)"), ("[wether]", " (did you mean [weather]?)"),
+    ("[Baseload]", " (did you mean [baseload]?)")])
+def test_an_unknown_table_is_an_error_with_the_nearest_name(tmp_path, bad, hint):
+    text = SITE_HEAD + EQ + f"\n{bad}\nfolder = \"x\"\n"
+    msg, path = _error(tmp_path, text)
+    assert msg == f"{path}: {bad}: unknown table{hint}; expected only {TABLES}"
+
+
+def test_a_misspelt_array_of_tables_is_an_error(tmp_path):
+    text = SITE_HEAD + EQ + '\n[[equipments]]\nid = "CH-2"\n'
+    msg, path = _error(tmp_path, text)
+    assert msg == (f"{path}: [[equipments]]: unknown table (did you mean [[equipment]]?); "
+                   f"expected only {TABLES}")
+
+
+def test_a_setting_above_the_first_table_is_an_error(tmp_path):
+    text = 'timezone = "UTC"\n' + SITE_HEAD + EQ
+    msg, path = _error(tmp_path, text)
+    assert msg == (f"{path}: timezone = 'UTC': a setting outside any table; every setting "
+                   f"belongs in one of the tables {TABLES}")
+
+
+def test_a_misspelt_key_names_the_nearest_known_one(tmp_path):
+    text = SITE_HEAD.replace('unit = "kWh"', 'unit = "kWh"\ninterval_minute = 15') + EQ
+    msg, path = _error(tmp_path, text)
+    assert msg == (f"{path}: [meter] interval_minute: unknown setting (did you mean "
+                   "interval_minutes?); expected one of date_order, file, interval_minutes, multiplier, "
+                   "on_duplicate, register_digits, stamp, time_column, unit, value_column")
+
+
+@pytest.mark.parametrize("kind", ["fifo", "device", "folder"])
+def test_a_special_file_as_site_file_is_refused_before_reading(tmp_path, kind):
+    import os
+
+    if kind == "fifo":
+        path = tmp_path / "site.toml"
+        os.mkfifo(path)  # reading it would block forever
+        what = "a FIFO (named pipe)"
+    elif kind == "device":
+        path = Path("/dev/zero")  # would be read until memory runs out
+        what = "a device"
+    else:
+        path = tmp_path
+        what = "a folder"
+    with pytest.raises(ConfigError) as exc:
+        load_site(path)
+    assert str(exc.value) == f"{path}: is {what}, not a file; give the site file itself"
+
+
+def test_a_symbolic_link_loop_and_deep_nesting_are_config_errors(tmp_path):
+    loop = tmp_path / "loop.toml"
+    loop.symlink_to(tmp_path / "loop2.toml")
+    (tmp_path / "loop2.toml").symlink_to(loop)
+    with pytest.raises(ConfigError) as exc:
+        load_site(loop)
+    assert str(exc.value) == f"{loop}: cannot use this site file path (a symbolic link loop)"
+    deep = tmp_path / "deep.toml"
+    deep.write_text("x = " + "[" * 5000 + "]" * 5000 + "\n", encoding="utf-8")
+    with pytest.raises(ConfigError) as exc:
+        load_site(deep)
+    assert str(exc.value) == (f"{deep}: not valid TOML for disagg (arrays or tables nested "
+                              "more than 50 deep)")
 
 
 @pytest.mark.parametrize("unit", ["kwh", "MWh"])
@@ -213,7 +284,8 @@ def test_a_misspelt_setting_is_an_error_not_ignored(tmp_path):
     # A typo in draw_sd_kw must not silently drop the engineer's prior.
     text = SITE_HEAD + '\n[[equipment]]\nid = "AC-1"\ndraw_kw = 7.0\ndraw_sd_Kw = 1.0\n'
     msg, path = _error(tmp_path, text)
-    assert msg == (f"{path}: [equipment AC-1] draw_sd_Kw: unknown setting; expected one of "
+    assert msg == (f"{path}: [equipment AC-1] draw_sd_Kw: unknown setting (did you mean "
+                   "draw_sd_kw?); expected one of "
                    "aliases, amps, balance_temp, control, draw_kw, draw_sd_kw, efficiency, exponent, hp, "
                    "id, kind, name, phases, power_factor, rated_kw, volts, weather")
 

@@ -1,7 +1,7 @@
 """Drift tracking and alarms (disagg.analyses.drift) on synthetic buildings with known truth.
 
 All data here is invented (tests/synthetic.py). The stable range 0 < mu < 2 of normalized LMS
-is from references.md section 4 (vendor DSP documentation [read]; Haykin, Adaptive Filter
+is from docs/references.md section 4 (vendor DSP documentation [read]; Haykin, Adaptive Filter
 Theory [memory]); the alarm rule and its L = 3 are in tests/test_track.py.
 """
 

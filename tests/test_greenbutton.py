@@ -37,7 +37,7 @@ ATOM = "http://www.w3.org/2005/Atom"
 ESPI = "http://naesb.org/espi"
 WHAT = "a Green Button (NAESB ESPI) interval-data XML file"
 
-# Worked check, NAESB REQ.21 ESPI usage.xsd v3.3 as summarised in references.md section 8
+# Worked check, NAESB REQ.21 ESPI usage.xsd v3.3 as summarised in docs/references.md section 8
 # (read): intervalLength 900, uom 72 (Wh), powerOfTenMultiplier 0, a reading starting at
 # 1330578000 s (2012-03-01 05:00 UTC) lasting 900 s with value 282 holds 0.282 kWh, a mean
 # demand of 1.128 kW. The source prints three decimals, so the tolerance is half a unit in

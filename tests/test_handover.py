@@ -18,7 +18,7 @@ from disagg.analyses.pipeline import CAUTION, breakdown_site
 from disagg.progress import Bar, terminal_bar
 from test_tariff import CENT, TOU_MONTH, TOU_TOML, _write_site
 
-# OWASP "CSV Injection" page (from memory; references.md section 10): a cell starting with
+# OWASP "CSV Injection" page (from memory; docs/references.md section 10): a cell starting with
 # one of these can run as a formula when a spreadsheet opens the file.
 FORMULA_NAME = "=HYPERLINK(\"http://example.invalid\")"
 

@@ -40,7 +40,7 @@ def _load_bench():
 
 hh = _load_bench()
 
-# "Energy correctly assigned" (Kolter & Johnson 2011; references.md section 9), t = month,
+# "Energy correctly assigned" (Kolter & Johnson 2011; docs/references.md section 9), t = month,
 # components = the three circuits and the rest of the house (baseload + unexplained rows vs.
 # whole house minus the circuits). Measured 0.970 over the six months (per month 0.945 to
 # 0.984); floor 0.96. For scale: leaving all energy in the rest scores 0.499.

@@ -100,3 +100,15 @@ def test_cli_prints_the_jobs_summary(tmp_path):
     assert r.exit_code == 0, r.output
     assert r.stdout.startswith(run.summary)
     assert Path(r.stdout.strip().splitlines()[-1].split(", ")[-1]).name == "fit.json"
+
+
+def test_buildings_with_a_site_toml_each_keep_their_own_history(tmp_path):
+    # The common portfolio layout: a folder per building, each holding site.toml, and one
+    # shared history folder. Each building's history is kept under its folder's name.
+    store = tmp_path / "history"
+    for name, seed in (("north", 3), ("south", 4)):
+        write_site_files(tmp_path / "sites" / name, "site", seed=seed, history=store.as_posix())
+    result = run_portfolio(tmp_path / "sites", tmp_path / "out", workers=1)
+    assert [o.status for o in result.outcomes] == ["ok", "ok"], [o.error for o in result.outcomes]
+    stored = sorted(p.name for p in (store / "kind=breakdown").iterdir())
+    assert stored == ["site=north", "site=south"]

@@ -19,7 +19,7 @@ from disagg.fit.solvers import (block_sums, collinearity, fit_model, fit_quality
                           solve_regularized)
 
 # --- Outside check values --------------------------------------------------------------------
-# NIST StRD linear regression, "Longley" (references.md section 1) [read, via copies of the
+# NIST StRD linear regression, "Longley" (docs/references.md section 1) [read, via copies of the
 # NIST file]; y = TOTEMP, x1..x6 = GNPDEFL, GNP, UNEMP, ARMED, POP, YEAR, constant first.
 LONGLEY_B = np.array([-3482258.63459582, 15.0618722713733, -0.0358191792925910,
                       -2.02022980381683, -1.03322686717359, -0.0511041056535807,
@@ -30,10 +30,10 @@ LONGLEY_SD = np.array([890420.383607373, 84.9149257747669, 0.0334910077722432,
 LONGLEY_RESID_SD = 304.854073561965
 LONGLEY_R2 = 0.995479004577296
 # NIST prints 15 significant digits; Longley is ill-conditioned (cond(X) ~ 5e9), so an SVD
-# solver keeps about 10-13 of them (references.md: statsmodels reaches 10.9-13). We ask 10.
+# solver keeps about 10-13 of them (docs/references.md: statsmodels reaches 10.9-13). We ask 10.
 LONGLEY_MIN_LRE = 10.0
 
-# NIST StRD "Norris" (references.md section 1) [read]; data as printed there.
+# NIST StRD "Norris" (docs/references.md section 1) [read]; data as printed there.
 NORRIS_X = np.array([
     0.2, 337.4, 118.2, 884.6, 10.1, 226.5, 666.3, 996.3, 448.6, 777.0, 558.2, 0.4, 0.6, 775.5,
     666.9, 338.0, 447.5, 11.6, 556.0, 228.1, 995.8, 887.6, 120.2, 0.3, 0.3, 556.8, 339.1,
@@ -50,13 +50,13 @@ NORRIS_R2 = 0.999993745883712
 NORRIS_MIN_LRE = 11.0
 
 # Newey-West standard errors of Norris (constant first), Bartlett lag L = 1, without the
-# n/(n-k) small-sample correction (references.md section 2) [ran, statsmodels 0.15.0], printed
+# n/(n-k) small-sample correction (docs/references.md section 2) [ran, statsmodels 0.15.0], printed
 # to 15 significant digits; asked to 10 (sandwich of a cond ~ 2e3 problem loses a few).
 NORRIS_HAC1_SE = np.array([0.165356005563330, 0.000552180455394664])
 NORRIS_HAC_MIN_LRE = 10.0
 
 # Longley heteroskedasticity-robust (HC0 = HAC with L = 0) standard errors as printed by SAS,
-# quoted in statsmodels' tests (references.md section 2), printed to 5-8 significant digits.
+# quoted in statsmodels' tests (docs/references.md section 2), printed to 5-8 significant digits.
 # Tolerance: one unit in the last printed place (not half: statsmodels' B4 is 0.1462450, on a
 # rounding boundary) plus 2e-7 relative, because fit_model inverts X'X, whose condition after
 # column scaling is 1.9e9: about 7 digits survive (measured 6e-8 relative to statsmodels'

@@ -11,7 +11,7 @@ import pytest
 from disagg.errors import OutputError
 from disagg.present.outputs import neutralise_csv_text, write_atomically
 
-# OWASP "CSV Injection" page (from memory; references.md section 10): cells starting with
+# OWASP "CSV Injection" page (from memory; docs/references.md section 10): cells starting with
 # =, +, -, @, tab or carriage return get a leading single quote.
 FORMULA_CASES = {"=SUM(A1:A3)": "'=SUM(A1:A3)", "+1": "'+1", "-2": "'-2", "@cmd": "'@cmd",
                  "\tx": "'\tx", "\rx": "'\rx", "AHU-1": "AHU-1", "": ""}

@@ -292,7 +292,8 @@ def test_portfolio_file_with_different_equipment_cost_and_drift(tmp_path):
         assert frame["alarm_equipment"][i] == ";".join(x["equipment"] for x in alarms)
         assert frame["drift_note"][i] == ("16 days tracked after the reference period "
                                           "2025-03-17 to 2025-03-28")
-        assert (tmp_path / "out" / stem / "drift.csv").read_bytes() == \
+        # Output folders follow the site's path in the portfolio: north/north.toml -> north/north.
+        assert (tmp_path / "out" / stem / stem / "drift.csv").read_bytes() == \
             (single / "drift.csv").read_bytes()
     # The real step is found at north, and nothing at the steady south.
     assert frame["alarms"].to_list() == [1, 0]
@@ -305,7 +306,7 @@ def test_portfolio_file_with_different_equipment_cost_and_drift(tmp_path):
     assert frame["cost"][1] == pytest.approx(0.2 * months["kwh"].sum()
                                              + 10.0 * months["peak_kw"].sum(), rel=1e-9)
     assert frame["peak_kw"][1] == pytest.approx(months["peak_kw"].max(), rel=1e-9)
-    fit = json.loads((tmp_path / "out" / "south" / "fit.json").read_text())
+    fit = json.loads((tmp_path / "out" / "south" / "south" / "fit.json").read_text())
     assert frame["peak_kw"][1] == pytest.approx(max(m["peak_kw"]
                                                     for m in fit["tariff"]["months"]), rel=1e-9)
     # The portfolio's history folder got both sites, both kinds.
@@ -383,11 +384,46 @@ def test_site_names_that_look_like_formulas_are_neutralised(tmp_path):
     assert site == "'=HYPERLINK(1)"
 
 
-def test_two_listed_sites_with_one_file_name_are_refused(tmp_path):
+def test_a_folder_per_building_each_holding_site_toml_runs_into_a_folder_per_building(tmp_path):
+    # The common layout: portfolio/<building>/site.toml. Listed in a portfolio file, or found
+    # by giving the folder itself.
+    root = tmp_path / "portfolio"
+    write_site_files(root / "school", "site", 1, days=8)
+    write_site_files(root / "warehouse", "site", 2, days=8)
+    pf = tmp_path / "p.toml"
+    pf.write_text('[portfolio]\nsites = ["portfolio/school/site.toml", '
+                  '"portfolio/warehouse/site.toml"]\n', encoding="utf-8")
+    for source, out in ((root, tmp_path / "out_folder"), (pf, tmp_path / "out_file")):
+        r = runner.invoke(app, ["batch", str(source), "--out", str(out), "--workers", "1"])
+        if source == pf:  # names relative to the portfolio file's folder
+            out = out / "portfolio"
+        assert r.exit_code == 0, r.output
+        for building in ("school", "warehouse"):
+            assert (out / building / "site" / "breakdown.csv").is_file()
+        table = pl.read_csv((tmp_path / "out_file" if source == pf else out) / "portfolio.csv")
+        assert table["site_file"].to_list() == [str(root / b / "site.toml")
+                                                for b in ("school", "warehouse")]
+        # The long form: one row per site, month and breakdown row, the same numbers as each
+        # site's breakdown.csv, so equipment of one id in two buildings is never mixed.
+        long = pl.read_csv((tmp_path / "out_file" if source == pf else out)
+                           / "portfolio_equipment.csv")
+        assert long.columns == ["site", "site_name", "period", "equipment", "kwh", "kwh_low",
+                                "kwh_high", "share", "flags"]
+        for building in ("school", "warehouse"):
+            name = f"{building}/site" if source == root else f"portfolio/{building}/site"
+            mine = long.filter(pl.col("site") == name).drop("site", "site_name")
+            bd = pl.read_csv(out / building / "site" / "breakdown.csv").select(mine.columns)
+            assert_frame_equal(mine, bd, check_dtypes=False, rel_tol=1e-6, abs_tol=1e-6)
+        assert set(long["site_name"]) == {"Synthetic site"}
+
+
+def test_two_listed_sites_outside_the_portfolio_folder_with_one_file_name_are_refused(tmp_path):
     write_site_files(tmp_path / "x", "site", 1, days=8)
     write_site_files(tmp_path / "y", "site", 2, days=8)
-    pf = tmp_path / "p.toml"
-    pf.write_text('[portfolio]\nsites = ["x/site.toml", "y/site.toml"]\n', encoding="utf-8")
+    (tmp_path / "p").mkdir()
+    pf = tmp_path / "p" / "p.toml"
+    pf.write_text('[portfolio]\nsites = ["../x/site.toml", "../y/site.toml"]\n',
+                  encoding="utf-8")
     r = runner.invoke(app, ["batch", str(pf), "--out", str(tmp_path / "out")])
     assert r.exit_code == 1
     assert r.stderr.splitlines() == [

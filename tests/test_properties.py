@@ -22,7 +22,10 @@ says so. Examples are derandomized (the same examples every run) and few enough 
 file runs in well under a minute on two cores.
 
 A last test checks that a meter in naive local time across the autumn clock change gives the
-same breakdown as the same meter with UTC offsets.
+same breakdown as the same meter with UTC offsets. The site-file table tests add a valid
+[tariff], [history] and [weather] and then damage their values, add misspelt tables, arrays of
+tables and settings above the first table: the same property, and a name that is no table of
+a site file must end in exit 1 for both commands.
 """
 
 from __future__ import annotations
@@ -632,8 +635,11 @@ def _assert_clean_exit(result, what: str) -> None:
         assert "\n" not in err[:-1], (what, err)
 
 
-def run_property(case: Case) -> tuple[int, int]:
-    """Write the case, run check and breakdown on it, assert the property; exit codes."""
+def run_property(case: Case, written: tuple[str, ...] = ("out/",)) -> tuple[int, int]:
+    """Write the case, run check and breakdown on it, assert the property; exit codes.
+
+    written: where breakdown may write (path prefixes under the temporary root): the output
+    folder, and a history folder when the case's site file names one there."""
     with tempfile.TemporaryDirectory() as d:
         root = Path(d)
         data = root / "data"
@@ -650,7 +656,7 @@ def run_property(case: Case) -> tuple[int, int]:
         _assert_clean_exit(result, "breakdown")
         after = _snapshot(root)
         assert list(root.rglob(".disagg-tmp-*")) == []  # no temporary leftovers
-        assert {k: v for k, v in after.items() if not k.startswith("out/")} == before
+        assert {k: v for k, v in after.items() if not k.startswith(written)} == before
         if result.exit_code != 0:
             assert not out.exists() or list(out.iterdir()) == []
         else:
@@ -718,7 +724,7 @@ def test_any_damage_with_any_options_gives_a_result_or_one_error_line(ops, commo
 
 FALL_BACK_START_LOCAL = dt.datetime(2025, 10, 28)  # local midnight; 10 days cross 2025-11-02
 FALL_BACK_DAYS = 10
-# A day when clocks go back has 100 fifteen-minute intervals (references.md section 7,
+# A day when clocks go back has 100 fifteen-minute intervals (docs/references.md section 7,
 # common practice, no source); an exact count.
 FALL_BACK_DAY_INTERVALS = 100
 DST_DRAW_KW = {"CH-1": 40.0, "AHU-1": 12.0, "P-1": 5.0}
@@ -786,3 +792,91 @@ def test_a_naive_local_meter_across_the_fall_back_gives_the_same_breakdown(tmp_p
             np.testing.assert_allclose(x, y, rtol=0, atol=1e-9, equal_nan=True, err_msg=col)
         else:
             assert a[col].to_list() == b[col].to_list(), col
+
+
+# ---------------------------------------------------------------------------------------
+# Site-file tables: [weather], [tariff] (with [[tariff.periods]]), [history] and names that
+# are not tables of a site file at all
+
+
+SITE_TABLES = {"site", "meter", "runlog", "baseload", "equipment", "weather", "tariff",
+               "history"}
+TABLE_VALUES = {
+    ("tariff", "currency"): ["USD", "EUR", "", " ", "x" * 20, 5],
+    ("tariff", "energy_price"): [0.12, 0, -0.1, 1e6, 1e7, 1e308, float("nan"), float("inf"),
+                                 "0.12"],
+    ("tariff", "demand_price"): [15.0, 0, -1, float("inf"), 1e300],
+    ("tariff", "holidays"): [[dt.date(2025, 1, 20)], ["2025-01-21"], ["2025-02-30"],
+                             [dt.datetime(2025, 1, 20, 8, 0)], "2025-01-20", [1]],
+    ("tariff", "periods"): [[{"name": "peak", "price": 0.3, "spells": ["Mon-Fri 12:00-18:00"]}],
+                            [{"name": "peak", "price": float("nan"),
+                              "spells": ["Mon-Fri 12:00-18:00"]}],
+                            [{"name": "a", "price": 0.2, "spells": ["Mon-Fri 08:00-18:00"]},
+                             {"name": "b", "price": 0.3, "spells": ["Wed 12:00-13:00"]}],
+                            [{"name": "peak", "price": 0.3, "spells": []}],
+                            [{"name": "peak", "prise": 0.3, "spells": ["Mon 00:00-24:00"]}],
+                            [{}], ["peak"]],
+    ("weather", "reference_temp"): [65, -459.67, 1e308, float("nan"), float("-inf"), "65"],
+    ("weather", "unit"): ["F", "C", "K", ""],
+    ("history", "folder"): ["../hist", "../hist/sub", "", 5],
+}
+# Table names one edit away from a real one, and names no site file has.
+NEAR_NAMES = ["histroy", "tarif", "wether", "equipments", "Meter", "run_log", "base-load",
+              "sites", "tariffs", "weathr", "x", "portfolio", "metadata"]
+
+
+@st.composite
+def table_ops(draw) -> tuple:
+    choice = draw(st.sampled_from(["value", "value", "value", "table", "array", "top", "key"]))
+    if choice == "value":
+        key = draw(st.sampled_from(sorted(TABLE_VALUES)))
+        return ("table-set", key, draw(st.one_of(st.sampled_from(TABLE_VALUES[key]),
+                                                 wrong_values)))
+    if choice == "table":
+        name = draw(st.one_of(st.sampled_from(NEAR_NAMES), st.text(min_size=1, max_size=8)))
+        return ("toml-set", (name,), {"folder": "x"})
+    if choice == "array":
+        return ("toml-set", (draw(st.sampled_from(NEAR_NAMES)),), [{"id": "CH-1"}])
+    if choice == "top":  # a setting above the first table
+        return ("toml-set", (draw(st.sampled_from(["name", "timezone", "file", "currency"])),),
+                draw(wrong_values))
+    table = draw(st.sampled_from(["tariff", "history", "weather"]))
+    return ("table-set", (table, draw(st.sampled_from(
+        ["currancy", "energy_prices", "folders", "refrence_temp", "units", "x"]))), 1)
+
+
+def _with_tables(case: Case) -> None:
+    """A valid [tariff], [history] and [weather] (the meter file read as temperatures)."""
+    case.toml["tariff"] = {"currency": "USD", "energy_price": 0.12, "demand_price": 15.0}
+    case.toml["history"] = {"folder": "../hist"}
+    case.toml["weather"] = {"file": "meter.csv", "time_column": "end", "temp_column": "kwh",
+                            "unit": "F"}
+
+
+def _apply_table(case: Case, op: tuple) -> None:
+    if op[0] == "table-set":
+        (table, key), value = op[1], op[2]
+        if isinstance(case.toml.get(table), dict):
+            case.toml[table][key] = value
+    else:
+        _apply_toml(case, op)
+
+
+def test_the_site_with_every_table_succeeds():
+    case = _new_case()
+    _with_tables(case)
+    assert run_property(case, ("out/", "hist/")) == (0, 0)
+
+
+@PROPERTY_SETTINGS
+@given(ops=st.lists(table_ops(), min_size=1, max_size=3))
+def test_site_file_tables_give_a_result_or_one_error_line(ops):
+    case = _new_case()
+    _with_tables(case)
+    for op in ops:
+        _apply_table(case, op)
+    codes = run_property(case, ("out/", "hist/"))
+    event(f"exit status: check {codes[0]}, breakdown {codes[1]}")
+    # A name that is no table of a site file is never ignored: both commands refuse it.
+    if set(case.toml) - SITE_TABLES:
+        assert codes == (1, 1), (sorted(case.toml), codes)

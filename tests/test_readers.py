@@ -166,6 +166,106 @@ def test_meter_unparseable_time_names_the_line_and_the_first_rows_form(tmp_path)
         "same form as the first row ('2025-01-06 00:15:00')")
 
 
+# ---------------------------------------------------------------------------------------
+# Meter: date order (US exports write the month first: 10/13/2024 00:15)
+
+
+def test_meter_month_first_dates_are_read_month_first_when_the_column_shows_it(tmp_path):
+    # 10/13/2024: 13 cannot be a month, so the whole column is month/day/year.
+    site, _ = _meter(tmp_path, ["10/12/2024 23:45,1.0", "10/13/2024 00:00,2.0",
+                                "10/13/2024 00:15,3.0"])
+    m = read_meter(site.meter, site.timezone)
+    # 2024-10-13 00:15 CDT (-05:00) = 05:15 UTC.
+    assert m.frame["end_utc"].to_list() == [_utc(2024, 10, 13, 4, 45), _utc(2024, 10, 13, 5, 0),
+                                            _utc(2024, 10, 13, 5, 15)]
+
+
+def test_meter_day_first_dates_are_read_day_first_when_the_column_shows_it(tmp_path):
+    site, _ = _meter(tmp_path, ["12.10.2024 23:45,1.0", "13.10.2024 00:00,2.0"])
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["end_utc"].to_list() == [_utc(2024, 10, 13, 4, 45), _utc(2024, 10, 13, 5, 0)]
+
+
+def test_meter_dates_that_fit_both_orders_are_refused_naming_the_setting(tmp_path):
+    # Every day is 12 or less: 10/11/2024 is 11 October (US) or 10 November; never guess.
+    site, path = _meter(tmp_path, ["10/11/2024 00:15,1.0", "10/11/2024 00:30,1.0",
+                                   "10/12/2024 00:15,1.0"])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: column 'time': dates such as '10/11/2024 00:15' can be read month first or "
+        "day first (no day above 12 in the file); set [meter] date_order = \"mdy\" "
+        "(10/13/2024) or \"dmy\" (13/10/2024) in the site file")
+
+
+@pytest.mark.parametrize("order, expected_day", [("mdy", 11), ("dmy", 10)])
+def test_meter_date_order_setting_decides_an_ambiguous_column(tmp_path, order, expected_day):
+    month = 10 if order == "mdy" else 11
+    site, _ = _meter(tmp_path, ["10/11/2024 00:15,1.0", "10/11/2024 00:30,1.0"],
+                     meter_extra=f'date_order = "{order}"')
+    m = read_meter(site.meter, site.timezone)
+    # Chicago is on CDT (-05:00) on 11 October and on CST (-06:00) on 10 November.
+    hours = 5 if order == "mdy" else 6
+    assert m.frame["end_utc"].to_list() == [_utc(2024, month, expected_day, hours, 15),
+                                            _utc(2024, month, expected_day, hours, 30)]
+
+
+def test_meter_date_order_setting_refuses_a_row_in_the_other_order(tmp_path):
+    site, path = _meter(tmp_path, ["13/10/2024 00:15,1.0", "13/10/2024 00:30,1.0"],
+                        meter_extra='date_order = "mdy"')
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: line 2, column 'time': cannot read time '13/10/2024 00:15'; expected a "
+        "month/day/year date ([meter] date_order = \"mdy\") such as '13/10/2024 00:15'")
+
+
+def test_meter_dates_in_both_orders_in_one_column_are_an_error(tmp_path):
+    site, path = _meter(tmp_path, ["10/13/2024 00:15,1.0", "14/10/2024 00:30,1.0"])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: column 'time': the dates are neither all month/day/year (line 3: "
+        "'14/10/2024 00:30') nor all day/month/year (line 2: '10/13/2024 00:15'); expected "
+        "one date order in the column")
+
+
+def test_meter_date_order_format_string_reads_twelve_hour_times(tmp_path):
+    site, _ = _meter(tmp_path, ["10/11/2024 11:45 PM,1.0", "10/12/2024 12:00 AM,2.0",
+                                "10/12/2024 12:15 AM,3.0"],
+                     meter_extra='date_order = "%m/%d/%Y %I:%M %p"')
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["end_utc"].to_list() == [_utc(2024, 10, 12, 4, 45), _utc(2024, 10, 12, 5, 0),
+                                            _utc(2024, 10, 12, 5, 15)]
+
+
+def test_meter_year_first_times_are_unaffected_by_the_order_check(tmp_path):
+    site, _ = _meter(tmp_path, ["2024-10-11 00:15:00,1.0", "2024-10-11 00:30:00,1.0"])
+    m = read_meter(site.meter, site.timezone)
+    assert m.frame["end_utc"].to_list() == [_utc(2024, 10, 11, 5, 15), _utc(2024, 10, 11, 5, 30)]
+
+
+def test_date_order_setting_must_be_an_order_or_a_format(tmp_path):
+    from disagg.errors import ConfigError
+    _csv(tmp_path / "meter.csv", "time,kwh", ["2024-10-11 00:15:00,1.0"])
+    path = _write_site(tmp_path, meter_extra='date_order = "month-first"')
+    with pytest.raises(ConfigError) as exc:
+        load_site(path)
+    assert _message(exc) == (
+        f"{path}: [meter] date_order = 'month-first': expected \"ymd\" (2024-10-13), \"mdy\" "
+        "(10/13/2024), \"dmy\" (13/10/2024) or a format string such as \"%m/%d/%Y %H:%M\"")
+
+
+def test_runlog_dates_follow_the_runlog_date_order(tmp_path):
+    site, _ = _runlog(tmp_path, "time,point,state", [
+        "10/11/2024 00:00,CH-1,on", "10/11/2024 00:30,CH-1,off"],
+        runlog='layout = "events"\ntime_column = "time"\nequipment_column = "point"\n'
+               'state_column = "state"\ndate_order = "dmy"')
+    log = read_runlog(site.runlog, site)
+    # 10 November 2024 00:00 CST (-06:00) = 06:00 UTC.
+    assert _segments(log, "CH-1")[0][:2] == (_utc(2024, 11, 10, 6, 0), _utc(2024, 11, 10, 6, 30))
+
+
 @pytest.mark.parametrize("stamp, first_start, first_end", [
     ("end", _utc(2025, 1, 6, 6, 0), _utc(2025, 1, 6, 6, 15)),
     ("start", _utc(2025, 1, 6, 6, 15), _utc(2025, 1, 6, 6, 30)),
@@ -226,13 +326,27 @@ def test_meter_interval_not_allowed_is_an_error(tmp_path):
                              "1, 5, 10, 15, 30, 60 minutes")
 
 
-def test_meter_interval_from_the_site_file_wins_over_the_data(tmp_path):
-    # Two readings an hour apart with interval_minutes = 15: the intervals are 15 minutes long.
-    site, _ = _meter(tmp_path, ["2025-01-06 01:00:00,1.0", "2025-01-06 02:00:00,1.0"],
-                     meter_extra="interval_minutes = 15")
+def test_meter_interval_from_the_site_file_agreeing_with_the_data(tmp_path):
+    site, _ = _meter(tmp_path, ["2025-01-06 01:00:00,1.0", "2025-01-06 01:15:00,1.0",
+                                "2025-01-06 02:00:00,1.0"], meter_extra="interval_minutes = 15")
     m = read_meter(site.meter, site.timezone)
     assert m.interval_min == 15
-    assert m.frame["start_utc"].to_list() == [_utc(2025, 1, 6, 6, 45), _utc(2025, 1, 6, 7, 45)]
+    assert m.frame["start_utc"].to_list() == [_utc(2025, 1, 6, 6, 45), _utc(2025, 1, 6, 7, 0),
+                                              _utc(2025, 1, 6, 7, 45)]
+
+
+@pytest.mark.parametrize("rows, stated, apart", [
+    # interval_minutes = 5 on 15-minute data made every draw about 3 times too high.
+    (["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,1.0", "2025-01-06 00:45:00,1.0"], 5, 15),
+    (["2025-01-06 01:00:00,1.0", "2025-01-06 02:00:00,1.0"], 15, 60),
+    (["2025-01-06 00:05:00,1.0", "2025-01-06 00:10:00,1.0", "2025-01-06 00:15:00,1.0"], 15, 5)])
+def test_meter_interval_that_disagrees_with_the_data_is_an_error(tmp_path, rows, stated, apart):
+    site, path = _meter(tmp_path, rows, meter_extra=f"interval_minutes = {stated}")
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert str(exc.value) == (f"{path}: the readings are {apart} minutes apart (the most common "
+                              f"spacing) but the site file sets interval_minutes = {stated}; "
+                              "remove interval_minutes or correct it")
 
 
 def test_meter_identical_duplicate_rows_are_dropped_and_counted(tmp_path):

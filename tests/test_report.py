@@ -782,3 +782,52 @@ def test_the_chromium_checks_catch_a_console_error_and_a_blank_page(tmp_path):
     assert len(console) == 1 and "deliberate 42" in console[0]
     sd, colours = png_stats(png)
     assert sd < MIN_PIXEL_SD and colours < MIN_DISTINCT_COLOURS
+
+
+# ---------------------------------------------------------------------------------------
+# The first page: when and by what it was made, and the summary in plain words
+
+
+def test_the_header_says_when_and_by_which_version_the_report_was_made(report, result):
+    import zoneinfo
+
+    from disagg import __version__
+
+    today = dt.datetime.now(zoneinfo.ZoneInfo(result.site.timezone)).date().isoformat()
+    yesterday = (dt.date.fromisoformat(today) - dt.timedelta(days=1)).isoformat()
+    header = report[report.index('<header class="top">'):report.index("</header>")]
+    assert (f"Generated on {today} by disagg {__version__}." in header
+            or f"Generated on {yesterday} by disagg {__version__}." in header)  # midnight
+
+
+def test_the_summary_names_the_three_biggest_users_in_order_before_the_first_section(report,
+                                                                                     result):
+    start = report.index('<div class="summary" id="summary">')
+    assert start < report.index('<section class="page first" id="glance">')
+    summary = report[start:report.index("</div>", start)]
+    table = result.breakdown.filter(~pl.col("equipment").is_in(["unexplained"])
+                                    & ~pl.col("equipment").str.starts_with("baseload"))
+    totals = table.group_by("equipment").agg(pl.col("kwh").sum()).sort("kwh", descending=True)
+    top = totals["equipment"].to_list()[:3]
+    biggest = summary[summary.index("Biggest users"):summary.index("</li>")]
+    from disagg.present.report.charts import e
+
+    positions = [biggest.index(f"{e(eq)} ") for eq in top]
+    assert positions == sorted(positions), (top, biggest)
+    assert "What changed:" in summary and "What to look at:" in summary
+
+
+def test_the_summary_names_drift_alarms_when_there_are_some(result, drift):
+    from disagg.present.report.sections import _summary
+
+    html = _summary(result, drift, [])
+    alarmed = [a["equipment"] for a in drift.summary["alarms"]]
+    if alarmed:
+        assert "drift alarms for" in html and all(a in html for a in alarmed)
+    else:
+        assert "drift alarms for" not in html
+
+
+def test_the_first_section_prints_on_the_first_page_and_the_draw_figures_are_explained(report):
+    assert "section.page.first { break-before: auto;" in report
+    assert "One load, several draw figures" in report

@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime as dt
 from pathlib import Path
 
+import polars as pl
 import pytest
 
 from disagg.inputs.config import load_site
@@ -350,3 +351,50 @@ def test_coverage_of_a_log_that_covers_the_meter_period_has_no_finding(tmp_path)
     meter = read_meter(site.meter, site.timezone)
     assert coverage_findings(read_runlog(site.runlog, site), meter.frame) == []
     assert coverage_findings(read_runlog(site.runlog, site), meter.frame.head(0)) == []
+
+
+# ---------------------------------------------------------------------------------------
+# A load missing from the run log: the error names it
+
+
+def test_a_wide_log_without_a_loads_column_fails_naming_that_equipment(tmp_path):
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+    from test_cli import write_site
+
+    s = write_site(tmp_path / "site", days=3)
+    events = pl.read_csv(s["runlog"])
+    # The same states in the wide (samples) layout, one column per load, but no P-1 column.
+    wide = (events.filter(pl.col("point") != "P-1")
+            .pivot(on="point", index="time", values="state", aggregate_function="last")
+            .sort("time").fill_null(strategy="forward").drop_nulls())
+    wide.write_csv(s["runlog"])
+    text = s["site"].read_text(encoding="utf-8").replace(
+        'layout = "events"\ntime_column = "time"\nequipment_column = "point"\n'
+        'state_column = "state"', 'layout = "samples"\ntime_column = "time"\n'
+        'max_hold_minutes = 1440')
+    s["site"].write_text(text, encoding="utf-8")
+    result = CliRunner().invoke(app, ["check", str(s["site"])])
+    assert result.exit_code == 1, result.output
+    assert result.stderr.startswith(f"Error: {s['runlog']} (")
+    assert result.stderr.endswith(
+        ": no interval has both a meter reading and a known state for every equipment; no "
+        "known state at all for P-1 (expected a run-log column named P-1)\n")
+
+
+def test_an_events_log_without_rows_for_a_load_fails_naming_that_equipment(tmp_path):
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+    from test_cli import write_site
+
+    s = write_site(tmp_path / "site", days=3)
+    pl.read_csv(s["runlog"]).filter(pl.col("point") != "AHU-1").write_csv(s["runlog"])
+    result = CliRunner().invoke(app, ["breakdown", str(s["site"]), "--out",
+                                      str(tmp_path / "out")])
+    assert result.exit_code == 1, result.output
+    assert result.stderr.endswith(
+        "; no known state at all for AHU-1 (expected run-log rows with AHU-1 in column "
+        "'point')\n")
+    assert not (tmp_path / "out").exists()

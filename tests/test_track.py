@@ -1,6 +1,6 @@
 """The normalized LMS tracker and the alarm rule (disagg.analyses.track) on arrays with known truth.
 
-All data here is invented. Outside facts (references.md section 4, LMS and normalized LMS):
+All data here is invented. Outside facts (docs/references.md section 4, LMS and normalized LMS):
 - normalized LMS, w <- w + mu e x / (delta + x'x), is stable for 0 < mu < 2 [read, vendor DSP
   documentation; Haykin, Adaptive Filter Theory, normalized LMS chapter: from memory];
 - plain LMS, w <- w + mu e x (this convention, not Widrow & Stearns' 2 mu), converges for
@@ -18,9 +18,9 @@ import pytest
 
 from disagg.analyses.track import EWMA_L, MU_MAX, ewma_alarms, mean_gains, nlms, step_from_memory
 
-# Normalized LMS stable range 0 < mu < 2 (references.md section 4; Haykin, from memory).
+# Normalized LMS stable range 0 < mu < 2 (docs/references.md section 4; Haykin, from memory).
 NLMS_MU_BOUND = 2.0
-# Plain LMS: stable for mu < 2 / trace(R) (references.md section 4, DSP textbook [read]).
+# Plain LMS: stable for mu < 2 / trace(R) (docs/references.md section 4, DSP textbook [read]).
 LMS_BOUND_NUMERATOR = 2.0
 # Misadjustment of normalized LMS on rows of equal norm: M = mu / (2 - mu) (Haykin, from
 # memory; see the module docstring).

@@ -205,6 +205,18 @@ def test_spike_is_listed_with_its_value_and_the_rule(tmp_path):
     assert m.frame["energy_kwh"].null_count() == 1
 
 
+def test_spike_of_a_kw_meter_is_stated_in_kw(tmp_path):
+    # The same readings as mean demand [kW] on 15-minute intervals: the limit and the reading
+    # are stated in kW as the file gives them (27.7912 kWh per 15 min = 111.165 kW is the same
+    # rule on 4 x the values).
+    rows = [f"{r.split(',')[0]},{float(r.split(',')[1]) * 4:g}" for r in _spike_rows()]
+    m = _read(tmp_path, rows, unit="kW")
+    assert _messages(m) == [
+        "meter spikes: 1 reading above 111.165 kW (the larger of the median + 6 scaled MADs "
+        "and 2 x the 99th percentile), 400 kW at 2025-01-07T12:15:00-06:00; policy: left out "
+        "of the fit"]
+
+
 def test_spike_is_left_out_of_the_fit_and_counted(tmp_path):
     site_path = _site(tmp_path, _spike_rows())
     _, aligned = load_inputs(site_path)
@@ -359,7 +371,7 @@ REGISTER = 'register_digits = 5\nmultiplier = 2'
 
 def test_register_readings_become_interval_energy_across_a_rollover(tmp_path):
     # A 5-digit register times 2: 99970 -> 99990 is 20 x 2 = 40 kWh; 99990 -> 00012 rolls
-    # over: (12 - 99990 + 10^5) mod 10^5 = 22, x 2 = 44 kWh (references.md section 7).
+    # over: (12 - 99990 + 10^5) mod 10^5 = 22, x 2 = 44 kWh (docs/references.md section 7).
     rows = ["2025-01-06 00:15:00,99970", "2025-01-06 00:30:00,99990",
             "2025-01-06 00:45:00,00012", "2025-01-06 01:00:00,30"]
     m = _read(tmp_path, rows, unit="kWh-register", meter_extra=REGISTER)

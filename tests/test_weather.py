@@ -143,6 +143,22 @@ def test_weather_settings_and_fahrenheit_reading(tmp_path):
     assert w["temp_c"].to_list() == pytest.approx([30.0, 25.0])  # 86 F, 77 F; empty dropped
 
 
+def test_weather_dates_follow_the_weather_date_order(tmp_path):
+    # 07/01/2025 is 1 July month first and 7 January day first: the file cannot say which.
+    (tmp_path / "weather.csv").write_text("time,temp\n07/01/2025 00:00,86\n07/01/2025 01:00,77\n")
+    (tmp_path / "site.toml").write_text(WEATHER_SITE)
+    site = load_site(tmp_path / "site.toml")
+    with pytest.raises(InputError) as exc:
+        read_weather(site.weather, site.timezone)
+    assert "set [weather] date_order = \"mdy\"" in str(exc.value)
+    (tmp_path / "site.toml").write_text(WEATHER_SITE.replace('unit = "F"\n',
+                                                             'unit = "F"\ndate_order = "mdy"\n'))
+    site = load_site(tmp_path / "site.toml")
+    w = read_weather(site.weather, site.timezone)
+    # 1 July 2025 00:00 CDT (-05:00) = 05:00 UTC.
+    assert w["t"].to_list()[0] == dt.datetime(2025, 7, 1, 5, 0, tzinfo=dt.timezone.utc)
+
+
 def test_weather_equipment_without_a_weather_table_is_an_error(tmp_path):
     text = WEATHER_SITE.replace('[weather]\nfile = "weather.csv"\ntime_column = "time"\n'
                                 'temp_column = "temp"\nunit = "F"\n', "")

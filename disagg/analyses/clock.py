@@ -14,15 +14,16 @@ whose clock runs 7 minutes behind the meter's (it records 10:00 for what the met
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 from dataclasses import dataclass, field
 
 import numpy as np
 import polars as pl
-from scipy.optimize import nnls
 
 from disagg.errors import InputError
-from disagg.fit.align import align, baseload_columns
+from disagg.fit.align import Aligned, align, baseload_columns, frame_baseload
+from disagg.fit.solvers import solve_regularized
 from disagg.inputs.config import SiteConfig
 from disagg.inputs.readers import MeterData, RunLog, Segments
 
@@ -105,8 +106,18 @@ def _rss(X: np.ndarray, y: np.ndarray) -> float:
     References:
         Lawson & Hanson (1974), Solving Least Squares Problems, ch. 23 (scipy.optimize.nnls).
     """
+    from scipy.optimize import nnls  # imported here: the breakdown's quick test needs no scipy
+
     _, rnorm = nnls(X, y)
     return float(rnorm) ** 2
+
+
+def _rss_quick(X: np.ndarray, y: np.ndarray) -> float:
+    """_rss with this project's bounded solver (disagg.fit.solvers.solve_regularized without a
+    penalty, bounds at 0): the same non-negative least squares, without importing scipy."""
+    zeros = np.zeros(X.shape[1])
+    b = solve_regularized(X, y, zeros, zeros, zeros)
+    return float(((y - X @ b) ** 2).sum())
 
 
 def _grid(window_min: float, step_min: float) -> np.ndarray:
@@ -314,3 +325,62 @@ def _verdict(best: float, window_min: float, rss_best: float, rss_zero: float, w
     return (f"the run logs match the meter best when shifted by {best:+.1f} min (add this to "
             f"the log times): residual sum of squares {gain:.0f} % lower than with no shift; "
             f"{sharp}")
+
+
+# The breakdown's quick test: the fit with the logs as read against the logs moved this many
+# minutes either way. Only when one of the two explains the meter better does the full search
+# run (+-QUICK_WINDOW_MIN); a clear offset of at least MATERIAL_OFFSET_MIN that lowers the RSS
+# by at least MATERIAL_GAIN is reported (project choices, no source: a few minutes on 15-minute
+# intervals already moves draws by tens of per cent in this project's tests).
+QUICK_PROBE_MIN = 3.0
+QUICK_WINDOW_MIN = 30.0
+MATERIAL_OFFSET_MIN = 1.0
+MATERIAL_GAIN = 0.05
+
+
+def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
+                   applied_min: float = 0.0, aligned: Aligned | None = None,
+                   date_from: dt.date | None = None,
+                   date_to: dt.date | None = None) -> str | None:
+    """A warning with the --log-offset to try when the run-log clock is materially off, else None.
+
+    Cheap in the usual case (clocks agree): the logs as read and moved +-QUICK_PROBE_MIN are
+    aligned and scored on the intervals all three cover (three alignments and three small NNLS
+    fits). Only when a moved log fits better does estimate_log_offset search +-QUICK_WINDOW_MIN.
+
+    Args:
+        runlog: as read, with applied_min [min] already added to its times.
+        aligned: the run's own alignment of meter and runlog over [date_from, date_to] (the
+            probe at 0 and its baseload columns, shared with the run's fits), or None.
+    """
+    if aligned is None:
+        aligned = align(site, meter, runlog, date_from, date_to)
+    probes = [aligned] + [align(site, meter, shift_runlog(runlog, p), date_from, date_to)
+                          for p in (-QUICK_PROBE_MIN, QUICK_PROBE_MIN)]
+    mask = probes[0].use & probes[1].use & probes[2].use
+    if mask.sum() < MIN_INTERVALS:
+        return None
+    base, _ = frame_baseload(aligned, site.baseload, site.timezone)
+    y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
+    rss = [_rss_quick(np.column_stack([a.hours[mask], base[mask]]), y) for a in probes]
+    if rss[0] <= min(rss[1], rss[2]):
+        return None
+    try:
+        r = estimate_log_offset(site, meter, runlog, window_min=QUICK_WINDOW_MIN)
+    except InputError:
+        return None
+    total = round(applied_min + r.best_offset_min, 1)
+    check = f"disagg check {site.path.name} --find-offset"
+    if r.at_edge:
+        return (f"the run-log clock looks off from the meter's by more than {QUICK_WINDOW_MIN:g} "
+                f"min (the best shift is at the edge of +-{QUICK_WINDOW_MIN:g} min); run "
+                f"`{check} --offset-window 240` and apply what it finds with --log-offset "
+                "(or log_offset_minutes in the site file's [runlog])")
+    gain = 1.0 - r.rss_best_kwh2 / r.rss_zero_kwh2 if r.rss_zero_kwh2 > 0 else 0.0
+    if not r.clear or abs(r.best_offset_min) < MATERIAL_OFFSET_MIN or gain < MATERIAL_GAIN:
+        return None
+    return (f"the run logs match the meter best when shifted by {r.best_offset_min:+.1f} min "
+            f"({100 * gain:.0f} % smaller residual than as read): the building automation clock "
+            "is probably off, which biases the draws; check with "
+            f"`{check}` and re-run with --log-offset {total:g} (or set log_offset_minutes = "
+            f"{total:g} in the site file's [runlog])")

@@ -302,7 +302,7 @@ def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> dict:
 def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
                  after: tuple[dt.date, dt.date], confidence: float = 0.95,
                  min_change: float = DEFAULT_MIN_CHANGE,
-                 log_offset_min: float = 0.0) -> CompareResult:
+                 log_offset_min: float | None = None) -> CompareResult:
     """Fit each period on its own and say, per equipment, whether its draw changed.
 
     Args:

@@ -160,7 +160,7 @@ def drift_site(site_path: str | Path, memory_days: float = 30.0, step: float | N
                reference: tuple[dt.date, dt.date] | None = None, threshold: float = 0.10,
                confidence: float = 0.95, state: dict | None = None,
                date_from: dt.date | None = None, date_to: dt.date | None = None,
-               log_offset_min: float = 0.0, baseload_memory_days: float | None = None,
+               log_offset_min: float | None = None, baseload_memory_days: float | None = None,
                min_reference_run_h: float = MIN_REFERENCE_RUN_H) -> DriftResult:
     """Track each draw day by day and flag drift against its reference.
 

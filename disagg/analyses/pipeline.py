@@ -17,6 +17,7 @@ import polars as pl
 
 from disagg import __version__
 from disagg.analyses.breakdown import monthly_breakdown
+from disagg.analyses.clock import offset_warning
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import (
     BASELOAD_COLUMN_COUNT,
@@ -28,6 +29,7 @@ from disagg.fit.align import (
 from disagg.fit.estimate import Estimates, estimate_draws, inseparable
 from disagg.inputs.config import SiteConfig, load_site
 from disagg.inputs.logcheck import coverage_findings
+from disagg.inputs.notes import tidy
 from disagg.inputs.readers import read_meter, read_runlog, read_weather
 from disagg.inputs.vee import Finding
 from disagg.progress import Progress, report
@@ -55,13 +57,15 @@ class BreakdownResult:
 
 def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
                 date_to: dt.date | None = None,
-                log_offset_min: float = 0.0, *,
-                on_duplicate: str = "error") -> tuple[SiteConfig, Aligned]:
+                log_offset_min: float | None = None, *,
+                on_duplicate: str | None = None) -> tuple[SiteConfig, Aligned]:
     """Read the site file, the meter and the run log, and align them.
 
-    log_offset_min: minutes added to every run-log time to put it on the meter's clock.
+    log_offset_min: minutes added to every run-log time to put it on the meter's clock; None
+        takes the site file's ``[runlog] log_offset_minutes`` (default 0).
     on_duplicate: different meter readings at one time are an error (``error``), or the
-        first or last such row is kept (``keep-first``, ``keep-last``).
+        first or last such row is kept (``keep-first``, ``keep-last``); None takes the site
+        file's ``[meter] on_duplicate`` (default ``error``).
 
     The meter validation's findings (disagg.inputs.vee) lead aligned.notes, one line each;
     aligned.counts["spikes"] counts the intervals left out as spikes (they are also in
@@ -76,12 +80,24 @@ def load_inputs(site_path: str | Path, date_from: dt.date | None = None,
 
 
 def load_validated(site_path: str | Path, date_from: dt.date | None = None,
-                   date_to: dt.date | None = None, log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error",
+                   date_to: dt.date | None = None, log_offset_min: float | None = None, *,
+                   on_duplicate: str | None = None,
                    progress: Progress | None = None) -> tuple[SiteConfig, Aligned, list[Finding]]:
     """load_inputs, and the meter validation's findings as well. progress: called as
     progress("reading", done, 4) after the meter, the run log, the weather and the alignment."""
+    site, _, _, aligned, findings = _read_all(site_path, date_from, date_to, log_offset_min,
+                                              on_duplicate, progress)
+    return site, aligned, findings
+
+
+def _read_all(site_path: str | Path, date_from: dt.date | None, date_to: dt.date | None,
+              log_offset_min: float | None, on_duplicate: str | None,
+              progress: Progress | None = None):
+    """load_validated's work, also returning the meter and run log as read:
+    (site, meter, runlog, aligned, findings)."""
     site = load_site(site_path)
+    log_offset_min = site.runlog.log_offset_min if log_offset_min is None else log_offset_min
+    on_duplicate = site.meter.on_duplicate if on_duplicate is None else on_duplicate
     check_range(date_from, date_to)
     check_log_offset(log_offset_min)
     report(progress, "reading", 0, 4)
@@ -98,18 +114,23 @@ def load_validated(site_path: str | Path, date_from: dt.date | None = None,
                          f"{date_from or 'the start'} and {date_to or 'the end'}")
     findings: list[Finding] = meter.findings
     replaced = {f.replaces for f in findings}
-    aligned.notes[:0] = ([f.message for f in findings]
+    align_notes = aligned.notes
+    if any(f.kind == "gap" for f in findings):  # the gap finding already says so, with times
+        align_notes = [n for n in align_notes
+                       if "meter intervals are absent from the file" not in n]
+    aligned.notes = tidy([f.message for f in findings]
                          + [n for n in meter.notes if n not in replaced] + runlog.notes
-                         + coverage_findings(runlog, aligned.frame))
+                         + coverage_findings(runlog, aligned.frame) + align_notes,
+                         site.input_files(), site.path.parent, site.timezone)
     spike_starts = [t for f in findings if f.kind == "spike" for t in f.starts_utc]
     aligned.counts["spikes"] = int(aligned.frame["start_utc"].is_in(spike_starts).sum())
-    return site, aligned, findings
+    return site, meter, runlog, aligned, findings
 
 
 def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                    date_to: dt.date | None = None, confidence: float = 0.95,
-                   log_offset_min: float = 0.0, *,
-                   on_duplicate: str = "error", estimate: bool = False,
+                   log_offset_min: float | None = None, *,
+                   on_duplicate: str | None = None, estimate: bool = False,
                    progress: Progress | None = None) -> BreakdownResult:
     """Monthly per-equipment kWh with intervals, for one site.
 
@@ -121,9 +142,13 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
         ConfigError, InputError: bad settings, files, or too little usable data.
     """
     check_confidence(confidence)
-    site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
-                                             on_duplicate=on_duplicate, progress=progress)
+    site, meter, runlog, aligned, findings = _read_all(site_path, date_from, date_to,
+                                                       log_offset_min, on_duplicate, progress)
     require_usable(site, aligned)
+    applied = site.runlog.log_offset_min if log_offset_min is None else log_offset_min
+    clock_warning = offset_warning(site, meter, runlog, applied, aligned, date_from, date_to)
+    if clock_warning:
+        aligned.notes.append(clock_warning)
     report(progress, "fitting", 0, 1)
     try:
         est = estimate_draws(site, aligned, confidence)
@@ -149,7 +174,8 @@ def require_usable(site: SiteConfig, aligned: Aligned) -> None:
     n_unknowns = len(aligned.equipment_ids) + BASELOAD_COLUMN_COUNT[site.baseload.profile]
     if used == 0:
         raise InputError(f"{_short_data_source(site, aligned)}: no interval has both a meter "
-                         "reading and a known state for every equipment")
+                         "reading and a known state for every equipment"
+                         + _never_known(site, aligned))
     if used < n_unknowns + 2:
         raise InputError(f"{_short_data_source(site, aligned)}: only {used} usable meter "
                          f"intervals for {n_unknowns} unknowns; a fit needs at least "
@@ -242,6 +268,22 @@ def tariff_summary(site: SiteConfig, table: pl.DataFrame, aligned: Aligned) -> d
                    "higher"),
         "warnings": warnings,
     }
+
+
+def _never_known(site: SiteConfig, aligned: Aligned) -> str:
+    """'; no known state at all for X (expected ...)' naming the equipment whose state is
+    unknown in every interval, such as a load missing from a wide (samples) run log."""
+    known = ~np.isnan(aligned.hours)
+    never = [eq for j, eq in enumerate(aligned.equipment_ids) if not known[:, j].any()]
+    if not never:
+        return ""
+    ids = ", ".join(never)
+    if site.runlog.layout == "samples":
+        expected = f"a run-log column named {ids}" if len(never) == 1 else \
+            f"run-log columns named {ids}"
+    else:
+        expected = f"run-log rows with {ids} in column {site.runlog.equipment_column!r}"
+    return f"; no known state at all for {ids} (expected {expected})"
 
 
 def _short_data_source(site: SiteConfig, aligned: Aligned) -> str:
@@ -405,9 +447,9 @@ class CheckResult:
 
 
 def check_site(site_path: str | Path, date_from: dt.date | None = None,
-               date_to: dt.date | None = None, log_offset_min: float = 0.0,
+               date_to: dt.date | None = None, log_offset_min: float | None = None,
                offset_window_min: float | None = None, *,
-               on_duplicate: str = "error") -> CheckResult:
+               on_duplicate: str | None = None) -> CheckResult:
     """Read and align everything and say what was found, without fitting.
 
     The report's "findings" are the meter validation's (disagg.inputs.vee, as dicts with kind,
@@ -445,8 +487,10 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
         "notes": [n for n in aligned.notes if n not in {f.message for f in findings}],
     }
     if offset_window_min is not None:
-        report["clock_offset"] = find_log_offset(site, offset_window_min, log_offset_min,
-                                                 on_duplicate=on_duplicate)
+        report["clock_offset"] = find_log_offset(
+            site, offset_window_min,
+            site.runlog.log_offset_min if log_offset_min is None else log_offset_min,
+            on_duplicate=site.meter.on_duplicate if on_duplicate is None else on_duplicate)
     return CheckResult(site, aligned, report)
 
 

@@ -23,7 +23,7 @@ from scipy.linalg import expm, solve_discrete_lyapunov
 
 # Normalized LMS converges in the mean square for 0 < mu < 2 (Haykin, Adaptive Filter Theory,
 # the normalized LMS chapter, from memory; also stated in vendor DSP documentation, read via
-# references.md section 4). A step at or beyond it is refused.
+# docs/references.md section 4). A step at or beyond it is refused.
 MU_MAX = 2.0
 # Exponentially weighted moving-average control chart: alarm beyond L standard deviations
 # (Roberts 1959, Technometrics 1(3), 239-250; L = 3 is common practice, e.g. Montgomery,

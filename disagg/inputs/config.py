@@ -8,11 +8,14 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import difflib
 import math
+import os
 import re
+import stat
 import tomllib
 import zoneinfo
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 from disagg.errors import ConfigError
@@ -30,6 +33,12 @@ BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
 CONTROLS = ("on-off", "variable")
 WEATHER_MODES = ("cooling", "heating")
 SMALLEST_SIZE = 1e-6
+# No setting of building equipment (kW, hp, V, A, minutes, kWh per register unit) comes near
+# this; a larger one is a typing error (common practice, no source).
+LARGEST_SIZE = 1e9
+# Settings of temperature (balance_temp, reference_temp), in the weather file's unit, lie
+# within this many degrees of zero (common practice, no source).
+MAX_ABS_TEMP = 200.0
 TEMP_UNITS = ("F", "C")
 WEEKDAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
 
@@ -57,6 +66,8 @@ class MeterSettings:
     interval_min: int | None  # None: inferred from the data
     register_digits: int | None = None  # kWh-register: digits of the register (rolls over)
     multiplier: float = 1.0  # kWh-register: kWh per register unit (CT/PT ratio, pulse weight)
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
+    on_duplicate: str = "error"  # different readings at one time: error, keep-first, keep-last
 
 
 @dataclass(frozen=True)
@@ -72,6 +83,8 @@ class RunlogSettings:
     max_hold_min: float | None = None  # samples: longest a sample holds
     stamp: str = "start"  # runtime: which edge of its interval the time marks
     interval_min: int | None = None  # runtime: length of its intervals, None = inferred
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
+    log_offset_min: float = 0.0  # minutes added to every log time to reach the meter's clock
 
 
 @dataclass(frozen=True)
@@ -131,6 +144,7 @@ class WeatherSettings:
     temp_column: str
     unit: str  # F or C, as in the file (balance and reference temperatures use it too)
     reference_temp_c: float | None  # drift and comparison are stated at this temperature
+    date_order: str | None = None  # ymd, mdy, dmy or a format string; None = from the column
 
 
 def to_celsius(value: float, unit: str) -> float:
@@ -174,7 +188,6 @@ class SiteConfig:
     runlog: RunlogSettings
     baseload: BaseloadSettings
     equipment: tuple[Equipment, ...]
-    extra: dict = field(default_factory=dict)
     weather: WeatherSettings | None = None
     tariff: TariffSettings | None = None
     history: Path | None = None  # [history] folder: the history store (disagg.present.history)
@@ -186,6 +199,80 @@ class SiteConfig:
         """The files a run reads (the site file, meter, run log, weather): never outputs."""
         files = [self.path, self.meter.file, self.runlog.file]
         return files + ([self.weather.file] if self.weather is not None else [])
+
+
+def did_you_mean(name: str, known, form: str = "{}") -> str:
+    """`` (did you mean X?)`` with the known name nearest to name (difflib, case ignored), or
+    "" when none is near; form wraps the name, e.g. "[{}]"."""
+    lowered = {k.lower(): k for k in known}
+    near = difflib.get_close_matches(name.lower(), list(lowered), n=1, cutoff=0.6)
+    return f" (did you mean {form.format(lowered[near[0]])}?)" if near else ""
+
+
+# The tables of a site file, as written in it.
+SITE_TABLES = {"site": "[site]", "meter": "[meter]", "runlog": "[runlog]",
+               "baseload": "[baseload]", "equipment": "[[equipment]]", "weather": "[weather]",
+               "tariff": "[tariff]", "history": "[history]"}
+
+
+def _check_top_level(path: Path, data: dict) -> None:
+    """Every top-level name must be one of SITE_TABLES: a misspelt table ([histroy]) or a
+    setting above the first table would otherwise be ignored silently.
+
+    Raises:
+        ConfigError: naming it, with the nearest table name.
+    """
+    expected = ", ".join(SITE_TABLES.values())
+    for key, value in data.items():
+        if key in SITE_TABLES:
+            continue
+        if isinstance(value, dict):
+            what = f"[{key}]: unknown table"
+        elif isinstance(value, list) and value and all(isinstance(v, dict) for v in value):
+            what = f"[[{key}]]: unknown table"
+        else:
+            raise ConfigError(f"{path}: {key} = {value!r}: a setting outside any table; every "
+                              f"setting belongs in one of the tables {expected}"
+                              f"{did_you_mean(key, SITE_TABLES, '{}')}")
+        near = difflib.get_close_matches(key.lower(), list(SITE_TABLES), n=1, cutoff=0.6)
+        hint = f" (did you mean {SITE_TABLES[near[0]]}?)" if near else ""
+        raise ConfigError(f"{path}: {what}{hint}; expected only {expected}")
+
+
+def check_regular_file(path: Path, what: str) -> None:
+    """Refuse, before reading, a path that is not a regular file: a FIFO would block the run
+    forever and a device such as /dev/zero would be read until memory runs out.
+
+    Raises:
+        ConfigError: a FIFO, device, socket or folder, or a path that cannot be looked up
+            (a symbolic link loop, say); a missing file is left to the reader.
+    """
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the {what} ({exc.strerror})") from None
+    if stat.S_ISREG(mode):
+        return
+    kind = ("a folder" if stat.S_ISDIR(mode) else "a FIFO (named pipe)" if stat.S_ISFIFO(mode)
+            else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
+            else "a socket" if stat.S_ISSOCK(mode) else "not a regular file")
+    raise ConfigError(f"{path}: is {kind}, not a file; give the {what} itself")
+
+
+def resolve_path(path: str | Path, what: str) -> Path:
+    """path made absolute with symbolic links followed.
+
+    Raises:
+        ConfigError: a symbolic link loop, or a path the system cannot use.
+    """
+    try:
+        return Path(path).resolve()
+    except (OSError, RuntimeError, ValueError) as exc:
+        why = ("a symbolic link loop" if isinstance(exc, RuntimeError)
+               or getattr(exc, "errno", None) == 40 else str(exc))
+        raise ConfigError(f"{path}: cannot use this {what} path ({why})") from None
 
 
 class _Table:
@@ -202,8 +289,8 @@ class _Table:
         """Refuse keys the table does not use: a misspelt key must not be ignored silently."""
         for key in self.data:
             if key not in allowed:
-                raise ConfigError(f"{self.where(key)}: unknown setting; expected one of "
-                                  f"{', '.join(sorted(allowed))}")
+                raise ConfigError(f"{self.where(key)}: unknown setting{did_you_mean(key, allowed)}"
+                                  f"; expected one of {', '.join(sorted(allowed))}")
 
     def where(self, key: str) -> str:
         return f"{self.path}: [{self.name}] {key}"
@@ -236,10 +323,11 @@ class _Table:
         if value is None:
             return None
         # Sizes below 1e-6 (kW, hp, V, A, ...) are no real equipment and would make the
-        # prior's precision 1 / sd^2 overflow.
-        if (not math.isfinite(value) or value < SMALLEST_SIZE
-                or (upper is not None and value > upper)):
-            bound = f" and at most {upper:g}" if upper is not None else ""
+        # prior's precision 1 / sd^2 overflow; above LARGEST_SIZE, underflow.
+        limit = LARGEST_SIZE if upper is None else upper
+        if not math.isfinite(value) or value < SMALLEST_SIZE or value > limit:
+            shown = upper if upper is not None else (limit if value > limit else None)
+            bound = f" and at most {shown:g}" if shown is not None else ""
             raise ConfigError(f"{self.where(key)} = {value!r}: expected a number above 0{bound}"
                               + (f" (at least {SMALLEST_SIZE:g})" if 0 < value < SMALLEST_SIZE
                                  else ""))
@@ -249,7 +337,7 @@ class _Table:
         text = self.get(key, str)
         try:
             return (self.path.parent / text).resolve()
-        except (OSError, ValueError) as exc:
+        except (OSError, ValueError, RuntimeError) as exc:
             raise ConfigError(f"{self.where(key)} = {text!r}: not a usable path ({exc})") from None
 
 
@@ -258,6 +346,45 @@ def _interval(table: _Table, key: str) -> int | None:
     if value is not None and value not in ALLOWED_INTERVALS_MIN:
         raise ConfigError(f"{table.where(key)} = {value!r}: expected one of "
                           f"{', '.join(map(str, ALLOWED_INTERVALS_MIN))} minutes")
+    return value
+
+
+def _temperature(table: _Table, key: str, required: bool) -> float | None:
+    """A temperature setting: finite, within MAX_ABS_TEMP of zero.
+
+    Raises:
+        ConfigError: missing (when required), not a number, or out of that range.
+    """
+    value = table.get(key, float, required=required)
+    if value is not None and not (math.isfinite(value) and abs(value) <= MAX_ABS_TEMP):
+        raise ConfigError(f"{table.where(key)} = {value!r}: expected a temperature from "
+                          f"{-MAX_ABS_TEMP:g} to {MAX_ABS_TEMP:g}")
+    return value
+
+
+DATE_ORDERS = ("ymd", "mdy", "dmy")
+DUPLICATE_POLICIES = ("error", "keep-first", "keep-last")  # as disagg.inputs.vee.ON_DUPLICATE
+# Clock offsets beyond a week are no clock error but a wrong file (common practice, no source).
+MAX_LOG_OFFSET_MIN = 7 * 24 * 60
+
+
+def _date_order(table: _Table) -> str | None:
+    """date_order: the order of numeric dates (ymd, mdy, dmy) or a whole format string such as
+    "%m/%d/%Y %I:%M %p" (strftime codes); None lets the reader decide from the column."""
+    value = table.get("date_order", str, required=False)
+    if value is None or value in DATE_ORDERS or "%" in value:
+        return value
+    raise ConfigError(f"{table.where('date_order')} = {value!r}: expected \"ymd\" (2024-10-13), "
+                      "\"mdy\" (10/13/2024), \"dmy\" (13/10/2024) or a format string such as "
+                      "\"%m/%d/%Y %H:%M\"")
+
+
+def _log_offset(table: _Table) -> float:
+    """[runlog] log_offset_minutes: minutes added to every run-log time (the --log-offset)."""
+    value = table.get("log_offset_minutes", float, required=False, default=0.0)
+    if not (math.isfinite(value) and abs(value) <= MAX_LOG_OFFSET_MIN):
+        raise ConfigError(f"{table.where('log_offset_minutes')} = {value!r}: expected a number "
+                          f"of minutes from -{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
     return value
 
 
@@ -297,8 +424,8 @@ def _csv_meter(table: _Table) -> MeterSettings:
         if not register:
             raise ConfigError(f"{table.where(key)}: only used with unit = \"{REGISTER_UNIT}\"; "
                               "remove it or set that unit")
-    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes"}
-               | extra)
+    table.only({"file", "time_column", "value_column", "unit", "stamp", "interval_minutes",
+                "date_order", "on_duplicate"} | extra)
     digits, multiplier = None, 1.0
     if register:
         digits = table.get("register_digits", int, required=False)
@@ -319,6 +446,9 @@ def _csv_meter(table: _Table) -> MeterSettings:
         interval_min=_interval(table, "interval_minutes"),
         register_digits=digits,
         multiplier=multiplier,
+        date_order=_date_order(table),
+        on_duplicate=table.choice("on_duplicate", DUPLICATE_POLICIES, required=False,
+                                  default="error"),
     )
 
 
@@ -422,9 +552,7 @@ def _equipment(path: Path, index: int, data: object, seen: set[str],
         if weather is None:
             raise ConfigError(f"{t.where('weather')} = {mode!r}: needs a [weather] table with "
                               "the outdoor temperature file")
-        balance = t.get("balance_temp", float)
-        if not math.isfinite(balance):
-            raise ConfigError(f"{t.where('balance_temp')} = {balance!r}: expected a temperature")
+        balance = _temperature(t, "balance_temp", required=True)
         balance_c = to_celsius(balance, weather.unit)
     elif "balance_temp" in t.data:
         raise ConfigError(f"{t.where('balance_temp')}: only used with weather = \"cooling\" or "
@@ -471,6 +599,35 @@ def _check_aliases(path: Path, equipment: tuple[Equipment, ...]) -> None:
             owner[a] = e.id
 
 
+# Deepest nesting of arrays and tables accepted in a TOML file: far more than any site or
+# portfolio file needs, far less than the parser's recursion limit.
+MAX_TOML_DEPTH = 50
+
+
+def parse_toml(text: str, path: Path) -> dict:
+    """tomllib.loads, with every failure a ConfigError naming the file.
+
+    Raises:
+        ConfigError: not valid TOML, or nested deeper than MAX_TOML_DEPTH.
+    """
+    depth = deepest = 0
+    for ch in text:  # brackets in strings count too: an overestimate, never an underestimate
+        if ch in "[{":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif ch in "]}":
+            depth = max(0, depth - 1)
+    if deepest > MAX_TOML_DEPTH:
+        raise ConfigError(f"{path}: not valid TOML for disagg (arrays or tables nested more "
+                          f"than {MAX_TOML_DEPTH} deep)")
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    except RecursionError:
+        raise ConfigError(f"{path}: not valid TOML for disagg (nested too deeply)") from None
+
+
 def load_site(path: str | Path) -> SiteConfig:
     """Read and check a site TOML file.
 
@@ -483,17 +640,18 @@ def load_site(path: str | Path) -> SiteConfig:
     Raises:
         ConfigError: the file is missing, is not TOML, or a setting is missing or invalid.
     """
-    path = Path(path).resolve()
+    path = resolve_path(path, "site file")
+    check_regular_file(path, "site file")
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise ConfigError(f"{path}: no such site file") from None
-    except (OSError, UnicodeDecodeError) as exc:
+    except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: cannot read the site file ({exc})") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the site file ({exc.strerror or exc})") from None
+    data = parse_toml(text, path)
+    _check_top_level(path, data)
 
     for key in ("site", "meter", "runlog"):
         if key not in data:
@@ -516,7 +674,7 @@ def load_site(path: str | Path) -> SiteConfig:
 
     r = _Table(path, "runlog", data["runlog"])
     layout = r.choice("layout", RUNLOG_LAYOUTS)
-    r.only({"file", "layout", "time_column"} | {
+    r.only({"file", "layout", "time_column", "date_order", "log_offset_minutes"} | {
         "events": {"equipment_column", "state_column"},
         "samples": {"max_hold_minutes"},
         "runtime": {"equipment_column", "minutes_column", "stamp", "interval_minutes"}}[layout])
@@ -530,6 +688,8 @@ def load_site(path: str | Path) -> SiteConfig:
         max_hold_min=r.positive("max_hold_minutes", required=True) if layout == "samples" else None,
         stamp=r.choice("stamp", STAMPS, required=False, default="start") if layout == "runtime" else "start",
         interval_min=_interval(r, "interval_minutes") if layout == "runtime" else None,
+        date_order=_date_order(r),
+        log_offset_min=_log_offset(r),
     )
 
     b = _Table(path, "baseload", data.get("baseload", {}))
@@ -557,12 +717,13 @@ def load_site(path: str | Path) -> SiteConfig:
     weather = None
     if "weather" in data:
         w = _Table(path, "weather", data["weather"])
-        w.only({"file", "time_column", "temp_column", "unit", "reference_temp"})
+        w.only({"file", "time_column", "temp_column", "unit", "reference_temp", "date_order"})
         unit = w.choice("unit", TEMP_UNITS)
-        ref_t = w.get("reference_temp", float, required=False)
+        ref_t = _temperature(w, "reference_temp", required=False)
         weather = WeatherSettings(w.file("file"), w.get("time_column", str),
                                   w.get("temp_column", str), unit,
-                                  None if ref_t is None else to_celsius(ref_t, unit))
+                                  None if ref_t is None else to_celsius(ref_t, unit),
+                                  _date_order(w))
     raw_eq = data.get("equipment", [])
     if not isinstance(raw_eq, list) or not raw_eq:
         raise ConfigError(f"{path}: no [[equipment]] tables; add one per logged load")
@@ -575,10 +736,8 @@ def load_site(path: str | Path) -> SiteConfig:
         h = _Table(path, "history", data["history"])
         h.only({"folder"})
         history = h.file("folder")
-    known = {"site", "meter", "runlog", "baseload", "equipment", "weather", "tariff", "history"}
-    extra = {k: v for k, v in data.items() if k not in known}
-    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, extra, weather,
-                      tariff, history)
+    return SiteConfig(path, name, tz, meter, runlog, baseload, equipment, weather=weather,
+                      tariff=tariff, history=history)
 
 
 # No energy or demand price comes near this [currency per kWh or per kW]; a larger one is a

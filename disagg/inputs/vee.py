@@ -2,7 +2,7 @@
 
 Utility VEE standards check interval data for missing intervals, zero reads during outages,
 spikes, short or long intervals after a time reset and register (pulse) overflow
-(references.md section 7, read from their tables of contents). Each check here is a pure
+(docs/references.md section 7, read from their tables of contents). Each check here is a pure
 function over the meter readings that returns a :class:`Finding`: what was found, how many,
 the first few times (local ISO 8601 with the UTC offset, as the file's stamp edge) and the
 policy the tool applies, all in one readable line. ``disagg.inputs.readers.read_meter`` runs them.
@@ -252,7 +252,7 @@ def register_energy(t: pl.Series, reading: pl.Series, interval_min: int, digits:
 
     The interval ending at a reading gets (R2 - R1) x multiplier from the previous reading
     exactly one interval earlier; with ``digits`` set, a reading below the previous one is a
-    rollover: (R2 - R1 + 10^digits) mod 10^digits x multiplier (references.md section 7,
+    rollover: (R2 - R1 + 10^digits) mod 10^digits x multiplier (docs/references.md section 7,
     from memory). An interval whose previous reading is missing or further back is null (its
     energy is known only together with the gap's), and so is the first reading's.
 
@@ -419,7 +419,8 @@ def gaps(frame: pl.DataFrame, interval_min: int, edge: str, tz: str) -> Finding 
         f"in {_plural(len(at), 'gap')} ({_listed(items, len(at))}); policy: {policy}")
 
 
-def spikes(frame: pl.DataFrame, edge: str, tz: str) -> tuple[pl.Series, Finding | None]:
+def spikes(frame: pl.DataFrame, edge: str, tz: str, unit: str = "kWh",
+           interval_min: int | None = None) -> tuple[pl.Series, Finding | None]:
     """Readings far above the rest of the file (policy: left out of the fit).
 
     Rule: a reading is a spike when it exceeds the file's median by more than SPIKE_MADS
@@ -451,11 +452,16 @@ def spikes(frame: pl.DataFrame, edge: str, tz: str) -> tuple[pl.Series, Finding 
         return mask, None
     hit = frame.filter(mask)
     times = local_iso(_stamps(hit, edge), tz)
-    items = [f"{v:.6g} kWh at {t}" for t, v in zip(times, hit["energy_kwh"])]
+    # In the file's unit: kW readings are mean demand (kWh x 60 / interval minutes), Wh x 1000.
+    shown = {"kW": 60.0 / interval_min if interval_min else None, "Wh": 1000.0}.get(unit)
+    if shown is None:
+        shown, unit = 1.0, "kWh"
+    items = [f"{v * shown:.6g} {unit} at {t}" for t, v in zip(times, hit["energy_kwh"])]
     policy = "left out of the fit"
     return mask, Finding(
         "spike", n, tuple(times[:FIRST_TIMES]), policy,
-        f"meter spikes: {_plural(n, 'reading')} above {limit:.6g} kWh (the larger of the "
+        f"meter spikes: {_plural(n, 'reading')} above {limit * shown:.6g} {unit} (the larger of "
+        "the "
         f"median + {SPIKE_MADS:g} scaled MADs and {SPIKE_PERCENTILE_FACTOR:g} x the 99th "
         f"percentile), {_listed(items, n)}; policy: {policy}",
         starts_utc=tuple(hit["start_utc"].to_list()))
@@ -492,17 +498,19 @@ def zero_runs(frame: pl.DataFrame, interval_min: int, edge: str, tz: str) -> Fin
 
 
 def validate_frame(frame: pl.DataFrame, interval_min: int, edge: str,
-                   tz: str) -> tuple[pl.DataFrame, list[Finding]]:
+                   tz: str, unit: str = "kWh") -> tuple[pl.DataFrame, list[Finding]]:
     """Gaps, spikes and zero runs of a meter frame; spikes' energy set to null (left out).
 
     Args:
         frame: start_utc, end_utc [UTC], energy_kwh [kWh], sorted by start, one interval grid.
+        unit: the meter file's unit (kWh, Wh or kW): the spike finding states its readings and
+            limit in it, as the engineer sees them in the file.
 
     Returns:
         (the frame with spike readings null, the findings).
     """
     findings = [f for f in (gaps(frame, interval_min, edge, tz),) if f]
-    mask, spike = spikes(frame, edge, tz)
+    mask, spike = spikes(frame, edge, tz, unit, interval_min)
     if spike:
         findings.append(spike)
         frame = frame.with_columns(pl.when(mask).then(None).otherwise(pl.col("energy_kwh"))

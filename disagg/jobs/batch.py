@@ -30,7 +30,6 @@ import os
 import re
 import signal
 import time
-import tomllib
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -51,6 +50,10 @@ START_METHOD = "forkserver"
 # Seconds to wait for a Dask scheduler to answer before giving up: the whole connection
 # (TCP connect, Dask's handshake and an identity request), not only the TCP connect.
 CLUSTER_CONNECT_TIMEOUT_S = 20
+# Seconds a cluster batch waits while the scheduler has no worker (none joined, or the last
+# one stopped) before it gives up with an error, and how often it looks [s].
+CLUSTER_IDLE_TIMEOUT_S = 60.0
+CLUSTER_POLL_S = 1.0
 # A scheduler address as Dask prints it: tcp:// or tls://, a host name, IPv4 or [IPv6]
 # address, and a port.
 CLUSTER_ADDRESS = re.compile(r"(tcp|tls)://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):([0-9]{1,5})")
@@ -74,6 +77,22 @@ class Portfolio:
     sites: tuple[Path, ...]
     history: Path | None = None
 
+    @property
+    def base(self) -> Path:
+        """The folder the sites' paths are relative to: the folder itself, or the portfolio
+        file's folder."""
+        return self.source if self.source.is_dir() else self.source.parent
+
+    def folder_name(self, site: Path) -> str:
+        """A site's output folder, relative to --out: its path relative to the portfolio
+        without .toml (``school/site.toml`` -> ``school/site``); a site file outside the
+        portfolio's folder gets its file name without .toml."""
+        try:
+            rel = site.relative_to(self.base)
+        except ValueError:
+            return site.stem
+        return rel.with_suffix("").as_posix()
+
 
 @dataclass(frozen=True)
 class SiteJob:
@@ -86,6 +105,11 @@ class SiteJob:
     drift: bool = False
     history: str | None = None  # the portfolio's history folder, used when the site has none
     drift_reference: tuple[dt.date, dt.date] | None = None  # None: drift's default
+    name: str | None = None  # the output folder relative to --out; None: the file's stem
+
+    @property
+    def folder(self) -> str:
+        return self.name or Path(self.site_file).stem
 
 
 @dataclass
@@ -93,7 +117,7 @@ class SiteOutcome:
     """What one site's job returns: plain data, the same wherever the job ran."""
 
     site_file: str
-    folder: str  # the output folder's name (the site file's name without .toml)
+    folder: str  # the output folder relative to --out (Portfolio.folder_name)
     status: str  # ok or failed
     site: str | None = None  # the [site] name, when the file could be read
     error: str | None = None  # one line, as `disagg breakdown` would print it after "Error: "
@@ -111,6 +135,8 @@ class SiteOutcome:
     history_note: str | None = None  # months not stored in the history, and why
     files: list[str] = field(default_factory=list)
     seconds: float = 0.0  # wall time of the job (not part of the portfolio table)
+    # breakdown.csv's rows: period, equipment, kwh, kwh_low, kwh_high, share, flags
+    months: list[dict] = field(default_factory=list)
 
 
 @dataclass
@@ -120,6 +146,7 @@ class PortfolioResult:
     portfolio: Portfolio
     frame: pl.DataFrame
     outcomes: list[SiteOutcome]
+    equipment: pl.DataFrame | None = None  # equipment_frame: the long form
 
     @property
     def failed(self) -> list[SiteOutcome]:
@@ -129,24 +156,31 @@ class PortfolioResult:
 def load_portfolio(path: str | Path) -> Portfolio:
     """A folder of site files, or a portfolio file listing them.
 
+    A folder's sites are every ``*.toml`` directly in it and every ``*/site.toml`` one level
+    down (a folder per building, each holding its site.toml).
+
     Raises:
         ConfigError: no such folder or file, no sites, a bad portfolio file, or two sites
             whose file names would share an output folder.
     """
-    path = Path(path).resolve()
+    from disagg.inputs.config import parse_toml, resolve_path
+
+    path = resolve_path(path, "portfolio")
     history = None
     if path.is_dir():
         sites = sorted((p for p in path.glob("*.toml")
                         if p.is_file() and not p.name.startswith(".")), key=lambda p: p.name)
+        sites += sorted((p for p in path.glob("*/site.toml")
+                         if p.is_file() and not p.parent.name.startswith(".")),
+                        key=lambda p: p.parent.name)
         if not sites:
             raise ConfigError(f"{path}: no *.toml site files in this folder")
     elif path.is_file():
         try:
-            data = tomllib.loads(path.read_text(encoding="utf-8"))
+            text = path.read_text(encoding="utf-8")
         except (OSError, UnicodeDecodeError) as exc:
             raise ConfigError(f"{path}: cannot read the portfolio file ({exc})") from None
-        except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+        data = parse_toml(text, path)
         if set(data) != {"portfolio"} or not isinstance(data["portfolio"], dict):
             hint = ("; this looks like a site file: run it with disagg breakdown"
                     if "site" in data else "")
@@ -174,13 +208,25 @@ def load_portfolio(path: str | Path) -> Portfolio:
             history = (path.parent / h).resolve()
     else:
         raise ConfigError(f"{path}: no such folder or portfolio file")
+    pf = Portfolio(path, tuple(sites), history)
     seen: dict[str, Path] = {}
     for s in sites:
-        if s.stem in seen:
-            raise ConfigError(f"{path}: {seen[s.stem]} and {s} would both write to the output "
-                              f"folder {s.stem!r}; give the site files different names")
-        seen[s.stem] = s
-    return Portfolio(path, tuple(sites), history)
+        name = pf.folder_name(s)
+        if name in seen:
+            raise ConfigError(f"{path}: {seen[name]} and {s} would both write to the output "
+                              f"folder {name!r}; give the site files different names")
+        seen[name] = s
+    from disagg.present.history import site_id
+
+    ids: dict[str, Path] = {}
+    for s in sites:
+        sid = site_id(s)
+        if sid in ids:
+            raise ConfigError(f"{path}: {ids[sid]} and {s} would share the history id {sid!r} "
+                              "(file names that differ only in characters other than letters, "
+                              "digits, '.', '_' and '-'); give the site files different names")
+        ids[sid] = s
+    return pf
 
 
 def run_site(job: SiteJob) -> SiteOutcome:
@@ -195,7 +241,7 @@ def run_site(job: SiteJob) -> SiteOutcome:
     written says so.
     """
     t0 = time.perf_counter()
-    folder = Path(job.site_file).stem
+    folder = job.folder
     try:
         outcome = _run_site(job)
     except (KeyboardInterrupt, SystemExit):
@@ -237,9 +283,10 @@ def _run_site(job: SiteJob) -> SiteOutcome:
     tariff = result.fit.get("tariff")
     alarms, alarmed, drift_note = _alarms(drift)
     return SiteOutcome(
-        site_file=job.site_file, folder=Path(job.site_file).stem, status="ok", site=site.name,
+        site_file=job.site_file, folder=job.folder, status="ok", site=site.name,
         period=f"{periods[0]}..{periods[-1]}", metered_kwh=float(table["kwh"].sum()),
         equipment_kwh={e: float(k) for e, k in totals.iter_rows()},
+        months=table.select(EQUIPMENT_COLUMNS[2:]).to_dicts(),
         alarms=alarms, cv_rmse_pct=hourly.get("cv_rmse_pct"), nmbe_pct=hourly.get("nmbe_pct"),
         peak_kw=float(month_peaks.max()) if month_peaks.len() else None,
         cost=float(sum(m["cost"] for m in tariff["months"])) if tariff else None,
@@ -300,6 +347,23 @@ def portfolio_frame(outcomes: list[SiteOutcome]) -> pl.DataFrame:
     return pl.DataFrame(data, schema=schema, orient="row") if data else pl.DataFrame(schema=schema)
 
 
+# portfolio_equipment.csv: one row per site, month and breakdown row.
+EQUIPMENT_COLUMNS = ["site", "site_name", "period", "equipment", "kwh", "kwh_low", "kwh_high",
+                     "share", "flags"]
+
+
+def equipment_frame(outcomes: list[SiteOutcome]) -> pl.DataFrame:
+    """The long form beside portfolio.csv: one row per site, month and breakdown row (columns
+    EQUIPMENT_COLUMNS; site = the output folder, which names the site uniquely; site_name = its
+    [site] name), so that equipment ids, which belong to their site, are never mixed."""
+    schema = {"site": pl.String, "site_name": pl.String, "period": pl.String,
+              "equipment": pl.String, "kwh": pl.Float64, "kwh_low": pl.Float64,
+              "kwh_high": pl.Float64, "share": pl.Float64, "flags": pl.String}
+    data = [{"site": o.folder, "site_name": o.site, **row}
+            for o in outcomes if o.status == "ok" for row in o.months]
+    return pl.DataFrame(data, schema=schema, orient="row") if data else pl.DataFrame(schema=schema)
+
+
 def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
                   workers: int | None = None, cluster: str | None = None,
                   date_from: dt.date | None = None, date_to: dt.date | None = None,
@@ -340,8 +404,9 @@ def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
     if cluster is not None:
         check_cluster_address(cluster)
     out = Path(out_dir).resolve()
-    jobs = [SiteJob(str(s), str(out / s.stem), date_from, date_to, drift,
-                    str(pf.history) if pf.history else None, drift_reference)
+    jobs = [SiteJob(str(s), str(out / pf.folder_name(s)), date_from, date_to, drift,
+                    str(pf.history) if pf.history else None, drift_reference,
+                    pf.folder_name(s))
             for s in pf.sites]
     total = len(jobs)
     report(progress, "sites", 0, total)
@@ -349,68 +414,290 @@ def run_portfolio(portfolio: str | Path | Portfolio, out_dir: str | Path,
         outcomes = _run_on_cluster(cluster, jobs, progress)
     else:
         outcomes = _run_locally(jobs, workers or os.cpu_count() or 1, start_method, progress)
-    return PortfolioResult(pf, portfolio_frame(outcomes), outcomes)
+    return PortfolioResult(pf, portfolio_frame(outcomes), outcomes,
+                           equipment_frame(outcomes))
 
 
-def _lost(job: SiteJob, exc: BaseException) -> SiteOutcome:
+def _lost(job: SiteJob, exc: BaseException | str) -> SiteOutcome:
     """The outcome of a job whose worker died (killed, out of memory) before returning."""
+    why = exc if isinstance(exc, str) else f"{type(exc).__name__}: {exc}"
     return SiteOutcome(job.site_file, Path(job.site_file).stem, "failed",
                        _site_name(job.site_file),
-                       f"the worker running this site stopped ({type(exc).__name__}: {exc})")
+                       f"the worker running this site stopped ({why})")
+
+
+class BatchTerminated(BatchInterrupted):
+    """The batch got SIGTERM or SIGHUP: its workers were stopped at once (files they were
+    writing are left whole, old or new: see disagg.present.commit)."""
+
+    def __init__(self, signum: int, finished: int, not_run: int) -> None:
+        super().__init__(finished, not_run)
+        self.signum = signum
+
+
+class _Terminate(BaseException):
+    """Raised in the main thread by the SIGTERM/SIGHUP handler of a local batch."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+# Signals that stop a local batch at once (Ctrl-C, SIGINT, stops it gently: see run_portfolio).
+TERMINATING_SIGNALS = tuple(getattr(signal, n) for n in ("SIGTERM", "SIGHUP")
+                            if hasattr(signal, n))
+
+
+class _Signals:
+    """While a local batch runs (main thread only): SIGTERM and SIGHUP raise _Terminate so
+    the pool can be shut, except inside held(), which delays them to its end (a worker half
+    started when the batch exits would print a traceback from its start-up)."""
+
+    def __init__(self) -> None:
+        self.holding = False
+        self.pending: int | None = None
+
+    def handler(self, signum, frame) -> None:
+        for sig in TERMINATING_SIGNALS:  # a second signal must not break the clean-up
+            signal.signal(sig, signal.SIG_IGN)
+        if self.holding:
+            self.pending = signum
+            return
+        raise _Terminate(signum)
+
+    @contextlib.contextmanager
+    def held(self):
+        self.holding = True
+        try:
+            yield
+        finally:
+            self.holding = False
+        if self.pending is not None:
+            raise _Terminate(self.pending)
+
+
+@contextlib.contextmanager
+def _terminate_on_signals():
+    import threading
+
+    signals = _Signals()
+    if threading.current_thread() is not threading.main_thread():
+        yield signals
+        return
+    previous = {sig: signal.signal(sig, signals.handler) for sig in TERMINATING_SIGNALS}
+    try:
+        yield signals
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old if old is not None else signal.SIG_DFL)
 
 
 # Set in each local worker process (see _init_worker): once set, jobs not yet started return
-# at once without running.
+# at once without running. _STATE[i] says how far job i got: 0 not started, 1 running, 2 done.
 _STOP = None
+_STATE = None
 
 
-def _init_worker(stop) -> None:
-    """Local worker start-up: ignore Ctrl-C (the parent decides what stops) and keep the stop
-    flag."""
-    global _STOP
+def _die_with_batch(batch_pid: int) -> None:
+    """Start a thread that kills this worker as soon as the batch process exits, even by
+    SIGKILL (it then cannot stop its workers). The worker's own parent may be the pool's
+    forkserver, which stays alive as long as a worker does, so the batch is watched itself:
+    through a pidfd where Linux has them, else by asking every half second."""
+    import select
+    import threading
+
+    def watch() -> None:
+        try:
+            fd = os.pidfd_open(batch_pid)
+            select.select([fd], [], [])
+        except (AttributeError, OSError):  # no pidfd here, or the batch has already gone
+            while True:
+                try:
+                    os.kill(batch_pid, 0)
+                except ProcessLookupError:
+                    break
+                except OSError:
+                    pass
+                time.sleep(0.5)
+        os.kill(os.getpid(), signal.SIGKILL)
+
+    threading.Thread(target=watch, name="disagg-batch-watch", daemon=True).start()
+
+
+def _init_worker(stop, state, batch_pid: int) -> None:
+    """Local worker start-up: ignore Ctrl-C (the parent decides what stops), die with the
+    batch, keep the stop flag and the jobs' state array."""
+    global _STOP, _STATE
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _die_with_batch(batch_pid)
     _STOP = stop
+    _STATE = state
 
 
-def _run_job(job: SiteJob) -> SiteOutcome | None:
+def _run_job(index: int, job: SiteJob) -> SiteOutcome | None:
     """run_site, or None when the batch was interrupted before this job started."""
     if _STOP is not None and _STOP.is_set():
         return None
-    return run_site(job)
+    if _STATE is not None:
+        _STATE[index] = 1
+    outcome = run_site(job)
+    if _STATE is not None:
+        _STATE[index] = 2
+    return outcome
+
+
+def _kill_pool(pool: ProcessPoolExecutor) -> None:
+    """Stop a pool's workers now (SIGTERM, then SIGKILL after 2 s) and shut it."""
+    procs = list((getattr(pool, "_processes", None) or {}).values())
+    for proc in procs:
+        with contextlib.suppress(Exception):
+            proc.terminate()
+    deadline = time.monotonic() + 2.0
+    for proc in procs:
+        with contextlib.suppress(Exception):
+            proc.join(max(0.0, deadline - time.monotonic()))
+            if proc.is_alive():
+                proc.kill()
+                proc.join(1.0)
+    with contextlib.suppress(Exception):
+        pool.shutdown(wait=False, cancel_futures=True)
+
+
+def _exit_reason(procs) -> str | None:
+    """How dead workers ended, such as 'killed by SIGKILL, as the out-of-memory killer does'."""
+    deadline = time.monotonic() + 1.0
+    for proc in procs:
+        # The pool's own thread may be reaping the process at this moment: ask again.
+        while proc.exitcode is None and time.monotonic() < deadline:
+            time.sleep(0.02)
+    for proc in procs:
+        code = proc.exitcode
+        if code is not None and code < 0:
+            try:
+                name = signal.Signals(-code).name
+            except ValueError:
+                name = f"signal {-code}"
+            hint = ", as the out-of-memory killer does" if -code == signal.SIGKILL else ""
+            return f"killed by {name}{hint}"
+        if code not in (None, 0):
+            return f"exit status {code}"
+    return None
 
 
 def _run_locally(jobs: list[SiteJob], workers: int, start_method: str,
                  progress: Progress | None) -> list[SiteOutcome]:
+    """Run the jobs on local worker processes.
+
+    A worker that dies (killed, out of memory) breaks its pool; then every job that had not
+    started runs again on a fresh pool, and every job that was running (or had finished
+    without its result arriving) runs again alone: a job that kills a pool of its own is the
+    one that failed, and only it is marked so.
+    """
     context = multiprocessing.get_context(start_method)
-    stop = context.Event()
     outcomes: list[SiteOutcome | None] = [None] * len(jobs)
-    with ProcessPoolExecutor(max_workers=min(workers, len(jobs)), mp_context=context,
-                             initializer=_init_worker, initargs=(stop,)) as pool:
-        futures = {pool.submit(_run_job, job): i for i, job in enumerate(jobs)}
-        try:
-            for done, fut in enumerate(as_completed(futures), start=1):
-                i = futures[fut]
-                try:
-                    outcomes[i] = fut.result()
-                except Exception as exc:  # noqa: BLE001 - BrokenProcessPool and the like
-                    outcomes[i] = _lost(jobs[i], exc)
-                report(progress, "sites", done, len(jobs))
-        except KeyboardInterrupt:
-            # No site starts after the interrupt (queued ones are cancelled, or see the flag
-            # when a worker picks them up); the ones running finish their files, which are
-            # written atomically either way. A second interrupt stops them at once.
-            stop.set()
-            for fut in futures:
-                fut.cancel()
-            try:
-                concurrent.futures.wait(futures)
-            except KeyboardInterrupt:
-                for proc in list((getattr(pool, "_processes", None) or {}).values()):
-                    proc.terminate()
-            finished = sum(1 for f in futures if f.done() and not f.cancelled()
-                           and f.exception() is None and f.result() is not None)
-            raise BatchInterrupted(finished, len(jobs) - finished) from None
+    counter = [0]
+    todo = list(range(len(jobs)))
+    suspects: list[int] = []
+    idle_breaks = 0
+    with _terminate_on_signals() as signals:
+        while todo or suspects:
+            alone = not todo
+            batch = todo if todo else [suspects.pop(0)]
+            started, reason = _run_pool(context, jobs, batch, 1 if alone else workers,
+                                        outcomes, counter, progress, signals)
+            if reason is None:
+                todo = [i for i in todo if outcomes[i] is None] if not alone else todo
+                continue
+            left = [i for i in batch if outcomes[i] is None]
+            if alone:
+                for i in left:
+                    outcomes[i] = _lost(jobs[i], f"{reason}; it stopped again when the site "
+                                                 "ran alone")
+                    _count(counter, progress, len(jobs))
+                continue
+            hit = [i for i in left if i in started]
+            if not hit:
+                idle_breaks += 1
+            if idle_breaks >= 2:  # the pool breaks with no job running: not a site's fault
+                for i in left:
+                    outcomes[i] = _lost(jobs[i], reason)
+                    _count(counter, progress, len(jobs))
+                left = []
+            suspects += hit
+            todo = [i for i in left if i not in hit]
     return outcomes  # type: ignore[return-value]
+
+
+def _count(counter: list[int], progress: Progress | None, total: int) -> None:
+    counter[0] += 1
+    report(progress, "sites", counter[0], total)
+
+
+def _run_pool(context, jobs: list[SiteJob], indices: list[int], workers: int,
+              outcomes: list, counter: list[int], progress: Progress | None,
+              signals: _Signals) -> tuple[set[int], str | None]:
+    """Run jobs[indices] on one pool, filling outcomes; return (the indices that had started
+    when the pool broke, why it broke), or (set(), None) when it did not break.
+
+    Raises:
+        BatchInterrupted: Ctrl-C (the running sites finish first; a second one stops them).
+        BatchTerminated: SIGTERM or SIGHUP (the workers are stopped at once).
+    """
+    stop = context.Event()
+    state = context.Array("b", len(jobs), lock=False)
+    total = len(jobs)
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(indices)), mp_context=context,
+                               initializer=_init_worker, initargs=(stop, state, os.getpid()))
+    futures = {}
+    try:
+        with signals.held():  # submitting starts the workers
+            for i in indices:
+                futures[pool.submit(_run_job, i, jobs[i])] = i
+        procs = list((getattr(pool, "_processes", None) or {}).values())
+        for fut in as_completed(futures):
+            i = futures[fut]
+            procs = list((getattr(pool, "_processes", None) or {}).values()) or procs
+            try:
+                outcomes[i] = fut.result()
+            except concurrent.futures.process.BrokenProcessPool as exc:
+                for f, j in futures.items():  # results that arrived before the break
+                    if (outcomes[j] is None and f.done() and not f.cancelled()
+                            and f.exception() is None):
+                        outcomes[j] = f.result()
+                        _count(counter, progress, total)
+                started = {j for j in indices if state[j] != 0 and outcomes[j] is None}
+                reason = _exit_reason(procs) or f"{type(exc).__name__}: {exc}"
+                pool.shutdown(wait=True, cancel_futures=True)
+                return started, reason
+            except Exception as exc:  # noqa: BLE001 - a result that cannot come back
+                outcomes[i] = _lost(jobs[i], exc)
+            _count(counter, progress, total)
+    except _Terminate as term:
+        stop.set()
+        _kill_pool(pool)
+        finished = sum(o is not None for o in outcomes)
+        raise BatchTerminated(term.signum, finished, total - finished) from None
+    except KeyboardInterrupt:
+        # No site starts after the interrupt (queued ones are cancelled, or see the flag
+        # when a worker picks them up); the ones running finish their files, which are
+        # written atomically either way. A second interrupt stops them at once.
+        stop.set()
+        for fut in futures:
+            fut.cancel()
+        try:
+            concurrent.futures.wait(futures)
+        except (KeyboardInterrupt, _Terminate):
+            _kill_pool(pool)
+        for fut, i in futures.items():
+            if (outcomes[i] is None and fut.done() and not fut.cancelled()
+                    and fut.exception() is None and fut.result() is not None):
+                outcomes[i] = fut.result()
+        finished = sum(o is not None for o in outcomes)
+        raise BatchInterrupted(finished, total - finished) from None
+    finally:
+        with contextlib.suppress(Exception):
+            pool.shutdown(wait=True, cancel_futures=True)
+    return set(), None
 
 
 def check_cluster_address(address: str) -> None:
@@ -489,37 +776,99 @@ def _connect(address: str):
                           f"({type(exc).__name__}: {exc})") from None
 
 
+class ClusterError(ConfigError):
+    """The cluster stopped doing the batch's work: no worker for CLUSTER_IDLE_TIMEOUT_S, or
+    the scheduler went away."""
+
+
+def _live_workers(client) -> int:
+    """How many workers the scheduler has now (asks it)."""
+    return len(client.nthreads())
+
+
 def _run_on_cluster(address: str, jobs: list[SiteJob],
                     progress: Progress | None) -> list[SiteOutcome]:
+    """Run the jobs on the cluster's workers.
+
+    Raises:
+        ClusterError: the scheduler has no worker for CLUSTER_IDLE_TIMEOUT_S (none at the
+            start, or the last one stopped), or the connection to it is lost; the sites not
+            finished are cancelled.
+        BatchInterrupted: Ctrl-C.
+    """
     try:
-        from distributed import as_completed as dask_completed
+        from distributed import wait as dask_wait
     except ImportError:
         raise ConfigError(f"--cluster {address}: needs dask distributed; install it with "
                           "pip install 'disagg[cluster]'") from None
     client = _connect(address)
     outcomes: list[SiteOutcome | None] = [None] * len(jobs)
+    total = len(jobs)
+    done = 0
+
+    def not_run() -> str:
+        finished = sum(o is not None for o in outcomes)
+        return f"{finished} site{'s' * (finished != 1)} finished, {total - finished} not run"
+
     try:
         with client.as_current():
             futures = client.map(run_site, jobs, pure=False)
             index = {f.key: i for i, f in enumerate(futures)}
+            pending = set(futures)
+            idle_since: float | None = None
             try:
-                for done, fut in enumerate(dask_completed(futures), start=1):
-                    i = index[fut.key]
+                while pending:
                     try:
-                        outcomes[i] = fut.result()
-                    except Exception as exc:  # noqa: BLE001 - a worker died (KilledWorker, ...)
-                        outcomes[i] = _lost(jobs[i], exc)
-                    report(progress, "sites", done, len(jobs))
+                        finished_now, _ = dask_wait(list(pending), timeout=CLUSTER_POLL_S,
+                                                    return_when="FIRST_COMPLETED")
+                    except TimeoutError:
+                        finished_now = set()
+                    for fut in finished_now:
+                        pending.discard(fut)
+                        i = index[fut.key]
+                        try:
+                            outcomes[i] = fut.result()
+                        except (KeyboardInterrupt, SystemExit):
+                            raise
+                        except BaseException as exc:  # noqa: BLE001 - KilledWorker, cancelled
+                            if client.status != "running":
+                                raise
+                            outcomes[i] = _lost(jobs[i], exc)
+                        done += 1
+                        report(progress, "sites", done, total)
+                    if not pending or finished_now:
+                        idle_since = None
+                        continue
+                    if _live_workers(client) > 0:
+                        idle_since = None
+                    elif idle_since is None:
+                        idle_since = time.monotonic()
+                    elif time.monotonic() - idle_since > CLUSTER_IDLE_TIMEOUT_S:
+                        client.cancel(list(pending))
+                        raise ClusterError(
+                            f"--cluster {address}: the scheduler has had no worker for "
+                            f"{CLUSTER_IDLE_TIMEOUT_S:g} s, so nothing runs the sites "
+                            f"({not_run()}); start workers for it, or run without --cluster")
             except KeyboardInterrupt:
                 # Dask cancels the sites not started; a running one finishes on its worker.
-                client.cancel([f for f in futures if not f.done()])
+                with contextlib.suppress(Exception):
+                    client.cancel([f for f in futures if not f.done()])
                 finished = sum(o is not None for o in outcomes)
-                raise BatchInterrupted(finished, len(jobs) - finished) from None
+                raise BatchInterrupted(finished, total - finished) from None
+    except (ClusterError, BatchInterrupted):
+        raise
+    except (KeyboardInterrupt, SystemExit):
+        raise
+    except BaseException as exc:  # noqa: BLE001 - the scheduler went away: closed comm, ...
+        text = (str(exc).strip().splitlines() or [""])[0]
+        detail = ("" if not text or "cancelled" in type(exc).__name__.lower()
+                  else f": {text[:120]}")
+        raise ClusterError(f"--cluster {address}: lost the connection to the scheduler "
+                           f"({type(exc).__name__}{detail}); {not_run()}") from None
     finally:
-        client.close()
+        with contextlib.suppress(BaseException):
+            client.close(timeout=2)
     return outcomes  # type: ignore[return-value]
-
-
 
 
 @dataclass(frozen=True)

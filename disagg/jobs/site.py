@@ -26,7 +26,7 @@ from disagg.analyses.pipeline import (
     check_site,
 )
 from disagg.errors import ConfigError, DisaggError, InputError
-from disagg.inputs.config import load_site
+from disagg.inputs.config import check_regular_file, load_site, resolve_path
 from disagg.inputs.vee import check_on_duplicate
 from disagg.present import history as hist
 from disagg.present import terminal
@@ -133,8 +133,8 @@ class BreakdownOptions:
     date_from: dt.date | None = None
     date_to: dt.date | None = None
     confidence: float = 0.95
-    log_offset_min: float = 0.0
-    on_duplicate: str = "error"
+    log_offset_min: float | None = None  # None: the site file's, else 0
+    on_duplicate: str | None = None  # None: the site file's, else error
     estimate_gaps: bool = False
     xlsx: bool = False
     report: bool = False
@@ -145,8 +145,10 @@ class BreakdownOptions:
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
         check_confidence(self.confidence)
-        check_log_offset(self.log_offset_min)
-        check_on_duplicate(self.on_duplicate)
+        if self.log_offset_min is not None:
+            check_log_offset(self.log_offset_min)
+        if self.on_duplicate is not None:
+            check_on_duplicate(self.on_duplicate)
 
 
 def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> Run:
@@ -197,9 +199,9 @@ class CheckOptions:
     site: Path
     date_from: dt.date | None = None
     date_to: dt.date | None = None
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     offset_window_min: float | None = None
-    on_duplicate: str = "error"
+    on_duplicate: str | None = None  # None: the site file's, else error
 
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
@@ -249,19 +251,30 @@ class DriftOptions:
     date_from: dt.date | None = None
     date_to: dt.date | None = None
     confidence: float = 0.95
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     baseload_memory_days: float | None = None  # None: memory_days
     min_reference_run_h: float = 48.0  # run-hours a load's own reference period must hold
 
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
+        if self.step is None and not (math.isfinite(self.memory_days) and self.memory_days > 0):
+            raise ConfigError(f"--memory {self.memory_days:g}: expected a number of days above 0")
         if not self.min_reference_run_h > 0:
             raise ConfigError(f"--reference-hours {self.min_reference_run_h:g}: expected "
                               "run-hours above 0")
 
 
 def _read_state(path: Path | None) -> dict | None:
-    if path is None or not path.exists():
+    """The saved tracker state, or None when there is no such file yet.
+
+    Raises:
+        ConfigError: a FIFO, device or folder (refused before reading), a link loop.
+        InputError: the file cannot be read or is not JSON.
+    """
+    if path is None:
+        return None
+    check_regular_file(resolve_path(path, "--state"), "tracker state file (--state)")
+    if not path.exists():
         return None
     try:
         return json.loads(path.read_text(encoding="utf-8"))
@@ -297,7 +310,7 @@ class CompareOptions:
     after: Period | tuple[str, str]
     confidence: float = 0.95
     min_change: float = 0.05
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     from_history: bool = False
 
 
@@ -388,7 +401,7 @@ class ReportOptions:
     date_from: dt.date | None = None
     date_to: dt.date | None = None
     confidence: float = 0.95
-    log_offset_min: float = 0.0
+    log_offset_min: float | None = None  # None: the site file's, else 0
     memory_days: float = 30.0
     reference: Period | None = None
     drift: bool = True
@@ -396,7 +409,8 @@ class ReportOptions:
     def __post_init__(self) -> None:
         check_range(self.date_from, self.date_to)
         check_confidence(self.confidence)
-        check_log_offset(self.log_offset_min)
+        if self.log_offset_min is not None:
+            check_log_offset(self.log_offset_min)
 
 
 def run_report(opts: ReportOptions, progress: Progress | None = None) -> Run:

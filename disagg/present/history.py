@@ -11,7 +11,9 @@ letters, digits, ``.``, ``_`` and ``-`` replaced by ``_`` (``Main Library.toml``
 ``Main_Library``). The file name, not the ``[site] name``, so that renaming a building's
 display name does not split its history and the id is the same as the folder ``disagg batch``
 writes the site's outputs into. Two site files with the same name in different folders that
-share one history folder would share an id: give them different file names.
+share one history folder would share an id: give them different file names. Two file names
+that differ only in the characters replaced (``a b.toml`` and ``a_b.toml``) would also share
+one; storing the second is refused with an error naming both files.
 
 A period is a local calendar month of the site. Storing a month replaces everything stored
 for that site, kind and month, so running a month twice leaves one copy. Each stored breakdown
@@ -35,19 +37,23 @@ writes any output, so a bad history folder fails with nothing written; if storin
 after the outputs were written, its error says so (:func:`outputs_already_written`).
 
 Writes are atomic per run: every new month file is first written in full into a hidden
-temporary folder inside FOLDER, and only then renamed into place (``os.replace``, atomic on one
-file system). An error or interruption while writing leaves the stored history exactly as it
-was; one during the renames leaves each month either wholly old or wholly new.
+staging folder inside FOLDER, and then all of them are put in place as one set behind one
+commit point (disagg.present.commit): an error, Ctrl-C or kill leaves all of the run's months
+stored or none of them. Runs storing into one folder take turns on its lock file
+(``FOLDER/.disagg-lock``, fcntl.flock): the read of stored months, the merge and the write of
+one run never interleave with another's, so two runs at once lose no month or day.
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import fcntl
 import os
 import re
 import shutil
 import tempfile
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -59,8 +65,12 @@ from disagg import __version__
 from disagg.analyses.verdict import RULE as VERDICT_RULE
 from disagg.analyses.verdict import change_verdict
 from disagg.errors import DisaggError, InputError, OutputError
+from disagg.present import commit
 
 KINDS = ("breakdown", "drift")
+# The lock file inside the history folder, and how long a run waits for another's lock [s].
+LOCK_FILE = ".disagg-lock"
+LOCK_TIMEOUT_S = 600.0
 # Partition keys (taken from the folder names, never stored inside the files).
 HIVE_SCHEMA = {"site": pl.String, "period": pl.String}
 
@@ -87,9 +97,19 @@ DRIFT_SCHEMA = {
 _SCHEMAS = {"breakdown": BREAKDOWN_SCHEMA, "drift": DRIFT_SCHEMA}
 
 
+# A site file with this generic name (a folder per building, each holding site.toml) is
+# known by its folder's name instead.
+GENERIC_SITE_STEM = "site"
+
+
 def site_id(site_file: str | Path) -> str:
-    """The history's id of a site: its file name without .toml, filesystem-safe."""
-    text = re.sub(r"[^A-Za-z0-9._-]", "_", Path(site_file).stem).lstrip(".")
+    """The history's id of a site: its file name without .toml (for ``site.toml``, its
+    folder's name), filesystem-safe."""
+    path = Path(site_file)
+    stem = path.stem
+    if stem == GENERIC_SITE_STEM and path.parent.name:
+        stem = path.parent.name
+    text = re.sub(r"[^A-Za-z0-9._-]", "_", stem).lstrip(".")
     return text or "site"
 
 
@@ -138,35 +158,86 @@ def _write_part(frame: pl.DataFrame, path: Path) -> None:
     frame.write_parquet(path)
 
 
+@contextlib.contextmanager
+def _locked(folder: Path) -> Iterator[None]:
+    """Hold the history folder's lock file (fcntl.flock on FOLDER/.disagg-lock) inside the
+    block: runs storing into one folder take turns, so none loses another's months or days.
+
+    Raises:
+        OutputError: the lock file cannot be opened, or another run held it for
+            LOCK_TIMEOUT_S seconds.
+    """
+    path = folder / LOCK_FILE
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
+    except OSError as exc:
+        raise OutputError(f"{path}: cannot open the history's lock file ({exc.strerror})") from None
+    try:
+        deadline = time.monotonic() + LOCK_TIMEOUT_S
+        while True:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                break
+            except BlockingIOError:
+                if time.monotonic() > deadline:
+                    raise OutputError(f"{path}: another run has held the history's lock for "
+                                      f"{LOCK_TIMEOUT_S:g} s; try again when it has finished") from None
+                time.sleep(0.05)
+            except OSError as exc:  # a file system without locks
+                raise OutputError(f"{path}: cannot lock the history ({exc.strerror})") from None
+        yield
+    finally:
+        os.close(fd)  # releases the lock
+
+
 def _replace_months(folder: Path, kind: str, site: str,
                     months: dict[str, pl.DataFrame]) -> list[Path]:
-    """Write every month's file into a temporary folder inside folder, then rename each into
-    place; see the module docstring.
+    """Write every month's file into a staging folder inside folder, then put them all in
+    place as one set (disagg.present.commit): all the run's months or none.
 
     Raises:
         OutputError: the folder cannot be created or written.
     """
     folder = check_folder(folder)
+    tmp = commit.staging(folder, "history folder")
+    moves = []
     try:
-        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=folder))
-    except OSError as exc:
-        raise OutputError(f"{folder}: cannot write in the history folder ({exc.strerror})") from None
-    targets = []
-    try:
-        staged = []
         for i, (period, frame) in enumerate(sorted(months.items())):
-            part = tmp / f"{i}.parquet"
-            _write_part(frame, part)
-            staged.append((part, _month_dir(folder, kind, site, period) / "part.parquet"))
-        for part, target in staged:
-            target.parent.mkdir(parents=True, exist_ok=True)
-            os.replace(part, target)
-            targets.append(target)
-    except OSError as exc:
-        raise OutputError(f"{folder}: cannot write the history ({exc.strerror})") from None
+            name = f"{i}.parquet"
+            _write_part(frame, tmp / name)
+            moves.append((name, _month_dir(folder, kind, site, period) / "part.parquet"))
+        commit._step("staged")
+        commit.commit(tmp, moves)
+    except (OSError, pl.exceptions.PolarsError) as exc:
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else \
+            (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+        raise OutputError(f"{folder}: cannot write the history ({reason})") from None
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    return targets
+    return [target for _, target in moves]
+
+
+def _check_id(folder: Path, kind: str, sid: str, site) -> None:
+    """Refuse to store a site under an id that another site file's history already uses
+    (``a b.toml`` and ``a_b.toml`` both have the id ``a_b``).
+
+    Raises:
+        OutputError: naming both files.
+    """
+    site_dir = folder / f"kind={kind}" / f"site={sid}"
+    for part in sorted(site_dir.glob("period=*/part.parquet"))[:1]:
+        try:
+            stored = pl.read_parquet(part, columns=["site_file"]).get_column("site_file")
+        except (OSError, pl.exceptions.PolarsError):
+            return  # read (and reported) where the month itself is read
+        names = {Path(f).name for f in stored.drop_nulls().unique().to_list()}
+        mine = Path(site.path).name
+        if names and mine not in names:
+            other = sorted(names)[0]
+            raise OutputError(
+                f"{site.path}: its history id {sid!r} is already used in {folder} by the site "
+                f"file {other}; file names that differ only in characters other than letters, "
+                "digits, '.', '_' and '-' share an id: rename one of the two site files")
 
 
 def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
@@ -261,30 +332,33 @@ def store_breakdown(folder: str | Path, result, date_from: dt.date | None = None
         table = table.with_columns(pl.lit(tariff.currency).alias("currency"))
     coverage = month_coverage(result.aligned, site.timezone)
     table = table.join(coverage, on="period", how="left", maintain_order="left")
-    months, skipped = {}, {}
-    for (period,), g in table.group_by("period", maintain_order=True):
-        new = g.row(0, named=True)
-        have = _days(new["days_with_data"] or 0, new["first_date"], new["last_date"])
-        cut = _cut_short(period, date_from, date_to)
-        if cut is not None:
-            skipped[period] = (f"{period} not stored in the history: {cut}, so this run has "
-                               f"only part of the month (data on {have}); a month is stored "
-                               "only from a run whose range holds all of it, and any stored "
-                               "run of it is kept")
-            continue
-        old_path = _month_dir(root, "breakdown", sid, period) / "part.parquet"
-        if old_path.exists():
-            old = _read_file(old_path, BREAKDOWN_SCHEMA).row(0, named=True)
-            if (old["days_with_data"] is not None
-                    and (new["days_with_data"] or 0) < old["days_with_data"]):
-                skipped[period] = (
-                    f"{period} not stored in the history: the stored run of this month has "
-                    f"data on {_days(old['days_with_data'], old['first_date'], old['last_date'])}"
-                    f", this run only on {have}; the stored month is kept (delete "
-                    f"{old_path.parent} to replace it)")
+    root = check_folder(root)
+    with _locked(root):
+        _check_id(root, "breakdown", sid, site)
+        months, skipped = {}, {}
+        for (period,), g in table.group_by("period", maintain_order=True):
+            new = g.row(0, named=True)
+            have = _days(new["days_with_data"] or 0, new["first_date"], new["last_date"])
+            cut = _cut_short(period, date_from, date_to)
+            if cut is not None:
+                skipped[period] = (f"{period} not stored in the history: {cut}, so this run has "
+                                   f"only part of the month (data on {have}); a month is stored "
+                                   "only from a run whose range holds all of it, and any stored "
+                                   "run of it is kept")
                 continue
-        months[period] = _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
-    files = _replace_months(root, "breakdown", sid, months) if months else []
+            old_path = _month_dir(root, "breakdown", sid, period) / "part.parquet"
+            if old_path.exists():
+                old = _read_file(old_path, BREAKDOWN_SCHEMA).row(0, named=True)
+                if (old["days_with_data"] is not None
+                        and (new["days_with_data"] or 0) < old["days_with_data"]):
+                    skipped[period] = (
+                        f"{period} not stored in the history: the stored run of this month has "
+                        f"data on {_days(old['days_with_data'], old['first_date'], old['last_date'])}"
+                        f", this run only on {have}; the stored month is kept (delete "
+                        f"{old_path.parent} to replace it)")
+                    continue
+            months[period] = _stamp(g.drop("period"), site, BREAKDOWN_SCHEMA)
+        files = _replace_months(root, "breakdown", sid, months) if months else []
     return Stored(files, skipped)
 
 
@@ -301,26 +375,50 @@ def store_drift(folder: str | Path, site, drift_result) -> list[Path]:
     Raises:
         OutputError: the history folder cannot be written.
     """
-    folder = Path(folder)
+    folder = check_folder(folder)
     sid = site_id(site.path)
-    table = drift_result.table.with_columns(pl.col("date").dt.strftime("%Y-%m").alias("period"))
-    months = {}
-    for (period,), g in table.group_by("period", maintain_order=True):
-        new = _stamp(g.drop("period"), site, DRIFT_SCHEMA)
-        old_path = _month_dir(folder.resolve(), "drift", sid, period) / "part.parquet"
-        if old_path.exists():
-            old = _read_file(old_path, DRIFT_SCHEMA)
-            new = pl.concat([old.filter(~pl.col("date").is_in(new["date"].implode())), new])
-            new = new.sort("date", maintain_order=True)
-        months[period] = new
-    return _replace_months(folder, "drift", sid, months)
+    with _locked(folder):
+        _check_id(folder, "drift", sid, site)
+        table = drift_result.table.with_columns(pl.col("date").dt.strftime("%Y-%m").alias("period"))
+        months = {}
+        for (period,), g in table.group_by("period", maintain_order=True):
+            new = _stamp(g.drop("period"), site, DRIFT_SCHEMA)
+            old_path = _month_dir(folder, "drift", sid, period) / "part.parquet"
+            if old_path.exists():
+                old = _read_file(old_path, DRIFT_SCHEMA)
+                new = pl.concat([old.filter(~pl.col("date").is_in(new["date"].implode())), new])
+                new = new.sort("date", maintain_order=True)
+            months[period] = new
+        return _replace_months(folder, "drift", sid, months)
 
 
 def _read_file(path: Path, schema: dict) -> pl.DataFrame:
     try:
         frame = pl.read_parquet(path)
     except (OSError, pl.exceptions.PolarsError) as exc:
-        raise InputError(f"{path}: cannot read this history file ({exc})") from None
+        raise InputError(f"{path}: cannot read this history file ({_first_line(exc)})") from None
+    return _conform(frame, schema, path)
+
+
+def _first_line(exc: BaseException) -> str:
+    lines = str(exc).strip().splitlines()
+    return lines[0] if lines else type(exc).__name__
+
+
+def _conform(frame: pl.DataFrame, schema: dict, where: Path) -> pl.DataFrame:
+    """frame with exactly the schema's columns (missing ones null).
+
+    Raises:
+        InputError: a column holds values of another kind (a file not written by disagg).
+    """
+    for c, t in schema.items():
+        if c in frame.columns:
+            try:
+                frame.get_column(c).cast(t, strict=True)
+            except (pl.exceptions.PolarsError, ValueError, TypeError):
+                raise InputError(f"{where}: not a disagg history file: its column {c!r} holds "
+                                 f"{frame.schema[c]}, expected {t}; move it out of the history "
+                                 "folder") from None
     return frame.select(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
                         for c, t in schema.items())
 
@@ -351,10 +449,9 @@ def read_history(folder: str | Path, site: str | None = None,
             lf = lf.filter(pl.col("site") == site)
         frame = lf.collect()
     except (OSError, pl.exceptions.PolarsError) as exc:
-        raise InputError(f"{root}: cannot read the history ({exc})") from None
-    frame = frame.select(*(pl.col(c).cast(t) for c, t in HIVE_SCHEMA.items()),
-                         *(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
-                           for c, t in schema.items()))
+        raise InputError(f"{root}: cannot read the history ({_first_line(exc)})") from None
+    frame = pl.concat([frame.select(*(pl.col(c).cast(t) for c, t in HIVE_SCHEMA.items())),
+                       _conform(frame, schema, root)], how="horizontal")
     return frame.sort("site", "period", maintain_order=True)
 
 

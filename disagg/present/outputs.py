@@ -1,18 +1,17 @@
 """The one place that writes files, and the text summaries printed to the terminal.
 
-Every run writes all its files into a hidden temporary folder inside the output folder and
-then renames them into place, so a failed or interrupted run leaves no half-written file.
+Every run writes all its files into a hidden staging folder inside the output folder and then
+puts them in place as one set behind one commit point (disagg.present.commit), so a failed or
+interrupted run leaves the whole previous set or the whole new one, never a mix.
 An output never replaces an input file.
 """
 
 from __future__ import annotations
 
-import contextlib
 import json
 import math
 import os
 import shutil
-import tempfile
 from collections.abc import Callable
 from pathlib import Path
 
@@ -22,6 +21,7 @@ from disagg.analyses.compare import CompareResult
 from disagg.analyses.drift import DriftResult
 from disagg.analyses.pipeline import CAUTION, BreakdownResult
 from disagg.errors import OutputError
+from disagg.present import commit
 
 # Cells starting with these can run as formulas when a spreadsheet opens a CSV; OWASP
 # ("CSV Injection" page, from memory) recommends a leading single quote.
@@ -29,22 +29,33 @@ _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
 def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
-    """Prefix a single quote to text cells that a spreadsheet would read as a formula."""
+    """Prefix a single quote to text cells, and to column headers, that a spreadsheet would
+    read as a formula (headers are built from equipment ids in portfolio.csv: ``<id>_kwh``)."""
     text_cols = [c for c, t in frame.schema.items() if t == pl.String]
-    return frame.with_columns(
-        pl.when(pl.any_horizontal(pl.col(c).str.starts_with(s) for s in _FORMULA_START))
-        .then(pl.lit("'") + pl.col(c)).otherwise(pl.col(c)).alias(c)
-        for c in text_cols) if text_cols else frame
+    if text_cols:
+        frame = frame.with_columns(
+            pl.when(pl.any_horizontal(pl.col(c).str.starts_with(s) for s in _FORMULA_START))
+            .then(pl.lit("'") + pl.col(c)).otherwise(pl.col(c)).alias(c)
+            for c in text_cols)
+    renames = {c: f"'{c}" for c in frame.columns if c.startswith(_FORMULA_START)}
+    # Keep headers distinct: an id of its own could already start with the quote ("'-x").
+    for c, quoted in list(renames.items()):
+        while quoted in frame.columns:
+            quoted = "'" + quoted
+        renames[c] = quoted
+    return frame.rename(renames) if renames else frame
 
 
 def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
                      inputs: list[Path]) -> list[Path]:
-    """Write several files into out_dir all at once: all of them, or none.
+    """Write several files into out_dir as one set: all of them, or none.
 
-    Every file is first written into a hidden temporary folder inside out_dir. Then each
-    file already in out_dir under one of the names is moved aside into that folder, and the
-    new file moved into place; if any move fails, the new files are taken out again and the
-    old ones put back, so out_dir holds either the whole previous run or the whole new one.
+    Every file is first written in full into a hidden staging folder inside out_dir; then
+    the set is put in place behind one commit point (disagg.present.commit): any
+    interruption, Ctrl-C included, leaves out_dir with the whole previous set or the whole
+    new one, and never deletes a previous file without its replacement in place. Files of
+    out_dir under other names are left alone. Staging folders left by killed runs are
+    finished or removed first.
 
     Args:
         out_dir: destination folder (created if missing).
@@ -58,49 +69,98 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         OutputError: the folder cannot be created or written, a name is taken by a folder,
             or a name would replace an input.
     """
-    out_dir = Path(out_dir).resolve()
+    out_dir = _resolved(out_dir)
     targets = [out_dir / name for name in files]
-    resolved_inputs = {p.resolve() for p in inputs}
+    resolved_inputs = {_resolved(p) for p in inputs}
     for t in targets:
-        if t.resolve() in resolved_inputs:
+        if _resolved(t) in resolved_inputs:
             raise OutputError(f"{t}: writing here would replace an input file; choose another --out")
         if t.is_dir():
             raise OutputError(f"{t}: is a folder, so the file {t.name} cannot be written there; "
                               "move the folder or choose another --out")
+    created = _make_folder(out_dir)
     try:
-        out_dir.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"{out_dir}: cannot create the output folder ({exc.strerror})") from None
-    try:
-        tmp = Path(tempfile.mkdtemp(prefix=".disagg-tmp-", dir=out_dir))
-    except OSError as exc:
-        raise OutputError(f"{out_dir}: cannot write in the output folder ({exc.strerror})") from None
-    old = tmp / ".previous"
-    moved: list[str] = []  # names whose previous file is in `old`
-    placed: list[str] = []  # names whose new file is in out_dir
+        tmp = commit.staging(out_dir)
+    except OutputError:
+        _remove_if_created(created)
+        raise
     try:
         for name, write in files.items():
             write(tmp / name)
-        old.mkdir()
-        for name in files:
-            if (out_dir / name).exists():
-                os.replace(out_dir / name, old / name)
-                moved.append(name)
-            os.replace(tmp / name, out_dir / name)
-            placed.append(name)
+        commit._step("staged")
+        commit.commit(tmp, [(name, out_dir / name) for name in files])
     except OSError as exc:
-        for name in placed:
-            with contextlib.suppress(OSError):
-                (out_dir / name).unlink()
-        for name in moved:
-            with contextlib.suppress(OSError):
-                os.replace(old / name, out_dir / name)
-        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
-        raise OutputError(f"{out_dir}: cannot write the outputs ({exc.strerror}){where}; "
-                          "the previous files are left as they were") from None
-    finally:
         shutil.rmtree(tmp, ignore_errors=True)
+        _remove_if_created(created)
+        raise OutputError(f"{out_dir}: cannot write the outputs ({_reason(exc)}){_where(exc)}; "
+                          "the previous files are left as they were") from None
+    except pl.exceptions.PolarsError as exc:
+        # polars reports a failed write (disk full, ...) as its own error, not an OSError.
+        shutil.rmtree(tmp, ignore_errors=True)
+        _remove_if_created(created)
+        raise OutputError(f"{out_dir}: cannot write the outputs ({_first_line(exc)}); "
+                          "the previous files are left as they were") from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        _remove_if_created(created)
+        raise
+    shutil.rmtree(tmp, ignore_errors=True)
     return targets
+
+
+def _resolved(path: Path) -> Path:
+    """path.resolve(), with a symbolic link loop an OutputError."""
+    try:
+        return Path(path).resolve()
+    except (OSError, RuntimeError) as exc:
+        why = "a symbolic link loop" if isinstance(exc, RuntimeError) else _reason(exc)
+        raise OutputError(f"{path}: cannot use this output path ({why})") from None
+
+
+def _reason(exc: OSError) -> str:
+    """An OS error's reason in words, never "None"."""
+    return (exc.strerror or (os.strerror(exc.errno) if exc.errno else None) or str(exc)
+            or type(exc).__name__)
+
+
+def _where(exc: OSError) -> str:
+    """The file an OS error names, by its name in the output folder (the staging folder it
+    was in is gone)."""
+    return f" ({Path(exc.filename).name})" if getattr(exc, "filename", None) else ""
+
+
+def _first_line(exc: BaseException) -> str:
+    """The first line of an error; of polars' "... underlying IO error: REASON", the reason."""
+    text = str(exc).strip().splitlines()
+    line = text[0] if text else type(exc).__name__
+    return line.split("underlying IO error: ", 1)[-1]
+
+
+def _make_folder(folder: Path) -> list[Path]:
+    """Create folder and its missing parents; return those created (deepest last).
+
+    Raises:
+        OutputError: it cannot be created.
+    """
+    missing = []
+    p = folder
+    while not p.exists() and p != p.parent:
+        missing.append(p)
+        p = p.parent
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{folder}: cannot create the output folder ({_reason(exc)})") from None
+    return list(reversed(missing))
+
+
+def _remove_if_created(created: list[Path]) -> None:
+    """A failed write leaves no empty output folder it created."""
+    for folder in reversed(created):
+        try:
+            folder.rmdir()
+        except OSError:
+            return
 
 
 def _clean(value):
@@ -187,14 +247,20 @@ def write_workbook(sheets: dict[str, pl.DataFrame], path: Path) -> None:
     """One .xlsx workbook, one sheet per table; numbers stay numbers, and text is stored as
     text, never as a formula (xlsxwriter's strings_to_formulas off), so names from users
     cannot run in a spreadsheet."""
+    import io
+
     import xlsxwriter
 
-    with xlsxwriter.Workbook(str(path), {"strings_to_formulas": False,
-                                         "strings_to_urls": False,
-                                         "nan_inf_to_errors": True}) as book:
+    # Built in memory and then written as one file: a full disk is then a plain OSError of
+    # that write (xlsxwriter writing the file itself leaves a half-closed zip file that
+    # prints a second error when collected).
+    buffer = io.BytesIO()
+    with xlsxwriter.Workbook(buffer, {"strings_to_formulas": False, "strings_to_urls": False,
+                                      "nan_inf_to_errors": True, "in_memory": True}) as book:
         for name, frame in sheets.items():
             frame.write_excel(workbook=book, worksheet=name, autofit=True,
                               float_precision=6)
+    Path(path).write_bytes(buffer.getvalue())
 
 
 def write_demo_site(folder: Path, toml_folder: Path | None = None, seed: int | None = None) -> Path:
@@ -240,7 +306,8 @@ def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
 
 
 def write_portfolio(result, out_dir: Path) -> list[Path]:
-    """Write portfolio.csv (one row per site; see disagg.jobs.batch.portfolio_frame) into
+    """Write portfolio.csv (one row per site; see disagg.jobs.batch.portfolio_frame) and
+    portfolio_equipment.csv (one row per site, month and breakdown row; equipment_frame) into
     out_dir, atomically, with text cells neutralised for spreadsheets.
 
     Args:
@@ -248,9 +315,12 @@ def write_portfolio(result, out_dir: Path) -> list[Path]:
     """
     frame = result.frame
     inputs = [result.portfolio.source, *result.portfolio.sites]
-    return write_atomically(out_dir, {
-        "portfolio.csv": lambda p: neutralise_csv_text(frame).write_csv(p, float_precision=6),
-    }, [p for p in inputs if p.is_file()])
+    files = {
+        "portfolio.csv": lambda p: neutralise_csv_text(frame).write_csv(p, float_precision=6)}
+    if result.equipment is not None:
+        files["portfolio_equipment.csv"] = lambda p: neutralise_csv_text(
+            result.equipment).write_csv(p, float_precision=6)
+    return write_atomically(out_dir, files, [p for p in inputs if p.is_file()])
 
 
 def write_report(html: str, out_dir: Path, inputs: list[Path]) -> list[Path]:

@@ -6,7 +6,9 @@ fails leaves the output folder untouched.
 
 from __future__ import annotations
 
+import datetime as dt
 import math
+import zoneinfo
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -143,7 +145,10 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
 def check_summary(result: CheckResult) -> str:
     r = result.report
     c = r["intervals"]
-    lines = [f"{r['site']}: {r['period']['start_utc']} to {r['period']['end_utc']} (UTC), "
+    zone = zoneinfo.ZoneInfo(result.site.timezone)
+    start, end = (dt.datetime.fromisoformat(r["period"][k]).astimezone(zone).isoformat()
+                  for k in ("start_utc", "end_utc"))
+    lines = [f"{r['site']}: {start} to {end} ({result.site.timezone}), "
              f"{r['interval_min']}-minute meter intervals",
              f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
              f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
@@ -295,7 +300,7 @@ def portfolio_summary(result: PortfolioResult, seconds: float | None = None) -> 
         lines.append(f"history: {unstored} site{'s' * (unstored != 1)} with months not stored "
                      "(a --from/--to range that cuts a month short, or a stored month with "
                      "more data); see history_note in portfolio.csv")
-    lines.append("file: the site file's name (its output folder); peak kW: the highest "
+    lines.append("file: the site file's path in the portfolio without .toml (its output folder); peak kW: the highest "
                  "monthly peak demand of the intervals used; cost: over the range (sites "
                  "with a [tariff])")
     lines.append("CV(RMSE) and NMBE: hourly, as ASHRAE Guideline 14 defines them (criteria 30 % "

@@ -13,7 +13,7 @@ from disagg.errors import InputError
 
 ATOM_NS = "http://www.w3.org/2005/Atom"
 ESPI_NS = "http://naesb.org/espi"
-# ReadingType codes read here (NAESB REQ.21 ESPI, usage.xsd v3.3, read; references.md
+# ReadingType codes read here (NAESB REQ.21 ESPI, usage.xsd v3.3, read; docs/references.md
 # section 8): uom 72 = Wh, uom 38 = W; accumulationBehaviour 4 = deltaData, the energy of
 # each interval rather than a register reading.
 GB_UOM_WH = 72

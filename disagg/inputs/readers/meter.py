@@ -56,6 +56,24 @@ def infer_interval_min(starts: pl.Series, path: Path, what: str) -> int:
     return int(mode_s // 60)
 
 
+def _check_stated_interval(times: pl.Series, path: Path, stated_min: int) -> None:
+    """interval_minutes must agree with the readings' most common spacing: 5 on 15-minute
+    data would make every draw about 3 times too high.
+
+    Raises:
+        InputError: naming both values.
+    """
+    diffs = times.sort().diff().drop_nulls().dt.total_seconds()
+    diffs = diffs.filter(diffs > 0)
+    if diffs.len() == 0:
+        return
+    mode_s = float(diffs.mode().sort()[0])
+    if mode_s != stated_min * 60:
+        raise InputError(f"{path}: the readings are {mode_s / 60:g} minutes apart (the most "
+                         f"common spacing) but the site file sets interval_minutes = "
+                         f"{stated_min}; remove interval_minutes or correct it")
+
+
 def _naive_times(frame: pl.DataFrame, column: str) -> bool:
     """True when the time column holds naive local times (parse_times' rule)."""
     s = frame.get_column(column)
@@ -101,7 +119,8 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     path = settings.file
     raw = read_table(path, "meter", [settings.time_column, settings.value_column])
     require_columns(raw, path, [settings.time_column, settings.value_column])
-    times = parse_times(raw, settings.time_column, tz, path)
+    times = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
+                        setting="[meter] date_order")
     values = _numbers(raw, settings.value_column, path, f"energy in {settings.unit}")
     negative = vee.negative_readings(
         values, lambda i: f"{path}: {_row_label(path, i)}, column {settings.value_column!r}")
@@ -117,6 +136,8 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     dropped = rows_read - df.height
     df = df.sort("t")
     interval_min = settings.interval_min or infer_interval_min(df["t"], path, "meter")
+    if settings.interval_min is not None:
+        _check_stated_interval(df["t"], path, settings.interval_min)
     stamp = settings.stamp or "end"
     off = vee.off_interval(df["t"], interval_min, stamp)
     finding = vee.off_interval_finding(df["t"], off, interval_min, stamp, tz)
@@ -142,7 +163,7 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     else:
         df = df.with_columns(start_utc=pl.col("t"), end_utc=pl.col("t") + step)
     frame = df.select("start_utc", "end_utc", (pl.col("v") * scale).alias("energy_kwh"))
-    frame, more = vee.validate_frame(frame, interval_min, stamp, tz)
+    frame, more = vee.validate_frame(frame, interval_min, stamp, tz, settings.unit or "kWh")
     notes = [f.replaces for f in findings if f.replaces]
     return MeterData(frame, interval_min, path, rows_read, dropped, notes, findings + more)
 

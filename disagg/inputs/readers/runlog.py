@@ -297,7 +297,8 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         missing = [e for e in ids if not by_eq[e]]
         if missing:
             notes.append(f"no run-log column for {', '.join(missing)}: left out as unknown")
-        t = parse_times(raw, settings.time_column, tz, path) + shift
+        t = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
+                        setting="[runlog] date_order") + shift
         notes += _order_notes(path, t, None)
         hold = pl.duration(microseconds=round(settings.max_hold_min * 60e6))
         frames = []
@@ -329,7 +330,8 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
     written = eq
     if aliases:
         eq = eq.replace(aliases)
-    t = parse_times(raw, settings.time_column, tz, path, by=eq) + shift
+    t = parse_times(raw, settings.time_column, tz, path, by=eq, date_order=settings.date_order,
+                    setting="[runlog] date_order") + shift
     notes += _alias_notes(path, written, t, aliases)
     notes += _order_notes(path, t, eq)
     if settings.layout == "events":

@@ -98,8 +98,101 @@ def _parse_offset_times(text: pl.Series) -> pl.Series | None:
     return pl.from_epoch(wall.dt.epoch("us") - shift_us, time_unit="us").dt.replace_time_zone("UTC")
 
 
+# Times outside these years are typing or export errors, and beyond them the nanosecond
+# times of the alignment (numpy datetime64[ns]: years 1678 to 2261) would overflow.
+FIRST_YEAR, LAST_YEAR = 1900, 2199
+
+
 def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
-                by: pl.Series | None = None) -> pl.Series:
+                by: pl.Series | None = None, date_order: str | None = None,
+                setting: str = "date_order") -> pl.Series:
+    """_parse_times, and every time within the years FIRST_YEAR to LAST_YEAR.
+
+    Raises:
+        InputError: as _parse_times, or a time outside those years, naming its row.
+    """
+    times = _parse_times(frame, column, tz, path, by, date_order, setting)
+    year = times.dt.year()
+    outside = (year < FIRST_YEAR) | (year > LAST_YEAR)
+    if outside.any():
+        idx = int(outside.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: time "
+                         f"{times[idx]} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
+                         "expected a date and time such as 2025-03-09T03:15:00")
+    return times
+
+
+DATE_ORDERS = ("ymd", "mdy", "dmy")
+# A date written with numbers: 2024-10-13, 10/13/2024, 13.10.2024, 10/13/24 (then the rest).
+_NUMERIC_DATE = r"^(\d{1,4})[/.\-](\d{1,2})[/.\-](\d{1,4})(.*)$"
+_ORDER_WORDS = {"ymd": "year-month-day", "mdy": "month/day/year", "dmy": "day/month/year"}
+
+
+def _ymd_text(text: pl.Series, column: str, path: Path, date_order: str | None,
+              setting: str) -> pl.Series:
+    """Numeric dates in any order rewritten year first (2024-10-13 ...), the rest unchanged.
+
+    With date_order None the order is decided from the whole column: a 4-digit first part is
+    year first; otherwise a first part above 12 somewhere means day first, a second part above
+    12 somewhere means month first, and a column where neither happens (every day 12 or less)
+    is refused as ambiguous, naming the setting that decides it. Rows that are not numeric
+    dates stay as they are (the general parser then reports them).
+    """
+    first = text[0] if len(text) else ""
+    if date_order is None:
+        head = re.match(r"^(\d+)[/.\-]", first)
+        if head is None or len(head.group(1)) == 4:
+            return text  # year first (ISO) or not a numeric date: the general parser decides
+    elif date_order == "ymd":
+        return text
+    parts = text.str.extract_groups(_NUMERIC_DATE)
+    a = parts.struct.field("1").cast(pl.Int64, strict=False)
+    b = parts.struct.field("2").cast(pl.Int64, strict=False)
+    matched = a.is_not_null()
+    order = date_order
+    if order is None:
+        a_big, b_big = (a > 12) & matched, (b > 12) & matched
+        if a_big.any() and b_big.any():
+            i, j = int(a_big.arg_max()), int(b_big.arg_max())  # type: ignore[arg-type]
+            raise InputError(
+                f"{path}: column {column!r}: the dates are neither all month/day/year "
+                f"({_row_label(path, i)}: {text[i]!r}) nor all day/month/year "
+                f"({_row_label(path, j)}: {text[j]!r}); expected one date order in the column")
+        if a_big.any():
+            order = "dmy"
+        elif b_big.any():
+            order = "mdy"
+        elif (a.filter(matched) == b.filter(matched)).all():
+            order = "mdy"  # every date has its month equal to its day: both orders agree
+        else:
+            raise InputError(
+                f"{path}: column {column!r}: dates such as {first!r} can be read month first "
+                "or day first (no day above 12 in the file); set "
+                f"{setting} = \"mdy\" (10/13/2024) or \"dmy\" (13/10/2024) in the site file")
+    y = parts.struct.field("3")
+    month, day = (a, b) if order == "mdy" else (b, a)
+    year = pl.Series(y).cast(pl.Int64, strict=False)
+    year = pl.select(pl.when(pl.lit(y).str.len_chars() == 2).then(pl.lit(year) + 2000)
+                     .when(pl.lit(y).str.len_chars() == 4).then(pl.lit(year))
+                     .otherwise(None)).to_series()
+    iso = pl.select(pl.format("{}-{}-{}{}", pl.lit(year).cast(pl.String).str.zfill(4),
+                              pl.lit(month).cast(pl.String).str.zfill(2),
+                              pl.lit(day).cast(pl.String).str.zfill(2),
+                              pl.lit(parts.struct.field("4")))).to_series()
+    good = matched & year.is_not_null() & (month >= 1) & (month <= 12) & (day >= 1) & (day <= 31)
+    if not good.all():
+        i = int((~good.fill_null(False)).arg_max())  # type: ignore[arg-type]
+        how = (f"({setting} = \"{order}\")" if date_order is not None
+               else "(the order of the column's other dates)")
+        raise InputError(f"{path}: {_row_label(path, i)}, column {column!r}: cannot read time "
+                         f"{text[i]!r}; expected a {_ORDER_WORDS[order]} date {how} such as "
+                         f"{first!r}")
+    return iso
+
+
+def _parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
+                 by: pl.Series | None = None, date_order: str | None = None,
+                 setting: str = "date_order") -> pl.Series:
     """Timestamps -> UTC datetimes [us].
 
     Text with a UTC offset (``2025-03-09T03:15:00-05:00``) is converted directly. Naive text
@@ -108,8 +201,15 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
     within each ``by`` group such as an equipment id), and the second occurrence after that. A time
     that does not exist (clocks skip it) is an error.
 
+    Dates written with numbers in another order than year first (``10/13/2024 00:15``) are
+    read in ``date_order`` (``ymd``, ``mdy`` or ``dmy``), or, when it is None, in the one order
+    that fits the whole column (see _ymd_text); a ``date_order`` holding ``%`` is a format
+    string (chrono/strftime codes, such as ``%m/%d/%Y %I:%M %p``) for the whole time.
+    ``setting`` names the site-file setting in messages (``[meter] date_order``).
+
     Raises:
-        InputError: a time that cannot be parsed or does not exist, naming its row.
+        InputError: a time that cannot be parsed or does not exist, naming its row; a column
+        whose date order cannot be decided.
     """
     s = frame.get_column(column)
     if s.dtype == pl.Datetime:
@@ -126,7 +226,11 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
             idx = int((text.is_null() | (text == "")).arg_max())  # type: ignore[arg-type]
             raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: empty time; "
                              "expected a date and time such as 2025-03-09T03:15:00")
-        first = text[0] if len(text) else ""
+        if date_order is not None and "%" in date_order:
+            return _formatted_times(text, column, tz, path, date_order, setting, by)
+        shown = text  # messages quote the file's own text
+        text = _ymd_text(text, column, path, date_order, setting)
+        first = shown[0] if len(shown) else ""
         offset = bool(_OFFSET.search(first))
         fast = _parse_offset_times(text) if offset else None
         if fast is not None:
@@ -144,10 +248,34 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
             idx = int(parsed.is_null().arg_max())  # type: ignore[arg-type]
             raise InputError(
                 f"{path}: {_row_label(path, idx)}, column {column!r}: cannot read time "
-                f"{text[idx]!r}; expected the same form as the first row ({first!r})")
+                f"{shown[idx]!r}; expected the same form as the first row ({first!r})")
         if offset:
             return parsed
         naive = parsed
+    return _localize(naive, column, tz, path, by)
+
+
+def _formatted_times(text: pl.Series, column: str, tz: str, path: Path, fmt: str,
+                     setting: str, by: pl.Series | None) -> pl.Series:
+    """Times read with the site file's format string; naive ones are local time in tz."""
+    try:
+        parsed = text.str.to_datetime(fmt, strict=False, time_unit="us")
+    except pl.exceptions.PolarsError as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"{path}: column {column!r}: cannot read the times with {setting} = "
+                         f"{fmt!r} ({first})") from None
+    if parsed.null_count():
+        idx = int(parsed.is_null().arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: cannot read time "
+                         f"{text[idx]!r}; expected the form {setting} = {fmt!r}")
+    if parsed.dtype.time_zone is not None:  # type: ignore[union-attr]
+        return parsed.dt.convert_time_zone("UTC")
+    return _localize(parsed, column, tz, path, by)
+
+
+def _localize(naive: pl.Series, column: str, tz: str, path: Path,
+              by: pl.Series | None) -> pl.Series:
+    """Naive local times in tz -> UTC (parse_times' rule for the repeated and skipped hours)."""
     early = naive.dt.replace_time_zone(tz, ambiguous="earliest", non_existent="null")
     if early.null_count():
         idx = int(early.is_null().arg_max())  # type: ignore[arg-type]
@@ -178,7 +306,7 @@ def _numbers(frame: pl.DataFrame, column: str, path: Path, what: str) -> pl.Seri
             idx = int(values.is_nan().arg_max())  # type: ignore[arg-type]
             raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: NaN is not a "
                              f"number; expected {what}")
-        return values
+        return _bounded(values, column, path, what)
     text = s.cast(pl.String).str.strip_chars()
     values = text.cast(pl.Float64, strict=False)
     bad = (values.is_null() & text.is_not_null() & (text != "")) | values.is_nan()
@@ -186,4 +314,20 @@ def _numbers(frame: pl.DataFrame, column: str, path: Path, what: str) -> pl.Seri
         idx = int(bad.arg_max())  # type: ignore[arg-type]
         raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: {text[idx]!r} "
                          f"is not a number; expected {what}")
+    return _bounded(values, column, path, what)
+
+
+# Largest magnitude of a number read from an input file: a 15-digit register (the most a
+# float64 holds exactly) fits; anything larger, or infinite, is a corrupt cell and would
+# overflow the fit's sums of squares.
+MAX_INPUT_NUMBER = 1e15
+
+
+def _bounded(values: pl.Series, column: str, path: Path, what: str) -> pl.Series:
+    """values, unless one is infinite or beyond MAX_INPUT_NUMBER (an InputError naming it)."""
+    big = (values.abs() > MAX_INPUT_NUMBER).fill_null(False)
+    if big.any():
+        idx = int(big.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: {values[idx]!r} "
+                         f"is too large (more than {MAX_INPUT_NUMBER:g} in size); expected {what}")
     return values

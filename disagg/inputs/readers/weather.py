@@ -17,6 +17,11 @@ from disagg.inputs.readers.tables import (
 )
 
 
+# Beyond any outdoor temperature recorded (-89.2 degC and 56.7 degC, the WMO's world
+# records, from memory), with a wide margin: a value outside is a sensor fault or a typo.
+MIN_OUTDOOR_C, MAX_OUTDOOR_C = -100.0, 100.0
+
+
 def read_weather(settings: WeatherSettings, tz: str) -> pl.DataFrame:
     """Outdoor temperature readings -> frame t (UTC) and temp_c [degC], sorted by time.
 
@@ -26,10 +31,18 @@ def read_weather(settings: WeatherSettings, tz: str) -> pl.DataFrame:
     path = settings.file
     raw = read_table(path, "weather", [settings.time_column, settings.temp_column])
     require_columns(raw, path, [settings.time_column, settings.temp_column])
-    t = parse_times(raw, settings.time_column, tz, path)
+    t = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
+                    setting="[weather] date_order")
     temp = _numbers(raw, settings.temp_column, path, f"a temperature in {settings.unit}")
     if settings.unit == "F":
         temp = (temp - 32.0) * 5.0 / 9.0
+    odd = ((temp < MIN_OUTDOOR_C) | (temp > MAX_OUTDOOR_C)).fill_null(False)
+    if odd.any():
+        idx = int(odd.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}, column {settings.temp_column!r}: "
+                         f"{raw.get_column(settings.temp_column)[idx]} {settings.unit} is no "
+                         f"outdoor temperature; expected {MIN_OUTDOOR_C:g} to {MAX_OUTDOOR_C:g} "
+                         "degC")
     df = pl.DataFrame({"t": t, "temp_c": temp, "row": pl.int_range(raw.height, eager=True)})
     clash = (df.group_by("t").agg(pl.col("temp_c").n_unique().alias("n"), pl.col("row").min())
              .filter(pl.col("n") > 1).sort("row"))

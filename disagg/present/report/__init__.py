@@ -37,6 +37,7 @@ from disagg.present.report.sections import (  # noqa: F401 - re-exported
     _local_span,
     _months,
     _priors_section,
+    _summary,
     from_celsius,
     interval_counts,
 )
@@ -78,6 +79,7 @@ def render_report(result: BreakdownResult, drift: DriftResult | None = None, *,
     with mpl.rc_context(_RC):
         parts = [
             _header(result, periods),
+            _summary(result, drift, table_names),
             _glance(result, ch, table_names),
             _months(result, ch, table_names, periods),
             _drift_section(drift, ch, drift_names, drift_note,

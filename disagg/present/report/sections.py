@@ -179,6 +179,96 @@ def interval_counts(c: dict) -> str:
     return text + (f" ({why})" if why else "")
 
 
+# The summary names this many biggest users, a draw change from the first to the last month
+# of at least CHANGE_WORTH_NAMING, and an unexplained share above UNEXPLAINED_WORTH_NAMING
+# (project choices, no source: the threshold matches drift's default of 10 %).
+BIGGEST_USERS = 3
+CHANGE_WORTH_NAMING = 0.10
+UNEXPLAINED_WORTH_NAMING = 0.10
+LOOK_AT = 4  # points to look at, at most
+
+
+def _pct(x: float) -> str:
+    return f"{100 * x:+.0f} %"
+
+
+def _summary(result: BreakdownResult, drift: DriftResult | None,
+             names: list[str]) -> str:
+    """"In short": the biggest users, what changed and what to look at, in plain words, for
+    the first printed page."""
+    table = result.breakdown
+    metered = _metered_total(table)
+    rows = _range_rows(table, names, metered)
+    full = {eq.id: eq.name for eq in result.site.equipment}
+    loads = sorted((r for r in rows if not _is_base(r["equipment"])
+                    and r["equipment"] not in ("unexplained", "estimated-gaps")),
+                   key=lambda r: -r["kwh"])
+    items = []
+    if loads and metered:
+        top = [f"{e(r['equipment'])}" + (f" ({e(full[r['equipment']])})"
+                                         if full.get(r["equipment"], r["equipment"])
+                                         != r["equipment"] else "")
+               + f" {_num(r['kwh'])} kWh ({_num(100 * r['kwh'] / metered, 0)} %)"
+               for r in loads[:BIGGEST_USERS]]
+        items.append(f"<b>Biggest users</b> of the {_num(metered)} kWh metered: "
+                     + "; ".join(top) + ".")
+    items.append("<b>What changed:</b> " + _what_changed(result, drift))
+    look = _look_at(result, rows, metered)
+    items.append("<b>What to look at:</b> " + (" ".join(look) if look else
+                                               "nothing stands out in these data."))
+    return ('<div class="summary" id="summary"><h2>In short</h2><ul>'
+            + "".join(f"<li>{i}</li>" for i in items) + "</ul></div>")
+
+
+def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
+    if drift is not None and drift.summary.get("alarms"):
+        parts = [f"{e(a['equipment'])} {_pct(a['change'])} since the reference period "
+                 f"(first alarm {e(a['first_alarm_date'])})" for a in drift.summary["alarms"]]
+        return "drift alarms for " + "; ".join(parts) + " (see Drift over time)."
+    months = {p: m for p, m in sorted(result.fit.get("months", {}).items()) if m.get("own_fit")}
+    if len(months) >= 2:
+        (p0, m0), (p1, m1) = next(iter(months.items())), list(months.items())[-1]
+        first = {d["equipment"]: d["kw"] for d in m0["draws"] if d.get("kw")}
+        last = {d["equipment"]: d["kw"] for d in m1["draws"] if d.get("kw")}
+        moves = sorted(((last[k] / first[k] - 1.0, k) for k in first if k in last
+                        and first[k] > 0), key=lambda m: -abs(m[0]))
+        named = [f"{e(k)} {_num(first[k], 1)} kW in {p0} to {_num(last[k], 1)} kW in {p1} "
+                 f"({_pct(c)})" for c, k in moves if abs(c) >= CHANGE_WORTH_NAMING]
+        if named:
+            return ("draws that moved by 10 % or more from the first to the last month: "
+                    + "; ".join(named[:3]) + " (see Month by month).")
+        return (f"no load's draw moved by 10 % or more from {p0} to {p1}"
+                + ("; no drift alarm." if drift is not None else "."))
+    return ("one month of data: nothing to compare yet"
+            + ("; no drift alarm." if drift is not None else "."))
+
+
+def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[str]:
+    fit = result.fit
+    out = []
+    clock = [w for w in fit.get("warnings", []) if "match the meter best" in str(w)
+             or "run-log clock looks off" in str(w)]
+    if clock:
+        out.append("the run-log clock seems off from the meter's (see the notes on the fit "
+                   "page): fix it first, it biases every draw.")
+    grouped = [d["equipment"] for d in fit.get("draws", []) if "+" in d["equipment"]]
+    if grouped:
+        out.append(f"{_names(grouped)} run together and are shown as one row: a separate "
+                   "run-log point or a spot measurement would split them.")
+    hourly = (fit.get("fit_quality") or {}).get("ashrae_guideline_14") or {}
+    if hourly and hourly.get("hourly_meets") is False:
+        out.append("the hourly fit does not meet the ASHRAE Guideline 14 criteria: read the "
+                   "figures as rough.")
+    unexplained = sum(r["kwh"] for r in rows if r["equipment"] == "unexplained")
+    if metered and abs(unexplained) / metered >= UNEXPLAINED_WORTH_NAMING:
+        out.append(f"{_num(100 * unexplained / metered, 0)} % of the metered energy is "
+                   "unexplained: a load without a run log may be missing.")
+    n_notes = len(fit.get("warnings", []))
+    if n_notes:
+        out.append(f"{n_notes} note{'s' * (n_notes != 1)} on the data and the fit (fit page).")
+    return out[:LOOK_AT]
+
+
 def _header(result: BreakdownResult, periods: list[str]) -> str:
     first, last = _local_span(result)
     fit = result.fit
@@ -189,7 +279,9 @@ def _header(result: BreakdownResult, periods: list[str]) -> str:
                 "What cannot be told apart", "Cautions"]
     ids = ["glance", "months", "drift", "fit", "priors", "cautions"]
     toc = "".join(f'<li><a href="#{i}">{s}</a></li>' for i, s in zip(ids, sections))
+    made = dt.datetime.now(_zone(result.site.timezone)).date().isoformat()
     return (f'<header class="top"><h1>{e(result.site.name)}</h1>'
+            f"<p>Generated on {made} by {e(str(fit.get('tool', 'disagg')))}.</p>"
             f"<p>Energy by equipment, {e(first)} to {e(last)} (local dates, "
             f"{e(result.site.timezone)}): {e(months)}.</p>"
             f"<p>{interval_counts(c)}; intervals at {100 * result.estimates.confidence:g} % "
@@ -271,7 +363,14 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
         + (" of each month's own fit" if own else "")
         + "; the interval of a sum of months is the sum of the monthly interval ends, so it "
           "is on the wide side. Draw: the whole range's fitted draw (full-speed draw for "
-          "variable-speed equipment). Share: of the metered energy.",
+          "variable-speed equipment; for a weather-dependent load, at its reference "
+          "temperature). Share: of the metered energy.",
+        ("One load, several draw figures: this page gives the draw fitted on the whole range; "
+         "the month-by-month page gives each month's own fit (which follows that month's "
+         "weather and condition), the drift page the draw tracked day by day, and the last "
+         "page the engineer's prior (nameplate or guess) the fit started from. They differ "
+         "because each rests on different data; use this page's figure for the range as a "
+         "whole."),
         ("Unexplained is what the meter recorded and nothing fitted accounts for; it can be "
          "negative when the fit overshoots."),
     ]

@@ -78,6 +78,11 @@ tr.total td { font-weight: 600; border-top: 1.5px solid #9aa3b0; }
 .caution { border-left: 5px solid var(--warn); background: #fff5f5; padding: 10px 14px;
   margin: 10px 0; -webkit-print-color-adjust: exact; print-color-adjust: exact; }
 .caution p { margin: 4px 0; font-size: 16px; }
+div.summary { border: 1px solid var(--rule); border-left: 5px solid var(--accent);
+  padding: 4px 14px; margin: 14px 0 0; }
+div.summary h2 { font-size: 17px; margin: 6px 0 4px; }
+div.summary ul { margin: 4px 0 8px; padding-left: 20px; }
+div.summary li { margin: 3px 0; }
 footer { margin-top: 30px; font-size: 12px; color: var(--muted); }
 @page { margin: 14mm 12mm; }
 @media print {
@@ -86,6 +91,8 @@ footer { margin-top: 30px; font-size: 12px; color: var(--muted); }
   main { max-width: none; margin: 0; padding: 0; }
   nav.toc { display: none; }
   section.page { break-before: page; border-top: none; margin-top: 0; padding-top: 0; }
+  section.page.first { break-before: auto; margin-top: 12pt; }
+  div.summary { break-inside: avoid; }
   h2, h3 { break-after: avoid; }
   figure, tr, .kpis, .caution { break-inside: avoid; }
   thead { display: table-header-group; }

@@ -1,0 +1,138 @@
+"""`disagg batch` under faults: a killed batch leaves no process behind, a dead worker fails
+only its own site, formula-like headers are neutralised, colliding history ids are refused.
+All data invented (tests/synthetic.py buildings via test_portfolio.write_site_files)."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import polars as pl
+import pytest
+from test_portfolio import write_site_files
+
+from disagg.errors import ConfigError
+from disagg.jobs import batch
+from disagg.jobs.batch import Portfolio, PortfolioResult, SiteJob, SiteOutcome
+from disagg.present.outputs import write_portfolio
+
+
+def test_portfolio_headers_built_from_formula_like_ids_are_neutralised(tmp_path):
+    # OWASP "CSV Injection" (from memory): cells, headers included, starting with =, +, -, @
+    # are prefixed with a single quote.
+    outcomes = [SiteOutcome("/s/a.toml", "a", "ok", "A", period="2025-01..2025-01",
+                            metered_kwh=10.0,
+                            equipment_kwh={"=cmd|' /C calc'!A0": 1.0, "+X": 2.0, "-Y": 3.0,
+                                           "@Z": 4.0, "'-Y": 5.0, "AHU-1": 6.0})]
+    result = PortfolioResult(Portfolio(tmp_path / "sites", ()), batch.portfolio_frame(outcomes),
+                             outcomes)
+    (path,) = write_portfolio(result, tmp_path / "out")
+    header = path.read_text(encoding="utf-8").splitlines()[0].split(",")
+    kwh = [h for h in header if h.endswith("_kwh") and h != "metered_kwh"]
+    assert kwh == ["'=cmd|' /C calc'!A0_kwh", "'+X_kwh", "''-Y_kwh", "'@Z_kwh", "'-Y_kwh",
+                   "AHU-1_kwh"]
+    assert not any(h.lstrip('"').startswith(("=", "+", "-", "@")) for h in header)
+    # The values stay under their (quoted) headers.
+    table = pl.read_csv(path)
+    assert table["''-Y_kwh"].to_list() == [3.0] and table["'-Y_kwh"].to_list() == [5.0]
+
+
+def test_site_files_whose_history_ids_would_collide_are_refused(tmp_path):
+    for name in ("a b.toml", "a_b.toml"):
+        (tmp_path / name).write_text("[site]\n", encoding="utf-8")
+    with pytest.raises(ConfigError) as exc:
+        batch.load_portfolio(tmp_path)
+    assert str(exc.value) == (
+        f"{tmp_path}: {tmp_path / 'a b.toml'} and {tmp_path / 'a_b.toml'} would share the "
+        "history id 'a_b' (file names that differ only in characters other than letters, "
+        "digits, '.', '_' and '-'); give the site files different names")
+
+
+def _fake_site(job: SiteJob) -> SiteOutcome:
+    """A stand-in for run_site in forked workers: the site named doomed kills its worker
+    as the out-of-memory killer would; the others take a moment and succeed."""
+    if Path(job.site_file).stem == "doomed":
+        os.kill(os.getpid(), signal.SIGKILL)
+    time.sleep(0.3)
+    return SiteOutcome(job.site_file, Path(job.site_file).stem, "ok", "x",
+                       metered_kwh=float(os.getpid()))
+
+
+def test_a_dead_worker_fails_only_its_own_site(tmp_path, monkeypatch):
+    monkeypatch.setattr(batch, "run_site", _fake_site)
+    monkeypatch.setattr(batch, "_site_name", lambda f: None)
+    names = ["a", "b", "doomed", "c", "d", "e"]
+    jobs = [SiteJob(str(tmp_path / f"{n}.toml"), str(tmp_path / "out" / n)) for n in names]
+    seen = []
+    outcomes = batch._run_locally(jobs, 2, "fork", lambda *a: seen.append(a))
+    status = {o.folder: o.status for o in outcomes}
+    assert status == {"a": "ok", "b": "ok", "doomed": "failed", "c": "ok", "d": "ok", "e": "ok"}
+    doomed = outcomes[2]
+    assert doomed.error == ("the worker running this site stopped (killed by SIGKILL, as the "
+                            "out-of-memory killer does; it stopped again when the site ran "
+                            "alone)")
+    assert seen[-1] == ("sites", 6, 6)
+
+
+def _group(pgid: int) -> list[int]:
+    """Live (not zombie) processes of a process group, from /proc."""
+    pids = []
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+        except OSError:
+            continue
+        fields = stat[stat.rindex(")") + 2:].split()
+        if int(fields[2]) == pgid and fields[0] != "Z":
+            pids.append(int(entry.name))
+    return pids
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs Linux /proc")
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL])
+def test_a_killed_batch_leaves_no_process_of_its_group(tmp_path, sig):
+    sites = tmp_path / "sites"
+    for i in range(6):
+        write_site_files(sites, f"s{i}", 40 + i, days=60, data_dir=tmp_path / "data")
+    out = tmp_path / "out"
+    proc = subprocess.Popen([sys.executable, "-m", "disagg.cli", "batch", str(sites),
+                             "--out", str(out), "--workers", "2", "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            start_new_session=True)
+    try:
+        deadline = time.monotonic() + 120
+        # Wait until the pool is up: the batch, its forkserver and at least one worker.
+        while len(_group(proc.pid)) < 3 and time.monotonic() < deadline:
+            assert proc.poll() is None, proc.stderr.read()
+            time.sleep(0.05)
+        assert len(_group(proc.pid)) >= 3
+        os.kill(proc.pid, sig)
+        _, err = proc.communicate(timeout=60)  # returns once every holder of the pipes is gone
+        deadline = time.monotonic() + 30
+        while _group(proc.pid) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert _group(proc.pid) == []
+        if sig == signal.SIGTERM:
+            assert proc.returncode == 128 + signal.SIGTERM
+            lines = err.decode().splitlines()
+            assert len(lines) == 1 and lines[0].startswith("Stopped by SIGTERM: "), lines
+            assert lines[0].endswith("not run; portfolio.csv not written")
+        assert not (out / "portfolio.csv").exists()
+    finally:
+        for pid in _group(proc.pid):
+            os.kill(pid, signal.SIGKILL)
+
+
+def test_a_deeply_nested_portfolio_file_is_a_config_error(tmp_path):
+    pf = tmp_path / "p.toml"
+    pf.write_text("[portfolio]\nsites = " + "[" * 3000 + "]" * 3000 + "\n", encoding="utf-8")
+    with pytest.raises(ConfigError) as exc:
+        batch.load_portfolio(pf)
+    assert str(exc.value) == (f"{pf}: not valid TOML for disagg (arrays or tables nested more "
+                              "than 50 deep)")

@@ -1,0 +1,170 @@
+"""A result set has one commit point: any stop leaves the whole old set or the whole new one
+(disagg.present.commit, used by disagg.present.outputs.write_atomically and the history)."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from disagg.errors import OutputError
+from disagg.present import commit
+from disagg.present.outputs import write_atomically
+
+NAMES = ("breakdown.csv", "breakdown.parquet", "fit.json")
+
+
+def _old_set(folder: Path) -> None:
+    folder.mkdir(exist_ok=True)
+    for name in NAMES:
+        (folder / name).write_text(f"old {name}\n")
+    (folder / "notes.txt").write_text("the user's own file\n")
+
+
+def _new_files() -> dict:
+    return {name: (lambda p, n=name: p.write_text(f"new {n}\n")) for name in NAMES}
+
+
+def _contents(folder: Path) -> dict[str, str]:
+    return {p.name: p.read_text() for p in sorted(folder.iterdir())}
+
+
+def _stop_at(monkeypatch, step: str, exc: BaseException) -> None:
+    def hook(name: str) -> None:
+        if name == step:
+            raise exc
+    monkeypatch.setattr(commit, "after_step", hook)
+
+
+OLD = {"notes.txt": "the user's own file\n", **{n: f"old {n}\n" for n in NAMES}}
+NEW = {"notes.txt": "the user's own file\n", **{n: f"new {n}\n" for n in NAMES}}
+
+
+@pytest.mark.parametrize("step", ["staged", "backed-up"])
+def test_ctrl_c_before_the_commit_point_keeps_the_whole_old_set(tmp_path, monkeypatch, step):
+    _old_set(tmp_path)
+    _stop_at(monkeypatch, step, KeyboardInterrupt())
+    with pytest.raises(KeyboardInterrupt):
+        write_atomically(tmp_path, _new_files(), [])
+    assert _contents(tmp_path) == OLD  # nothing deleted, no staging folder left
+
+
+@pytest.mark.parametrize("step", ["committed", "placed breakdown.csv",
+                                  "placed breakdown.parquet"])
+def test_ctrl_c_after_the_commit_point_finishes_the_new_set(tmp_path, monkeypatch, step):
+    # Between two renames (the moment that used to lose the previous breakdown.csv).
+    _old_set(tmp_path)
+    _stop_at(monkeypatch, step, KeyboardInterrupt())
+    with pytest.raises(KeyboardInterrupt):
+        write_atomically(tmp_path, _new_files(), [])
+    assert _contents(tmp_path) == NEW
+
+
+def test_a_real_sigint_during_the_renames_is_held_until_the_set_is_in_place(tmp_path,
+                                                                           monkeypatch):
+    _old_set(tmp_path)
+    seen = []
+
+    def hook(name: str) -> None:
+        seen.append((name, sorted(p.name for p in tmp_path.iterdir())))
+        if name == "placed breakdown.csv":
+            os.kill(os.getpid(), signal.SIGINT)
+
+    monkeypatch.setattr(commit, "after_step", hook)
+    with pytest.raises(KeyboardInterrupt):
+        write_atomically(tmp_path, _new_files(), [])
+    # The signal arrived after the first rename; the other two still happened.
+    assert [s for s, _ in seen][-1] == "placed fit.json"
+    assert _contents(tmp_path) == NEW
+
+
+def _killed_writer(folder: Path, step: str) -> subprocess.CompletedProcess:
+    """A separate process writing the new set into folder, killed (os._exit, like SIGKILL:
+    no clean-up runs) at the given step."""
+    code = textwrap.dedent(f"""
+        import os
+        from pathlib import Path
+        from disagg.present import commit
+        from disagg.present.outputs import write_atomically
+
+        def hook(name):
+            if name == {step!r}:
+                os._exit(9)
+
+        commit.after_step = hook
+        write_atomically(Path({str(folder)!r}),
+                         {{n: (lambda p, n=n: p.write_text(f"new {{n}}\\n")) for n in {NAMES!r}}},
+                         [])
+    """)
+    return subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=120)
+
+
+def test_a_run_killed_between_two_renames_is_finished_by_the_next_write(tmp_path):
+    _old_set(tmp_path)
+    proc = _killed_writer(tmp_path, "placed breakdown.csv")
+    assert proc.returncode == 9, proc.stderr
+    left = [p.name for p in tmp_path.iterdir() if p.name.startswith(commit.PREFIX)]
+    assert len(left) == 1 and (tmp_path / left[0] / commit.JOURNAL).is_file()
+    # The next write into the folder first completes the dead run's set, then writes its own.
+    write_atomically(tmp_path, {"report.html": lambda p: p.write_text("<html>\n")}, [])
+    assert _contents(tmp_path) == {**NEW, "report.html": "<html>\n"}
+
+
+def test_a_run_killed_before_its_commit_point_leaves_the_old_set_and_is_cleaned(tmp_path):
+    _old_set(tmp_path)
+    proc = _killed_writer(tmp_path, "backed-up")
+    assert proc.returncode == 9, proc.stderr
+    assert {p.name for p in tmp_path.iterdir() if p.name.startswith(commit.PREFIX)}
+    for name, text in OLD.items():
+        assert (tmp_path / name).read_text() == text
+    commit.recover(tmp_path)
+    assert _contents(tmp_path) == OLD
+
+
+def test_only_dead_runs_of_this_host_are_cleaned(tmp_path):
+    live = tmp_path / f"{commit.PREFIX}{commit._host()}-{os.getppid()}-abc"
+    other_host = tmp_path / f"{commit.PREFIX}elsewhere-1-abc"
+    not_ours = tmp_path / ".disagg-tmp-notours"
+    for d in (live, other_host, not_ours):
+        d.mkdir()
+    dead_pid = _dead_pid()
+    dead = tmp_path / f"{commit.PREFIX}{commit._host()}-{dead_pid}-abc"
+    dead.mkdir()
+    (dead / "breakdown.csv").write_text("half")
+    commit.recover(tmp_path)
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(
+        [live.name, other_host.name, not_ours.name])
+
+
+def _dead_pid() -> int:
+    proc = subprocess.Popen([sys.executable, "-c", "pass"])
+    proc.wait()
+    return proc.pid
+
+
+def test_a_failed_write_into_a_new_folder_leaves_no_empty_folder(tmp_path):
+    out = tmp_path / "a" / "b"
+
+    def full(p):
+        raise OSError(28, "No space left on device")
+
+    with pytest.raises(OutputError) as exc:
+        write_atomically(out, {"breakdown.csv": full}, [])
+    assert "(No space left on device)" in str(exc.value)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_an_os_error_without_a_reason_is_named_not_none(tmp_path):
+    def odd(p):
+        raise OSError("disk quota exceeded on the share")
+
+    with pytest.raises(OutputError) as exc:
+        write_atomically(tmp_path, {"fit.json": odd}, [])
+    assert "None" not in str(exc.value)
+    assert "(disk quota exceeded on the share)" in str(exc.value)
