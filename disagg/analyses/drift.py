@@ -367,7 +367,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         else:
             mu = step
         delta = PER_WEIGHT_DELTA
-        scales, tau_all = scales_for_memory(X, memory, mu, row_sets, delta)
+        # The loads' (and their weather slopes') memories are solved for; the baseload
+        # levels keep the unnormalized start (their memory approximate).
+        calibrate = np.arange(X.shape[1]) < k + len(specs)
+        scales, tau_all = scales_for_memory(X, memory, mu, row_sets, delta, calibrate)
         tau_intervals = tau_all[:k]
         # Band: the steady-state standard deviation of each tracked weight from the
         # independence theory of LMS (track.weight_covariance), over its own reference
