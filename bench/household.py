@@ -252,6 +252,7 @@ class MonthResult:
     intervals: dict[str, int] = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
     quality: dict = field(default_factory=dict)
+    form: str = ""  # the baseload form the breakdown used
 
 
 def _members(equipment: str) -> list[str]:
@@ -369,6 +370,8 @@ def run_month(minutes: pl.DataFrame, month: str, folder: Path, threshold_wh: flo
     out.intervals = dict(result.aligned.counts)
     out.warnings = list(result.fit["warnings"])
     out.quality = result.fit["fit_quality"]
+    form = result.fit["baseload"].get("form") or {}
+    out.form = form.get("used", "")
     return out
 
 

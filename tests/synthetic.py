@@ -138,3 +138,109 @@ def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_k
     month = local.dt.strftime("%Y-%m").to_numpy()
     true_month = {(m, i): float(energy[i][month == m].sum()) for m in set(month) for i in ids}
     return Synthetic(site, aligned, true_kw, true_month)
+
+
+# --- buildings whose baseload moves with the time of day or drifts (issue 10) --------------
+
+OFFICE_SPELLS = ("Mon-Fri 07:00-18:00",)
+OFFICE_DRAWS = {"CH-1": 55.0, "WH-1": 12.0, "VF-1": 15.0, "AHU-1": 22.0, "AP-1": 4.0,
+                "LF-1": 6.0}
+# Scenarios: what the unlogged baseload does besides its declared occupied step.
+SCENARIOS = ("step", "swing", "ramps", "wander", "all")
+
+
+def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: float = 0.6,
+                start: dt.date = dt.date(2025, 1, 6)) -> Synthetic:
+    """An invented office of six loads over `days` days of 15-minute intervals.
+
+    Loads: a cycling chiller CH-1 (no prior); a water heater WH-1 that cycles in the morning
+    hours 05:00-10:00 (its nameplate prior is exactly right, 12 +- 1.5 kW); a variable-speed
+    fan VF-1 (speed 0.3-1.0 during the working day, jittered start; no prior); an air
+    handler AHU-1 and its pump AP-1 that always run together, 06:00-18:30 +- 20 min on
+    working days (no priors: one combined row); a fan LF-1 locked to the declared schedule
+    edges (07:00-18:00 exactly; prior 6 +- 1.5 kW).
+
+    The declared baseload is occupied/unoccupied (Mon-Fri 07:00-18:00); the true one is
+    18 kW + 10 kW while occupied, plus, by scenario: "swing" a daily swing of +-6 kW peaking
+    at 15:00; "ramps" lights (+12 kW) ramping up linearly 06:00-08:00 and down 17:00-19:00 on
+    working days instead of stepping with the schedule; "wander" a slow random walk (sd
+    0.8 kW per day, smooth within the day); "all" all three; "step" none (the declared
+    profile is exactly right). Meter noise: AR(1), rho 0.6, sd noise_kwh per interval.
+    """
+    rng = np.random.default_rng(seed)
+    n = days * 96
+    t0 = dt.datetime.combine(start, dt.time())
+    local = pl.datetime_range(t0, t0 + dt.timedelta(minutes=15 * (n - 1)), "15m",
+                              eager=True).dt.replace_time_zone(TZ, ambiguous="earliest",
+                                                               non_existent="null")
+    local = local.drop_nulls()
+    n = len(local)
+    hour = local.dt.hour().to_numpy() + local.dt.minute().to_numpy() / 60  # interval start
+    mid = hour + 0.125
+    wday = local.dt.weekday().to_numpy() - 1
+    day = (local.dt.date().rank("dense").to_numpy() - 1).astype(int)
+    work = wday < 5
+    occupied = work & (hour >= 7) & (hour < 18)
+
+    def fraction_between(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """Share of each interval [hour, hour + 0.25) inside [a, b)."""
+        return np.clip((np.minimum(hour + 0.25, b) - np.maximum(hour, a)) / 0.25, 0.0, 1.0)
+
+    jitter = rng.normal(0, 1 / 3, day.max() + 1)[day]
+    status = {
+        "CH-1": _cycle(n, 6, 5, rng),
+        "WH-1": _cycle(n, 2, 3, rng) * ((hour >= 5) & (hour < 10)),
+        "VF-1": work * fraction_between(6.5 + jitter, 18.0 + jitter)
+        * np.clip(0.65 + 0.35 * np.sin(2 * np.pi * (mid - 9) / 24)
+                  + rng.normal(0, 0.08, n), 0.3, 1.0),
+        "AHU-1": work * fraction_between(6.0 + jitter, 18.5 + jitter),
+        "LF-1": occupied.astype(float),
+    }
+    status["AP-1"] = status["AHU-1"].copy()
+    base = 18.0 + 10.0 * occupied
+    if scenario in ("swing", "all"):
+        base = base + 6.0 * np.cos(2 * np.pi * (mid - 15) / 24)
+    if scenario in ("ramps", "all"):
+        up = np.clip((mid - 6) / 2, 0, 1)
+        down = np.clip((19 - mid) / 2, 0, 1)
+        base = base + 12.0 * work * np.minimum(up, down)
+    if scenario in ("wander", "all"):
+        daily = np.cumsum(rng.normal(0, 0.8, day.max() + 2))
+        pos = day + mid / 24
+        walk = np.interp(pos, np.arange(len(daily)), daily)
+        base = base + walk - walk.mean()
+    energy = {k: OFFICE_DRAWS[k] * s * 0.25 for k, s in status.items()}
+    shocks = rng.normal(0, noise_kwh * np.sqrt(1 - 0.36), n)
+    e = np.zeros(n)
+    for i in range(1, n):
+        e[i] = 0.6 * e[i - 1] + shocks[i]
+    y = np.maximum(sum(energy.values()) + np.maximum(base, 0) * 0.25 + e, 0)
+
+    ids = list(status)
+    priors = {"WH-1": (12.0, 1.5), "LF-1": (6.0, 1.5)}
+    equipment = tuple(
+        Equipment(i, i, "load", "variable" if i == "VF-1" else "on-off", 1.0,
+                  Prior(*priors[i], "test") if i in priors else Prior(None, None, "none"),
+                  None) for i in ids)
+    site = SiteConfig(
+        path=Path("/synthetic/office.toml"), name=f"office {scenario} {seed}", timezone=TZ,
+        meter=MeterSettings(Path("/synthetic/meter.csv"), "t", "v", "kWh", "end", 15),
+        runlog=RunlogSettings(Path("/synthetic/log.csv"), "events", "t", "eq", "s"),
+        baseload=BaseloadSettings("occupied", tuple(parse_spell(s) for s in OFFICE_SPELLS),
+                                  OFFICE_SPELLS),
+        equipment=equipment)
+    start_utc = local.dt.convert_time_zone("UTC")
+    frame = pl.DataFrame({"start_utc": start_utc,
+                          "end_utc": start_utc + dt.timedelta(minutes=15),
+                          "energy_kwh": y, "interval_h": np.full(n, 0.25)})
+    hours = np.column_stack([status[i] * 0.25 for i in ids])
+    aligned = Aligned(frame, ids, hours, np.ones(n, dtype=bool), 15,
+                      {"intervals": n, "used": n, "absent": 0, "no_reading": 0, "log_unknown": 0},
+                      {i: 0 for i in ids})
+    true_kw = {i: float(energy[i].sum() / hours[:, k].sum()) for k, i in enumerate(ids)}
+    true_kw["AHU-1+AP-1"] = true_kw["AHU-1"] + true_kw["AP-1"]
+    month = local.dt.strftime("%Y-%m").to_numpy()
+    true_month = {(m, i): float(energy[i][month == m].sum()) for m in set(month) for i in ids}
+    for m in set(month):
+        true_month[(m, "AHU-1+AP-1")] = true_month[(m, "AHU-1")] + true_month[(m, "AP-1")]
+    return Synthetic(site, aligned, true_kw, true_month)

@@ -70,6 +70,27 @@ def test_bounded_solve_matches_scipy_bvls():
     assert active > 50  # the bounds mattered in many of them
 
 
+def test_wide_bounded_solve_from_the_normal_equations_matches_scipy_bvls():
+    # From 60 columns with a penalty on every column, the solve goes through the normal
+    # equations (solvers._solve_normal): the same minimiser as bvls on the augmented system.
+    rng = np.random.default_rng(5)
+    active = 0
+    for _ in range(20):
+        n, p = int(rng.integers(200, 400)), int(rng.integers(60, 120))
+        X = rng.normal(size=(n, p)) * rng.uniform(0.2, 5.0, p)
+        y = X @ rng.normal(0, 3, p) + rng.normal(size=n)
+        pen = rng.uniform(0.01, 2.0, p)
+        mu = rng.normal(0, 2, p)
+        lower = np.where(rng.random(p) < 0.7, rng.normal(0, 0.5, p), -np.inf)
+        b = solve_regularized(X, y, mu, pen, lower)
+        A = np.vstack([X, np.diag(np.sqrt(pen))])
+        ref = lsq_linear(A, np.concatenate([y, np.sqrt(pen) * mu]), bounds=(lower, np.inf),
+                         method="bvls", tol=1e-12).x
+        np.testing.assert_allclose(b, np.maximum(ref, lower), rtol=1e-7, atol=1e-7)
+        active += int(np.any(np.isclose(b, lower)))
+    assert active >= 10
+
+
 def test_compress_keeps_the_least_squares_geometry():
     rng = np.random.default_rng(4)
     n = 10_000  # several QR chunks

@@ -44,12 +44,15 @@ hh = _load_bench()
 # components = the three circuits and the rest of the house (baseload + unexplained rows vs.
 # whole house minus the circuits). Measured 0.970 over the six months (per month 0.945 to
 # 0.984); floor 0.96. For scale: leaving all energy in the rest scores 0.499.
-MIN_ACCURACY = 0.96  # measured 0.970
-MIN_MONTH_ACCURACY = 0.93  # measured lowest 0.945 (2009-07)
-# Months x circuits whose [kwh_low, kwh_high] holds the measured kWh: measured 14 of 18
-# (0.78; misses: laundry in 2008-07, 2009-07 and 2009-10, whose refrigerator is not in the
-# run log, and water-heater-ac in 2009-10). Floor 13 of 18 (0.72).
-MIN_COVERED = 13  # measured 14
+MIN_ACCURACY = 0.96  # measured 0.970 (0.971 on 2026-12-04)
+MIN_MONTH_ACCURACY = 0.93  # measured lowest 0.945 (2009-07); 0.935 on 2026-12-04
+# Months x circuits whose [kwh_low, kwh_high] holds the measured kWh: measured 11 of 18 on
+# 2026-12-04 (0.61; misses: laundry in every month, whose refrigerator runs below the status
+# threshold: 12-25 kWh a month that no run log entry shows, and water-heater-ac in 2007-01,
+# 13 % high). Was 14 of 18 with the wider intervals of the declared-profile fit, which also
+# assigned less energy correctly over the full sweep (bench/household_sweep.py, issue 10:
+# 0.924-0.947 before, median 0.969 now). Floor 10.
+MIN_COVERED = 10  # measured 11
 COMPARED = len(hh.MONTHS) * len(hh.CIRCUITS)
 # Months the packager filled by copying whole stretches of the previous day (found with
 # hh.filled_minutes [ran]: 2007-04 3723 copied minutes, the outage of 2007-04-28..30;

@@ -65,12 +65,29 @@ def test_coverage_misspecified_baseload_and_weather():
 
 def test_naive_interval_misses_the_scheduled_fan_when_misspecified():
     s = make_building(3, misspecified=True)
-    e = estimate_draws(s.site, s.aligned)
+    # Pinned to the declared (wrong) constant baseload: the plain robust interval misses the
+    # scheduled fan; the stability checks widen it to hold the truth and flag it.
+    pinned = dataclasses.replace(s.site, baseload=dataclasses.replace(s.site.baseload,
+                                                                     form="constant"))
+    e = estimate_draws(pinned, s.aligned)
+    assert e.form.form.name == "constant" and e.form.pinned
     i = [t.id for t in e.terms].index("F-1")
     truth = s.true_kw["F-1"]
     assert abs(e.kw[i] - truth) > e.critical * e.se_hac_kw[i]  # the plain HAC interval misses
     assert e.kw_low[i] <= truth <= e.kw_high[i]
     assert "unstable" in e.terms[i].flags
+
+
+def test_form_chosen_by_the_data_recovers_the_scheduled_fan_when_misspecified():
+    s = make_building(3, misspecified=True)
+    e = estimate_draws(s.site, s.aligned)
+    # The data prefer a baseload that follows the hour of the week and wanders.
+    assert e.form.form.name == "hour-of-week+level" and not e.form.pinned
+    assert e.form.form.q > 0
+    i = [t.id for t in e.terms].index("F-1")
+    truth = s.true_kw["F-1"]
+    assert e.kw[i] == pytest.approx(truth, rel=0.03)
+    assert e.kw_low[i] <= truth <= e.kw_high[i]
 
 
 def test_pair_running_together_without_priors_is_one_row():

@@ -41,6 +41,8 @@ def interval_parts_kwh(est: Estimates) -> np.ndarray:
         else:
             parts[:, i] = est.kw[i] * est.hours[:, i]
     parts[:, k] = est.base @ est.base_kw
+    if est.level_kwh is not None:
+        parts[:, k] += est.level_kwh
     parts[:, k + 1] = est.y - parts[:, :k + 1].sum(axis=1)
     return parts
 
@@ -68,6 +70,13 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
         price = interval_prices(tariff, tz, start_ns, end_ns)
     demand_price = tariff.demand_price_per_kw if tariff is not None else 0.0
     tables: list[pl.DataFrame] = []
+    # Weekly run-hours over the whole fit, for the between-week variation of each draw.
+    weeks, week_of = (np.unique(est.week, return_inverse=True) if est.week is not None
+                      else (np.zeros(1), np.zeros(len(month), dtype=np.int64)))
+    week_of = week_of.reshape(-1)
+    run_w = np.zeros((len(weeks), est.hours.shape[1]))
+    np.add.at(run_w, week_of, est.hours)
+    run_w2 = np.sum(run_w**2, axis=0)
     for code in np.unique(month):
         period = f"{code // 100:04d}-{code % 100:02d}"
         rows: list[dict] = []
@@ -96,12 +105,25 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
                 kwh = kw * run_h
                 lo, hi = float(est.kw_low[i]), float(est.kw_high[i])
                 kwh_lo, kwh_hi = lo * run_h, hi * run_h
+                tau2 = float(est.tau2_kw2[i]) if est.tau2_kw2 is not None else 0.0
+                if tau2 > 0 and run_h > 0:
+                    # The month's energy is sum_w draw_w x run_w; the fitted draw averages the
+                    # weeks about in proportion to run_w^2, so each week's own deviation
+                    # (variance tau^2) enters with c_w = run_mw - run_m run_w^2 / sum run_v^2.
+                    run_mw = np.bincount(week_of[m], weights=est.hours[m, i],
+                                         minlength=len(weeks))
+                    cw = run_mw - run_h * run_w[:, i] ** 2 / run_w2[i]
+                    extra = est.critical * float(np.sqrt(tau2 * np.sum(cw**2)))
+                    kwh_lo = max(kwh - float(np.hypot(kwh - kwh_lo, extra)), 0.0)
+                    kwh_hi = kwh + float(np.hypot(kwh_hi - kwh, extra))
             explained += kwh
             rows.append(_row(period, t.id, run_h, kw, lo, hi, kwh, kwh_lo, kwh_hi, metered,
                              ";".join(t.flags)))
         hours = float(interval_h[m].sum())
         c = est.base[m].sum(axis=0)
         base_kwh = float(c @ est.base_kw)
+        if est.level_kwh is not None:
+            base_kwh += float(est.level_kwh[m].sum())
         half = est.critical * float(np.sqrt(max(c @ est.cov_base @ c, 0.0)))
         base_lo, base_hi = max(base_kwh - half, 0.0), base_kwh + half
         explained += base_kwh

@@ -38,6 +38,7 @@ from disagg.analyses.track import (EWMA_L, MU_MAX, PER_WEIGHT_DELTA, ewma_alarms
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import Aligned, baseload_columns
 from disagg.fit.estimate import Estimates, degrees, estimate_draws, weather_columns, weather_specs
+from disagg.fit.select import Form
 from disagg.fit.solvers import quantile
 from disagg.inputs.config import SiteConfig
 
@@ -198,7 +199,10 @@ def _fit_window(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
     ref_aligned = dataclasses.replace(aligned, use=mask)
     require_usable(site, ref_aligned)
     try:
-        return estimate_draws(site, ref_aligned, confidence)
+        # The tracker's design carries the declared profile's columns (no wandering level):
+        # its reference fits use that form, so their baseload weights fit the design.
+        return estimate_draws(site, ref_aligned, confidence,
+                              form=Form(site.baseload.profile, level=False))
     except ValueError as exc:
         raise InputError(f"{site.meter.file}: reference period {window[0]}..{window[1]}: "
                          f"{exc}") from None

@@ -327,7 +327,8 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         est = None
         if len(np.unique(day[mask])) >= MIN_MONTH_DAYS:
             try:
-                est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+                est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence,
+                                     form=whole.form)
             except ValueError:
                 est = None
         if est is None:
@@ -342,9 +343,15 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
             continue
         tables.append(_same_names(monthly_breakdown(est, tz, site.tariff), combined))
         months[period] = {"own_fit": True, "draws": draw_list(est), "baseload_row": est.base_id,
+                          "baseload_form": est.form.as_json() if est.form is not None else None,
                           "fit_quality": est.quality, "warnings": est.warnings}
     report(progress, "fitting", len(periods) + 1, len(periods) + 1)
     return pl.concat(tables), months
+
+
+# fit.json layout version: 2 added baseload.form, baseload.level_kwh, months' baseload_form
+# and draws' between_week_sd_kw (issue 10).
+FIT_SCHEMA_VERSION = 2
 
 
 def _num(x: float | None) -> float | None:
@@ -364,6 +371,8 @@ def draw_list(est: Estimates) -> list[dict]:
             "prior_kw": _num(t.prior_kw), "prior_sd_kw": _num(t.prior_sd_kw),
             "prior_source": t.prior_source,
             "prior_weight": None if c is None else _num(est.fit.prior_weight[c]),
+            "between_week_sd_kw": (None if est.tau2_kw2 is None or c is None
+                                   else _num(math.sqrt(max(float(est.tau2_kw2[i]), 0.0)))),
             "run_hours": float(est.hours[:, i].sum()),
             "flags": t.flags,
         })
@@ -404,6 +413,7 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
         "formula": "CV(RMSE) and NMBE with n - p in the denominator, p = fitted parameters",
     }
     return {
+        "schema_version": FIT_SCHEMA_VERSION,
         "tool": f"disagg {__version__}",
         "site": site.name,
         "timezone": site.timezone,
@@ -418,13 +428,20 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
             "spells": list(site.baseload.spell_text),
             "columns": [{"name": n, "kw": float(b), "se_kw": float(s)}
                         for n, b, s in zip(est.base_names, est.base_kw, base_se)],
+            "form": est.form.as_json() if est.form is not None else None,
+            "level_kwh": (float(est.level_kwh.sum()) if est.level_kwh is not None else 0.0),
         },
         "identifiability": est.identifiability,
         "stability": {
             "method": ("interval = widest of: Newey-West HAC on local-day sums of scores "
                        "(Bartlett lag by the Newey-West 1994 rule over days, Student t with "
                        "days - 1 df); delete-a-block jackknife over 10 contiguous time blocks "
-                       "(Student t, 9 df); and refits with more flexible baseload profiles"),
+                       "(Student t, 9 df); and refits with more flexible baseload profiles "
+                       "(forms without the level); then the weighted spread of the credible "
+                       "baseload forms' draws added in quadrature, and for loads switching "
+                       "near the schedule's edges the hull with the edges form; monthly kWh "
+                       "intervals also carry the between-week variance of each draw "
+                       "(DerSimonian-Laird tau^2)"),
             "hac_lag_days": est.fit.lag, "days": est.fit.n_blocks,
             "baseload_variants": est.variants,
         },

@@ -155,12 +155,27 @@ def baseload_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
         seg = spell_segments(base.spells, tz, int(start_ns.min()), int(end_ns.max()), base.closed)
         occ, _ = overlap_hours(seg, start_ns, end_ns)
         return np.column_stack([occ, length_h - occ]), ["baseload_occupied_kw", "baseload_unoccupied_kw"]
-    if how is None:
-        how = hour_of_week(start_utc, tz)
-    cols = np.zeros((len(length_h), 168))
+    how = hour_of_week_codes(base, start_utc, tz, how)
+    n_levels = 168 + (24 if base.closed else 0)
+    cols = np.zeros((len(length_h), n_levels))
     cols[np.arange(len(length_h)), how] = length_h
     names = [f"baseload_how{h:03d}_kw" for h in range(168)]
+    names += [f"baseload_closed_h{h:02d}_kw" for h in range(n_levels - 168)]
     return cols, names
+
+
+def hour_of_week_codes(base: BaseloadSettings, start_utc: pl.Series, tz: str,
+                       how: np.ndarray | None = None) -> np.ndarray:
+    """The hour-of-week baseload's level of each interval: the local hour of the week
+    (0..167), or 168 + the local hour of the day on a declared closed date (closed days get
+    their own daily profile)."""
+    if how is None:
+        how = hour_of_week(start_utc, tz)
+    if not base.closed:
+        return how
+    local = start_utc.dt.convert_time_zone(tz)
+    shut = local.dt.date().is_in(list(base.closed)).to_numpy()
+    return np.where(shut, 168 + how % 24, how)
 
 
 def hour_of_week(start_utc: pl.Series, tz: str) -> np.ndarray:
@@ -303,3 +318,47 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
         notes.append(f"{weather_unknown} intervals have no outdoor temperature within "
                      f"{MAX_WEATHER_GAP_H:g} h: left out")
     return Aligned(frame, ids, hours, use, meter.interval_min, counts, unknown_by, notes, temp_c)
+
+
+# The occupied-edges profile: the baseload's own shape around each declared schedule edge,
+# EDGE_HOURS either side, in slots of EDGE_SLOT_MIN minutes (or the meter interval if longer).
+# Project choice (lights that ramp over an hour or two around the edges), no outside source.
+EDGE_HOURS = 2.0
+EDGE_SLOT_MIN = 15
+
+
+def edge_columns(base: BaseloadSettings, tz: str, start_utc: pl.Series,
+                 length_h: np.ndarray, hourly: bool = False) -> tuple[np.ndarray, list[str]]:
+    """Extra baseload columns [h] for the occupied-edges profile: for each declared spell's
+    start and end, one column per slot from EDGE_HOURS before to EDGE_HOURS after the edge
+    (by the interval's local start), on the days the spell applies and that are not closed.
+    With the occupied/unoccupied columns they let the baseload ramp around the schedule's
+    edges instead of stepping exactly on them.
+
+    hourly: beside hour-of-week columns, which already carry each clock hour's level, the
+    slots starting on the hour are left out (the shape within the hour needs the others only;
+    with them the columns would repeat the hour-of-week ones exactly)."""
+    local = start_utc.dt.convert_time_zone(tz)
+    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
+    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
+    open_day = np.ones(len(minute), dtype=bool)
+    if base.closed:
+        open_day = ~local.dt.date().is_in(list(base.closed)).to_numpy()
+    step = max(EDGE_SLOT_MIN, int(round(float(np.median(length_h)) * 60))) if len(minute) else 15
+    slots = int(EDGE_HOURS * 60 // step)
+    cols, names = [], []
+    for s_i, spell in enumerate(base.spells):
+        on_day = np.isin(weekday, spell.days) & open_day
+        for label, edge in (("start", spell.start_min), ("end", spell.end_min)):
+            for j in range(-slots, slots):
+                a = edge + j * step
+                if hourly and a % 60 == 0:
+                    continue
+                hit = on_day & (minute >= a) & (minute < a + step)
+                if not hit.any():
+                    continue
+                cols.append(np.where(hit, length_h, 0.0))
+                names.append(f"baseload_edge{s_i}_{label}{j * step:+d}min_kw")
+    if not cols:
+        return np.zeros((len(minute), 0)), []
+    return np.column_stack(cols), names

@@ -19,7 +19,16 @@ from disagg.fit.align import (
     Aligned,
     baseload_columns,
     frame_arrays,
+    edge_columns,
     frame_baseload,
+)
+from disagg.fit.select import (
+    Form,
+    FormChoice,
+    compare_forms,
+    kept_columns,
+    overdispersion,
+    score,
 )
 from disagg.fit.solvers import (
     Fit,
@@ -31,6 +40,7 @@ from disagg.fit.solvers import (
     jackknife_cov,
     quantile,
 )
+from disagg.fit.wander import Spacing, smooth_level, whiten
 from disagg.inputs.config import BaseloadSettings, SiteConfig
 
 # Two equipment hour series correlated at or above this cannot be told apart; the same
@@ -56,7 +66,23 @@ NUMERICAL_TOL = 1e-6
 # collinearity diagnostics: collinearity() reads them a chunk of rows at a time.
 LONG_DESIGN_ROWS = 65536
 MORE_FLEXIBLE = {"constant": ("occupied", "hour-of-week"), "occupied": ("hour-of-week",),
-                 "hour-of-week": ()}
+                 "occupied-edges": ("hour-of-week",), "hour-of-week": (),
+                 "hour-of-week-edges": ()}
+# Profiles the form comparison tries beside the declared one (the simpler ones it nests).
+SIMPLER = {"constant": (), "occupied": ("constant",), "hour-of-week": ("occupied", "constant")}
+# A draw that moves by more than this fraction between credible baseload forms (and by more
+# than its own interval's half-width) is flagged form-sensitive. Common practice, no source.
+FORM_SENSITIVE = 0.10
+HOW_LEVELS = 168
+# Rows above which the forms are compared on a sample of whole weeks (choose_form): about
+# 13 weeks of 15-minute data. Project choice for speed, no outside source.
+COMPARE_MAX_ROWS = 9000
+# A load with at least this share of its switching within SCHEDULE_EDGE_MIN minutes of the
+# declared schedule's edges (and at least SCHEDULE_EDGE_MIN_SWITCHES switches) is flagged
+# schedule-edge. Common practice, no source.
+SCHEDULE_EDGE_SHARE = 0.5
+SCHEDULE_EDGE_MIN = 60
+SCHEDULE_EDGE_MIN_SWITCHES = 8
 
 
 @dataclass
@@ -112,6 +138,15 @@ class Estimates:
     weather_hours: np.ndarray | None = None
     weather: dict = field(default_factory=dict)
     design_coef: np.ndarray | None = None  # the full coefficient vector [kW, kW/degC, kW]
+    # The baseload form used and how the others compared (disagg.fit.select).
+    form: FormChoice | None = None
+    # (n_used,) the wandering level's energy in each interval [kWh] (zero without a level);
+    # the baseload row is base @ base_kw + level_kwh.
+    level_kwh: np.ndarray | None = None
+    # (n_terms,) between-week variance of each draw (DerSimonian-Laird tau^2) [kW^2] and
+    # (n_used,) each interval's local week label: the monthly kWh intervals use them.
+    tau2_kw2: np.ndarray | None = None
+    week: np.ndarray | None = None
 
 
 class _UnionFind:
@@ -200,8 +235,13 @@ def _local_days(local_date: np.ndarray) -> np.ndarray:
     return np.unique(local_date, return_inverse=True)[1].reshape(-1).astype(np.int64) + 1
 
 
-def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95) -> Estimates:
+def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
+                   form: Form | FormChoice | None = None) -> Estimates:
     """Fit every draw on the intervals used and decide what can be told apart.
+
+    form: the baseload form to use (with its noise ratio q), or a range's FormChoice (a
+    month's fit: the same form, the same rivals); None = choose it from the data (or take
+    the one pinned by [baseload] form), see disagg.fit.select.
 
     Raises:
         ValueError: too few usable intervals to fit.
@@ -219,27 +259,44 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     arrays = {k: v if everything else v[use] for k, v in frame_arrays(aligned, tz).items()}
     start_ns, end_ns = arrays["start_ns"], arrays["end_ns"]
 
-    def base_cols(settings: BaseloadSettings) -> tuple[np.ndarray, list[str]]:
+    def base_cols(settings: BaseloadSettings,
+                  rows: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """A profile's columns over the rows used (or over a selection of them)."""
         if settings.profile == "hour-of-week":
-            return baseload_columns(settings, tz, frame["start_utc"], start_ns, end_ns,
-                                    how=arrays["hour_of_week"])
+            if rows is None:
+                return baseload_columns(settings, tz, frame["start_utc"], start_ns, end_ns,
+                                        how=arrays["hour_of_week"])
+            return baseload_columns(settings, tz, frame["start_utc"].filter(pl.Series(rows)),
+                                    start_ns[rows], end_ns[rows],
+                                    how=arrays["hour_of_week"][rows])
         cols, names = frame_baseload(aligned, settings, tz)
-        return (cols if everything else cols[use]), names
+        cols = cols if everything else cols[use]
+        return (cols if rows is None else cols[rows]), names
 
-    def closure_column() -> np.ndarray:
+    def closure_column(rows: np.ndarray | None = None) -> np.ndarray:
         """A variant must nest the declared profile: it gets the declared closures too, as
         the spell hours that the closure calendar removes."""
-        full, _ = base_cols(BaseloadSettings("occupied", site.baseload.spells))
-        shut, _ = base_cols(site.baseload)
+        full, _ = base_cols(BaseloadSettings("occupied", site.baseload.spells), rows)
+        shut, _ = base_cols(site.baseload, rows)
         return full[:, 0] - shut[:, 0]
 
-    def base_for(profile: str) -> tuple[np.ndarray, list[str]]:
+    def base_for(profile: str, rows: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """The baseload columns of a profile [h] (rows: a boolean selection of the rows)."""
+        if profile.endswith("-edges"):
+            cols, names = base_for(profile[:-len("-edges")], rows)
+            sel = slice(None) if rows is None else rows
+            starts = frame["start_utc"] if rows is None else frame["start_utc"].filter(
+                pl.Series(rows))
+            more, more_names = edge_columns(site.baseload, tz, starts,
+                                            (end_ns[sel] - start_ns[sel]) / NS_PER_H,
+                                            hourly=profile.startswith("hour-of-week"))
+            return np.column_stack([cols, more]), names + more_names
         if profile == site.baseload.profile:
-            return base_cols(site.baseload)
+            return base_cols(site.baseload, rows)
         cols, names = base_cols(BaseloadSettings(profile, site.baseload.spells,
-                                                 site.baseload.spell_text))
+                                                 site.baseload.spell_text), rows)
         if site.baseload.closed and site.baseload.spells:
-            cols = np.column_stack([cols, closure_column()])
+            cols = np.column_stack([cols, closure_column(rows)])
             names = names + ["baseload_closed_kw"]
         return cols, names
 
@@ -364,11 +421,39 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                        for t in fitted_terms] + [weak_sd] * (len(wspecs) + m))
         return mean, sd
 
+    days = _local_days(arrays["local_date"])
+    sp = Spacing.from_ns(start_ns, end_ns)
+
+    # --- baseload form: compare, choose (or take the pinned one) -------------------------
+    choice = choose_form(site, Hx, y, sp, days, priors(0), base_for, form,
+                         (start_ns, end_ns, arrays["local_date"]))
+    profile = choice.form.profile
+    if profile != site.baseload.profile:
+        B, base_names = base_for(profile)
+        X = np.column_stack([Hx, B])
+        Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
+    level_kwh = np.zeros(n)
+    if choice.form.level:
+        keep = kept_columns(profile, B.shape[1])
+        B = B[:, keep]
+        base_names = [base_names[i] for i in keep]
+        X = np.column_stack([Hx, B])
+        Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
     p_mean, p_sd = priors(B.shape[1])
     lower = np.zeros(X.shape[1])
-    days = _local_days(arrays["local_date"])
-    fit = fit_model(X, y, p_mean, p_sd, lower, block=days)
+    if choice.form.level:
+        # GLS on whitened differences of the kW (disagg.fit.wander); the profile's columns are
+        # kW above the level and may be negative.
+        lower[kx:] = -np.inf
+        wz = whiten(X, y, sp, choice.form.q, scale=1.0 / interval_h)
+        Xs, ys, blk = wz.X, wz.z, days[1:]
+    else:
+        Xs, ys, blk = X, y, days
+    fit = fit_model(Xs, ys, p_mean, p_sd, lower, block=blk)
     coef = fit.coef
+    if choice.form.level:
+        level_kw = smooth_level((y - X @ coef) / interval_h, sp, choice.form.q)
+        level_kwh = level_kw * interval_h
     se_hac = fit.se
     cov = fit.cov.copy()
     df = max(fit.n_blocks - 1, 1)
@@ -379,8 +464,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     cov_jack = np.zeros_like(cov)
     if n_days >= 4:
         K = min(JACKKNIFE_BLOCKS, n_days)
-        blocks = np.minimum((days - 1) * K // n_days, K - 1)
-        cov_jack, _ = jackknife_cov(X, y, p_mean, fit.penalty, lower, blocks)
+        blocks = np.minimum((blk - 1) * K // n_days, K - 1)
+        cov_jack, _ = jackknife_cov(Xs, ys, p_mean, fit.penalty, lower, blocks)
         se_jack = np.sqrt(np.maximum(np.diag(cov_jack), 0.0))
         df_jack = K - 1
     else:
@@ -416,20 +501,24 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
             moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
 
     variants: dict[str, dict] = {}
-    for profile in MORE_FLEXIBLE[site.baseload.profile]:
-        if profile == "occupied" and not site.baseload.spells:
+    # With the wandering level, the rival forms are the credible ones of the comparison
+    # (below): a static profile the data rule out would only widen the interval (tried: the
+    # misspecified building's scheduled fan then had a 16 kW wide interval for an 11 kW draw).
+    rivals = () if choice.form.level else MORE_FLEXIBLE[profile]
+    for variant in rivals:
+        if variant == "occupied" and not site.baseload.spells:
             continue
         ind = None
-        if profile == "hour-of-week":
+        if variant == "hour-of-week":
             # The 168 hour-of-week columns are stored by row (model.Indicators), the closure
             # column (if any) stays dense; the baseload columns' order does not matter.
             Bv, ind = how_columns()
             m_cols = Bv.shape[1] + ind.n_levels
         else:
-            Bv, _ = base_for(profile)
+            Bv, _ = base_for(variant)
             m_cols = Bv.shape[1]
         if n < MIN_ROWS_PER_COLUMN * (kx + m_cols):
-            variants[profile] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
+            variants[variant] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
         Xv = np.column_stack([Hx, Bv]) if Bv.shape[1] else Hx
@@ -446,20 +535,22 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                            "prior_weight": float(fv.prior_weight[c]),
                            "separable": bool(separable)}
             if separable:
-                widen_with(c, float(fv.coef[c]), float(se_v[c]), profile)
-        variants[profile] = entry
+                widen_with(c, float(fv.coef[c]), float(se_v[c]), variant)
+        variants[variant] = entry
     # By-day variant: the baseload's level may change from one local day to the next
     # (closures, holidays, events) in ways no weekly profile knows. Profile out a separate
     # baseload level for each day (occupied and unoccupied separately when spells are
     # declared) by Frisch-Waugh-Lovell projection, and refit the draws on what is left.
-    n_day_cols = n_days * (B.shape[1] if site.baseload.profile == "occupied" else 1)
-    if k and n_days >= 7 and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + kx):
-        if site.baseload.profile == "occupied":
-            C = B  # occupied and unoccupied hours, one level each per day
-            rest = np.zeros((n, 0))
+    n_day_cols = n_days * (2 if profile.startswith("occupied") else 1)
+    if (k and not choice.form.level and n_days >= 7
+            and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + kx)):
+        if profile.startswith("occupied"):
+            C = B[:, :2]  # occupied and unoccupied hours, one level each per day
+            rest = B[:, 2:]
         else:
             C = interval_h[:, None]
-            rest = B if site.baseload.profile == "hour-of-week" else np.zeros((n, 0))
+            rest = B if profile == "hour-of-week" else np.zeros((n, 0))
+        rest = np.ascontiguousarray(rest)
         Xd = _project_out_days(np.column_stack([Hx, rest, y]), C, days)
         yd = Xd[:, -1]
         Xd = Xd[:, :-1]
@@ -483,8 +574,50 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
                 warnings.append(f"{t.id} runs on the same days and hours as the baseload "
                                 "schedule: its draw holds only if the baseload follows its "
                                 "declared schedule on every day")
-        variants[f"{site.baseload.profile}-by-day"] = entry
+        variants[f"{profile}-by-day"] = entry
         del Xd, yd  # free the projected design before the results are built
+    # Disagreement between credible baseload forms (model averaging): the weighted spread
+    # of their draws about the chosen form's is added to the interval in quadrature.
+    chosen = next(sc for sc in choice.scores if sc.form.name == choice.form.name)
+    form_moves: dict[int, list[str]] = {}
+    edge_moves: dict[int, str] = {}
+    for c in range(k):
+        spread2 = sum(sc.weight * (sc.draws_kw[c] - chosen.draws_kw[c]) ** 2
+                      for sc in choice.credible() if sc is not chosen)
+        if spread2 > (NUMERICAL_TOL * max(abs(coef[c]), 1.0)) ** 2:
+            extra = q_hac * np.sqrt(spread2)
+            low[c] = coef[c] - np.hypot(coef[c] - low[c], extra)
+            high[c] = coef[c] + np.hypot(high[c] - coef[c], extra)
+            widened[c] = True
+        for sc in choice.credible():
+            if sc is chosen:
+                continue
+            d = abs(sc.draws_kw[c] - chosen.draws_kw[c])
+            if d > FORM_SENSITIVE * max(abs(chosen.draws_kw[c]), 1e-9) and d > half_hac[c]:
+                form_moves.setdefault(c, []).append(
+                    f"{sc.draws_kw[c]:.3g} kW with the {sc.form.name} baseload "
+                    f"(weight {sc.weight:.2f})")
+                moved.setdefault(c, []).append(f"{sc.draws_kw[c]:.3g} kW with {sc.form.name}")
+    # Loads that switch near the declared schedule's edges: their draw depends on the
+    # baseload's shape around the edges, which only the occupied-edges form states.
+    edge_share = schedule_edge_share(Hf, interval_h, site.baseload, tz, frame["start_utc"])
+    edge_rival = min((sc for sc in choice.scores if sc.form.profile.endswith("-edges")),
+                     key=lambda sc: sc.criterion, default=None)
+    for c in range(k):
+        if edge_share[c] < SCHEDULE_EDGE_SHARE:
+            continue
+        edge_moves.setdefault(c, f"{100 * edge_share[c]:.0f} % of its switching")
+        if edge_rival is not None and not profile.endswith("-edges"):
+            b_e, s_e = float(edge_rival.draws_kw[c]), float(edge_rival.se_kw[c])
+            if abs(b_e - coef[c]) > half_hac[c]:
+                low[c] = min(low[c], b_e - q_hac * s_e)
+                high[c] = max(high[c], b_e + q_hac * s_e)
+                widened[c] = True
+                moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
+    # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
+    week = (arrays["local_date"].astype(np.int64) + 3) // 7  # Monday-start local weeks
+    resid = y - fitted_of(X, coef, level_kwh)
+    tau2 = between_week_variance(Hf, resid, coef[:k], week, days)
     low = np.maximum(low, 0.0)
     width_hac = (coef + half_hac) - np.maximum(coef - half_hac, 0.0)
 
@@ -519,13 +652,27 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         if widened[c] and grew > NUMERICAL_TOL * max(abs(coef[c]), 1.0):
             t.flags.append("unstable")
             at = " at its balance temperature" if c in wspecs else ""
-            why = [f"{coef[c]:.3g} kW{at} with the declared {site.baseload.profile} baseload"]
+            why = [f"{coef[c]:.3g} kW{at} with the {choice.form.name} baseload"]
             why += moved.get(c, [])
             if use_jack[c]:
                 why.append(f"leaving out single time blocks moves it by +-{se_jack[c]:.2g} kW (1 sd)")
             warnings.append(f"{t.id} is unstable: {'; '.join(why)}. Its interval{at} "
                             f"{low[c]:.3g}-{high[c]:.3g} kW spans these; check the declared "
                             "baseload schedule and whether its draw changes over the period")
+        if c in form_moves:
+            t.flags.append("form-sensitive")
+            warnings.append(f"{t.id} depends on the baseload form: {coef[c]:.3g} kW with the "
+                            f"{choice.form.name} baseload, {'; '.join(form_moves[c])}; the "
+                            "data cannot tell which baseload shape is right, and the interval "
+                            "includes both")
+        if c in edge_moves:
+            t.flags.append("schedule-edge")
+            warnings.append(f"{t.id} switches near the declared schedule's edges "
+                            f"({edge_moves[c]} happens within {SCHEDULE_EDGE_MIN} minutes of "
+                            "a start or end of the occupied hours): the data can mix it up "
+                            "with the baseload changing at those times; its interval "
+                            f"{low[c]:.3g}-{high[c]:.3g} kW includes the estimate with the "
+                            "baseload's own shape around the edges")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
         if c in wspecs:
@@ -555,7 +702,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
     if n_days >= 4:
         cov_base = _wider(cov[base_slice, base_slice], cov_jack[base_slice, base_slice] *
                           (q_jack / q_hac) ** 2)
-    fitted = X @ coef
+    fitted = fitted_of(X, coef, level_kwh)
 
     quality = {"interval": fit_quality(y, fitted, X.shape[1])}
     # Fit quality by clock hour (UTC hours: whole hours of every zone with whole-hour
@@ -589,7 +736,165 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95)
         se_hac_kw=se_h, se_jackknife_kw=se_j, base_kw=coef[base_slice], cov_base=cov_base,
         weather_hours=weather_hours, weather=weather_info, design_coef=coef,
         critical=q_hac, confidence=confidence, fit=fit, quality=quality, identifiability=ident,
-        variants=variants, warnings=warnings)
+        variants=variants, warnings=warnings, form=choice, level_kwh=level_kwh,
+        tau2_kw2=np.array([tau2[t.column] if t.column is not None and t.column < k else 0.0
+                           for t in terms]),
+        week=week)
+
+
+def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndarray:
+    """Fitted energy of each interval [kWh]: design x coefficients plus the level."""
+    return X @ coef + level_kwh
+
+
+def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.ndarray,
+                          days: np.ndarray) -> np.ndarray:
+    """Each draw's real variation from week to week: the DerSimonian-Laird tau^2 [kW^2].
+
+    Per week, the draw's own estimate with the other terms held at the whole fit's values
+    (b_w = b + sum h u / sum h^2 over the week), its variance from the week's local-day sums
+    of h u (robust to noise that persists within a day); then the random-effects moment
+    estimator over the weeks with at least one run-hour.
+
+    Args:
+        H: (n, k) run-hours [h]; u: (n,) residual energy of the whole fit [kWh];
+        b: (k,) draws [kW]; week, days: (n,) non-decreasing week and local-day labels.
+
+    References:
+        DerSimonian, R. & Laird, N. (1986). Meta-analysis in clinical trials. Controlled
+        Clinical Trials 7(3), 177-188.
+    """
+    k = H.shape[1]
+    tau2 = np.zeros(k)
+    if k == 0 or len(u) == 0:
+        return tau2
+    _, wfirst = np.unique(week, return_index=True)
+    wfirst = np.sort(wfirst)
+    hh = np.add.reduceat(H * H, wfirst, axis=0)
+    hu = H * u[:, None]
+    _, dfirst = np.unique(days, return_index=True)
+    dfirst = np.sort(dfirst)
+    dsum = np.add.reduceat(hu, dfirst, axis=0)  # per day
+    day_week = week[dfirst]
+    _, dw = np.unique(day_week, return_inverse=True)
+    var_num = np.zeros((len(wfirst), k))
+    np.add.at(var_num, dw.reshape(-1), dsum**2)
+    run = np.add.reduceat(H, wfirst, axis=0)
+    for j in range(k):
+        ok = (run[:, j] >= 1.0) & (hh[:, j] > 0) & (var_num[:, j] > 0)
+        if ok.sum() < 3:
+            continue
+        est = b[j] + np.add.reduceat(hu[:, j], wfirst)[ok] / hh[ok, j]
+        var = var_num[ok, j] / hh[ok, j] ** 2
+        w = 1.0 / var
+        mean = np.sum(w * est) / np.sum(w)
+        Q = float(np.sum(w * (est - mean) ** 2))
+        denom = float(np.sum(w) - np.sum(w**2) / np.sum(w))
+        if denom > 0:
+            tau2[j] = max(0.0, (Q - (ok.sum() - 1)) / denom)
+    return tau2
+
+
+def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
+                        start_utc: pl.Series) -> np.ndarray:
+    """Share of each load's switching (its on-fraction changing by at least half an interval
+    from one interval to the next) that happens within SCHEDULE_EDGE_MIN minutes of a
+    declared spell's start or end, on the days the spell applies; 0 without spells."""
+    k = H.shape[1]
+    if not base.spells or len(interval_h) < 2 or k == 0:
+        return np.zeros(k)
+    local = start_utc.dt.convert_time_zone(tz)
+    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
+    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
+    near = np.zeros(len(minute), dtype=bool)
+    for spell in base.spells:
+        on_day = np.isin(weekday, spell.days)
+        for edge in (spell.start_min, spell.end_min):
+            d = np.abs(minute - edge)
+            near |= on_day & (np.minimum(d, 1440 - d) <= SCHEDULE_EDGE_MIN)
+    frac = H / interval_h[:, None]
+    switch = np.abs(np.diff(frac, axis=0)) >= 0.5
+    total = switch.sum(axis=0)
+    at_edge = (switch & (near[1:] | near[:-1])[:, None]).sum(axis=0)
+    return np.where(total >= SCHEDULE_EDGE_MIN_SWITCHES, at_edge / np.maximum(total, 1), 0.0)
+
+
+def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, days: np.ndarray,
+                prior: tuple[np.ndarray, np.ndarray], base_for,
+                given: Form | FormChoice | None,
+                when: tuple[np.ndarray, np.ndarray, np.ndarray]) -> FormChoice:
+    """The baseload form: compare the declared profile and the simpler ones it nests, each
+    with and without the wandering level (disagg.fit.select), and take the lowest criterion, or
+    the form pinned by [baseload] form. given: a Form to use; or a FormChoice (a month's
+    fit: the range's chosen form and its credible rivals, at the range's noise ratios).
+    when: (start_ns, end_ns, local_date) of the rows.
+
+    A range of more than COMPARE_MAX_ROWS rows is compared on a systematic sample of whole
+    local weeks (every k-th week, at least COMPARE_MAX_ROWS rows): the level walks across
+    the weeks left out (its step variance grows with the time between rows), so every form
+    fits the same sample as it would the whole range; the chosen form is then fitted on
+    every row.
+    """
+    start_ns, end_ns, local_date = when
+    if len(y) > COMPARE_MAX_ROWS:
+        week = (local_date.astype(np.int64) + 3) // 7
+        _, week_no = np.unique(week, return_inverse=True)
+        step = max(1, int(len(y) // COMPARE_MAX_ROWS))
+        sel = (week_no.reshape(-1) % step) == (step // 2)
+        if sel.sum() > 2 * Hx.shape[1] + 400:
+            inner = base_for
+            Hx, y, days = Hx[sel], y[sel], days[sel]
+            sp = Spacing.from_ns(start_ns[sel], end_ns[sel])
+
+            def base_for(p: str, _inner=inner, _sel=sel):
+                return _inner(p, _sel)
+    declared = site.baseload.profile
+    fixed: dict[str, float] = {}
+    levels = True
+    if isinstance(given, FormChoice):
+        rivals = given.credible() or [sc for sc in given.scores
+                                      if sc.form.name == given.form.name]
+        profiles = list(dict.fromkeys([given.form.profile] + [sc.form.profile for sc in rivals]))
+        fixed = {sc.form.profile: sc.form.q for sc in given.scores if sc.form.level}
+        form, pinned = given.form, given.pinned
+    elif isinstance(given, Form):
+        profiles, form, pinned = [given.profile], given, True
+        levels = given.level
+        if given.level and given.q > 0:
+            fixed = {given.profile: given.q}
+    else:
+        profiles = [p for p in SIMPLER[declared]
+                    if p != "occupied" or site.baseload.spells][::-1] + [declared]
+        if declared == "occupied" and len(y) >= MIN_ROWS_PER_COLUMN * (Hx.shape[1] + 70):
+            profiles.append("occupied-edges")
+        # The hour-of-week profile is tried too, when the data can carry its 168 levels: a
+        # declared schedule states when the building is occupied, not the baseload's shape
+        # within the day (lights that ramp, a daily swing).
+        # With a declared schedule, it has the occupied-edges columns too.
+        if (declared != "hour-of-week"
+                and len(y) >= MIN_ROWS_PER_COLUMN * (Hx.shape[1] + HOW_LEVELS + 70)):
+            profiles.append("hour-of-week-edges" if "occupied-edges" in profiles
+                            else "hour-of-week")
+        pinned = site.baseload.form != "auto"
+        form = Form.parse(site.baseload.form) if pinned else None
+    cols = {p: base_for(p)[0] for p in profiles}
+    mean, sd = prior
+    scores, resid = compare_forms(Hx, y, sp, cols, days, mean, sd, levels=levels,
+                                  fixed_q=fixed or None)
+    if isinstance(given, FormChoice):
+        names = {sc.form.name for sc in rivals} | {given.form.name}
+        scores = [sc for sc in scores if sc.form.name in names]
+    c = overdispersion(resid) if resid is not None else 1.0
+    score(scores, c, max(len(y) - 1, 1))
+    if form is not None:
+        match = [sc for sc in scores if sc.form.name == form.name]
+        best = match[0].form
+    else:
+        # Ties (to rounding) go to the declared profile, then to the simpler form.
+        low = min(sc.criterion for sc in scores)
+        tied = [sc for sc in scores if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
+        best = min(tied, key=lambda sc: (sc.form.profile != declared, sc.n_params)).form
+    return FormChoice(form=best, pinned=pinned, scores=scores, overdispersion=c)
 
 
 def _project_out_days(V: np.ndarray, C: np.ndarray, days: np.ndarray) -> np.ndarray:
@@ -648,3 +953,67 @@ def _partner(ids: list[str], active: list[int], corr: np.ndarray, j: int) -> dic
 def _wider(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """The covariance with the larger total variance (for sums of baseload columns)."""
     return a if np.trace(a) >= np.trace(b) else b
+
+
+@dataclass
+class Design:
+    """One design for every caller (breakdown, drift, compare): the used intervals, their
+    design rows in the order estimate_draws uses (term hours [h], weather slope columns
+    [h degC], baseload columns [h]) and energy [kWh].
+
+    form: the baseload form; with the level, the baseload columns are the profile's without
+    its constant direction (select.kept_columns) and the level is not in X (baseload_level).
+    """
+
+    frame: pl.DataFrame
+    X: np.ndarray
+    y: np.ndarray
+    term_members: list[list[str]]
+    n_weather: int
+    base_names: list[str]
+    form: Form
+
+
+def design(site: SiteConfig, aligned: Aligned, term_members: list[list[str]],
+           form: Form | None = None) -> Design:
+    """The design of the intervals aligned.use for the given terms (each a list of equipment
+    ids whose hours are averaged, as a combined row) and baseload form (default: the
+    declared profile without the level)."""
+    form = form or Form(site.baseload.profile, level=False)
+    use = aligned.use
+    frame = aligned.frame.filter(pl.Series(use))
+    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
+    H = aligned.hours[use]
+    cols = [H[:, [index[m] for m in members]].mean(axis=1) for members in term_members]
+    Hf = np.column_stack(cols) if cols else np.zeros((frame.height, 0))
+    temp = aligned.temp_c[use] if aligned.temp_c is not None else None
+    Wf = weather_columns(Hf, temp, weather_specs(site, term_members))
+    start_ns = frame["start_utc"].dt.epoch("ns").to_numpy()
+    end_ns = frame["end_utc"].dt.epoch("ns").to_numpy()
+    profile = form.profile.removesuffix("-edges")
+    settings = BaseloadSettings(profile, site.baseload.spells, site.baseload.spell_text,
+                                site.baseload.closed if profile == site.baseload.profile
+                                else (), site.baseload.form)
+    B, names = baseload_columns(settings, site.timezone, frame["start_utc"], start_ns, end_ns)
+    if form.profile.endswith("-edges"):
+        more, more_names = edge_columns(site.baseload, site.timezone, frame["start_utc"],
+                                        (end_ns - start_ns) / NS_PER_H,
+                                        hourly=form.profile.startswith("hour-of-week"))
+        B, names = np.column_stack([B, more]), names + more_names
+    if form.level:
+        keep = kept_columns(form.profile, B.shape[1])
+        B, names = B[:, keep], [names[i] for i in keep]
+    return Design(frame, np.column_stack([Hf, Wf, B]),
+                  frame["energy_kwh"].to_numpy().astype(float), term_members, Wf.shape[1],
+                  names, form)
+
+
+def baseload_level(d: Design, coef: np.ndarray) -> np.ndarray:
+    """The wandering level's energy in each interval [kWh] given the design's coefficients
+    (zero without the level): the smoother's mean of the residual kW (disagg.fit.wander)."""
+    if not d.form.level:
+        return np.zeros(len(d.y))
+    start_ns = d.frame["start_utc"].dt.epoch("ns").to_numpy()
+    end_ns = d.frame["end_utc"].dt.epoch("ns").to_numpy()
+    sp = Spacing.from_ns(start_ns, end_ns)
+    return smooth_level((d.y - d.X @ coef) / sp.h, sp, d.form.q) * sp.h

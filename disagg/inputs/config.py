@@ -30,6 +30,11 @@ STAMPS = ("end", "start")
 ALLOWED_INTERVALS_MIN = (1, 5, 10, 15, 30, 60)
 RUNLOG_LAYOUTS = ("events", "samples", "runtime")
 BASELOAD_PROFILES = ("constant", "occupied", "hour-of-week")
+# Baseload forms: a profile, alone or plus a wandering level (disagg.fit.wander); "auto" lets
+# the data choose among the declared profile and the simpler ones (disagg.fit.select).
+BASELOAD_FORMS = ("auto",) + tuple(f"{p}{lv}" for p in BASELOAD_PROFILES
+                                    + ("occupied-edges", "hour-of-week-edges")
+                                    for lv in ("", "+level"))
 CONTROLS = ("on-off", "variable")
 WEATHER_MODES = ("cooling", "heating")
 SMALLEST_SIZE = 1e-6
@@ -104,6 +109,8 @@ class BaseloadSettings:
     spells: tuple[Spell, ...] = ()
     spell_text: tuple[str, ...] = ()
     closed: tuple[dt.date, ...] = ()  # local dates on which no occupied spell applies
+    # "auto" (the data chooses) or a pinned form such as "occupied+level" (BASELOAD_FORMS).
+    form: str = "auto"
 
 
 @dataclass(frozen=True)
@@ -694,7 +701,12 @@ def load_site(path: str | Path) -> SiteConfig:
 
     b = _Table(path, "baseload", data.get("baseload", {}))
     profile = b.choice("profile", BASELOAD_PROFILES, required=False, default="constant")
-    b.only({"profile", "occupied", "closed"} if profile == "occupied" else {"profile"})
+    b.only({"profile", "occupied", "closed", "form"} if profile == "occupied"
+           else {"profile", "closed", "form"} if profile == "hour-of-week" else {"profile", "form"})
+    form = b.choice("form", BASELOAD_FORMS, required=False, default="auto")
+    if form != "auto" and (form.startswith("occupied") or "-edges" in form) and profile != "occupied":
+        raise ConfigError(f"{b.where('form')} = {form!r}: the occupied and edges forms need "
+                          "profile = \"occupied\" and its spells")
     spells: list[Spell] = []
     spell_text: list[str] = []
     if profile == "occupied":
@@ -712,7 +724,7 @@ def load_site(path: str | Path) -> SiteConfig:
             spell_text.append(s)
     closed: list[dt.date] = []
     closed.extend(_dates(b, "closed"))
-    baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text), tuple(closed))
+    baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text), tuple(closed), form)
 
     weather = None
     if "weather" in data:

@@ -132,7 +132,42 @@ _FLAG_WORDS = {
     "prior-driven": "decided by its prior",
     "range-draw": "whole-range draw",
     "estimated": "estimated",
+    "form-sensitive": "depends on the baseload's shape",
+    "schedule-edge": "switches near the schedule's edges",
+    "at-zero": "at zero",
+    "schedule-bound": "on the baseload's schedule",
 }
+
+# Plain words for the baseload forms (disagg.fit.select).
+FORM_WORDS = {
+    "constant": "one constant level",
+    "occupied": "one level while occupied and one while unoccupied",
+    "occupied-edges": "occupied and unoccupied levels with their own shape around the "
+                      "schedule's starts and ends",
+    "hour-of-week": "its own level for each hour of the week",
+    "hour-of-week-edges": "its own level for each hour of the week, with its own shape "
+                          "around the schedule's starts and ends",
+}
+
+
+def form_sentence(form: dict) -> str:
+    """One plain sentence on the baseload form used and how the others compared."""
+    used = str(form.get("used", ""))
+    profile, _, level = used.partition("+")
+    words = FORM_WORDS.get(profile, profile)
+    how = ("as the engineer pinned it in the site file" if form.get("pinned")
+           else "chosen by the data")
+    text = (f"The baseload (load no run log explains) was modelled as {words}"
+            + (", plus a level that wanders slowly over time" if level else "")
+            + f" ({e(used)}, {how}).")
+    others = sorted((f for f in form.get("forms", []) if f.get("form") != used),
+                    key=lambda f: f.get("delta", 0.0))
+    if others:
+        text += (" The other forms fitted the meter worse by "
+                 + ", ".join(f"{_num(f.get('delta'), 0)} ({e(str(f.get('form')))})"
+                             for f in others[:4])
+                 + " on the criterion (QAIC; differences above about 10 are clear).")
+    return text
 
 
 def _flag_text(flags: str | list[str]) -> str:
@@ -669,6 +704,9 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
         parts.append("<p>The meter validation (gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours, register rollovers) raised no finding; "
                      "intervals left out for other reasons are counted above.</p>")
+    form = fit.get("baseload", {}).get("form")
+    if form:
+        parts.append("<h3>The baseload's form</h3><p>" + form_sentence(form) + "</p>")
     if other_warnings:
         parts.append("<h3>Notes from the fit</h3>" + _list([e(str(w)) for w in other_warnings]))
     parts.append("</section>")
@@ -710,7 +748,7 @@ def _priors_section(result: BreakdownResult) -> str:
     unit = result.site.weather.unit if result.site.weather is not None else "C"
     sentences: list[str] = []
     groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
-                                    "meter": []}
+                                    "meter": [], "form-sensitive": [], "schedule-edge": []}
     for d in draws:
         n = d["equipment"]
         flags = d.get("flags", [])
@@ -749,7 +787,7 @@ def _priors_section(result: BreakdownResult) -> str:
         if "not-run" in flags:
             groups["not-run"].append(n)
             continue
-        for f in ("unstable", "variable"):
+        for f in ("unstable", "variable", "form-sensitive", "schedule-edge"):
             if f in flags:
                 groups[f].append(n)
         if not decided_by_prior and w is not None and w < 0.05:
@@ -763,6 +801,16 @@ def _priors_section(result: BreakdownResult) -> str:
                             "hours and its draw is the full-speed draw." if one else
                             "run at variable speed: their run-hours are equivalent full-load "
                             "hours and their draws are full-speed draws."))
+    if groups["form-sensitive"]:
+        sentences.append(f"The estimate of {_names(groups['form-sensitive'])} depends on which "
+                         "shape the baseload is given: forms of the baseload that the data "
+                         "cannot rule out give draws more than 10 % apart, and the interval "
+                         "spans them.")
+    if groups["schedule-edge"]:
+        sentences.append(f"{_names(groups['schedule-edge'])} switch mostly within an hour of "
+                         "the occupied schedule's starts and ends, where a change of the "
+                         "baseload looks the same to the meter; their intervals include the "
+                         "estimate with the baseload's own shape around those times.")
     if groups["unstable"]:
         one = len(groups["unstable"]) == 1
         sentences.append(f"The estimate{'' if one else 's'} of {_names(groups['unstable'])} "
