@@ -2,7 +2,9 @@
 
 All data here is invented (tests/synthetic.py). The stable range 0 < mu < 2 of normalized LMS
 is from docs/references.md section 4 (vendor DSP documentation [read]; Haykin, Adaptive Filter
-Theory [memory]); the alarm rule and its L = 3 are in tests/test_track.py.
+Theory [memory]); the EWMA rule is in tests/test_track.py (drift reads it on the lag-free
+recent level with L = Phi^-1(1 - 0.002 / (2 x 365 / memory)), at least 3). tests/synthetic_year.py
+builds the office year with weather, an interlocked chiller and pump and a seasonal chiller.
 """
 
 from __future__ import annotations
@@ -36,7 +38,8 @@ MAX_DELAY_DAYS = 30
 FALSE_ALARM_SEEDS = range(30)
 # Stationary 240-day buildings, measured on 2026-12-01 over these 30 seeds: 0 of 30 runs and
 # 0 of 150 load-runs with any alarm (bench/drift.py, seeds 0-99: 0 of 100 runs, 0 of 500
-# load-runs). With 0 of 30 observed, the false-alarm rate per run is below 10 % with 95 %
+# load-runs); again 0 of 30 on 2026-12-04 with the per-weight tracker and the windowed
+# check. With 0 of 30 observed, the false-alarm rate per run is below 10 % with 95 %
 # confidence (rule of three); one run is allowed so that the bound is not the measurement.
 MAX_FALSE_ALARM_RUNS = 1
 THRESHOLD = 0.10
