@@ -294,3 +294,25 @@ def test_a_step_is_alarmed_on_its_load_and_not_on_the_pump_that_switches_with_it
         first = _first_alarms(drift_aligned(s.site, s.aligned))
         assert set(first) == {"CH-1"}, (seed, first)
         assert 0 < (first["CH-1"] - STEP_ON).days <= MAX_DELAY_DAYS
+
+
+def test_differences_skip_gaps_and_continue_from_the_previous_run():
+    from disagg.analyses.drift import differences
+    t0 = dt.datetime(2025, 1, 1, tzinfo=dt.UTC)
+    starts = [t0 + dt.timedelta(minutes=15 * i) for i in (0, 1, 2, 5, 6)]  # a gap after 2
+    frame = pl.DataFrame({"start_utc": starts,
+                          "end_utc": [s + dt.timedelta(minutes=15) for s in starts]})
+    X = np.array([[0.25, 1.0], [0.0, 1.0], [0.25, 1.0], [0.25, 1.0], [0.0, 1.0]])
+    y = np.array([10.0, 4.0, 9.0, 11.0, 5.0])
+    dX, dy = differences(frame, X, y, None)
+    np.testing.assert_array_equal(dX, [[0, 0], [-0.25, 0], [0.25, 0], [0, 0], [-0.25, 0]])
+    np.testing.assert_array_equal(dy, [0.0, -6.0, 5.0, 0.0, -6.0])
+    # The first row continues from the previous run's last interval when it is adjacent.
+    prev = {"end_utc": starts[0].isoformat(), "x": [0.0, 1.0], "y": 3.0}
+    dX2, dy2 = differences(frame, X, y, prev)
+    np.testing.assert_array_equal(dX2[0], [0.25, 0.0])
+    assert dy2[0] == 7.0
+    # Not adjacent: no difference across the gap.
+    far = {"end_utc": (t0 - dt.timedelta(hours=1)).isoformat(), "x": [0.0, 1.0], "y": 3.0}
+    dX3, dy3 = differences(frame, X, y, far)
+    assert dy3[0] == 0.0 and not dX3[0].any()
