@@ -19,6 +19,7 @@ A saved state lets next month's export continue exactly where this one stopped.
 
 from __future__ import annotations
 
+import base64
 import dataclasses
 import datetime as dt
 import math
@@ -435,8 +436,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         tail = state["daily_tail"]
         min_run_h = float(state.get("min_reference_run_h", MIN_REFERENCE_RUN_H))
         ls_factor = np.array(state["ls_factor"], dtype=float)
-        stats_tail = [(np.array(S_), np.array(b_), c_, n_)
-                      for S_, b_, c_, n_ in state["day_stats_tail"]]
+        stats_tail = [_unpack_day(item, k_all=len(state["weights"]))
+                      for item in state["day_stats_tail"]]
         k = len(ids)
         later = (aligned.frame["start_utc"] >= last_end).to_numpy()
         aligned = dataclasses.replace(aligned, use=aligned.use & later)
@@ -482,7 +483,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     sd_recent_all = sd[None, :] * factor
     sd_alarm = np.sqrt(sd_recent_all**2 + ref_se[None, :] ** 2)
     day_start = np.r_[0, last_of_day[:-1] + 1]
-    day_stats = [(X[a:b].T @ X[a:b], X[a:b].T @ y[a:b], float(y[a:b] @ y[a:b]),
+    # X'X made exactly symmetric, so that the state's upper triangle restores it bit for bit.
+    day_stats = [(_symmetric(X[a:b].T @ X[a:b]), X[a:b].T @ y[a:b], float(y[a:b] @ y[a:b]),
                   int(np.count_nonzero(np.any(X[a:b] != 0, axis=1))))
                  for a, b in zip(day_start, last_of_day + 1)]
     window = _WindowCheck(stats_tail + day_stats, k, at_ref, ref_kw, ref_se, ls_factor,
@@ -603,12 +605,38 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "daily_tail": series[-n_tail:].tolist(),
         "ls_factor": ls_factor.tolist(),
         "min_reference_run_h": min_run_h,
-        "day_stats_tail": [[S_.tolist(), b_.tolist(), c_, n_]
-                           for S_, b_, c_, n_ in (stats_tail + day_stats)[-n_tail:]],
+        "day_stats_tail": [_pack_day(*item) for item in (stats_tail + day_stats)[-n_tail:]],
         "last_row": {"end_utc": frame["end_utc"][-1].isoformat(),
                      "x": X_level[-1].tolist(), "y": float(y_level[-1])},
     }
     return DriftResult(table, summary, new_state)
+
+
+def _symmetric(S: np.ndarray) -> np.ndarray:
+    upper = np.triu(S)
+    return upper + np.triu(upper, 1).T
+
+
+def _pack_day(S: np.ndarray, b: np.ndarray, c: float, n: int) -> list:
+    """One day's sums for the state file: X'X's upper triangle and X'y as base64 of their
+    float64 bytes (exact, and about a third of the size of decimal text)."""
+    upper = S[np.triu_indices(len(S))]
+    return [base64.b64encode(np.ascontiguousarray(upper, "<f8").tobytes()).decode("ascii"),
+            base64.b64encode(np.ascontiguousarray(b, "<f8").tobytes()).decode("ascii"),
+            float(c), int(n)]
+
+
+def _unpack_day(item: list, k_all: int) -> tuple:
+    """_pack_day's inverse for a design of k_all columns."""
+    upper = np.frombuffer(base64.b64decode(item[0]), "<f8")
+    b = np.frombuffer(base64.b64decode(item[1]), "<f8").copy()
+    if len(upper) != k_all * (k_all + 1) // 2 or len(b) != k_all:
+        raise InputError("the --state file's daily sums do not fit its tracked columns; "
+                         "start without --state")
+    S = np.zeros((k_all, k_all))
+    S[np.triu_indices(k_all)] = upper
+    S = S + np.triu(S, 1).T
+    return S, b, float(item[2]), int(item[3])
 
 
 class _WindowCheck:
