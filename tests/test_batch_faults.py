@@ -136,3 +136,49 @@ def test_a_deeply_nested_portfolio_file_is_a_config_error(tmp_path):
         batch.load_portfolio(pf)
     assert str(exc.value) == (f"{pf}: not valid TOML for disagg (arrays or tables nested more "
                               "than 50 deep)")
+
+
+def _stat(pid: int) -> tuple[int, str]:
+    """(parent pid, command line) of a process."""
+    stat = Path(f"/proc/{pid}/stat").read_text()
+    cmd = Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode()
+    return int(stat[stat.rindex(")") + 2:].split()[1]), cmd
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs Linux /proc")
+def test_a_worker_killed_from_outside_costs_no_site(tmp_path):
+    # As the out-of-memory killer would: SIGKILL one busy worker of a real batch (forkserver).
+    # Its site runs again alone and succeeds, the others on a fresh pool: every site is ok.
+    sites = tmp_path / "sites"
+    for i in range(6):
+        write_site_files(sites, f"s{i}", 50 + i, days=60, data_dir=tmp_path / "data")
+    out = tmp_path / "out"
+    proc = subprocess.Popen([sys.executable, "-m", "disagg.cli", "batch", str(sites),
+                             "--out", str(out), "--workers", "2", "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            start_new_session=True)
+    try:
+        deadline = time.monotonic() + 120
+        workers: list[int] = []
+        while not workers and time.monotonic() < deadline:
+            assert proc.poll() is None, proc.stderr.read()
+            procs = {}
+            for pid in _group(proc.pid):
+                try:
+                    procs[pid] = _stat(pid)
+                except OSError:
+                    continue
+            servers = [p for p, (ppid, cmd) in procs.items()
+                       if ppid == proc.pid and "forkserver" in cmd]
+            workers = [p for p, (ppid, _) in procs.items() if servers and ppid == servers[0]]
+            time.sleep(0.05)
+        assert workers
+        time.sleep(1.0)  # busy with a site by now
+        os.kill(workers[0], signal.SIGKILL)
+        _, err = proc.communicate(timeout=300)
+        assert proc.returncode == 0, err.decode()
+        table = pl.read_csv(out / "portfolio.csv")
+        assert table["status"].to_list() == ["ok"] * 6
+    finally:
+        for pid in _group(proc.pid):
+            os.kill(pid, signal.SIGKILL)

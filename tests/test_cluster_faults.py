@@ -64,7 +64,7 @@ def test_a_scheduler_killed_mid_batch_is_one_error(sites, monkeypatch):
         stderr=subprocess.DEVNULL)
     worker = subprocess.Popen(
         [sys.executable, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",
-         "--nworkers", "1", "--no-dashboard", "--death-timeout", "10"],
+         "--no-nanny", "--no-dashboard", "--death-timeout", "10"],
         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     out = sites / "out1"
 

@@ -188,3 +188,18 @@ def test_warnings_are_not_printed_unless_debugging(capsys):
     finally:
         cli._state["debug"] = False
     assert "RuntimeWarning: overflow encountered in square" in capsys.readouterr().err
+
+
+def test_an_unreadable_site_file_is_one_error_line(base, tmp_path, monkeypatch):
+    # As for a file without read permission (the tests may run as root, who reads anything).
+    site = _copy(base, tmp_path) / "site.toml"
+    real = Path.read_text
+
+    def denied(self, *args, **kwargs):
+        if self == site:
+            raise PermissionError(13, "Permission denied", str(self))
+        return real(self, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "read_text", denied)
+    err = _one_error(["check", str(site)])
+    assert err == f"Error: {site}: cannot read the site file (Permission denied)"

@@ -4,6 +4,7 @@ ids that would collide are refused, a file of another schema is one error (all d
 from __future__ import annotations
 
 import datetime as dt
+import json
 import os
 import subprocess
 import sys
@@ -179,8 +180,8 @@ def test_site_files_whose_ids_would_collide_are_refused(tmp_path):
         history.store_drift(tmp_path / "hist", underscored, _drift_of([2]))
     assert str(exc.value) == (
         f"{underscored.path}: its history id 'a_b' is already used in {tmp_path / 'hist'} by "
-        "the site file a b.toml; file names that differ only in characters other than "
-        "letters, digits, '.', '_' and '-' share an id: rename one of the two site files")
+        "the site file a b.toml; names that differ only in characters other than "
+        "letters, digits, '.', '_' and '-' share an id: rename one of the two")
     stored = history.read_history(tmp_path / "hist", "a_b", kind="drift")
     assert stored["date"].to_list() == [dt.date(2025, 6, 1)]  # the first site's day, alone
     # The same file run again (even from another folder) is the same site.
@@ -200,3 +201,38 @@ def test_a_history_file_of_another_schema_is_one_error(tmp_path):
     with pytest.raises(InputError) as exc:
         history._read_file(part, history.BREAKDOWN_SCHEMA)
     assert str(exc.value).startswith(f"{part}: not a disagg history file: its column 'kw'")
+
+
+def test_reading_the_history_first_finishes_a_killed_run(tmp_path):
+    # The same kill as above, then a read (disagg history) before any other write.
+    _store(tmp_path, "old")
+    staging = tmp_path / f"{commit.PREFIX}{commit._host()}-{_dead_pid()}-abc"
+    staging.mkdir()
+    moves = []
+    for i, p in enumerate(PERIODS[4:]):
+        new = pl.DataFrame({"equipment": ["H-1"], "flags": ["new"]})
+        new.write_parquet(staging / f"{i}.parquet")
+        moves.append([f"{i}.parquet", str(tmp_path / "kind=breakdown" / "site=plant"
+                                          / f"period={p}" / "part.parquet")])
+    (staging / commit.JOURNAL).write_text(json.dumps({"moves": moves}))
+    stored = history.read_history(tmp_path, "plant")
+    assert stored.filter(pl.col("period") >= "2025-05")["flags"].unique().to_list() == ["new"]
+    assert not staging.exists()
+
+
+def _dead_pid() -> int:
+    proc = subprocess.Popen([sys.executable, "-c", "pass"])
+    proc.wait()
+    return proc.pid
+
+
+def test_site_toml_files_in_folders_whose_ids_would_collide_are_refused(tmp_path):
+    spaced = SimpleNamespace(name="A", path=tmp_path / "north wing" / "site.toml")
+    underscored = SimpleNamespace(name="B", path=tmp_path / "north_wing" / "site.toml")
+    assert history.site_id(spaced.path) == history.site_id(underscored.path) == "north_wing"
+    history.store_drift(tmp_path / "hist", spaced, _drift_of([1]))
+    with pytest.raises(OutputError) as exc:
+        history.store_drift(tmp_path / "hist", underscored, _drift_of([2]))
+    assert "by the site file north wing/site.toml;" in str(exc.value)
+    moved = SimpleNamespace(name="A", path=tmp_path / "elsewhere" / "north wing" / "site.toml")
+    history.store_drift(tmp_path / "hist", moved, _drift_of([2]))  # the same building

@@ -71,3 +71,19 @@ def test_a_two_hour_outage_of_meter_and_wide_log_gives_one_line_per_finding_kind
     assert silence[0].startswith("Note: runlog.csv: ")
     assert all(str(tmp_path) not in n for n in notes)
     assert all("+00:00" not in n for n in notes)
+
+
+def test_several_loads_with_the_same_kind_of_finding_are_one_line_with_their_count():
+    from disagg.inputs.notes import group_kinds
+
+    lines = ["CH-1, CHWP-1 run together",
+             "A is unstable: 1 kW; spans these",
+             "other note",
+             "B is unstable: 2 kW; spans these",
+             "C is at-zero: 0 kW"]
+    assert group_kinds(lines) == [
+        "CH-1, CHWP-1 run together",
+        "2 loads are unstable (A, B); the first: A is unstable: 1 kW; spans these (each one's "
+        "figures are in fit.json, warnings)",
+        "other note",
+        "C is at-zero: 0 kW"]

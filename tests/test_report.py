@@ -831,3 +831,17 @@ def test_the_summary_names_drift_alarms_when_there_are_some(result, drift):
 def test_the_first_section_prints_on_the_first_page_and_the_draw_figures_are_explained(report):
     assert "section.page.first { break-before: auto;" in report
     assert "One load, several draw figures" in report
+
+
+def test_the_summary_points_at_a_run_log_clock_offset_first(result):
+    import dataclasses
+
+    from disagg.present.report.sections import _summary
+
+    fit = dict(result.fit)
+    fit["warnings"] = list(fit.get("warnings", [])) + [
+        "the run logs match the meter best when shifted by +4.0 min (60 % smaller residual "
+        "than as read): ..."]
+    html = _summary(dataclasses.replace(result, fit=fit), None, [])
+    look = html[html.index("What to look at:"):]
+    assert look.index("run-log clock seems off") < look.index("note")

@@ -77,3 +77,31 @@ def tidy(notes: list[str], files: list[Path], base: Path, tz: str) -> list[str]:
         more = f" and {len(ids) - FIRST_IDS} more" if len(ids) > FIRST_IDS else ""
         out.append(key.replace("equipment {}", f"{len(ids)} equipment ({named}{more})"))
     return out
+
+
+# A load's own finding as the fit words it: "AHU-1 is unstable: ...".
+_LOAD_KIND = re.compile(r"^(\S+) is ([a-z][a-z-]*): ")
+
+
+def group_kinds(lines: list[str]) -> list[str]:
+    """For people: lines saying the same kind of thing about several loads ("X is unstable:
+    ...") become one line with their count, their ids (the first FIRST_IDS) and the first
+    line in full; the others' figures stay in fit.json. Other lines are unchanged, in order;
+    a kind seen once stays as it is."""
+    kinds: dict[str, list[int]] = {}
+    for i, line in enumerate(lines):
+        m = _LOAD_KIND.match(str(line))
+        if m:
+            kinds.setdefault(m.group(2), []).append(i)
+    out = []
+    for i, line in enumerate(lines):
+        m = _LOAD_KIND.match(str(line))
+        group = kinds.get(m.group(2), []) if m else []
+        if len(group) < 2:
+            out.append(line)
+        elif i == group[0]:
+            ids = [_LOAD_KIND.match(str(lines[j])).group(1) for j in group]  # type: ignore[union-attr]
+            more = f" and {len(ids) - FIRST_IDS} more" if len(ids) > FIRST_IDS else ""
+            out.append(f"{len(ids)} loads are {m.group(2)} ({', '.join(ids[:FIRST_IDS])}{more}); "
+                       f"the first: {line} (each one's figures are in fit.json, warnings)")
+    return out

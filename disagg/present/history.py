@@ -48,7 +48,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
-import fcntl
 import os
 import re
 import shutil
@@ -66,6 +65,11 @@ from disagg.analyses.verdict import RULE as VERDICT_RULE
 from disagg.analyses.verdict import change_verdict
 from disagg.errors import DisaggError, InputError, OutputError
 from disagg.present import commit
+
+try:
+    import fcntl
+except ImportError:  # not on this system (Windows): runs do not take turns there
+    fcntl = None
 
 KINDS = ("breakdown", "drift")
 # The lock file inside the history folder, and how long a run waits for another's lock [s].
@@ -167,6 +171,9 @@ def _locked(folder: Path) -> Iterator[None]:
         OutputError: the lock file cannot be opened, or another run held it for
             LOCK_TIMEOUT_S seconds.
     """
+    if fcntl is None:
+        yield
+        return
     path = folder / LOCK_FILE
     try:
         fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
@@ -217,9 +224,19 @@ def _replace_months(folder: Path, kind: str, site: str,
     return [target for _, target in moves]
 
 
+def _id_source(site_file: str | Path) -> str:
+    """The part of a site file's path its id is made from: the file name, or for
+    ``site.toml`` its folder's name and the file name (see site_id)."""
+    path = Path(site_file)
+    if path.stem == GENERIC_SITE_STEM and path.parent.name:
+        return f"{path.parent.name}/{path.name}"
+    return path.name
+
+
 def _check_id(folder: Path, kind: str, sid: str, site) -> None:
     """Refuse to store a site under an id that another site file's history already uses
-    (``a b.toml`` and ``a_b.toml`` both have the id ``a_b``).
+    (``a b.toml`` and ``a_b.toml`` both have the id ``a_b``; so do ``a b/site.toml`` and
+    ``a_b/site.toml``). The same file moved to another folder keeps its id and history.
 
     Raises:
         OutputError: naming both files.
@@ -230,14 +247,13 @@ def _check_id(folder: Path, kind: str, sid: str, site) -> None:
             stored = pl.read_parquet(part, columns=["site_file"]).get_column("site_file")
         except (OSError, pl.exceptions.PolarsError):
             return  # read (and reported) where the month itself is read
-        names = {Path(f).name for f in stored.drop_nulls().unique().to_list()}
-        mine = Path(site.path).name
-        if names and mine not in names:
+        names = {_id_source(f) for f in stored.drop_nulls().unique().to_list()}
+        if names and _id_source(site.path) not in names:
             other = sorted(names)[0]
             raise OutputError(
                 f"{site.path}: its history id {sid!r} is already used in {folder} by the site "
-                f"file {other}; file names that differ only in characters other than letters, "
-                "digits, '.', '_' and '-' share an id: rename one of the two site files")
+                f"file {other}; names that differ only in characters other than letters, "
+                "digits, '.', '_' and '-' share an id: rename one of the two")
 
 
 def _stamp(frame: pl.DataFrame, site, schema: dict) -> pl.DataFrame:
@@ -438,6 +454,8 @@ def read_history(folder: str | Path, site: str | None = None,
     if kind not in KINDS:
         raise ValueError(f"kind {kind!r}: expected one of {', '.join(KINDS)}")
     schema = _SCHEMAS[kind]
+    # A run killed while putting its months in place: finish it first (see commit.recover).
+    commit.recover(Path(folder).resolve())
     root = Path(folder).resolve() / f"kind={kind}"
     empty = pl.DataFrame(schema={**HIVE_SCHEMA, **schema})
     if not root.is_dir() or not any(root.rglob("part.parquet")):

@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 import polars as pl
 
 from disagg.analyses.pipeline import CAUTION, BreakdownResult, CheckResult
+from disagg.inputs.notes import group_kinds
 from disagg.present.outputs import to_json
 from disagg.present.report.charts import _num as _fmt_report
 from disagg.present.report.sections import _currency, _has_cost, _metered_total
@@ -108,7 +109,7 @@ def breakdown_summary(result: BreakdownResult) -> str:
         n_own = sum(1 for m in months.values() if m.get("own_fit"))
         lines.append(f"{n_own} of {len(months)} months fitted on their own data; their draws, "
                      "flags and notes are in fit.json (months).")
-    for w in result.fit["warnings"]:
+    for w in group_kinds(result.fit["warnings"]):
         lines.append(f"Note: {w}")
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)

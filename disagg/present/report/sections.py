@@ -10,6 +10,7 @@ import numpy as np
 import polars as pl
 
 from disagg.analyses.pipeline import CAUTION, BreakdownResult
+from disagg.inputs.notes import group_kinds
 
 if TYPE_CHECKING:
     from disagg.analyses.drift import DriftResult
@@ -298,7 +299,7 @@ def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[
     if metered and abs(unexplained) / metered >= UNEXPLAINED_WORTH_NAMING:
         out.append(f"{_num(100 * unexplained / metered, 0)} % of the metered energy is "
                    "unexplained: a load without a run log may be missing.")
-    n_notes = len(fit.get("warnings", []))
+    n_notes = len(group_kinds(fit.get("warnings", [])))
     if n_notes:
         out.append(f"{n_notes} note{'s' * (n_notes != 1)} on the data and the fit (fit page).")
     return out[:LOOK_AT]
@@ -678,7 +679,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
     findings = fit.get("meter_validation", [])
     warnings = fit.get("warnings", [])
     finding_messages = {str(fd.get("message", "")) for fd in findings}
-    other_warnings = [w for w in warnings if str(w) not in finding_messages]
+    other_warnings = group_kinds([w for w in warnings if str(w) not in finding_messages])
     parts = ['<section class="page" id="fit"><h2>4. How good the fit is</h2>',
              _figure(svg1, f"Metered and fitted energy per local {unit} (sums of the intervals "
                            "used)."),
