@@ -14,12 +14,16 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import sys
 import zoneinfo
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import polars as pl
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from sitefiles import write_site_toml  # noqa: E402
 
 TZ = "America/Chicago"
 YEAR = 2025
@@ -127,41 +131,19 @@ def make_site(folder: Path, index: int, *, interval_min: int = 15, n_equipment: 
     log_path = data / f"{name}_runlog.csv"
     meter.write_csv(meter_path)
     log.write_csv(log_path)
-    eq_lines = []
+    equipment = []
     for j, eid in enumerate(ids):
-        lines = [f'id = "{eid}"', f'name = "Load {j + 1} (synthetic)"',
-                 f'kind = "{KINDS[j % len(KINDS)]}"']
+        eq = {"id": eid, "name": f"Load {j + 1} (synthetic)", "kind": KINDS[j % len(KINDS)]}
         if j % 2 == 0:  # a nameplate near the truth: prior 80 % of full load (config._prior)
-            lines.append(f"rated_kw = {draw[j] / 0.8 * rng.uniform(0.9, 1.1):.2f}")
-        eq_lines.append("[[equipment]]\n" + "\n".join(lines))
-    toml = folder / f"{name}.toml"
-    spells = ", ".join(f'"{s}"' for s in SPELLS)
-    toml.write_text(f'''# Synthetic bench site {name} (bench/_synth_portfolio.py); every number
-# is invented.
-[site]
-name = "Bench {name} (synthetic)"
-timezone = "{TZ}"
-
-[meter]
-file = "data/{meter_path.name}"
-time_column = "reading_end"
-value_column = "kwh"
-unit = "kWh"
-stamp = "end"
-interval_minutes = {interval_min}
-
-[runlog]
-file = "data/{log_path.name}"
-layout = "events"
-time_column = "time"
-equipment_column = "point"
-state_column = "state"
-
-[baseload]
-profile = "occupied"
-occupied = [{spells}]
-
-''' + "\n\n".join(eq_lines) + "\n")
+            eq["rated_kw"] = round(float(draw[j] / 0.8 * rng.uniform(0.9, 1.1)), 2)
+        equipment.append(eq)
+    toml = write_site_toml(
+        folder / f"{name}.toml", name=f"Bench {name} (synthetic)", timezone=TZ,
+        meter_file=f"data/{meter_path.name}", runlog_file=f"data/{log_path.name}",
+        meter={"time_column": "reading_end", "interval_minutes": interval_min},
+        profile="occupied", occupied=SPELLS, equipment=equipment,
+        header=f"# Synthetic bench site {name} (bench/_synth_portfolio.py); every number\n"
+               "# is invented.\n")
     truth = SiteTruth(toml, meter_path, log_path, ids, dict(zip(ids, map(float, draw))),
                       {"occupied": BASE_UNOCCUPIED_KW + BASE_OCCUPIED_EXTRA_KW,
                        "unoccupied": BASE_UNOCCUPIED_KW}, log.height, n)

@@ -20,6 +20,7 @@ import numpy as np
 import polars as pl
 import pytest
 import typer
+from sitefiles import write_site_toml
 from typer.testing import CliRunner
 
 from disagg.cli import app
@@ -100,29 +101,8 @@ def write_site(folder: Path, days: int = MAIN_DAYS, seed: int = 11, identical: b
     log = pl.DataFrame(events, schema=["time", "point", "state"], orient="row").sort(
         "time", "point", maintain_order=True)
     log.write_csv(folder / "runlog.csv")
-    eq_tables = "\n".join(f'[[equipment]]\nid = "{eq}"\n' for eq in TRUE_DRAW_KW)
-    (folder / "site.toml").write_text(f'''[site]
-name = "Synthetic test site"
-timezone = "{TZ}"
-
-[meter]
-file = "{meter_name}"
-time_column = "end"
-value_column = "kwh"
-unit = "kWh"
-stamp = "end"
-
-[runlog]
-file = "runlog.csv"
-layout = "events"
-time_column = "time"
-equipment_column = "point"
-state_column = "state"
-
-[baseload]
-profile = "constant"
-
-{eq_tables}''', encoding="utf-8")
+    write_site_toml(folder / "site.toml", name="Synthetic test site", timezone=TZ,
+                    meter_file=meter_name, runlog_file="runlog.csv", equipment=list(TRUE_DRAW_KW))
     month = start_utc.dt.convert_time_zone(TZ).dt.strftime("%Y-%m").to_numpy()
     metered = {m: float(energy_kwh[month == m].sum()) for m in sorted(set(month))}
     folder = folder.resolve()

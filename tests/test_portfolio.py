@@ -18,15 +18,14 @@ import numpy as np
 import polars as pl
 import pytest
 from polars.testing import assert_frame_equal
+from sitefiles import write_site_toml
 from synthetic import SPELLS, TZ, make_building
 from typer.testing import CliRunner
 
-from disagg.jobs import batch as portfolio
-from disagg.present import history
-from disagg.present.terminal import DRIFT_NOT_RUN, portfolio_summary
 from disagg.cli import app
-from disagg.inputs.config import load_site
 from disagg.errors import ConfigError
+from disagg.inputs.config import load_site
+from disagg.jobs import batch as portfolio
 from disagg.jobs.batch import (
     Portfolio,
     PortfolioResult,
@@ -37,6 +36,8 @@ from disagg.jobs.batch import (
     run_portfolio,
     run_site,
 )
+from disagg.present import history
+from disagg.present.terminal import DRIFT_NOT_RUN, portfolio_summary
 
 runner = CliRunner()
 START = dt.date(2025, 3, 17)  # a Monday; 28 days cross into April (no DST change in range)
@@ -83,36 +84,11 @@ def write_site_files(folder: Path, stem: str, seed: int, *, days: int = DAYS,
         rows.append((end, eq, "on" if on[-1] else "off"))  # the log's last time
     pl.DataFrame(rows, schema=["time", "point", "state"], orient="row").write_csv(
         data_dir / "runlog.csv")
-    equipment = "\n".join(f'[[equipment]]\nid = "{e}"\n' for e in s.aligned.equipment_ids
-                          if e not in drop)
-    spells = ", ".join(f'"{x}"' for x in SPELLS)
-    hist = f'\n[history]\nfolder = "{history}"\n' if history else ""
-    toml = folder / f"{stem}.toml"
-    folder.mkdir(parents=True, exist_ok=True)
-    toml.write_text(f'''[site]
-name = "Synthetic {stem}"
-timezone = "{TZ}"
-
-[meter]
-file = "{(data_dir / 'meter.csv').as_posix()}"
-time_column = "end"
-value_column = "kwh"
-unit = "kWh"
-stamp = "end"
-
-[runlog]
-file = "{(data_dir / 'runlog.csv').as_posix()}"
-layout = "events"
-time_column = "time"
-equipment_column = "point"
-state_column = "state"
-
-[baseload]
-profile = "occupied"
-occupied = [{spells}]
-{hist}
-{equipment}''', encoding="utf-8")
-    return toml
+    return write_site_toml(
+        folder / f"{stem}.toml", name=f"Synthetic {stem}", timezone=TZ,
+        meter_file=data_dir / "meter.csv", runlog_file=data_dir / "runlog.csv",
+        profile="occupied", occupied=SPELLS, history=history,
+        equipment=[e for e in s.aligned.equipment_ids if e not in drop])
 
 
 def break_meter(toml: Path) -> None:

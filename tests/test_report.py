@@ -18,12 +18,14 @@ import dataclasses
 import datetime as dt
 import re
 import subprocess
+import tomllib
 from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
 import polars as pl
 import pytest
+from sitefiles import write_site_toml
 from typer.testing import CliRunner
 
 from disagg.analyses.pipeline import CAUTION, breakdown_site
@@ -127,7 +129,7 @@ def write_site(folder: Path, tariff: bool = True, days: int = DAYS, seed: int = 
         middle = n // 2
         meter = pl.concat([meter[:middle], meter[middle + drop_rows:]])
     meter.write_csv(folder / "meter.csv")
-    weather = ""
+    weather: dict = {}
     if fahrenheit:
         hours = pl.datetime_range(t0 - dt.timedelta(hours=1), t0 + dt.timedelta(days=days, hours=1),
                                   "1h", eager=True, time_zone="UTC")
@@ -135,43 +137,22 @@ def write_site(folder: Path, tariff: bool = True, days: int = DAYS, seed: int = 
             0.0, 2.0, len(hours))
         pl.DataFrame({"time": hours.dt.to_string("%Y-%m-%dT%H:%M:%S%:z"),
                       "temp_f": np.round(temp_f, 1)}).write_csv(folder / "weather.csv")
-        weather = ('[weather]\nfile = "weather.csv"\ntime_column = "time"\n'
-                   f'temp_column = "temp_f"\nunit = "F"\nreference_temp = {REFERENCE_F}\n')
+        weather = {"weather": {"file": "weather.csv", "time_column": "time",
+                               "temp_column": "temp_f", "unit": "F",
+                               "reference_temp": REFERENCE_F}}
     pl.DataFrame(events, schema=["time", "point", "state"], orient="row").sort(
         "time", "point", maintain_order=True).write_csv(folder / "runlog.csv")
-    equipment = "\n".join(
-        f'[[equipment]]\nid = "{eq}"\nname = "{name.replace(chr(34), chr(92) + chr(34))}"\n'
-        + ('draw_kw = 5.0\n' if eq == "P-1" else "")
-        + (f'weather = "cooling"\nbalance_temp = {BALANCE_F}\n'
-           if fahrenheit and eq == "CH-1" else "") for eq, (_, name) in LOADS.items())
-    money = (f'[tariff]\ncurrency = "{CURRENCY}"\nenergy_price = 0.20\ndemand_price = 10.0\n'
-             if tariff else "")
-    if tariff and tou:
-        money = TOU
-    (folder / "site.toml").write_text(f'''[site]
-name = "Test <site> & Co"
-timezone = "{TZ}"
-
-[meter]
-file = "meter.csv"
-time_column = "end"
-value_column = "kwh"
-unit = "kWh"
-stamp = "end"
-
-[runlog]
-file = "runlog.csv"
-layout = "events"
-time_column = "time"
-equipment_column = "point"
-state_column = "state"
-
-[baseload]
-profile = "constant"
-
-{weather}
-{money}
-{equipment}''', encoding="utf-8")
+    equipment = [{"id": eq, "name": name, **({"draw_kw": 5.0} if eq == "P-1" else {}),
+                  **({"weather": "cooling", "balance_temp": BALANCE_F}
+                     if fahrenheit and eq == "CH-1" else {})}
+                 for eq, (_, name) in LOADS.items()]
+    tables = dict(weather)
+    if tariff:
+        tables["tariff"] = (tomllib.loads(TOU)["tariff"] if tou else
+                            {"currency": CURRENCY, "energy_price": 0.20, "demand_price": 10.0})
+    write_site_toml(folder / "site.toml", name="Test <site> & Co", timezone=TZ,
+                    meter_file="meter.csv", runlog_file="runlog.csv", equipment=equipment,
+                    tables=tables)
     return (folder / "site.toml").resolve()
 
 
