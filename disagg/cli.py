@@ -76,7 +76,12 @@ def _guarded(fn):
         # The reader of our output went away (e.g. `| head`): not an error of ours.
         sys.stderr.close()
         raise typer.Exit(0) from None
-    except (KeyboardInterrupt, SystemExit):
+    except KeyboardInterrupt:
+        # Ctrl-C: every writer commits a whole set or nothing (disagg.present.commit).
+        typer.echo("Interrupted: each output folder holds either its previous files or the "
+                   "complete new set, never a mix", err=True)
+        raise typer.Exit(130) from None
+    except SystemExit:
         raise
     except BaseException as exc:  # noqa: BLE001 - the last line of defence for users
         # BaseException, not Exception: a library panic (polars' PanicException) is one.

@@ -168,3 +168,35 @@ def test_an_os_error_without_a_reason_is_named_not_none(tmp_path):
         write_atomically(tmp_path, {"fit.json": odd}, [])
     assert "None" not in str(exc.value)
     assert "(disk quota exceeded on the share)" in str(exc.value)
+
+
+def _with_stale_report(folder: Path) -> None:
+    _old_set(folder)
+    (folder / "report.html").write_text("old report\n")
+
+
+@pytest.mark.parametrize("step", ["staged", "backed-up"])
+def test_a_stale_file_stays_when_stopped_before_the_commit_point(tmp_path, monkeypatch, step):
+    _with_stale_report(tmp_path)
+    _stop_at(monkeypatch, step, KeyboardInterrupt())
+    with pytest.raises(KeyboardInterrupt):
+        write_atomically(tmp_path, _new_files(), [], remove=("report.html",))
+    assert _contents(tmp_path) == {**OLD, "report.html": "old report\n"}
+
+
+@pytest.mark.parametrize("step", [None, "committed", "placed breakdown.csv"])
+def test_a_stale_file_goes_with_the_new_set(tmp_path, monkeypatch, step):
+    _with_stale_report(tmp_path)
+    if step is None:
+        write_atomically(tmp_path, _new_files(), [], remove=("report.html",))
+    else:
+        _stop_at(monkeypatch, step, KeyboardInterrupt())
+        with pytest.raises(KeyboardInterrupt):
+            write_atomically(tmp_path, _new_files(), [], remove=("report.html",))
+    assert _contents(tmp_path) == NEW
+
+
+def test_a_stale_name_that_is_an_input_is_never_removed(tmp_path):
+    _with_stale_report(tmp_path)
+    write_atomically(tmp_path, _new_files(), [tmp_path / "report.html"], remove=("report.html",))
+    assert _contents(tmp_path) == {**NEW, "report.html": "old report\n"}

@@ -301,3 +301,50 @@ def test_input_files_name_every_file_a_run_reads():
     site = load_site(Path(__file__).resolve().parents[1] / "configs" / "demo.toml")
     assert [p.name for p in site.input_files()] == ["demo.toml", "meter.csv", "runlog.csv",
                                                      "weather.csv"]
+
+
+# --- Baseload forms (issue 10) -------------------------------------------------------------
+
+def test_baseload_form_defaults_to_auto_and_can_be_pinned(tmp_path):
+    eq = '\n[[equipment]]\nid = "M-1"\ndraw_kw = 5\n'
+    site = load_site(_write(tmp_path, SITE_HEAD + eq))
+    assert site.baseload.form == "auto"
+    site = load_site(_write(tmp_path, SITE_HEAD + '\n[baseload]\nprofile = "occupied"\n'
+                            'occupied = ["Mon-Fri 07:00-19:00"]\nform = "occupied-edges+level"\n'
+                            + eq))
+    assert site.baseload.form == "occupied-edges+level"
+
+
+def test_baseload_form_must_be_known_and_fit_the_profile(tmp_path):
+    eq = '\n[[equipment]]\nid = "M-1"\ndraw_kw = 5\n'
+    with pytest.raises(ConfigError) as err:
+        load_site(_write(tmp_path, SITE_HEAD + '\n[baseload]\nform = "wobbly"\n' + eq))
+    assert "[baseload] form = 'wobbly': expected one of auto, constant," in str(err.value)
+    with pytest.raises(ConfigError) as err:
+        load_site(_write(tmp_path, SITE_HEAD + '\n[baseload]\nform = "occupied+level"\n' + eq))
+    assert str(err.value).endswith("[baseload] form = 'occupied+level': the occupied and edges "
+                                   'forms need profile = "occupied" and its spells')
+
+
+def test_hour_of_week_accepts_closed_dates_which_get_their_own_day_profile(tmp_path):
+    import datetime as dt
+
+    import numpy as np
+    import polars as pl
+
+    from disagg.fit.align import baseload_columns
+
+    site = load_site(_write(tmp_path, SITE_HEAD + '\n[baseload]\nprofile = "hour-of-week"\n'
+                            'closed = ["2025-12-25"]\n\n[[equipment]]\nid = "M-1"\ndraw_kw = 5\n'))
+    assert site.baseload.closed == (dt.date(2025, 12, 25),)
+    start = pl.datetime_range(dt.datetime(2025, 12, 24, 6), dt.datetime(2025, 12, 26, 5),
+                              "1h", eager=True, time_zone="UTC")
+    ns = start.dt.epoch("ns").to_numpy()
+    cols, names = baseload_columns(site.baseload, site.timezone, start, ns, ns + 3600 * 10**9)
+    assert cols.shape[1] == 168 + 24 and names[168] == "baseload_closed_h00_kw"
+    local = start.dt.convert_time_zone(site.timezone)
+    on_closed = (local.dt.date() == dt.date(2025, 12, 25)).to_numpy()
+    # Each hour is in exactly one column; the closed day's hours only in the closed columns.
+    assert np.all(cols.sum(axis=1) == 1.0)
+    assert np.all(cols[on_closed, :168] == 0) and np.all(cols[~on_closed, 168:] == 0)
+    assert cols[on_closed, 168:].sum() == on_closed.sum() == 24

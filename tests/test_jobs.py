@@ -112,3 +112,32 @@ def test_buildings_with_a_site_toml_each_keep_their_own_history(tmp_path):
     assert [o.status for o in result.outcomes] == ["ok", "ok"], [o.error for o in result.outcomes]
     stored = sorted(p.name for p in (store / "kind=breakdown").iterdir())
     assert stored == ["site=north", "site=south"]
+
+
+def test_a_rerun_without_the_report_removes_the_earlier_report(tmp_path):
+    # report.html of an earlier run would describe other results than the new breakdown.csv.
+    toml = write_site_files(tmp_path, "plant", seed=3)
+    out = tmp_path / "out"
+    first = run_breakdown(BreakdownOptions(toml, out, report=True, xlsx=True))
+    assert {p.name for p in first.paths} >= {"report.html", "breakdown.xlsx"}
+    again = run_breakdown(BreakdownOptions(toml, out, confidence=0.9, xlsx=True))
+    assert sorted(p.name for p in out.iterdir()) == [
+        "breakdown.csv", "breakdown.parquet", "breakdown.xlsx", "fit.json"]
+    assert again.notes == [f"removed report.html of an earlier run from {out}: it described "
+                           "other results (add --report to write a new one)"]
+
+
+def test_the_breakdown_files_hold_no_negative_zero(tmp_path):
+    toml = write_site_files(tmp_path, "plant", seed=3)
+    run_breakdown(BreakdownOptions(toml, tmp_path / "out"))
+    text = (tmp_path / "out" / "breakdown.csv").read_text()
+    assert ",-0.0" not in text and ",-0," not in text
+
+
+def test_an_out_that_is_a_file_is_refused_before_reading(tmp_path):
+    target = tmp_path / "results"
+    target.write_text("not a folder\n")
+    r = runner.invoke(app, ["breakdown", str(tmp_path / "missing.toml"), "--out", str(target)])
+    assert r.exit_code == 1
+    assert r.stderr == (f"Error: --out {target}: is a file, not a folder; give a folder for "
+                        "the result files\n")

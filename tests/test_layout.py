@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import ast
 import importlib
+import importlib.util
 import os
 import subprocess
 import sys
@@ -49,8 +50,12 @@ def import_graph() -> dict[str, set[str]]:
         for node in ast.walk(tree):
             if getattr(node, "lineno", None) in skip:
                 continue
-            if isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
-                targets = [node.module] + [f"{node.module}.{a.name}" for a in node.names]
+            if isinstance(node, ast.ImportFrom):
+                base = node.module or ""
+                if node.level:  # a relative import, resolved against this module's package
+                    package = mod if path.name == "__init__.py" else mod.rpartition(".")[0]
+                    base = importlib.util.resolve_name("." * node.level + base, package)
+                targets = [base] + [f"{base}.{a.name}" for a in node.names]
             elif isinstance(node, ast.Import):
                 targets = [a.name for a in node.names]
             else:
@@ -106,6 +111,19 @@ def test_the_graph_reader_sees_a_known_edge():
     graph = import_graph()
     assert "disagg.inputs.config" in graph["disagg.fit.align"]
     assert "disagg.jobs.site" in graph["disagg.jobs.batch"]
+
+
+def test_a_relative_upward_import_is_seen(tmp_path, monkeypatch):
+    # The reader resolves relative imports too: a copy of the package with one added
+    # relative upward import must show that edge.
+    import shutil
+
+    copy = tmp_path / "disagg"
+    shutil.copytree(PACKAGE, copy)
+    align = copy / "fit" / "align.py"
+    align.write_text(align.read_text() + "\n\ndef _f():\n    from ..present import terminal\n")
+    monkeypatch.setattr(sys.modules[__name__], "PACKAGE", copy)
+    assert "disagg.present.terminal" in import_graph()["disagg.fit.align"]
 
 
 def test_every_module_imports():

@@ -106,7 +106,9 @@ def _rss(X: np.ndarray, y: np.ndarray) -> float:
     References:
         Lawson & Hanson (1974), Solving Least Squares Problems, ch. 23 (scipy.optimize.nnls).
     """
-    from scipy.optimize import nnls  # imported here: the breakdown's quick test needs no scipy
+    from scipy.optimize import (
+        nnls,  # imported here: the breakdown's quick test needs no scipy
+    )
 
     _, rnorm = nnls(X, y)
     return float(rnorm) ** 2

@@ -33,12 +33,26 @@ from scipy.special import ndtri
 
 from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
 from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
-from disagg.analyses.track import (EWMA_L, MU_MAX, PER_WEIGHT_DELTA, ewma_alarms, nlms,
-                                   recent_levels, scales_for_memory,
-                                   step_for_rates, weight_covariance)
+from disagg.analyses.track import (
+    EWMA_L,
+    MU_MAX,
+    PER_WEIGHT_DELTA,
+    ewma_alarms,
+    nlms,
+    recent_levels,
+    scales_for_memory,
+    step_for_rates,
+    weight_covariance,
+)
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import Aligned, baseload_columns
-from disagg.fit.estimate import Estimates, degrees, estimate_draws, weather_columns, weather_specs
+from disagg.fit.estimate import (
+    Estimates,
+    degrees,
+    estimate_draws,
+    weather_columns,
+    weather_specs,
+)
 from disagg.fit.select import Form
 from disagg.fit.solvers import quantile
 from disagg.inputs.config import SiteConfig

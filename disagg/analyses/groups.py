@@ -13,8 +13,8 @@ from __future__ import annotations
 import dataclasses
 
 from disagg.fit.align import Aligned, frame_baseload
-from disagg.inputs.config import Prior, SiteConfig
 from disagg.fit.estimate import inseparable
+from disagg.inputs.config import Prior, SiteConfig
 
 
 def inseparable_groups(site: SiteConfig, aligned: Aligned) -> list[list[str]]:

@@ -448,7 +448,11 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
         "fit_quality": quality,
         "intervals": aligned.counts,
         "unknown_intervals_by_equipment": aligned.unknown_by_equipment,
-        "residual_sd_kwh": math.sqrt(est.fit.sigma2),
+        # With the wandering level the fit's sigma^2 is of the whitened differences [kW^2]:
+        # state the interval residuals' sd [kWh] instead (n - fitted coefficients).
+        "residual_sd_kwh": (math.sqrt(est.fit.sigma2) if est.form is None or not est.form.form.level
+                            else math.sqrt(float(np.sum((est.y - est.fitted) ** 2))
+                                           / max(len(est.y) - len(est.design_coef), 1))),
         "warnings": aligned.notes + est.warnings,
         "caution": CAUTION,
     }

@@ -18,8 +18,8 @@ from disagg.fit.align import (
     NS_PER_H,
     Aligned,
     baseload_columns,
-    frame_arrays,
     edge_columns,
+    frame_arrays,
     frame_baseload,
 )
 from disagg.fit.select import (
@@ -75,8 +75,8 @@ SIMPLER = {"constant": (), "occupied": ("constant",), "hour-of-week": ("occupied
 FORM_SENSITIVE = 0.10
 HOW_LEVELS = 168
 # Rows above which the forms are compared on a sample of whole weeks (choose_form): about
-# 13 weeks of 15-minute data. Project choice for speed, no outside source.
-COMPARE_MAX_ROWS = 9000
+# 9 weeks of 15-minute data. Project choice for speed, no outside source.
+COMPARE_MAX_ROWS = 6000
 # A load with at least this share of its switching within SCHEDULE_EDGE_MIN minutes of the
 # declared schedule's edges (and at least SCHEDULE_EDGE_MIN_SWITCHES switches) is flagged
 # schedule-edge. Common practice, no source.
@@ -581,15 +581,16 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     chosen = next(sc for sc in choice.scores if sc.form.name == choice.form.name)
     form_moves: dict[int, list[str]] = {}
     edge_moves: dict[int, str] = {}
+    credible = choice.credible()
     for c in range(k):
         spread2 = sum(sc.weight * (sc.draws_kw[c] - chosen.draws_kw[c]) ** 2
-                      for sc in choice.credible() if sc is not chosen)
+                      for sc in credible if sc is not chosen)
         if spread2 > (NUMERICAL_TOL * max(abs(coef[c]), 1.0)) ** 2:
             extra = q_hac * np.sqrt(spread2)
             low[c] = coef[c] - np.hypot(coef[c] - low[c], extra)
             high[c] = coef[c] + np.hypot(high[c] - coef[c], extra)
             widened[c] = True
-        for sc in choice.credible():
+        for sc in credible:
             if sc is chosen:
                 continue
             d = abs(sc.draws_kw[c] - chosen.draws_kw[c])
@@ -770,22 +771,23 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
         return tau2
     _, wfirst = np.unique(week, return_index=True)
     wfirst = np.sort(wfirst)
-    hh = np.add.reduceat(H * H, wfirst, axis=0)
-    hu = H * u[:, None]
     _, dfirst = np.unique(days, return_index=True)
     dfirst = np.sort(dfirst)
-    dsum = np.add.reduceat(hu, dfirst, axis=0)  # per day
     day_week = week[dfirst]
     _, dw = np.unique(day_week, return_inverse=True)
-    var_num = np.zeros((len(wfirst), k))
-    np.add.at(var_num, dw.reshape(-1), dsum**2)
-    run = np.add.reduceat(H, wfirst, axis=0)
-    for j in range(k):
-        ok = (run[:, j] >= 1.0) & (hh[:, j] > 0) & (var_num[:, j] > 0)
+    dw = dw.reshape(-1)
+    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
+        h = H[:, j]
+        hu = h * u
+        hh = np.add.reduceat(h * h, wfirst)
+        run = np.add.reduceat(h, wfirst)
+        var_num = np.bincount(dw, weights=np.add.reduceat(hu, dfirst) ** 2,
+                              minlength=len(wfirst))
+        ok = (run >= 1.0) & (hh > 0) & (var_num > 0)
         if ok.sum() < 3:
             continue
-        est = b[j] + np.add.reduceat(hu[:, j], wfirst)[ok] / hh[ok, j]
-        var = var_num[ok, j] / hh[ok, j] ** 2
+        est = b[j] + np.add.reduceat(hu, wfirst)[ok] / hh[ok]
+        var = var_num[ok] / hh[ok] ** 2
         w = 1.0 / var
         mean = np.sum(w * est) / np.sum(w)
         Q = float(np.sum(w * (est - mean) ** 2))
@@ -812,10 +814,13 @@ def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSet
         for edge in (spell.start_min, spell.end_min):
             d = np.abs(minute - edge)
             near |= on_day & (np.minimum(d, 1440 - d) <= SCHEDULE_EDGE_MIN)
-    frac = H / interval_h[:, None]
-    switch = np.abs(np.diff(frac, axis=0)) >= 0.5
-    total = switch.sum(axis=0)
-    at_edge = (switch & (near[1:] | near[:-1])[:, None]).sum(axis=0)
+    edge_step = near[1:] | near[:-1]
+    total = np.zeros(k)
+    at_edge = np.zeros(k)
+    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
+        switch = np.abs(np.diff(H[:, j] / interval_h)) >= 0.5
+        total[j] = switch.sum()
+        at_edge[j] = (switch & edge_step).sum()
     return np.where(total >= SCHEDULE_EDGE_MIN_SWITCHES, at_edge / np.maximum(total, 1), 0.0)
 
 

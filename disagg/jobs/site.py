@@ -25,12 +25,13 @@ from disagg.analyses.pipeline import (
     check_range,
     check_site,
 )
-from disagg.errors import ConfigError, DisaggError, InputError
+from disagg.errors import ConfigError, DisaggError, InputError, OutputError
 from disagg.inputs.config import check_regular_file, load_site, resolve_path
 from disagg.inputs.vee import check_on_duplicate
 from disagg.present import history as hist
 from disagg.present import terminal
 from disagg.present.outputs import (
+    OPTIONAL_BREAKDOWN_FILES,
     neutralise_csv_text,
     write_atomically,
     write_breakdown,
@@ -39,13 +40,20 @@ from disagg.present.outputs import (
     write_drift,
     write_report,
 )
-from disagg.present.report.sections import _local_span
+from disagg.present.report.sections import local_span
 from disagg.progress import Progress
 
 if TYPE_CHECKING:
     from disagg.analyses.drift import DriftResult
 
 Period = tuple[dt.date, dt.date]
+
+
+def check_out_folder(out: Path) -> None:
+    """Raise OutputError, before any reading or fitting, when --out names an existing file."""
+    if Path(out).exists() and not Path(out).is_dir():
+        raise OutputError(f"--out {out}: is a file, not a folder; give a folder for the "
+                          "result files")
 
 
 @dataclass
@@ -88,7 +96,7 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
 
     if not (math.isfinite(memory_days) and memory_days > 0):
         raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
-    first, last = _local_span(result)
+    first, last = local_span(result)
     span_days = (dt.date.fromisoformat(last) - dt.date.fromisoformat(first)).days + 1
     if reference is None and span_days < DEFAULT_REFERENCE_DAYS + MIN_TRACKED_DAYS:
         return None, (f"Drift is left out: the data cover {span_days} days, and tracking "
@@ -143,6 +151,7 @@ class BreakdownOptions:
     drift_reference: Period | None = None
 
     def __post_init__(self) -> None:
+        check_out_folder(self.out)
         check_range(self.date_from, self.date_to)
         check_confidence(self.confidence)
         if self.log_offset_min is not None:
@@ -176,10 +185,15 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     folder = result.site.history or opts.history
     if folder is not None:
         hist.check_folder(folder)  # a bad history folder fails before any output
+    written = {"breakdown.xlsx": opts.xlsx, "report.html": html is not None}
+    stale = [n for n in OPTIONAL_BREAKDOWN_FILES
+             if not written[n] and (Path(opts.out) / n).is_file()]
     paths = write_breakdown(result, opts.out, xlsx=opts.xlsx, report_html=html)
     if drift is not None:
         paths += write_drift(drift, opts.out, result.site.input_files())
-    notes: list[str] = []
+    notes = [f"removed {n} of an earlier run from {opts.out}: it described other results "
+             f"(add --{'xlsx' if n.endswith('.xlsx') else 'report'} to write a new one)"
+             for n in stale]
     if folder is not None:
         with hist.outputs_already_written(paths):
             stored = hist.store_breakdown(folder, result, opts.date_from, opts.date_to)
@@ -223,6 +237,7 @@ class DemoOptions:
     xlsx: bool = False
 
     def __post_init__(self) -> None:
+        check_out_folder(self.out)
         check_confidence(self.confidence)
 
 
@@ -256,6 +271,7 @@ class DriftOptions:
     min_reference_run_h: float = 48.0  # run-hours a load's own reference period must hold
 
     def __post_init__(self) -> None:
+        check_out_folder(self.out)
         check_range(self.date_from, self.date_to)
         if self.step is None and not (math.isfinite(self.memory_days) and self.memory_days > 0):
             raise ConfigError(f"--memory {self.memory_days:g}: expected a number of days above 0")
@@ -312,6 +328,9 @@ class CompareOptions:
     min_change: float = 0.05
     log_offset_min: float | None = None  # None: the site file's, else 0
     from_history: bool = False
+
+    def __post_init__(self) -> None:
+        check_out_folder(self.out)
 
 
 def run_compare(opts: CompareOptions) -> Run:
@@ -407,6 +426,7 @@ class ReportOptions:
     drift: bool = True
 
     def __post_init__(self) -> None:
+        check_out_folder(self.out)
         check_range(self.date_from, self.date_to)
         check_confidence(self.confidence)
         if self.log_offset_min is not None:

@@ -76,9 +76,13 @@ def _alive(pid: int) -> bool:
     return True
 
 
-def _place(staging: Path, moves: list[tuple[str, str]]) -> None:
+def _place(staging: Path, moves: list[tuple[str | None, str]]) -> None:
     """The moves of a journal still to be done (a file already moved is skipped)."""
     for name, target in moves:
+        if name is None:  # a file of the set that the new set does not have
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(target)
+            continue
         src = staging / name
         if src.exists():
             Path(target).parent.mkdir(parents=True, exist_ok=True)
@@ -101,7 +105,7 @@ def recover(root: Path) -> None:
         with contextlib.suppress(OSError, ValueError, TypeError):
             if journal.is_file():
                 moves = json.loads(journal.read_text(encoding="utf-8"))["moves"]
-                _place(entry, [(str(n), str(t)) for n, t in moves])
+                _place(entry, [(None if n is None else str(n), str(t)) for n, t in moves])
         shutil.rmtree(entry, ignore_errors=True)
 
 
@@ -155,13 +159,14 @@ def _fsync_write(path: Path, text: str) -> None:
         os.fsync(f.fileno())
 
 
-def commit(staging_dir: Path, moves: list[tuple[str, Path]]) -> None:
+def commit(staging_dir: Path, moves: list[tuple[str | None, Path]]) -> None:
     """Put the staged files in place as one set (steps 2 to 4 of the module docstring).
 
     Args:
         staging_dir: the folder from :func:`staging`, holding every staged file.
         moves: (file name inside staging_dir, target path) pairs; targets on the same file
-            system, their folders created when missing.
+            system, their folders created when missing. A name None removes the target: a
+            file of the previous set that the new set does not have.
 
     Raises:
         OSError: a backup or a rename failed; the old files are all in place again.
@@ -183,6 +188,11 @@ def commit(staging_dir: Path, moves: list[tuple[str, Path]]) -> None:
         try:
             _step("committed")
             for i, (name, target) in enumerate(moves):
+                if name is None:
+                    with contextlib.suppress(FileNotFoundError):
+                        os.unlink(target)
+                    placed.append(i)
+                    continue
                 Path(target).parent.mkdir(parents=True, exist_ok=True)
                 os.replace(staging_dir / name, target)
                 placed.append(i)
@@ -193,7 +203,7 @@ def commit(staging_dir: Path, moves: list[tuple[str, Path]]) -> None:
                 with contextlib.suppress(OSError):
                     if i in backups:
                         os.replace(backups[i], target)
-                    else:
+                    elif moves[i][0] is not None:
                         os.unlink(target)
             with contextlib.suppress(OSError):
                 journal.unlink()

@@ -16,6 +16,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 import polars as pl
+import polars.selectors as cs
 
 from disagg.analyses.compare import CompareResult
 from disagg.analyses.drift import DriftResult
@@ -47,7 +48,7 @@ def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
 
 
 def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
-                     inputs: list[Path]) -> list[Path]:
+                     inputs: list[Path], remove: tuple[str, ...] = ()) -> list[Path]:
     """Write several files into out_dir as one set: all of them, or none.
 
     Every file is first written in full into a hidden staging folder inside out_dir; then
@@ -61,6 +62,9 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         out_dir: destination folder (created if missing).
         files: file name -> function writing that file at the given path.
         inputs: the run's input files, which must never be overwritten.
+        remove: names of files that belong to this kind of set but that this run does not
+            write (an earlier run's report.html when this one has none): removed as part of
+            the same commit, so the folder never mixes two runs' files.
 
     Returns:
         The paths written.
@@ -78,6 +82,10 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         if t.is_dir():
             raise OutputError(f"{t}: is a folder, so the file {t.name} cannot be written there; "
                               "move the folder or choose another --out")
+    # An earlier run's file of this kind of set that this run does not write (never an input,
+    # never a folder).
+    stale = [n for n in remove if n not in files and (out_dir / n).is_file()
+             and _resolved(out_dir / n) not in resolved_inputs]
     created = _make_folder(out_dir)
     try:
         tmp = commit.staging(out_dir)
@@ -88,7 +96,8 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         for name, write in files.items():
             write(tmp / name)
         commit._step("staged")
-        commit.commit(tmp, [(name, out_dir / name) for name in files])
+        commit.commit(tmp, [(name, out_dir / name) for name in files]
+                      + [(None, out_dir / name) for name in stale])
     except OSError as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         _remove_if_created(created)
@@ -181,8 +190,11 @@ def to_json(data: dict) -> str:
 def write_breakdown(result: BreakdownResult, out_dir: Path, *, xlsx: bool = False,
                     report_html: str | None = None) -> list[Path]:
     """Write breakdown.csv, breakdown.parquet and fit.json into out_dir, all at once; with
-    xlsx also breakdown.xlsx (see write_workbook), with report_html also report.html."""
-    table = result.breakdown
+    xlsx also breakdown.xlsx (see write_workbook), with report_html also report.html. An
+    earlier run's breakdown.xlsx or report.html that this run does not write is removed in the
+    same commit (OPTIONAL_BREAKDOWN_FILES), so the folder holds one run's results."""
+    # -0.0 (a difference that rounds to nothing) is written as 0.
+    table = result.breakdown.with_columns(cs.float() + 0.0)
     site = result.site
     files = {
         "breakdown.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
@@ -193,7 +205,12 @@ def write_breakdown(result: BreakdownResult, out_dir: Path, *, xlsx: bool = Fals
         files["breakdown.xlsx"] = lambda p: write_workbook(workbook_tables(result), p)
     if report_html is not None:
         files["report.html"] = lambda p: p.write_text(report_html, encoding="utf-8")
-    return write_atomically(out_dir, files, site.input_files())
+    return write_atomically(out_dir, files, site.input_files(),
+                            remove=OPTIONAL_BREAKDOWN_FILES)
+
+
+# Files a breakdown writes only when asked (--xlsx, --report).
+OPTIONAL_BREAKDOWN_FILES = ("breakdown.xlsx", "report.html")
 
 
 # Unit of each breakdown column, shown in spreadsheet headers as "name [unit]".

@@ -16,7 +16,6 @@ from disagg.inputs.readers.tables import (
     require_columns,
 )
 
-
 # Beyond any outdoor temperature recorded (-89.2 degC and 56.7 degC, the WMO's world
 # records, from memory), with a wide margin: a value outside is a sensor fault or a typo.
 MIN_OUTDOOR_C, MAX_OUTDOOR_C = -100.0, 100.0

@@ -34,12 +34,12 @@ from disagg.present.report.sections import (  # noqa: F401 - re-exported
     _fit_section,
     _glance,
     _header,
-    _local_span,
     _months,
     _priors_section,
     _summary,
     from_celsius,
     interval_counts,
+    local_span,
 )
 from disagg.present.report.styles import CSS, DRIFT_PANELS_PER_CHART
 

@@ -68,7 +68,7 @@ def _range_rows(table: pl.DataFrame, names: list[str], total_kwh: float) -> list
     return rows
 
 
-def _local_span(result: BreakdownResult) -> tuple[str, str]:
+def local_span(result: BreakdownResult) -> tuple[str, str]:
     tz = result.site.timezone
     f = result.estimates.frame
     first = f["start_utc"].min().astimezone(_zone(tz)).date()
@@ -306,7 +306,7 @@ def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[
 
 
 def _header(result: BreakdownResult, periods: list[str]) -> str:
-    first, last = _local_span(result)
+    first, last = local_span(result)
     fit = result.fit
     c = fit.get("intervals", {})
     months = (f"{len(periods)} month{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}"
