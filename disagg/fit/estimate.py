@@ -52,6 +52,10 @@ INSEPARABLE_R2 = INSEPARABLE_R**2
 PRIOR_DRIVEN_WEIGHT = 0.5
 # An interval that the stability checks widened by at least this factor is unstable.
 UNSTABLE_WIDENING = 1.25
+# ... and only when the widened interval matters: its half-width at least this share of the
+# draw (common practice, no source). A narrower interval is still widened, but not flagged:
+# +-0.1 % of a chiller's draw sends nobody to check the schedule.
+UNSTABLE_MIN_HALF_SHARE = 0.02
 # "Weak" prior for equipment and baseload columns without one: mean 0, sd 10 x the peak
 # metered demand. It only keeps the solve well posed; prior_weight reports when it mattered.
 WEAK_SD_FACTOR = 10.0
@@ -650,7 +654,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                 warnings.append(f"{t.id}: the data cannot determine its draw and it has no "
                                 "prior; its kW is not meaningful")
         grew = (high[c] - low[c]) - UNSTABLE_WIDENING * width_hac[c]
-        if widened[c] and grew > NUMERICAL_TOL * max(abs(coef[c]), 1.0):
+        if (widened[c] and grew > NUMERICAL_TOL * max(abs(coef[c]), 1.0)
+                and (high[c] - low[c]) / 2.0 >= UNSTABLE_MIN_HALF_SHARE * abs(coef[c])):
             t.flags.append("unstable")
             at = " at its balance temperature" if c in wspecs else ""
             why = [f"{coef[c]:.3g} kW{at} with the {choice.form.name} baseload"]

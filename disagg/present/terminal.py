@@ -85,6 +85,10 @@ def breakdown_summary(result: BreakdownResult) -> str:
                      f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {cost}{flags}")
     lines.append("flags: whole-range fit; each month's are in breakdown.csv. baseload and "
                  "unexplained run h: interval hours.")
+    lines.append("unexplained: metered minus everything fitted; about 0 kWh whenever a month "
+                 "is fitted on its own data (its baseload takes the mean), so judge the fit by "
+                 "CV(RMSE) below; its cost is that misfit priced interval by interval and in the "
+                 "month's peak interval.")
     if any_variable:
         lines.append("run h of variable equipment: equivalent full-load hours "
                      "(integral of status ** exponent).")
