@@ -2,7 +2,9 @@
 
 All data here is invented (tests/synthetic.py). The stable range 0 < mu < 2 of normalized LMS
 is from docs/references.md section 4 (vendor DSP documentation [read]; Haykin, Adaptive Filter
-Theory [memory]); the alarm rule and its L = 3 are in tests/test_track.py.
+Theory [memory]); the EWMA rule is in tests/test_track.py (drift reads it on the lag-free
+recent level with L = Phi^-1(1 - 0.002 / (2 x 365 / memory)), at least 3). tests/synthetic_year.py
+builds the office year with weather, an interlocked chiller and pump and a seasonal chiller.
 """
 
 from __future__ import annotations
@@ -36,7 +38,8 @@ MAX_DELAY_DAYS = 30
 FALSE_ALARM_SEEDS = range(30)
 # Stationary 240-day buildings, measured on 2026-12-01 over these 30 seeds: 0 of 30 runs and
 # 0 of 150 load-runs with any alarm (bench/drift.py, seeds 0-99: 0 of 100 runs, 0 of 500
-# load-runs). With 0 of 30 observed, the false-alarm rate per run is below 10 % with 95 %
+# load-runs); again 0 of 30 on 2026-12-04 with the per-weight tracker and the windowed
+# check. With 0 of 30 observed, the false-alarm rate per run is below 10 % with 95 %
 # confidence (rule of three); one run is allowed so that the bound is not the measurement.
 MAX_FALSE_ALARM_RUNS = 1
 THRESHOLD = 0.10
@@ -291,3 +294,25 @@ def test_a_step_is_alarmed_on_its_load_and_not_on_the_pump_that_switches_with_it
         first = _first_alarms(drift_aligned(s.site, s.aligned))
         assert set(first) == {"CH-1"}, (seed, first)
         assert 0 < (first["CH-1"] - STEP_ON).days <= MAX_DELAY_DAYS
+
+
+def test_differences_skip_gaps_and_continue_from_the_previous_run():
+    from disagg.analyses.drift import differences
+    t0 = dt.datetime(2025, 1, 1, tzinfo=dt.UTC)
+    starts = [t0 + dt.timedelta(minutes=15 * i) for i in (0, 1, 2, 5, 6)]  # a gap after 2
+    frame = pl.DataFrame({"start_utc": starts,
+                          "end_utc": [s + dt.timedelta(minutes=15) for s in starts]})
+    X = np.array([[0.25, 1.0], [0.0, 1.0], [0.25, 1.0], [0.25, 1.0], [0.0, 1.0]])
+    y = np.array([10.0, 4.0, 9.0, 11.0, 5.0])
+    dX, dy = differences(frame, X, y, None)
+    np.testing.assert_array_equal(dX, [[0, 0], [-0.25, 0], [0.25, 0], [0, 0], [-0.25, 0]])
+    np.testing.assert_array_equal(dy, [0.0, -6.0, 5.0, 0.0, -6.0])
+    # The first row continues from the previous run's last interval when it is adjacent.
+    prev = {"end_utc": starts[0].isoformat(), "x": [0.0, 1.0], "y": 3.0}
+    dX2, dy2 = differences(frame, X, y, prev)
+    np.testing.assert_array_equal(dX2[0], [0.25, 0.0])
+    assert dy2[0] == 7.0
+    # Not adjacent: no difference across the gap.
+    far = {"end_utc": (t0 - dt.timedelta(hours=1)).isoformat(), "x": [0.0, 1.0], "y": 3.0}
+    dX3, dy3 = differences(frame, X, y, far)
+    assert dy3[0] == 0.0 and not dX3[0].any()

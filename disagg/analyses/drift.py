@@ -19,6 +19,7 @@ A saved state lets next month's export continue exactly where this one stopped.
 
 from __future__ import annotations
 
+import base64
 import dataclasses
 import datetime as dt
 import math
@@ -385,7 +386,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         else:
             mu = step
         delta = PER_WEIGHT_DELTA
-        scales, tau_all = scales_for_memory(X, memory, mu, row_sets, delta)
+        # The loads' (and their weather slopes') memories are solved for; the baseload
+        # levels keep the unnormalized start (their memory approximate).
+        calibrate = np.arange(X.shape[1]) < k + len(specs)
+        scales, tau_all = scales_for_memory(X, memory, mu, row_sets, delta, calibrate)
         tau_intervals = tau_all[:k]
         # Band: the steady-state standard deviation of each tracked weight from the
         # independence theory of LMS (track.weight_covariance), over its own reference
@@ -426,6 +430,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         first_alarm: dict[str, str] = {}
         tail: list[list[float]] = []
         stats_tail: list = []
+        min_run_h = min_reference_run_h
     else:
         _check_state(state, site)
         ids, members, flags = state["ids"], state["members"], state["flags"]
@@ -443,9 +448,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         sd = np.array(state["sd_kw"])
         tau_intervals = np.array(state["tau_intervals"], dtype=float)
         tail = state["daily_tail"]
+        min_run_h = float(state.get("min_reference_run_h", MIN_REFERENCE_RUN_H))
         ls_factor = np.array(state["ls_factor"], dtype=float)
-        stats_tail = [(np.array(S_), np.array(b_), c_, n_)
-                      for S_, b_, c_, n_ in state["day_stats_tail"]]
+        stats_tail = [_unpack_day(item, k_all=len(state["weights"]))
+                      for item in state["day_stats_tail"]]
         k = len(ids)
         later = (aligned.frame["start_utc"] >= last_end).to_numpy()
         aligned = dataclasses.replace(aligned, use=aligned.use & later)
@@ -491,7 +497,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     sd_recent_all = sd[None, :] * factor
     sd_alarm = np.sqrt(sd_recent_all**2 + ref_se[None, :] ** 2)
     day_start = np.r_[0, last_of_day[:-1] + 1]
-    day_stats = [(X[a:b].T @ X[a:b], X[a:b].T @ y[a:b], float(y[a:b] @ y[a:b]),
+    # X'X made exactly symmetric, so that the state's upper triangle restores it bit for bit.
+    day_stats = [(_symmetric(X[a:b].T @ X[a:b]), X[a:b].T @ y[a:b], float(y[a:b] @ y[a:b]),
                   int(np.count_nonzero(np.any(X[a:b] != 0, axis=1))))
                  for a, b in zip(day_start, last_of_day + 1)]
     window = _WindowCheck(stats_tail + day_stats, k, at_ref, ref_kw, ref_se, ls_factor,
@@ -499,7 +506,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
     rows = []
     alarms = []
     for j, eq in enumerate(ids):
-        why = _not_alarmed(flags[j], ref_run_h[j])
+        why = _not_alarmed(flags[j], ref_run_h[j], min_run_h)
         if why is None:
             alarm = ewma_alarms(recent[:, j], ref_kw[j], sd_alarm[:, j], threshold,
                                 chart_limit(tau_days[j]))
@@ -611,12 +618,39 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "first_alarm": first_alarm,
         "daily_tail": series[-n_tail:].tolist(),
         "ls_factor": ls_factor.tolist(),
-        "day_stats_tail": [[S_.tolist(), b_.tolist(), c_, n_]
-                           for S_, b_, c_, n_ in (stats_tail + day_stats)[-n_tail:]],
+        "min_reference_run_h": min_run_h,
+        "day_stats_tail": [_pack_day(*item) for item in (stats_tail + day_stats)[-n_tail:]],
         "last_row": {"end_utc": frame["end_utc"][-1].isoformat(),
                      "x": X_level[-1].tolist(), "y": float(y_level[-1])},
     }
     return DriftResult(table, summary, new_state)
+
+
+def _symmetric(S: np.ndarray) -> np.ndarray:
+    upper = np.triu(S)
+    return upper + np.triu(upper, 1).T
+
+
+def _pack_day(S: np.ndarray, b: np.ndarray, c: float, n: int) -> list:
+    """One day's sums for the state file: X'X's upper triangle and X'y as base64 of their
+    float64 bytes (exact, and about a third of the size of decimal text)."""
+    upper = S[np.triu_indices(len(S))]
+    return [base64.b64encode(np.ascontiguousarray(upper, "<f8").tobytes()).decode("ascii"),
+            base64.b64encode(np.ascontiguousarray(b, "<f8").tobytes()).decode("ascii"),
+            float(c), int(n)]
+
+
+def _unpack_day(item: list, k_all: int) -> tuple:
+    """_pack_day's inverse for a design of k_all columns."""
+    upper = np.frombuffer(base64.b64decode(item[0]), "<f8")
+    b = np.frombuffer(base64.b64decode(item[1]), "<f8").copy()
+    if len(upper) != k_all * (k_all + 1) // 2 or len(b) != k_all:
+        raise InputError("the --state file's daily sums do not fit its tracked columns; "
+                         "start without --state")
+    S = np.zeros((k_all, k_all))
+    S[np.triu_indices(k_all)] = upper
+    S = S + np.triu(S, 1).T
+    return S, b, float(item[2]), int(item[3])
 
 
 class _WindowCheck:
@@ -708,13 +742,13 @@ def _status(site, aligned, ids, members, groups, no_reference, main_est, run_tot
     return rows
 
 
-def _not_alarmed(flags: list[str], run_h: float) -> str | None:
+def _not_alarmed(flags: list[str], run_h: float,
+                 min_run_h: float = MIN_REFERENCE_RUN_H) -> str | None:
     for f in flags:
         if any(f.startswith(p) for p in NOT_ALARMED_FLAGS):
             return f"its reference draw is {f}: the data cannot pin it down"
-    if run_h < MIN_REFERENCE_RUN_H:
-        return (f"only {run_h:.0f} run-hours in its reference period, under "
-                f"{MIN_REFERENCE_RUN_H:g}")
+    if run_h < min_run_h:
+        return f"only {run_h:.0f} run-hours in its reference period, under {min_run_h:g}"
     return None
 
 

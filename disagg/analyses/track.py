@@ -19,7 +19,8 @@ column forgets at its own requested pace whatever its duty cycle.
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import expm, solve_discrete_lyapunov
+from scipy import sparse
+from scipy.linalg import solve_discrete_lyapunov
 
 # Normalized LMS converges in the mean square for 0 < mu < 2 (Haykin, Adaptive Filter Theory,
 # the normalized LMS chapter, from memory; also stated in vendor DSP documentation, read via
@@ -133,6 +134,10 @@ def column_rates(X: np.ndarray, scale: np.ndarray, mu: float, delta: float,
 # (a measured choice: 40 damped steps bring reachable targets within 0.1 %).
 SCALE_ITERATIONS = 40
 SCALE_DAMPING = 0.8
+# Accept when every column's [exp(-A T)]_jj is within 0.2 % of 1/e in -log terms; rebuild
+# the Gram part of A every few iterations.
+SCALE_TOLERANCE = 2e-3
+REBUILD_EVERY = 4
 # The regularization delta of the per-weight form is 1 (in units of x . D x); the scales d
 # carry the units of the data.
 PER_WEIGHT_DELTA = 1.0
@@ -165,11 +170,13 @@ def mean_update(X: np.ndarray, scale: np.ndarray, mu: float,
 
 def scales_for_memory(X: np.ndarray, memory_intervals: np.ndarray, mu: float,
                       row_sets: list[tuple[np.ndarray, np.ndarray]] | None = None,
-                      delta: float = PER_WEIGHT_DELTA) -> tuple[np.ndarray, np.ndarray]:
+                      delta: float = PER_WEIGHT_DELTA, calibrate: np.ndarray | None = None
+                      ) -> tuple[np.ndarray, np.ndarray]:
     """Per-weight scales d giving each column its own memory at step mu.
 
     The memory of column j is the time its tracked weight takes to cover 1 - 1/e of a step
-    in its own draw, in the mean dynamics of `mean_update`: [exp(-A T_j)]_jj = 1/e. This
+    in its own draw, in the mean dynamics of `mean_update`: [exp(-A T_j)]_jj = 1/e (the
+    diagonal through the eigenvectors of the symmetric D^(1/2) M D^(1/2), A = D M). This
     counts the coupling between columns that run together (the baseload columns share every
     row with every load), which the diagonal alone (the mean gain) leaves out. d is found by
     multiplicative fixed-point steps d_j <- d_j / k_j^0.8 with k_j = -ln [exp(-A T_j)]_jj
@@ -184,6 +191,9 @@ def scales_for_memory(X: np.ndarray, memory_intervals: np.ndarray, mu: float,
             step, 0 < mu < 2; row_sets: (row indices, column indices) pairs: the memory of
             those columns is counted on those rows (e.g. each load's own reference period);
             None: every column on all rows. Columns in no set keep d = 1 / (mu mean x^2).
+        calibrate: (p,) booleans, the columns whose memory is solved for (None: all); the
+            others keep the unnormalized start d_j = delta / (mu T_j mean x_j^2), their
+            memory only approximate (e.g. the 168 hour-of-week baseload levels).
 
     Returns:
         (d, achieved memories [intervals]; inf for a column never excited).
@@ -200,27 +210,65 @@ def scales_for_memory(X: np.ndarray, memory_intervals: np.ndarray, mu: float,
         power[cols] = (sub[:, cols] ** 2).mean(axis=0) if len(r) else 0.0
         owner[cols] = k
     excited = power > 0
+    solve = excited & (np.ones(p, dtype=bool) if calibrate is None
+                       else np.asarray(calibrate, dtype=bool))
     safe_power = np.where(excited, power, 1.0)
     d = np.where(excited, delta / (mu * T * safe_power), delta / (mu * safe_power))
     achieved = np.full(p, np.inf)
-    for _ in range(SCALE_ITERATIONS):
+    # A = D M with M = mu X' diag(g) X / n, g_t = 1 / (delta + x_t . D x_t). g moves little
+    # between iterations (it is about 1 / delta while x . D x is small), so M is rebuilt
+    # every REBUILD_EVERY iterations and always before convergence is accepted; on sparse
+    # rows (differenced data) through a sparse product.
+    subs = [_rows_matrix(X[r]) for r, _ in row_sets]
+    M: dict[int, np.ndarray] = {}
+    fresh = False
+    for it in range(SCALE_ITERATIONS):
+        fresh = it % REBUILD_EVERY == 0
         kappa = np.ones(p)
         for k, (r, cols) in enumerate(row_sets):
             cols = np.asarray(cols)
             cols = cols[excited[cols]]
             if not len(cols):
                 continue
-            A = mean_update(X[r], d, mu, delta)
+            if fresh or k not in M:
+                M[k] = _weighted_gram(subs[k], X[r], d, mu, delta)
+            # A = D M is similar to the symmetric B = D^(1/2) M D^(1/2) through a diagonal
+            # matrix, so exp(-A T) and exp(-B T) have the same diagonal: one eigh serves
+            # every memory.
+            root = np.sqrt(d)
+            lam, V = np.linalg.eigh(root[:, None] * M[k] * root[None, :])
+            V2 = V**2
             for Tj in np.unique(T[cols]):
                 these = cols[T[cols] == Tj]
-                g = np.diag(expm(-A * Tj))[these]
+                g = (V2[these] @ np.exp(-np.maximum(lam, 0.0) * Tj))
                 kappa[these] = -np.log(np.clip(g, 1e-300, 1.0 - 1e-15))
         with np.errstate(divide="ignore"):
             achieved = np.where(excited, T / kappa, np.inf)
-        if np.all(np.abs(kappa[excited] - 1.0) < 1e-3):
-            break
-        d = np.where(excited, d * kappa ** -SCALE_DAMPING, d)
+        if np.all(np.abs(kappa[solve] - 1.0) < SCALE_TOLERANCE):
+            if fresh:
+                break
+            M.clear()  # confirm with g at the current d
+            continue
+        d = np.where(solve, d * kappa ** -SCALE_DAMPING, d)
     return d, achieved
+
+
+def _rows_matrix(X: np.ndarray):
+    """X as a sparse CSR matrix when at most a fifth of it is non-zero, else as it is."""
+    if X.size and np.count_nonzero(X) <= 0.2 * X.size:
+        return sparse.csr_matrix(X)
+    return X
+
+
+def _weighted_gram(Xs, X: np.ndarray, scale: np.ndarray, mu: float,
+                   delta: float) -> np.ndarray:
+    """mu X' diag(g) X / n with g_t = 1 / (delta + x_t . D x_t) (see mean_update)."""
+    n = max(X.shape[0], 1)
+    g = 1.0 / (delta + np.einsum("ij,ij->i", X, X * scale))
+    if sparse.issparse(Xs):
+        G = Xs.multiply(g[:, None]).tocsr()
+        return mu * np.asarray((Xs.T @ G).todense()) / n
+    return mu * (X * g[:, None]).T @ X / n
 
 
 def weight_covariance(X: np.ndarray, scale: np.ndarray, mu: float, autocov: np.ndarray,
