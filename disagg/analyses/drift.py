@@ -45,12 +45,12 @@ from disagg.analyses.track import (
     weight_covariance,
 )
 from disagg.errors import ConfigError, InputError
-from disagg.fit.align import Aligned, baseload_columns
+from disagg.fit.align import Aligned
 from disagg.fit.estimate import (
     Estimates,
     degrees,
+    design,
     estimate_draws,
-    weather_columns,
     weather_specs,
 )
 from disagg.fit.select import Form
@@ -96,20 +96,11 @@ class DriftResult:
 
 
 def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame, np.ndarray, np.ndarray]:
-    """Used intervals, their design rows and energy, in the order estimate_draws uses: term
-    hours (a group's: the mean of its members'), weather slope columns, baseload columns."""
-    use = aligned.use
-    frame = aligned.frame.filter(pl.Series(use))
-    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
-    H = aligned.hours[use]
-    cols = [H[:, [index[m] for m in members]].mean(axis=1) for members in term_members]
-    Hf = np.column_stack(cols) if cols else np.zeros((frame.height, 0))
-    temp = aligned.temp_c[use] if aligned.temp_c is not None else None
-    Wf = weather_columns(Hf, temp, weather_specs(site, term_members))
-    B, _ = baseload_columns(site.baseload, site.timezone, frame["start_utc"],
-                            frame["start_utc"].dt.epoch("ns").to_numpy(),
-                            frame["end_utc"].dt.epoch("ns").to_numpy())
-    return frame, np.column_stack([Hf, Wf, B]), frame["energy_kwh"].to_numpy().astype(float)
+    """Used intervals, their design rows and energy: the breakdown's own design builder
+    (disagg.fit.estimate.design) with the declared profile and no wandering level, in the
+    order estimate_draws uses (term hours, weather slope columns, baseload columns)."""
+    d = design(site, aligned, term_members)
+    return d.frame, d.X, d.y
 
 
 def bartlett_lrv(x: np.ndarray, lags: int) -> float:
@@ -343,7 +334,6 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         ref_kw = np.array([est.kw[i] for est, i, _ in found])
         ref_se = np.array([est.se_kw[i] for est, i, _ in found])
         ref_run_h = np.array([est.hours[:, i].sum() for est, i, _ in found])
-        n_ref = np.array([est.frame.height for est, _, _ in found], dtype=float)
         m_base = main_est.base.shape[1]
         w0 = np.concatenate([
             [est.design_coef[t.column] for est, _, t in found],
