@@ -31,6 +31,9 @@ import tempfile
 import time
 from pathlib import Path
 
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from sitefiles import write_site_toml  # noqa: E402
+
 ROWS = 10_000_000
 N_EQUIPMENT = 20
 TZ = "America/Chicago"
@@ -90,26 +93,8 @@ def write_site(folder: Path, rows: int) -> dict:
     pl.DataFrame({"end": ends.dt.convert_time_zone(TZ).dt.to_string("%Y-%m-%dT%H:%M:%S%:z"),
                   "kwh": np.round(rng.uniform(20.0, 80.0, n_meter), 3)}).write_csv(
         folder / "meter.csv")
-    equipment = "\n".join(f'[[equipment]]\nid = "{eq}"\n' for eq in ids)
-    (folder / "site.toml").write_text(f'''[site]
-name = "Large log bench (invented)"
-timezone = "{TZ}"
-
-[meter]
-file = "meter.csv"
-time_column = "end"
-value_column = "kwh"
-unit = "kWh"
-stamp = "end"
-
-[runlog]
-file = "runlog.csv"
-layout = "events"
-time_column = "time"
-equipment_column = "point"
-state_column = "state"
-
-{equipment}''', encoding="utf-8")
+    write_site_toml(folder / "site.toml", name="Large log bench (invented)", timezone=TZ,
+                    meter_file="meter.csv", runlog_file="runlog.csv", equipment=list(ids))
     return {"span_days": span_s / 86400, "meter_rows": n_meter}
 
 

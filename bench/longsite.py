@@ -23,6 +23,9 @@ import tempfile
 import time
 from pathlib import Path
 
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from sitefiles import write_site_toml  # noqa: E402
+
 TZ = "America/Chicago"
 
 
@@ -64,28 +67,10 @@ def generate(folder: Path, years: int, loads: int, seed: int = 12) -> Path:
     pl.DataFrame({"end": ends.dt.replace_time_zone("UTC").dt.convert_time_zone(TZ)
                   .dt.strftime("%Y-%m-%dT%H:%M:%S%:z"), "kwh": np.round(kwh, 4)}
                  ).write_csv(folder / "meter.csv")
-    eq = "\n".join(f'[[equipment]]\nid = "EQ-{j + 1:02d}"\n' for j in range(loads))
-    toml = folder / "site.toml"
-    toml.write_text(f'''# Synthetic long site (bench/longsite.py); every number is invented.
-[site]
-name = "Long synthetic site"
-timezone = "{TZ}"
-
-[meter]
-file = "meter.csv"
-time_column = "end"
-value_column = "kwh"
-unit = "kWh"
-stamp = "end"
-
-[runlog]
-file = "runlog.csv"
-layout = "events"
-time_column = "time"
-equipment_column = "point"
-state_column = "state"
-
-{eq}''', encoding="utf-8")
+    toml = write_site_toml(
+        folder / "site.toml", name="Long synthetic site", timezone=TZ, meter_file="meter.csv",
+        runlog_file="runlog.csv", equipment=[f"EQ-{j + 1:02d}" for j in range(loads)],
+        header="# Synthetic long site (bench/longsite.py); every number is invented.\n")
     return toml
 
 
