@@ -32,6 +32,20 @@ class Synthetic:
     true_kwh_month: dict[tuple[str, str], float]
 
 
+def aligned_15min(start_utc: pl.Series, energy_kwh: np.ndarray, status: dict[str, np.ndarray],
+                  temp_c: np.ndarray | None = None) -> Aligned:
+    """Every 15-minute interval used, with each load's run-hours (status x 0.25 h) [h]."""
+    n = len(energy_kwh)
+    ids = list(status)
+    frame = pl.DataFrame({"start_utc": start_utc,
+                          "end_utc": start_utc + dt.timedelta(minutes=15),
+                          "energy_kwh": energy_kwh, "interval_h": np.full(n, 0.25)})
+    hours = np.column_stack([status[i] * 0.25 for i in ids])
+    return Aligned(frame, ids, hours, np.ones(n, dtype=bool), 15,
+                   {"intervals": n, "used": n, "absent": 0, "no_reading": 0, "log_unknown": 0},
+                   {i: 0 for i in ids}, temp_c=temp_c)
+
+
 def _cycle(n: int, on: float, off: float, rng: np.random.Generator) -> np.ndarray:
     """On/off spells (in intervals) with geometric lengths."""
     out = np.zeros(n)
@@ -127,13 +141,8 @@ def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_k
         baseload=(BaseloadSettings("constant") if misspecified else
                   BaseloadSettings("occupied", tuple(parse_spell(s) for s in SPELLS), SPELLS)),
         equipment=equipment)
-    frame = pl.DataFrame({"start_utc": start_utc,
-                          "end_utc": start_utc + dt.timedelta(minutes=15),
-                          "energy_kwh": y, "interval_h": np.full(n, 0.25)})
-    hours = np.column_stack([status[i] * 0.25 for i in ids])
-    aligned = Aligned(frame, ids, hours, np.ones(n, dtype=bool), 15,
-                      {"intervals": n, "used": n, "absent": 0, "no_reading": 0, "log_unknown": 0},
-                      {i: 0 for i in ids})
+    aligned = aligned_15min(start_utc, y, status)
+    hours = aligned.hours
     true_kw = {i: float(energy[i].sum() / hours[:, k].sum()) for k, i in enumerate(ids)}
     month = local.dt.strftime("%Y-%m").to_numpy()
     true_month = {(m, i): float(energy[i][month == m].sum()) for m in set(month) for i in ids}
@@ -230,13 +239,8 @@ def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: fl
                                   OFFICE_SPELLS),
         equipment=equipment)
     start_utc = local.dt.convert_time_zone("UTC")
-    frame = pl.DataFrame({"start_utc": start_utc,
-                          "end_utc": start_utc + dt.timedelta(minutes=15),
-                          "energy_kwh": y, "interval_h": np.full(n, 0.25)})
-    hours = np.column_stack([status[i] * 0.25 for i in ids])
-    aligned = Aligned(frame, ids, hours, np.ones(n, dtype=bool), 15,
-                      {"intervals": n, "used": n, "absent": 0, "no_reading": 0, "log_unknown": 0},
-                      {i: 0 for i in ids})
+    aligned = aligned_15min(start_utc, y, status)
+    hours = aligned.hours
     true_kw = {i: float(energy[i].sum() / hours[:, k].sum()) for k, i in enumerate(ids)}
     true_kw["AHU-1+AP-1"] = true_kw["AHU-1"] + true_kw["AP-1"]
     month = local.dt.strftime("%Y-%m").to_numpy()

@@ -25,10 +25,9 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from disagg.fit.align import Aligned
 from disagg.inputs.config import (BaseloadSettings, Equipment, MeterSettings, Prior, RunlogSettings,
                            SiteConfig, WeatherSettings, parse_spell)
-from synthetic import Synthetic, _cycle
+from synthetic import Synthetic, _cycle, aligned_15min
 
 TZ = "America/Chicago"
 SPELLS = ("Mon-Fri 07:00-19:00",)
@@ -121,13 +120,8 @@ def make_year(seed: int, days: int = 365, steps: dict[str, tuple[float, dt.date]
         baseload=BaseloadSettings("occupied", tuple(parse_spell(s) for s in SPELLS), SPELLS),
         equipment=equipment,
         weather=WeatherSettings(Path("/synthetic/weather.csv"), "t", "temp", "C", None))
-    frame = pl.DataFrame({"start_utc": start_utc,
-                          "end_utc": start_utc + dt.timedelta(minutes=15),
-                          "energy_kwh": y, "interval_h": np.full(n, 0.25)})
-    hours = np.column_stack([status[i] * 0.25 for i in ids])
-    aligned = Aligned(frame, ids, hours, np.ones(n, dtype=bool), 15,
-                      {"intervals": n, "used": n, "absent": 0, "no_reading": 0, "log_unknown": 0},
-                      {i: 0 for i in ids}, temp_c=temp)
+    aligned = aligned_15min(start_utc, y, status, temp)
+    hours = aligned.hours
     true_kw = {i: float(energy[i].sum() / max(hours[:, k].sum(), 1e-9))
                for k, i in enumerate(ids)}
     month = local.dt.strftime("%Y-%m").to_numpy()
