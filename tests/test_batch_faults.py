@@ -78,6 +78,17 @@ def test_a_dead_worker_fails_only_its_own_site(tmp_path, monkeypatch):
     assert seen[-1] == ("sites", 6, 6)
 
 
+def _start_batch(tmp_path: Path, out: Path, first_seed: int) -> subprocess.Popen:
+    """`disagg batch` of six 60-day synthetic sites on 2 workers, in its own process group."""
+    sites = tmp_path / "sites"
+    for i in range(6):
+        write_site_files(sites, f"s{i}", first_seed + i, days=60, data_dir=tmp_path / "data")
+    return subprocess.Popen([sys.executable, "-m", "disagg.cli", "batch", str(sites),
+                             "--out", str(out), "--workers", "2", "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            start_new_session=True)
+
+
 def _group(pgid: int) -> list[int]:
     """Live (not zombie) processes of a process group, from /proc."""
     pids = []
@@ -97,14 +108,8 @@ def _group(pgid: int) -> list[int]:
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs Linux /proc")
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL])
 def test_a_killed_batch_leaves_no_process_of_its_group(tmp_path, sig):
-    sites = tmp_path / "sites"
-    for i in range(6):
-        write_site_files(sites, f"s{i}", 40 + i, days=60, data_dir=tmp_path / "data")
     out = tmp_path / "out"
-    proc = subprocess.Popen([sys.executable, "-m", "disagg.cli", "batch", str(sites),
-                             "--out", str(out), "--workers", "2", "--quiet"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            start_new_session=True)
+    proc = _start_batch(tmp_path, out, first_seed=40)
     try:
         deadline = time.monotonic() + 120
         # Wait until the pool is up: the batch, its forkserver and at least one worker.
@@ -149,14 +154,8 @@ def _stat(pid: int) -> tuple[int, str]:
 def test_a_worker_killed_from_outside_costs_no_site(tmp_path):
     # As the out-of-memory killer would: SIGKILL one busy worker of a real batch (forkserver).
     # Its site runs again alone and succeeds, the others on a fresh pool: every site is ok.
-    sites = tmp_path / "sites"
-    for i in range(6):
-        write_site_files(sites, f"s{i}", 50 + i, days=60, data_dir=tmp_path / "data")
     out = tmp_path / "out"
-    proc = subprocess.Popen([sys.executable, "-m", "disagg.cli", "batch", str(sites),
-                             "--out", str(out), "--workers", "2", "--quiet"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            start_new_session=True)
+    proc = _start_batch(tmp_path, out, first_seed=50)
     try:
         deadline = time.monotonic() + 120
         workers: list[int] = []

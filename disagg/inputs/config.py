@@ -707,24 +707,13 @@ def load_site(path: str | Path) -> SiteConfig:
     if form != "auto" and (form.startswith("occupied") or "-edges" in form) and profile != "occupied":
         raise ConfigError(f"{b.where('form')} = {form!r}: the occupied and edges forms need "
                           "profile = \"occupied\" and its spells")
-    spells: list[Spell] = []
-    spell_text: list[str] = []
+    spells: tuple[Spell, ...] = ()
+    spell_text: tuple[str, ...] = ()
     if profile == "occupied":
-        raw = b.get("occupied", list)
-        if not raw:
-            raise ConfigError(f"{b.where('occupied')}: expected at least one spell such as "
-                              "\"Mon-Fri 07:00-19:00\"")
-        for i, s in enumerate(raw):
-            if not isinstance(s, str):
-                raise ConfigError(f"{b.where('occupied')}[{i}] = {s!r}: expected text")
-            try:
-                spells.append(parse_spell(s))
-            except ValueError as exc:
-                raise ConfigError(f"{b.where('occupied')}[{i}] = {s!r}: {exc}") from None
-            spell_text.append(s)
+        spells, spell_text = _spells(b, "occupied", example="Mon-Fri 07:00-19:00")
     closed: list[dt.date] = []
     closed.extend(_dates(b, "closed"))
-    baseload = BaseloadSettings(profile, tuple(spells), tuple(spell_text), tuple(closed), form)
+    baseload = BaseloadSettings(profile, spells, spell_text, tuple(closed), form)
 
     weather = None
     if "weather" in data:
@@ -783,11 +772,13 @@ def _dates(t: _Table, key: str) -> tuple[dt.date, ...]:
     return tuple(out)
 
 
-def _spells(t: _Table, key: str) -> tuple[tuple[Spell, ...], tuple[str, ...]]:
+def _spells(t: _Table, key: str, example: str = "Mon-Fri 12:00-18:00"
+            ) -> tuple[tuple[Spell, ...], tuple[str, ...]]:
+    """A list of weekly spells (baseload occupied hours, tariff periods) and their texts."""
     raw = t.get(key, list)
     if not raw:
         raise ConfigError(f"{t.where(key)}: expected at least one spell such as "
-                          "\"Mon-Fri 12:00-18:00\"")
+                          f"\"{example}\"")
     spells = []
     for i, s in enumerate(raw):
         if not isinstance(s, str):
