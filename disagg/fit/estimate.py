@@ -585,6 +585,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     chosen = next(sc for sc in choice.scores if sc.form.name == choice.form.name)
     form_moves: dict[int, list[str]] = {}
     edge_moves: dict[int, str] = {}
+    step_moves: dict[int, str] = {}
     credible = choice.credible()
     for c in range(k):
         spread2 = sum(sc.weight * (sc.draws_kw[c] - chosen.draws_kw[c]) ** 2
@@ -619,6 +620,23 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                 high[c] = max(high[c], b_e + q_hac * s_e)
                 widened[c] = True
                 moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
+    # A draw whose meter steps at switch-on and at switch-off disagree (switching_steps):
+    # the interval spans both step draws, flag switch-steps.
+    steps = switching_steps(X, y, k, interval_h, priors(B.shape[1]), lower, days[1:])
+    variants["switch steps"] = ({"skipped": "design too large"} if steps is None else {
+        t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
+               "kw_at_switch_off": float(steps.off_kw[t.column]),
+               "se_at_switch_off_kw": float(steps.se_off_kw[t.column]),
+               "z_difference": float(steps.z[t.column])} for t in fitted_terms})
+    for c in range(k) if steps is not None else ():
+        if abs(steps.z[c]) > z_bound and abs(steps.on_kw[c] - steps.off_kw[c]) > half_hac[c]:
+            for b_s, s_s in ((steps.on_kw[c], steps.se_on_kw[c]),
+                             (steps.off_kw[c], steps.se_off_kw[c])):
+                low[c], high[c] = min(low[c], b_s - q_hac * s_s), max(high[c], b_s + q_hac * s_s)
+            widened[c] = True
+            step_moves[c] = (f"{steps.on_kw[c]:.3g} kW where it switches on and "
+                             f"{steps.off_kw[c]:.3g} kW where it switches off")
+            moved.setdefault(c, []).append(f"{step_moves[c]}")
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (arrays["local_date"].astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = y - fitted_of(X, coef, level_kwh)
@@ -679,6 +697,12 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                             "with the baseload changing at those times; its interval "
                             f"{low[c]:.3g}-{high[c]:.3g} kW includes the estimate with the "
                             "baseload's own shape around the edges")
+        if c in step_moves:
+            t.flags.append("switch-steps")
+            warnings.append(f"{t.id}: the meter steps by {step_moves[c]}: something not in "
+                            "the run log tends to start or stop with it (or its logged times "
+                            "are off at one edge); its interval "
+                            f"{low[c]:.3g}-{high[c]:.3g} kW spans both")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
         if c in wspecs:
@@ -800,6 +824,97 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
         if denom > 0:
             tau2[j] = max(0.0, (Q - (ok.sum() - 1)) / denom)
     return tau2
+
+
+# Most cells (rows x columns) of the differenced design the switching-steps check builds;
+# a larger fit skips it and says so in fit.json (project choice for memory, no outside
+# source: 10 million cells are 80 MB; a 15-minute site-year of 50 loads with the 168
+# hour-of-week levels is 9.4 million).
+STEP_CHECK_MAX_CELLS = 10_000_000
+
+
+@dataclass
+class SwitchingSteps:
+    """Each load's draw seen separately in the meter's steps where it switches on and where
+    it switches off (switching_steps).
+
+    on_kw, off_kw, se_on_kw, se_off_kw: (k,) [kW]; z: (k,) (on - off) / its standard error,
+    0 where either draw is prior-driven in the split fit.
+    """
+
+    on_kw: np.ndarray
+    off_kw: np.ndarray
+    se_on_kw: np.ndarray
+    se_off_kw: np.ndarray
+    z: np.ndarray
+
+
+def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Split one run-hours column [h] into a switch-on part and a switch-off part [h] that
+    add up to it: the on part's on-fraction accumulates the rises of the load's on-fraction
+    from one interval to the next, the off part's its falls (so the first differences of
+    the on part are the rises, those of the off part the falls)."""
+    frac = h / interval_h
+    up = np.empty_like(frac)
+    up[0] = frac[0]
+    np.cumsum(np.maximum(np.diff(frac), 0.0), out=up[1:])
+    up[1:] += frac[0]
+    return up * interval_h, (frac - up) * interval_h
+
+
+def switching_steps(X: np.ndarray, y: np.ndarray, k: int, interval_h: np.ndarray,
+                    prior: tuple[np.ndarray, np.ndarray], lower: np.ndarray,
+                    block: np.ndarray) -> SwitchingSteps | None:
+    """Refit on first differences (kW) with each of the first k columns (run-hours) split
+    into its switch-on and switch-off parts (split_switching): each load gets one draw from
+    the meter's steps where it switches on and one from those where it switches off.
+
+    With a right model the two agree. They differ when something unlogged tends to start
+    (or stop) with the load (a coincident load: people who draw hot water also switch on
+    lights), or when the status is clipped or late at one edge (a status sampled once a
+    minute counts a partly-on minute as on or off: errors in the run-hours, Fuller 1987);
+    one draw from all intervals then mixes the coincident energy in, and the data alone
+    cannot tell which step is the load's own. Differencing also removes any slow baseload
+    level, so the check holds for every baseload form.
+
+    Args:
+        X: (n, p) the chosen form's design in kWh and hours, run-hours first; y: (n,) kWh;
+        interval_h: (n,) hours of each interval; prior: (p,) prior means and sds of X's
+        columns; lower: (p,) their lower bounds; block: (n - 1,) non-decreasing block labels
+        of the differenced rows (for the HAC covariance).
+
+    Returns:
+        The two draws per load, or None when the differenced design would exceed
+        STEP_CHECK_MAX_CELLS cells (or there is nothing to check).
+
+    References:
+        Fuller, W. A. (1987). Measurement Error Models. Wiley.
+    """
+    n, p = X.shape
+    if k == 0 or n < 3 or (n - 1) * (p + k) > STEP_CHECK_MAX_CELLS:
+        return None
+    inv_h = 1.0 / interval_h
+    Xd = np.empty((n - 1, p + k))
+    for c in range(k):  # one column at a time: no second copy of the design
+        up, down = split_switching(X[:, c], interval_h)
+        Xd[:, c] = np.diff(up * inv_h)
+        Xd[:, k + c] = np.diff(down * inv_h)
+    for c in range(k, p):
+        Xd[:, k + c] = np.diff(X[:, c] * inv_h)
+    mean, sd = prior
+    f = fit_model(Xd, np.diff(y * inv_h), np.concatenate([mean[:k], mean]),
+                  np.concatenate([sd[:k], sd]), np.concatenate([lower[:k], lower]), block=block)
+    del Xd
+    on, off = f.coef[:k], f.coef[k:2 * k]
+    idx = np.arange(k)
+    var_d = np.maximum(f.cov[idx, idx] + f.cov[k + idx, k + idx] - 2.0 * f.cov[idx, k + idx], 0.0)
+    fitted = (f.prior_weight[:k] < PRIOR_DRIVEN_WEIGHT) & (f.prior_weight[k:2 * k]
+                                                           < PRIOR_DRIVEN_WEIGHT)
+    ok = fitted & (var_d > 0)
+    z = np.zeros(k)
+    z[ok] = (on[ok] - off[ok]) / np.sqrt(var_d[ok])
+    return SwitchingSteps(on.copy(), off.copy(), np.sqrt(np.maximum(f.cov[idx, idx], 0.0)),
+                          np.sqrt(np.maximum(f.cov[k + idx, k + idx], 0.0)), z)
 
 
 def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
