@@ -622,8 +622,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                 moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
     # A draw whose meter steps at switch-on and at switch-off disagree (switching_steps):
     # the interval spans both step draws, flag switch-steps.
-    steps = switching_steps(X, y, k, interval_h, priors(B.shape[1]), lower, days[1:])
-    variants["switch steps"] = ({"skipped": "design too large"} if steps is None else {
+    steps = switching_steps(X, y, k, kx, interval_h, priors(0), days[1:])
+    variants["switch steps"] = ({"skipped": "too few steps"} if steps is None else {
         t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
                "kw_at_switch_off": float(steps.off_kw[t.column]),
                "se_at_switch_off_kw": float(steps.se_off_kw[t.column]),
@@ -826,13 +826,6 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
     return tau2
 
 
-# Most cells (rows x columns) of the differenced design the switching-steps check builds;
-# a larger fit skips it and says so in fit.json (project choice for memory, no outside
-# source: 10 million cells are 80 MB; a 15-minute site-year of 50 loads with the 168
-# hour-of-week levels is 9.4 million).
-STEP_CHECK_MAX_CELLS = 10_000_000
-
-
 @dataclass
 class SwitchingSteps:
     """Each load's draw seen separately in the meter's steps where it switches on and where
@@ -862,9 +855,9 @@ def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, 
     return up * interval_h, (frac - up) * interval_h
 
 
-def switching_steps(X: np.ndarray, y: np.ndarray, k: int, interval_h: np.ndarray,
-                    prior: tuple[np.ndarray, np.ndarray], lower: np.ndarray,
-                    block: np.ndarray) -> SwitchingSteps | None:
+def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: np.ndarray,
+                    prior: tuple[np.ndarray, np.ndarray], block: np.ndarray
+                    ) -> SwitchingSteps | None:
     """Refit on first differences (kW) with each of the first k columns (run-hours) split
     into its switch-on and switch-off parts (split_switching): each load gets one draw from
     the meter's steps where it switches on and one from those where it switches off.
@@ -874,37 +867,46 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, interval_h: np.ndarray
     lights), or when the status is clipped or late at one edge (a status sampled once a
     minute counts a partly-on minute as on or off: errors in the run-hours, Fuller 1987);
     one draw from all intervals then mixes the coincident energy in, and the data alone
-    cannot tell which step is the load's own. Differencing also removes any slow baseload
-    level, so the check holds for every baseload form.
+    cannot tell which step is the load's own. Differencing removes any slow baseload level;
+    the steps where the declared baseload profile itself changes (its columns X[:, kx:]
+    differ from the interval before: an hour of the week, a schedule edge, a closed day) are
+    left out, so the profile drops out of the differenced model and the check holds for
+    every baseload form at the cost of a k-column fit.
 
     Args:
-        X: (n, p) the chosen form's design in kWh and hours, run-hours first; y: (n,) kWh;
-        interval_h: (n,) hours of each interval; prior: (p,) prior means and sds of X's
-        columns; lower: (p,) their lower bounds; block: (n - 1,) non-decreasing block labels
-        of the differenced rows (for the HAC covariance).
+        X: (n, p) the chosen form's design in kWh and hours: run-hours (k columns), weather
+            slope columns (up to kx), then the baseload profile; y: (n,) kWh;
+        interval_h: (n,) hours of each interval; prior: (>= kx,) prior means and sds of X's
+        first kx columns; block: (n - 1,) non-decreasing block labels of the differenced
+        rows (for the HAC covariance).
 
     Returns:
-        The two draws per load, or None when the differenced design would exceed
-        STEP_CHECK_MAX_CELLS cells (or there is nothing to check).
+        The two draws per load, or None when there is nothing to check or fewer than
+        MIN_ROWS_PER_COLUMN steps per column are left.
 
     References:
         Fuller, W. A. (1987). Measurement Error Models. Wiley.
     """
     n, p = X.shape
-    if k == 0 or n < 3 or (n - 1) * (p + k) > STEP_CHECK_MAX_CELLS:
+    if k == 0 or n < 3:
         return None
     inv_h = 1.0 / interval_h
-    Xd = np.empty((n - 1, p + k))
-    for c in range(k):  # one column at a time: no second copy of the design
+    keep = np.ones(n - 1, dtype=bool)
+    for c in range(kx, p):  # one column at a time: no n x p temporary
+        keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
+    m = k + kx
+    if keep.sum() < MIN_ROWS_PER_COLUMN * m:
+        return None
+    Xd = np.empty((int(keep.sum()), m))
+    for c in range(k):
         up, down = split_switching(X[:, c], interval_h)
-        Xd[:, c] = np.diff(up * inv_h)
-        Xd[:, k + c] = np.diff(down * inv_h)
-    for c in range(k, p):
-        Xd[:, k + c] = np.diff(X[:, c] * inv_h)
+        Xd[:, c] = np.diff(up * inv_h)[keep]
+        Xd[:, k + c] = np.diff(down * inv_h)[keep]
+    for c in range(k, kx):
+        Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
     mean, sd = prior
-    f = fit_model(Xd, np.diff(y * inv_h), np.concatenate([mean[:k], mean]),
-                  np.concatenate([sd[:k], sd]), np.concatenate([lower[:k], lower]), block=block)
-    del Xd
+    f = fit_model(Xd, np.diff(y * inv_h)[keep], np.concatenate([mean[:k], mean[:kx]]),
+                  np.concatenate([sd[:k], sd[:kx]]), np.zeros(m), block=block[keep])
     on, off = f.coef[:k], f.coef[k:2 * k]
     idx = np.arange(k)
     var_d = np.maximum(f.cov[idx, idx] + f.cov[k + idx, k + idx] - 2.0 * f.cov[idx, k + idx], 0.0)

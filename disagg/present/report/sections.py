@@ -135,6 +135,7 @@ _FLAG_WORDS = {
     "estimated": "estimated",
     "form-sensitive": "depends on the baseload's shape",
     "schedule-edge": "switches near the schedule's edges",
+    "switch-steps": "meter steps differ at switch-on and switch-off",
     "at-zero": "at zero",
     "schedule-bound": "on the baseload's schedule",
 }
@@ -749,7 +750,8 @@ def _priors_section(result: BreakdownResult) -> str:
     unit = result.site.weather.unit if result.site.weather is not None else "C"
     sentences: list[str] = []
     groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
-                                    "meter": [], "form-sensitive": [], "schedule-edge": []}
+                                    "meter": [], "form-sensitive": [], "schedule-edge": [],
+                                    "switch-steps": []}
     for d in draws:
         n = d["equipment"]
         flags = d.get("flags", [])
@@ -788,7 +790,7 @@ def _priors_section(result: BreakdownResult) -> str:
         if "not-run" in flags:
             groups["not-run"].append(n)
             continue
-        for f in ("unstable", "variable", "form-sensitive", "schedule-edge"):
+        for f in ("unstable", "variable", "form-sensitive", "schedule-edge", "switch-steps"):
             if f in flags:
                 groups[f].append(n)
         if not decided_by_prior and w is not None and w < 0.05:
@@ -812,6 +814,12 @@ def _priors_section(result: BreakdownResult) -> str:
                          "the occupied schedule's starts and ends, where a change of the "
                          "baseload looks the same to the meter; their intervals include the "
                          "estimate with the baseload's own shape around those times.")
+    if groups["switch-steps"]:
+        sentences.append(f"When {_names(groups['switch-steps'])} switch on, the meter steps by "
+                         "a different amount than when they switch off: something not in the "
+                         "run log tends to start or stop with them (or the logged times are off "
+                         "at one edge), and the meter alone cannot tell which step is the "
+                         "load's own; their intervals span both.")
     if groups["unstable"]:
         one = len(groups["unstable"]) == 1
         sentences.append(f"The estimate{'' if one else 's'} of {_names(groups['unstable'])} "
