@@ -834,3 +834,18 @@ def test_a_missing_fit_key_fails_loudly_instead_of_an_empty_section(result, key)
     broken = dataclasses.replace(result, fit={k: v for k, v in result.fit.items() if k != key})
     with pytest.raises(KeyError):
         render_report(broken, None)
+
+
+def test_a_switch_steps_flag_is_explained_in_plain_words(result):
+    import copy
+
+    from disagg.present.report.sections import _priors_section
+
+    fit = copy.deepcopy(result.fit)
+    draw = next(d for d in fit["draws"] if "not-run" not in d["flags"])
+    before = plain_text(_priors_section(dataclasses.replace(result, fit=fit)))
+    assert "switch on, the meter steps" not in before
+    draw["flags"] = [*draw["flags"], "switch-steps"]
+    text = plain_text(_priors_section(dataclasses.replace(result, fit=fit)))
+    assert f"When {draw['equipment']} switch on, the meter steps by a different amount" in text
+    assert "their intervals span both" in text
