@@ -11,7 +11,12 @@ import polars as pl
 import pytest
 import statsmodels.api as sm
 
-from disagg.fit.estimate import estimate_draws, split_switching, switching_steps
+from disagg.fit.estimate import (
+    STEP_SENSITIVE,
+    estimate_draws,
+    split_switching,
+    switching_steps,
+)
 from synthetic import make_building
 
 
@@ -103,3 +108,20 @@ def test_no_flag_where_every_load_is_its_logged_self():
     for t in e.terms:
         entry = e.variants["switch steps"][t.id]
         assert abs(entry["z_difference"]) < 3.0, t.id
+
+
+def test_a_small_significant_difference_widens_without_the_flag():
+    # 1.5 kW that starts with an 18 kW load: its step draws differ significantly but by
+    # under STEP_SENSITIVE of the draw; the interval spans both, the widening shows as
+    # `unstable` and its warning names the two step draws.
+    s, aligned = _with_coincident_load(2, kw=1.5)
+    e = estimate_draws(s.site, aligned)
+    i = [t.id for t in e.terms].index("H-1")
+    entry = e.variants["switch steps"]["H-1"]
+    assert abs(entry["z_difference"]) > 1.96
+    assert abs(entry["kw"] - entry["kw_at_switch_off"]) < STEP_SENSITIVE * e.kw[i]
+    assert "switch-steps" not in e.terms[i].flags and "unstable" in e.terms[i].flags
+    assert e.kw_low[i] <= min(entry["kw"], entry["kw_at_switch_off"])
+    assert e.kw_high[i] >= max(entry["kw"], entry["kw_at_switch_off"])
+    assert e.kw_low[i] <= s.true_kw["H-1"] <= e.kw_high[i]
+    assert any("H-1 is unstable" in w and "where it switches off" in w for w in e.warnings)

@@ -77,6 +77,12 @@ SIMPLER = {"constant": (), "occupied": ("constant",), "hour-of-week": ("occupied
 # A draw that moves by more than this fraction between credible baseload forms (and by more
 # than its own interval's half-width) is flagged form-sensitive. Common practice, no source.
 FORM_SENSITIVE = 0.10
+# A load whose switch-on and switch-off step draws differ significantly has its interval
+# widened to span both (switching_steps); it is flagged switch-steps, with its own warning,
+# when they differ by more than this fraction of its draw (smaller differences show through
+# the unstable flag when they widen the interval materially). Common practice, no source:
+# the same "material" as FORM_SENSITIVE.
+STEP_SENSITIVE = 0.10
 HOW_LEVELS = 168
 # Rows above which the forms are compared on a sample of whole weeks (choose_form): about
 # 9 weeks of 15-minute data. Project choice for speed, no outside source.
@@ -621,7 +627,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                 widened[c] = True
                 moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
     # A draw whose meter steps at switch-on and at switch-off disagree (switching_steps):
-    # the interval spans both step draws, flag switch-steps.
+    # the interval spans both step draws (flag switch-steps when they differ materially).
     steps = switching_steps(X, y, k, kx, interval_h, priors(0), days[1:])
     variants["switch steps"] = ({"skipped": "too few steps"} if steps is None else {
         t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
@@ -629,14 +635,17 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                "se_at_switch_off_kw": float(steps.se_off_kw[t.column]),
                "z_difference": float(steps.z[t.column])} for t in fitted_terms})
     for c in range(k) if steps is not None else ():
-        if abs(steps.z[c]) > z_bound and abs(steps.on_kw[c] - steps.off_kw[c]) > half_hac[c]:
+        d = abs(steps.on_kw[c] - steps.off_kw[c])
+        if abs(steps.z[c]) > z_bound and d > half_hac[c]:
             for b_s, s_s in ((steps.on_kw[c], steps.se_on_kw[c]),
                              (steps.off_kw[c], steps.se_off_kw[c])):
                 low[c], high[c] = min(low[c], b_s - q_hac * s_s), max(high[c], b_s + q_hac * s_s)
             widened[c] = True
-            step_moves[c] = (f"{steps.on_kw[c]:.3g} kW where it switches on and "
-                             f"{steps.off_kw[c]:.3g} kW where it switches off")
-            moved.setdefault(c, []).append(f"{step_moves[c]}")
+            why = (f"{steps.on_kw[c]:.3g} kW where it switches on and "
+                   f"{steps.off_kw[c]:.3g} kW where it switches off")
+            moved.setdefault(c, []).append(why)
+            if d > STEP_SENSITIVE * abs(coef[c]):
+                step_moves[c] = why
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (arrays["local_date"].astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = y - fitted_of(X, coef, level_kwh)
