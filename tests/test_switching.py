@@ -125,3 +125,18 @@ def test_a_small_significant_difference_widens_without_the_flag():
     assert e.kw_high[i] >= max(entry["kw"], entry["kw_at_switch_off"])
     assert e.kw_low[i] <= s.true_kw["H-1"] <= e.kw_high[i]
     assert any("H-1 is unstable" in w and "where it switches off" in w for w in e.warnings)
+
+
+def test_a_variable_speed_load_is_not_judged_by_its_steps():
+    # The office's variable-speed fan rises in the morning and falls in the afternoon, as
+    # the daily baseload swing does within each hour: its rise and fall draws differ, but
+    # those are speed changes, not switching, and leave its interval alone.
+    from synthetic import make_office
+
+    s = make_office(0, "swing")
+    e = estimate_draws(s.site, s.aligned)
+    i = [t.id for t in e.terms].index("VF-1")
+    assert "variable" in e.terms[i].flags
+    assert abs(e.variants["switch steps"]["VF-1"]["z_difference"]) > 1.96
+    assert "switch-steps" not in e.terms[i].flags
+    assert not any("VF-1" in w and "where it switches off" in w for w in e.warnings)

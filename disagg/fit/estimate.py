@@ -634,7 +634,10 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                "kw_at_switch_off": float(steps.off_kw[t.column]),
                "se_at_switch_off_kw": float(steps.se_off_kw[t.column]),
                "z_difference": float(steps.z[t.column])} for t in fitted_terms})
-    for c in range(k) if steps is not None else ():
+    # Only on-off loads: a variable-speed load's rises and falls are speed changes, which
+    # follow the time of day and so any baseload shape within the hour.
+    on_off = {t.column for t in fitted_terms if "variable" not in t.flags}
+    for c in sorted(on_off & set(range(k))) if steps is not None else ():
         d = abs(steps.on_kw[c] - steps.off_kw[c])
         if abs(steps.z[c]) > z_bound and d > half_hac[c]:
             for b_s, s_s in ((steps.on_kw[c], steps.se_on_kw[c]),
