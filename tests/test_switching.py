@@ -128,15 +128,31 @@ def test_a_small_significant_difference_widens_without_the_flag():
 
 
 def test_a_variable_speed_load_is_not_judged_by_its_steps():
-    # The office's variable-speed fan rises in the morning and falls in the afternoon, as
-    # the daily baseload swing does within each hour: its rise and fall draws differ, but
-    # those are speed changes, not switching, and leave its interval alone.
+    # In the office with every baseload departure ("all"), the variable-speed fan's rise and
+    # fall draws differ by 11 % (z about 2): those are speed changes, not switching, and
+    # leave its interval alone.
     from synthetic import make_office
 
-    s = make_office(0, "swing")
+    s = make_office(0, "all")
     e = estimate_draws(s.site, s.aligned)
     i = [t.id for t in e.terms].index("VF-1")
+    entry = e.variants["switch steps"]["VF-1"]
     assert "variable" in e.terms[i].flags
-    assert abs(e.variants["switch steps"]["VF-1"]["z_difference"]) > 1.96
+    assert abs(entry["z_difference"]) > 1.96
+    assert abs(entry["kw"] - entry["kw_at_switch_off"]) > STEP_SENSITIVE * e.kw[i]
     assert "switch-steps" not in e.terms[i].flags
     assert not any("VF-1" in w and "where it switches off" in w for w in e.warnings)
+
+
+def test_a_baseload_that_swings_through_the_hour_does_not_move_the_steps():
+    # The office's daily swing (+-6 kW, peak 15:00) rises through every morning hour, when
+    # the water heater cycles: without the hourly mean steps the swing would add to its
+    # switch-on steps and take from its switch-off steps.
+    from synthetic import make_office
+
+    s = make_office(1, "swing")
+    e = estimate_draws(s.site, s.aligned)
+    entry = e.variants["switch steps"]["WH-1"]
+    assert abs(entry["z_difference"]) < 1.96
+    assert entry["kw"] == pytest.approx(s.true_kw["WH-1"], rel=0.05)
+    assert entry["kw_at_switch_off"] == pytest.approx(s.true_kw["WH-1"], rel=0.05)

@@ -628,7 +628,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                 moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
     # A draw whose meter steps at switch-on and at switch-off disagree (switching_steps):
     # the interval spans both step draws (flag switch-steps when they differ materially).
-    steps = switching_steps(X, y, k, kx, interval_h, priors(0), days[1:])
+    steps = switching_steps(X, y, k, kx, interval_h, priors(0), days[1:],
+                            arrays["hour_of_week"] % 24, weak_sd)
     variants["switch steps"] = ({"skipped": "too few steps"} if steps is None else {
         t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
                "kw_at_switch_off": float(steps.off_kw[t.column]),
@@ -868,7 +869,8 @@ def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, 
 
 
 def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: np.ndarray,
-                    prior: tuple[np.ndarray, np.ndarray], block: np.ndarray
+                    prior: tuple[np.ndarray, np.ndarray], block: np.ndarray,
+                    hour_of_day: np.ndarray | None = None, drift_sd: float = 1e3
                     ) -> SwitchingSteps | None:
     """Refit on first differences (kW) with each of the first k columns (run-hours) split
     into its switch-on and switch-off parts (split_switching): each load gets one draw from
@@ -883,14 +885,18 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     the steps where the declared baseload profile itself changes (its columns X[:, kx:]
     differ from the interval before: an hour of the week, a schedule edge, a closed day) are
     left out, so the profile drops out of the differenced model and the check holds for
-    every baseload form at the cost of a k-column fit.
+    every baseload form at the cost of a k-column fit. With hour_of_day, each local hour of
+    the day also gets its own mean step (kW per interval): a baseload that rises or falls
+    through the hour (a daily swing, lights that ramp) would otherwise add to the steps of
+    the loads that switch at those hours.
 
     Args:
         X: (n, p) the chosen form's design in kWh and hours: run-hours (k columns), weather
             slope columns (up to kx), then the baseload profile; y: (n,) kWh;
         interval_h: (n,) hours of each interval; prior: (>= kx,) prior means and sds of X's
         first kx columns; block: (n - 1,) non-decreasing block labels of the differenced
-        rows (for the HAC covariance).
+        rows (for the HAC covariance); hour_of_day: (n,) local hour 0..23 of each interval,
+        or None; drift_sd: prior sd of the hourly mean steps [kW] (weak).
 
     Returns:
         The two draws per load, or None when there is nothing to check or fewer than
@@ -906,7 +912,9 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     keep = np.ones(n - 1, dtype=bool)
     for c in range(kx, p):  # one column at a time: no n x p temporary
         keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
-    m = k + kx
+    hours = (np.unique(hour_of_day[1:][keep]) if hour_of_day is not None
+             else np.zeros(0, dtype=np.int64))
+    m = k + kx + len(hours)
     if keep.sum() < MIN_ROWS_PER_COLUMN * m:
         return None
     Xd = np.empty((int(keep.sum()), m))
@@ -916,9 +924,13 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
         Xd[:, k + c] = np.diff(down * inv_h)[keep]
     for c in range(k, kx):
         Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
+    if len(hours):
+        Xd[:, k + kx:] = hour_of_day[1:][keep][:, None] == hours[None, :]
     mean, sd = prior
-    f = fit_model(Xd, np.diff(y * inv_h)[keep], np.concatenate([mean[:k], mean[:kx]]),
-                  np.concatenate([sd[:k], sd[:kx]]), np.zeros(m), block=block[keep])
+    nh = len(hours)
+    f = fit_model(Xd, np.diff(y * inv_h)[keep], np.concatenate([mean[:k], mean[:kx], np.zeros(nh)]),
+                  np.concatenate([sd[:k], sd[:kx], np.full(nh, drift_sd)]),
+                  np.r_[np.zeros(k + kx), np.full(nh, -np.inf)], block=block[keep])
     on, off = f.coef[:k], f.coef[k:2 * k]
     idx = np.arange(k)
     var_d = np.maximum(f.cov[idx, idx] + f.cov[k + idx, k + idx] - 2.0 * f.cov[idx, k + idx], 0.0)
