@@ -912,10 +912,13 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     keep = np.ones(n - 1, dtype=bool)
     for c in range(kx, p):  # one column at a time: no n x p temporary
         keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
-    hours = (np.unique(hour_of_day[1:][keep]) if hour_of_day is not None
-             else np.zeros(0, dtype=np.int64))
-    m = k + kx + len(hours)
-    if keep.sum() < MIN_ROWS_PER_COLUMN * m:
+    ind = None
+    if hour_of_day is not None:
+        hours, level = np.unique(hour_of_day[1:][keep], return_inverse=True)
+        ind = Indicators(level.reshape(-1), np.ones(len(level)), len(hours))
+    nh = ind.n_levels if ind is not None else 0
+    m = k + kx
+    if keep.sum() < MIN_ROWS_PER_COLUMN * (m + nh):
         return None
     Xd = np.empty((int(keep.sum()), m))
     for c in range(k):
@@ -924,13 +927,10 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
         Xd[:, k + c] = np.diff(down * inv_h)[keep]
     for c in range(k, kx):
         Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
-    if len(hours):
-        Xd[:, k + kx:] = hour_of_day[1:][keep][:, None] == hours[None, :]
     mean, sd = prior
-    nh = len(hours)
     f = fit_model(Xd, np.diff(y * inv_h)[keep], np.concatenate([mean[:k], mean[:kx], np.zeros(nh)]),
                   np.concatenate([sd[:k], sd[:kx], np.full(nh, drift_sd)]),
-                  np.r_[np.zeros(k + kx), np.full(nh, -np.inf)], block=block[keep])
+                  np.r_[np.zeros(m), np.full(nh, -np.inf)], block=block[keep], indicators=ind)
     on, off = f.coef[:k], f.coef[k:2 * k]
     idx = np.arange(k)
     var_d = np.maximum(f.cov[idx, idx] + f.cov[k + idx, k + idx] - 2.0 * f.cov[idx, k + idx], 0.0)
