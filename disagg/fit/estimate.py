@@ -889,11 +889,10 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
         form = Form.parse(site.baseload.form) if pinned else None
     cols = {p: base_for(p)[0] for p in profiles}
     mean, sd = prior
+    names = ({sc.form.name for sc in rivals} | {given.form.name}
+             if isinstance(given, FormChoice) else None)
     scores, resid = compare_forms(Hx, y, sp, cols, days, mean, sd, levels=levels,
-                                  fixed_q=fixed or None)
-    if isinstance(given, FormChoice):
-        names = {sc.form.name for sc in rivals} | {given.form.name}
-        scores = [sc for sc in scores if sc.form.name in names]
+                                  fixed_q=fixed or None, only=names)
     c = overdispersion(resid) if resid is not None else 1.0
     score(scores, c, max(len(y) - 1, 1))
     if form is not None:
