@@ -429,13 +429,25 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     sp = Spacing.from_ns(start_ns, end_ns)
 
     # --- baseload form: compare, choose (or take the pinned one) -------------------------
-    choice = choose_form(site, Hx, y, sp, days, priors(0), base_for, form,
+    # The comparison's columns over every row are built once: the chosen profile's are
+    # taken from them (then dropped, so that the others do not stay in memory).
+    built: dict[str, tuple[np.ndarray, list[str]]] = {site.baseload.profile: (B, base_names)}
+
+    def base_for_once(p: str, rows: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        if rows is not None:
+            return base_for(p, rows)
+        if p not in built:
+            built[p] = base_for(p)
+        return built[p]
+
+    choice = choose_form(site, Hx, y, sp, days, priors(0), base_for_once, form,
                          (start_ns, end_ns, arrays["local_date"]))
     profile = choice.form.profile
     if profile != site.baseload.profile:
-        B, base_names = base_for(profile)
+        B, base_names = base_for_once(profile)
         X = np.column_stack([Hx, B])
         Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
+    built.clear()
     level_kwh = np.zeros(n)
     if choice.form.level:
         keep = kept_columns(profile, B.shape[1])
