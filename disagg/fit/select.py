@@ -154,8 +154,10 @@ class _Gram:
         Gxx, gxz, gzz = self.G[:p, :p], self.G[:p, p], self.G[p, p]
         if p == 0:
             return np.zeros(0), float(gzz)
-        b = normal_solve(Gxx, gxz)
-        if (pen > 0).any() or np.any(b < lower):
+        # The unpenalised solution is needed only without a penalty (and to see whether it
+        # keeps the bounds).
+        b = None if (pen > 0).any() else normal_solve(Gxx, gxz)
+        if b is None or np.any(b < lower):
             # The compressed system R'R = Gxx, R'c = gxz has the same least-squares problem.
             w, V = np.linalg.eigh(Gxx)
             keep = w > w.max() * 1e-12 if w.size else w
