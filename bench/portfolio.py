@@ -172,6 +172,31 @@ def stages(site_toml: Path) -> dict:
     return best
 
 
+def office_fits() -> dict:
+    """The slow baseload forms: the whole-range fit and the monthly fits of the synthetic
+    office year (tests/synthetic.make_office, seed 0) whose data choose the hour-of-week
+    profile with the schedule-edge slots and the wandering level (scenarios swing and all);
+    best of two runs, wall and CPU time."""
+    sys.path.insert(0, str(HERE.parent / "tests"))
+    from synthetic import make_office
+
+    from disagg.analyses.pipeline import monthly_fits
+    from disagg.fit.estimate import estimate_draws
+
+    out = {}
+    for scenario in ("swing", "all"):
+        s = make_office(0, scenario)
+        best = (float("inf"), float("inf"))
+        for _ in range(2):
+            t, c = time.perf_counter(), time.process_time()
+            e = estimate_draws(s.site, s.aligned)
+            monthly_fits(s.site, s.aligned, e, e.confidence)
+            best = min(best, (time.perf_counter() - t, time.process_time() - c))
+        out[scenario] = {"wall_s": best[0], "cpu_s": best[1], "form": e.form.form.name,
+                         "load": os.getloadavg()[0]}
+    return out
+
+
 # --- measuring ------------------------------------------------------------------------------
 
 def run(cmd: list[str]) -> dict:
@@ -277,7 +302,11 @@ def main() -> None:
     ap.add_argument("--keep", type=Path, default=None, help="generate here and keep the files")
     ap.add_argument("--naive", nargs=2, metavar=("SITE", "OUT"), help=argparse.SUPPRESS)
     ap.add_argument("--stages", nargs=2, metavar=("SITE", "OUT"), help=argparse.SUPPRESS)
+    ap.add_argument("--office", nargs=1, metavar="OUT", help=argparse.SUPPRESS)
     a = ap.parse_args()
+    if a.office:
+        Path(a.office[0]).write_text(json.dumps(office_fits()))
+        return
     if a.naive:
         Path(a.naive[1]).write_text(json.dumps(naive(Path(a.naive[0]))))
         return
@@ -322,6 +351,9 @@ def main() -> None:
     print("steps alone, one fresh process per site", flush=True)
     st = [child_json(["--stages", str(s.toml)])[0] for s in sites]
     R["stages"] = {k: statistics.median(x[k] for x in st) for k in st[0]}
+
+    print("the slow baseload forms: office year, whole-range and monthly fits", flush=True)
+    R["office"] = child_json(["--office"])[0]
 
     print("straightforward approach (pandas + loop + statsmodels), one process per site",
           flush=True)
@@ -429,6 +461,10 @@ def write_results(R: dict) -> None:
         ("fit alone: whole-range fit, with the form comparison [s]", step("fit_whole_s"),
          "", ""),
         ("fit alone: the 12 monthly fits [s]", step("fit_12_months_s"), "", ""),
+        *[((f"slow forms: office year, scenario {sc} (form {o['form']}), whole-range + "
+            "12 monthly fits [s]"),
+           f"{fmt(o['wall_s'])} (load {o['load']:.2f}); CPU {fmt(o['cpu_s'])}", "", "")
+          for sc, o in R["office"].items()],
         ("drift tracker: `drift_site` (reads, aligns, fits the reference) [s]",
          step("drift_site_s"), "", ""),
         ("drift tracker: `nlms` alone [s]", fmt(st["nlms_s"], 3), "", ""),
