@@ -455,9 +455,9 @@ def test_check_report_and_summary_list_the_findings(tmp_path):
 
 def test_breakdown_carries_the_findings_and_leaves_the_spike_out(tmp_path):
     result = breakdown_site(_site(tmp_path, _spike_rows()))
-    assert [f["kind"] for f in result.fit["meter_validation"]] == ["spike"]
-    assert result.findings[0].message in result.fit["warnings"]
-    assert result.fit["intervals"]["spikes"] == 1
+    assert [f["kind"] for f in result.fit.meter_validation] == ["spike"]
+    assert result.findings[0].message in result.fit.warnings
+    assert result.fit.intervals["spikes"] == 1
     # The months add up to the metered kWh of the intervals used: 144 x 8 + 143 x 12, no 100.
     assert result.breakdown["kwh"].sum() == pytest.approx(144 * 8.0 + 143 * 12.0, abs=1e-6)
 

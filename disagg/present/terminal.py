@@ -43,9 +43,9 @@ def breakdown_summary(result: BreakdownResult) -> str:
                    pl.col("kwh_low").null_count().alias("no_range"), pl.col("flags"),
                    pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")))
     metered = float(result.estimates.y.sum())
-    tariff = result.fit.get("tariff")
-    currency = tariff["currency"] if tariff else ""
-    draws = {d["equipment"]: d for d in result.fit["draws"]}
+    tariff = result.fit.tariff
+    currency = tariff.currency if tariff is not None else ""
+    draws = {d.equipment: d for d in result.fit.draws}
     order = {e: i for i, e in enumerate(draws)}
     last = len(order) + 1
     totals = totals.with_columns(
@@ -55,7 +55,7 @@ def breakdown_summary(result: BreakdownResult) -> str:
         .when(pl.col("equipment") == "unexplained").then(last + 1)
         .otherwise(pl.col("o")).alias("o")).sort("o", maintain_order=True)
     periods = t["period"].unique().sort()
-    own = any(m.get("own_fit") for m in result.fit["months"].values())
+    own = any(m.own_fit for m in result.fit.months.values())
     lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
              f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
              "",
@@ -63,23 +63,23 @@ def breakdown_summary(result: BreakdownResult) -> str:
              + "kW: the draw fitted over the whole range; run h [h], kWh [kWh], kW [kW]",
              f"{'equipment':<22} {'run h':>7} {'kWh':>10} {'kWh range':>19} {'share':>6} "
              f"{'kW':>7} {'kW range':>13}  "
-             + (f"{'cost ' + currency[:5]:>11}  " if tariff else "") + "flags"]
+             + (f"{'cost ' + currency[:5]:>11}  " if tariff is not None else "") + "flags"]
     any_variable = False
     for r in totals.iter_rows(named=True):
         d = draws.get(r["equipment"])
         kw, kw_rng = "-", "-"
-        if d and d["kw"] is not None:
-            kw = _fmt(d["kw"])
-            if d["kw_low"] is not None:
-                kw_rng = f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}"
+        if d is not None and d.kw is not None:
+            kw = _fmt(d.kw)
+            if d.kw_low is not None:
+                kw_rng = f"{_fmt(d.kw_low)}-{_fmt(d.kw_high)}"
         kwh_rng = "-" if r["no_range"] else f"{_fmt(r['kwh_low'], 0)}-{_fmt(r['kwh_high'], 0)}"
-        flags = ";".join(d["flags"]) if d else ";".join(dict.fromkeys(
+        flags = ";".join(d.flags) if d is not None else ";".join(dict.fromkeys(
             f for cell in r["flags"] for f in (cell or "").split(";") if f))
         any_variable |= "variable" in flags
         kwh = r["kwh"] + 0.0 if abs(r["kwh"]) >= 0.5 else 0.0  # no "-0"
         share = 100 * kwh / metered if metered else 0.0
         cost = ""
-        if tariff:
+        if tariff is not None:
             cost = f"{'-' if r['no_cost'] else _fmt(r['cost'] + 0.0, 2):>11}  "
         lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>7} {_fmt(kwh, 0):>10} "
                      f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {cost}{flags}")
@@ -92,15 +92,15 @@ def breakdown_summary(result: BreakdownResult) -> str:
     if any_variable:
         lines.append("run h of variable equipment: equivalent full-load hours "
                      "(integral of status ** exponent).")
-    if tariff:
-        months_cost = tariff["months"]
-        total = sum(m["cost"] for m in months_cost)
-        demand = sum(m["demand_cost"] for m in months_cost)
+    if tariff is not None:
+        months_cost = tariff.months
+        total = sum(m.cost for m in months_cost)
+        demand = sum(m.demand_cost for m in months_cost)
         lines += ["", f"Cost of the intervals used: {_fmt(total, 2)} {currency} (energy "
                       f"{_fmt(total - demand, 2)}, demand {_fmt(demand, 2)} over "
                       f"{len(months_cost)} month{'s' if len(months_cost) != 1 else ''}); "
                       "each row's peak_kw and cost are in breakdown.csv."]
-    q = result.fit["fit_quality"]
+    q = result.fit.fit_quality
     hq = q.get("hourly")
     if hq:
         meets = "meets" if q["ashrae_guideline_14"]["hourly_meets"] else "does not meet"
@@ -108,12 +108,12 @@ def breakdown_summary(result: BreakdownResult) -> str:
                       f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
                       "30 % / 10 %)"]
     lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
-    months = result.fit["months"]
+    months = result.fit.months
     if months:
-        n_own = sum(1 for m in months.values() if m.get("own_fit"))
+        n_own = sum(1 for m in months.values() if m.own_fit)
         lines.append(f"{n_own} of {len(months)} months fitted on their own data; their draws, "
                      "flags and notes are in fit.json (months).")
-    for w in group_kinds(result.fit["warnings"]):
+    for w in group_kinds(result.fit.warnings):
         lines.append(f"Note: {w}")
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
@@ -135,16 +135,16 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
              "cost": None if r["no_cost"] else r["cost"],
              "flags": sorted({f for cell in r["flags"] for f in (cell or "").split(";") if f})}
             for r in totals.iter_rows(named=True)]
-    tariff = result.fit.get("tariff")
+    tariff = result.fit.tariff
     periods = t["period"].unique().sort().to_list()
     return to_json({
         "site": result.site.name, "first_period": periods[0], "last_period": periods[-1],
         "intervals_used": result.aligned.counts["used"],
         "metered_kwh": metered,
-        "currency": tariff["currency"] if tariff else None,
-        "cost": sum(m["cost"] for m in tariff["months"]) if tariff else None,
-        "equipment": rows, "fit_quality": result.fit["fit_quality"],
-        "warnings": result.fit["warnings"], "caution": CAUTION,
+        "currency": tariff.currency if tariff is not None else None,
+        "cost": sum(m.cost for m in tariff.months) if tariff is not None else None,
+        "equipment": rows, "fit_quality": result.fit.fit_quality,
+        "warnings": result.fit.warnings, "caution": CAUTION,
         "files": [str(p) for p in paths]})
 
 def check_summary(result: CheckResult) -> str:

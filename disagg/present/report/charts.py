@@ -76,7 +76,7 @@ def _is_base(name: str) -> bool:
 def equipment_order(result: BreakdownResult, extra: list[str] | None = None) -> list[str]:
     """Row names in report order: the fit's draws, other names met in the table or in
     `extra`, then the baseload row(s), estimated gaps and unexplained."""
-    names = [d["equipment"] for d in result.fit["draws"]]
+    names = [d.equipment for d in result.fit.draws]
     seen = set(names)
     for n in list(result.breakdown["equipment"].unique(maintain_order=True)) + (extra or []):
         if n not in seen:

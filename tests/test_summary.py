@@ -1,0 +1,54 @@
+"""Tests for disagg.analyses.summary: the fit's details are typed data, and fit.json is their
+one JSON form (schema_version, keys, weather draws)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from disagg.analyses.pipeline import breakdown_site
+from disagg.analyses.summary import FIT_SCHEMA_VERSION, Draw, FitSummary, MonthFit, WeatherDraw
+from disagg.present.outputs import to_json, write_breakdown
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def written(tmp_path_factory):
+    # The bundled demo building (invented): a tariff, a weather-dependent load, a combined
+    # pair and months fitted on their own.
+    out = tmp_path_factory.mktemp("summary")
+    result = breakdown_site(ROOT / "configs" / "demo.toml")
+    write_breakdown(result, out)
+    return result, json.loads((out / "fit.json").read_text())
+
+
+def test_fit_json_is_the_summarys_json_form(written):
+    result, on_disk = written
+    assert isinstance(result.fit, FitSummary)
+    assert on_disk["schema_version"] == FIT_SCHEMA_VERSION == 2
+    # The file holds exactly the typed summary, key for key, in order.
+    assert json.loads(to_json(result.fit.as_json())) == on_disk
+    assert list(on_disk) == list(result.fit.as_json())
+    assert on_disk["tariff"]["months"][0]["period"] == result.fit.tariff.months[0].period
+    assert any("weather" in d for d in on_disk["draws"])
+    assert [d["equipment"] for d in on_disk["draws"]] == [d.equipment for d in result.fit.draws]
+    months = {p: m.own_fit for p, m in result.fit.months.items()}
+    assert months and all(isinstance(m, MonthFit) for m in result.fit.months.values())
+    assert {p: m["own_fit"] for p, m in on_disk["months"].items()} == months
+
+
+def test_only_weather_draws_state_their_reference_temperature():
+    base = dict(equipment="CH-1", members=["CH-1"], name="chiller", kw=80.0, se_kw=1.0,
+                se_hac_kw=1.0, se_jackknife_kw=None, kw_low=78.0, kw_high=82.0, prior_kw=None,
+                prior_sd_kw=None, prior_source="none", prior_weight=0.0,
+                between_week_sd_kw=0.5, run_hours=100.0, flags=[])
+    plain = Draw(**base).as_json()
+    assert "weather" not in plain and "kw_at" not in plain
+    w = WeatherDraw("cooling", 18.0, 25.0, 70.0, 1.4, 0.1)
+    rich = Draw(**base, weather=w).as_json()
+    assert rich["kw_at"] == "reference temperature"
+    assert rich["weather"]["slope_kw_per_degc"] == 1.4
+    assert list(rich)[:len(plain)] == list(plain)
