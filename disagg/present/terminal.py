@@ -187,7 +187,7 @@ def drift_summary(result: DriftResult) -> str:
              "",
              f"{'equipment':<22} {'reference period':>23} {'reference kW':>12} {'latest kW':>10} "
              f"{'change':>8} {'memory d':>9}  alarm"]
-    windows = s.get("reference_per_equipment", {})
+    windows = s["reference_per_equipment"]
     alarmed = {a["equipment"]: a for a in s["alarms"]}
     for eq in t["equipment"].unique(maintain_order=True):
         rows = t.filter(pl.col("equipment") == eq)
@@ -267,7 +267,7 @@ def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
         line += f", cost {_fmt_report(float(table['cost'].sum()), 2)} {_currency(result)}"
     if drift is None:
         return line + "; drift left out"
-    alarms = [a["equipment"] for a in drift.summary.get("alarms", [])]
+    alarms = [a["equipment"] for a in drift.summary["alarms"]]
     return line + (f"; drift alarms: {', '.join(alarms)}" if alarms else "; no drift alarm")
 
 

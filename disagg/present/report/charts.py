@@ -273,11 +273,11 @@ def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: di
     nrows = math.ceil(len(names) / cols)
     fig = Figure(figsize=(_WIDTH_IN, 0.7 + 2.0 * nrows), layout="constrained")
     axes = fig.subplots(nrows, cols, squeeze=False, sharex=True)
-    ref = summary.get("reference", {})
+    ref = summary["reference"]
     ref0 = dt.date.fromisoformat(ref["from"]) if ref.get("from") else None
     ref1 = dt.date.fromisoformat(ref["to"]) if ref.get("to") else None
-    alarms = {a["equipment"]: a for a in summary.get("alarms", [])}
-    own = summary.get("reference_per_equipment", {})
+    alarms = {a["equipment"]: a for a in summary["alarms"]}
+    own = summary["reference_per_equipment"]
     for k, name in enumerate(names):
         ax = axes[k // cols][k % cols]
         ref0, ref1 = (tuple(dt.date.fromisoformat(d) for d in own[name]) if name in own

@@ -259,7 +259,7 @@ def _summary(result: BreakdownResult, drift: DriftResult | None,
 
 
 def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
-    if drift is not None and drift.summary.get("alarms"):
+    if drift is not None and drift.summary["alarms"]:
         parts = [f"{e(a['equipment'])} {_pct(a['change'])} since the reference period "
                  f"(first alarm {e(a['first_alarm_date'])})" for a in drift.summary["alarms"]]
         return "drift alarms for " + "; ".join(parts) + " (see Drift over time)."
@@ -580,12 +580,12 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
     t = drift.table
     parts = [head,
              ("<p>Each equipment's draw is tracked day by day (per-weight normalized LMS, "
-              f"step size {s.get('step_size_mu', float('nan')):.3g}, the same memory for every "
+              f"step size {s['step_size_mu']:.3g}, the same memory for every "
               "load) from its draw in its own reference period (in the table; loads that run "
               "together and cannot be told apart are tracked as their group A+B). "
-              f"Rule: {e(str(s.get('rule', '')))}; threshold "
-              f"{_num(100 * float(s.get('threshold', float('nan'))), 0)} %.</p>")]
-    alarms = s.get("alarms", [])
+              f"Rule: {e(str(s['rule']))}; threshold "
+              f"{_num(100 * float(s['threshold']), 0)} %.</p>")]
+    alarms = s["alarms"]
     if alarms:
         parts.append(_list([f'<span class="alarm">Alarm: {e(a["equipment"])}</span> from '
                             f"{e(a['first_alarm_date'])}: draw "
@@ -601,9 +601,9 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
         parts.append(_figure(svg, "Tracked daily draw (line), its band (shaded), the reference "
                                   "draw (dashed), the reference period (grey) and alarm days "
                                   "(red dots)."))
-    memory = s.get("memory_days_per_equipment", {})
-    band = s.get("band_sd_kw", {})
-    own = s.get("reference_per_equipment", {})
+    memory = s["memory_days_per_equipment"]
+    band = s["band_sd_kw"]
+    own = s["reference_per_equipment"]
     first_alarm = {a["equipment"]: a["first_alarm_date"] for a in alarms}
     rows = []
     for n in names:
@@ -621,7 +621,7 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
                          ("reference draw [kW]", True),
                          ("latest tracked [kW]", True), ("change [%]", True),
                          ("band sd [kW]", True), ("memory [d]", True), ("alarm", False)], rows))
-    notes = [n for n in s.get("notes", []) if n not in shown]
+    notes = [n for n in s["notes"] if n not in shown]
     if notes:
         parts.append("<h3>Notes</h3>" + _list([e(str(n)) for n in notes]))
     parts.append("</section>")
