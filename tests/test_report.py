@@ -802,7 +802,7 @@ def test_the_summary_names_drift_alarms_when_there_are_some(result, drift):
     from disagg.present.report.sections import _summary
 
     html = _summary(result, drift, [])
-    alarmed = [a["equipment"] for a in drift.summary["alarms"]]
+    alarmed = [a.equipment for a in drift.summary.alarms]
     if alarmed:
         assert "drift alarms for" in html and all(a in html for a in alarmed)
     else:

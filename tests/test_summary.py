@@ -9,7 +9,15 @@ from pathlib import Path
 import pytest
 
 from disagg.analyses.pipeline import breakdown_site
-from disagg.analyses.summary import FIT_SCHEMA_VERSION, Draw, FitSummary, MonthFit, WeatherDraw
+from disagg.analyses.summary import (
+    FIT_SCHEMA_VERSION,
+    Draw,
+    DriftAlarm,
+    DriftSummary,
+    FitSummary,
+    MonthFit,
+    WeatherDraw,
+)
 from disagg.present.outputs import to_json, write_breakdown
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -52,3 +60,18 @@ def test_only_weather_draws_state_their_reference_temperature():
     assert rich["kw_at"] == "reference temperature"
     assert rich["weather"]["slope_kw_per_degc"] == 1.4
     assert list(rich)[:len(plain)] == list(plain)
+
+
+def test_drift_json_is_the_drift_summarys_json_form(tmp_path):
+    # The bundled demo building (invented): DH-1's draw rises 15 % on 2025-08-01.
+    from disagg.analyses.drift import drift_site
+    from disagg.present.outputs import write_drift
+
+    result = drift_site(ROOT / "configs" / "demo.toml")
+    assert isinstance(result.summary, DriftSummary)
+    assert all(isinstance(a, DriftAlarm) for a in result.summary.alarms)
+    write_drift(result, tmp_path, [])
+    on_disk = json.loads((tmp_path / "drift.json").read_text())
+    assert json.loads(to_json(result.summary.as_json())) == on_disk
+    assert [a["equipment"] for a in on_disk["alarms"]] == ["DH-1"]
+    assert on_disk["alarms"][0]["first_alarm_date"] == result.summary.alarms[0].first_alarm_date

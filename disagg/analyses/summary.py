@@ -1,4 +1,5 @@
-"""The breakdown's fit details as typed data (what fit.json holds).
+"""The breakdown's fit details and the drift summary as typed data (what fit.json and
+drift.json hold).
 
 `breakdown_site` returns a `FitSummary`; the terminal summary, the report, the workbook and
 the batch read its fields. Only `FitSummary.as_json` turns it into the JSON layout of
@@ -12,6 +13,7 @@ as plain JSON-ready mappings: they are written as they are and read by their doc
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 # fit.json layout version: 2 added baseload.form, baseload.level_kwh, months' baseload_form
@@ -212,3 +214,62 @@ class FitSummary:
             "meter_validation": self.meter_validation,
             "tariff": self.tariff.as_json() if self.tariff is not None else None,
         }
+
+
+@dataclass
+class DriftAlarm:
+    """A tracked row whose recent draw moved beyond its band and the threshold.
+
+    change: the recent level (the mean draw of the last recent_days days, the tracker's lag
+    taken out) over the reference draw, minus 1, with its interval (change_low, change_high);
+    change_tracked: the tracker's latest draw over the reference, minus 1.
+    """
+
+    equipment: str
+    members: list[str]
+    first_alarm_date: str
+    kw_reference: float
+    kw_latest: float
+    kw_recent: float
+    change: float
+    change_low: float | None
+    change_high: float | None
+    change_tracked: float
+    recent_days: int
+    as_of: str
+
+    def as_json(self) -> dict:
+        return dataclasses.asdict(self)
+
+
+@dataclass
+class DriftSummary:
+    """What `disagg drift` found, typed; `as_json` gives drift.json's layout.
+
+    The per-equipment mappings (memory, reference windows, chart limits, band sd) are keyed by
+    the tracked row's id; `equipment` holds one status row per configured load, as stored in
+    the tracker's state.
+    """
+
+    site: str
+    step_size_mu: float
+    stable_range: str
+    memory_days_requested: float | None
+    memory_days_per_equipment: dict[str, float | None]
+    reference: dict  # the main reference period: "from", "to" (ISO dates), "intervals"
+    reference_per_equipment: dict[str, list[str]]  # row id -> [from, to] (ISO dates)
+    groups: list[str]
+    equipment: list[dict]  # "equipment", "status", "tracked_as", "detail"
+    threshold: float
+    rule: str
+    chart_limit_L: dict[str, float]
+    change_interval: str
+    band_sd_kw: dict[str, float]
+    alarms: list[DriftAlarm]
+    notes: list[str]
+    caution: str
+
+    def as_json(self) -> dict:
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+        out["alarms"] = [a.as_json() for a in self.alarms]
+        return out

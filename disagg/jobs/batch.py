@@ -302,14 +302,14 @@ def _alarms(drift) -> tuple[int | None, list[str] | None, str]:
     there would say nothing)."""
     if drift is None:
         return None, None, DRIFT_NOT_RUN
-    ref = drift.summary["reference"]
+    ref = drift.summary.reference
     dates = drift.table["date"]
     after = dates.filter(dates > dt.date.fromisoformat(ref["to"])).n_unique()
     if after == 0:
         return None, None, (f"no alarm count: no day tracked after the reference period "
                             f"{ref['from']} to {ref['to']} (data to {dates.max()}); alarms "
                             "need data after it: give batch --reference a shorter period")
-    alarmed = [a["equipment"] for a in drift.summary["alarms"]]
+    alarmed = [a.equipment for a in drift.summary.alarms]
     return len(alarmed), alarmed, (f"{after} day{'s' * (after != 1)} tracked after the "
                                    f"reference period {ref['from']} to {ref['to']}")
 

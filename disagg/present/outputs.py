@@ -313,7 +313,7 @@ def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
     table = result.table
     paths = write_atomically(out_dir, {
         "drift.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
-        "drift.json": lambda p: p.write_text(to_json(result.summary), encoding="utf-8"),
+        "drift.json": lambda p: p.write_text(to_json(result.summary.as_json()), encoding="utf-8"),
     }, inputs)
     if state_path is not None:
         state_path = Path(state_path).resolve()

@@ -181,18 +181,18 @@ def drift_summary(result: DriftResult) -> str:
     """Step size, per-equipment latest tracked draw and change, alarms, notes, caution."""
     s = result.summary
     t = result.table
-    lines = [f"{s['site']}: step size mu = {s['step_size_mu']:.4g} "
-             f"(stable range 0 < mu < 2), threshold {100 * s['threshold']:g} %; each load "
+    lines = [f"{s.site}: step size mu = {s.step_size_mu:.4g} "
+             f"(stable range 0 < mu < 2), threshold {100 * s.threshold:g} %; each load "
              "tracked from its own reference period",
              "",
              f"{'equipment':<22} {'reference period':>23} {'reference kW':>12} {'latest kW':>10} "
              f"{'change':>8} {'memory d':>9}  alarm"]
-    windows = s["reference_per_equipment"]
-    alarmed = {a["equipment"]: a for a in s["alarms"]}
+    windows = s.reference_per_equipment
+    alarmed = {a.equipment: a for a in s.alarms}
     for eq in t["equipment"].unique(maintain_order=True):
         rows = t.filter(pl.col("equipment") == eq)
         last = rows.row(-1, named=True)
-        mem = s["memory_days_per_equipment"].get(eq)
+        mem = s.memory_days_per_equipment.get(eq)
         change = last["change"]
         w = windows.get(eq)
         period = f"{w[0]} to {w[1]}" if w else "-"
@@ -200,14 +200,13 @@ def drift_summary(result: DriftResult) -> str:
                      f"{last['kw_tracked']:>10.2f} "
                      f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
                      f"{'-' if mem is None else f'{mem:.0f}':>9}  "
-                     + (f"since {alarmed[eq]['first_alarm_date']}" if eq in alarmed else ""))
-    for a in s["alarms"]:
-        lines.append(f"Alarm: {a['equipment']} from {a['first_alarm_date']}: draw "
-                     f"{100 * a['change']:+.1f} % ({100 * a['change_low']:+.1f} to "
-                     f"{100 * a['change_high']:+.1f} %) as of {a['as_of']}"
-                     + (f" (mean of its last {a['recent_days']} days, the tracker's lag taken "
-                        "out)" if "recent_days" in a else ""))
-    lines += [f"Note: {n}" for n in s["notes"]]
+                     + (f"since {alarmed[eq].first_alarm_date}" if eq in alarmed else ""))
+    for a in s.alarms:
+        lines.append(f"Alarm: {a.equipment} from {a.first_alarm_date}: draw "
+                     f"{100 * a.change:+.1f} % ({100 * a.change_low:+.1f} to "
+                     f"{100 * a.change_high:+.1f} %) as of {a.as_of}"
+                     f" (mean of its last {a.recent_days} days, the tracker's lag taken out)")
+    lines += [f"Note: {n}" for n in s.notes]
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
 
@@ -267,7 +266,7 @@ def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
         line += f", cost {_fmt_report(float(table['cost'].sum()), 2)} {_currency(result)}"
     if drift is None:
         return line + "; drift left out"
-    alarms = [a["equipment"] for a in drift.summary["alarms"]]
+    alarms = [a.equipment for a in drift.summary.alarms]
     return line + (f"; drift alarms: {', '.join(alarms)}" if alarms else "; no drift alarm")
 
 

@@ -259,9 +259,9 @@ def _summary(result: BreakdownResult, drift: DriftResult | None,
 
 
 def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
-    if drift is not None and drift.summary["alarms"]:
-        parts = [f"{e(a['equipment'])} {_pct(a['change'])} since the reference period "
-                 f"(first alarm {e(a['first_alarm_date'])})" for a in drift.summary["alarms"]]
+    if drift is not None and drift.summary.alarms:
+        parts = [f"{e(a.equipment)} {_pct(a.change)} since the reference period "
+                 f"(first alarm {e(a.first_alarm_date)})" for a in drift.summary.alarms]
         return "drift alarms for " + "; ".join(parts) + " (see Drift over time)."
     months = result.fit.own_months()
     if len(months) >= 2:
@@ -580,18 +580,18 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
     t = drift.table
     parts = [head,
              ("<p>Each equipment's draw is tracked day by day (per-weight normalized LMS, "
-              f"step size {s['step_size_mu']:.3g}, the same memory for every "
+              f"step size {s.step_size_mu:.3g}, the same memory for every "
               "load) from its draw in its own reference period (in the table; loads that run "
               "together and cannot be told apart are tracked as their group A+B). "
-              f"Rule: {e(str(s['rule']))}; threshold "
-              f"{_num(100 * float(s['threshold']), 0)} %.</p>")]
-    alarms = s["alarms"]
+              f"Rule: {e(s.rule)}; threshold "
+              f"{_num(100 * s.threshold, 0)} %.</p>")]
+    alarms = s.alarms
     if alarms:
-        parts.append(_list([f'<span class="alarm">Alarm: {e(a["equipment"])}</span> from '
-                            f"{e(a['first_alarm_date'])}: draw "
-                            f"{_num(100 * a['change'], 1)} % ({_num(100 * a['change_low'], 1)} "
-                            f"to {_num(100 * a['change_high'], 1)} %) against its reference, as "
-                            f"of {e(a['as_of'])}" for a in alarms]))
+        parts.append(_list([f'<span class="alarm">Alarm: {e(a.equipment)}</span> from '
+                            f"{e(a.first_alarm_date)}: draw "
+                            f"{_num(100 * a.change, 1)} % ({_num(100 * a.change_low, 1)} "
+                            f"to {_num(100 * a.change_high, 1)} %) against its reference, as "
+                            f"of {e(a.as_of)}" for a in alarms]))
     else:
         parts.append("<p>No alarm: no tracked draw moved beyond both its band and the "
                      "threshold.</p>")
@@ -601,10 +601,10 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
         parts.append(_figure(svg, "Tracked daily draw (line), its band (shaded), the reference "
                                   "draw (dashed), the reference period (grey) and alarm days "
                                   "(red dots)."))
-    memory = s["memory_days_per_equipment"]
-    band = s["band_sd_kw"]
-    own = s["reference_per_equipment"]
-    first_alarm = {a["equipment"]: a["first_alarm_date"] for a in alarms}
+    memory = s.memory_days_per_equipment
+    band = s.band_sd_kw
+    own = s.reference_per_equipment
+    first_alarm = {a.equipment: a.first_alarm_date for a in alarms}
     rows = []
     for n in names:
         last = t.filter(pl.col("equipment") == n).sort("date").row(-1, named=True)
@@ -621,7 +621,7 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
                          ("reference draw [kW]", True),
                          ("latest tracked [kW]", True), ("change [%]", True),
                          ("band sd [kW]", True), ("memory [d]", True), ("alarm", False)], rows))
-    notes = [n for n in s["notes"] if n not in shown]
+    notes = [n for n in s.notes if n not in shown]
     if notes:
         parts.append("<h3>Notes</h3>" + _list([e(str(n)) for n in notes]))
     parts.append("</section>")
