@@ -21,6 +21,8 @@ from disagg.analyses.clock import offset_warning
 from disagg.analyses.summary import (
     BaseloadColumn,
     BaseloadSummary,
+    CheckReport,
+    ClockOffset,
     Draw,
     FitSummary,
     MonthFit,
@@ -171,7 +173,7 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     fit = fit_summary(site, aligned, est)
     fit.estimated_months = estimated_months
     fit.months = months
-    fit.meter_validation = [f.as_dict() for f in findings]
+    fit.meter_validation = list(findings)
     fit.tariff = tariff_summary(site, table, aligned)
     if fit.tariff is not None:
         fit.warnings += fit.tariff.warnings
@@ -471,7 +473,7 @@ class CheckResult:
 
     site: SiteConfig
     aligned: Aligned
-    report: dict
+    report: CheckReport
 
 
 def check_site(site_path: str | Path, date_from: dt.date | None = None,
@@ -499,23 +501,23 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
     run = H.sum(axis=0)
     ids = aligned.equipment_ids
     sep = inseparable(H, B)
-    pairs = [[ids[i], ids[j], r] for i, j, r in sep["pairs"]]
+    pairs = [(ids[i], ids[j], float(r)) for i, j, r in sep["pairs"]]
     with_base = [ids[j] for j in sep["with_baseload"]]
-    report = {
-        "site": site.name,
-        "period": {"start_utc": frame["start_utc"].min().isoformat(),
-                   "end_utc": frame["end_utc"].max().isoformat()},
-        "interval_min": aligned.interval_min,
-        "intervals": aligned.counts,
-        "run_hours": {e: float(h) for e, h in zip(aligned.equipment_ids, run)},
-        "not_run": [e for e, h in zip(aligned.equipment_ids, run) if h == 0],
-        "inseparable_pairs": pairs,
-        "inseparable_from_baseload": with_base,
-        "findings": [f.as_dict() for f in findings],
-        "notes": [n for n in aligned.notes if n not in {f.message for f in findings}],
-    }
+    report = CheckReport(
+        site=site.name,
+        start_utc=frame["start_utc"].min().isoformat(),
+        end_utc=frame["end_utc"].max().isoformat(),
+        interval_min=aligned.interval_min,
+        intervals=aligned.counts,
+        run_hours={e: float(h) for e, h in zip(aligned.equipment_ids, run)},
+        not_run=[e for e, h in zip(aligned.equipment_ids, run) if h == 0],
+        inseparable_pairs=pairs,
+        inseparable_from_baseload=with_base,
+        findings=list(findings),
+        notes=[n for n in aligned.notes if n not in {f.message for f in findings}],
+    )
     if offset_window_min is not None:
-        report["clock_offset"] = find_log_offset(
+        report.clock_offset = find_log_offset(
             site, offset_window_min,
             site.runlog.log_offset_min if log_offset_min is None else log_offset_min,
             on_duplicate=site.meter.on_duplicate if on_duplicate is None else on_duplicate)
@@ -548,7 +550,7 @@ def check_log_offset(offset_min: float) -> None:
 
 
 def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,
-                    on_duplicate: str = "error") -> dict:
+                    on_duplicate: str = "error") -> ClockOffset:
     """Search the run-log clock offset (minutes to add to the log's times, on top of
     log_offset_min) over +-window_min; see disagg.analyses.clock.
 
@@ -567,5 +569,5 @@ def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float =
         r = estimate_log_offset(site, meter, runlog, window_min=window_min)
     except ValueError as exc:
         raise ConfigError(f"--offset-window {window_min:g}: {exc}") from None
-    return {"best_offset_min": r.best_offset_min, "clear": r.clear, "verdict": r.verdict,
-            "window_min": window_min, "already_applied_min": log_offset_min}
+    return ClockOffset(best_offset_min=r.best_offset_min, clear=r.clear, verdict=r.verdict,
+                       window_min=window_min, already_applied_min=log_offset_min)

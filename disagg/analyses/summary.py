@@ -16,6 +16,8 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass, field
 
+from disagg.inputs.vee import Finding
+
 # fit.json layout version: 2 added baseload.form, baseload.level_kwh, months' baseload_form
 # and draws' between_week_sd_kw.
 FIT_SCHEMA_VERSION = 2
@@ -185,7 +187,7 @@ class FitSummary:
     caution: str
     estimated_months: list[str] = field(default_factory=list)
     months: dict[str, MonthFit] = field(default_factory=dict)
-    meter_validation: list[dict] = field(default_factory=list)
+    meter_validation: list[Finding] = field(default_factory=list)
     tariff: TariffSummary | None = None
     schema_version: int = FIT_SCHEMA_VERSION
 
@@ -211,7 +213,7 @@ class FitSummary:
             "residual_sd_kwh": self.residual_sd_kwh, "warnings": self.warnings,
             "caution": self.caution, "estimated_months": self.estimated_months,
             "months": {p: m.as_json() for p, m in self.months.items()},
-            "meter_validation": self.meter_validation,
+            "meter_validation": [f.as_dict() for f in self.meter_validation],
             "tariff": self.tariff.as_json() if self.tariff is not None else None,
         }
 
@@ -273,3 +275,34 @@ class DriftSummary:
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
         out["alarms"] = [a.as_json() for a in self.alarms]
         return out
+
+
+@dataclass
+class ClockOffset:
+    """The run-log clock offset search of `disagg check --find-offset` [min]."""
+
+    best_offset_min: float
+    clear: bool
+    verdict: str
+    window_min: float
+    already_applied_min: float
+
+
+@dataclass
+class CheckReport:
+    """What `disagg check` found without fitting: the range, interval counts, run-hours per
+    load, loads the data cannot tell apart, the meter validation and, when asked, the
+    run-log clock offset."""
+
+    site: str
+    start_utc: str
+    end_utc: str
+    interval_min: float
+    intervals: dict[str, int]
+    run_hours: dict[str, float]  # equipment id -> run-hours in the intervals used [h]
+    not_run: list[str]
+    inseparable_pairs: list[tuple[str, str, float]]  # (id, id, correlation of hours)
+    inseparable_from_baseload: list[str]
+    findings: list[Finding]  # the meter validation's (disagg.inputs.vee)
+    notes: list[str]
+    clock_offset: ClockOffset | None = None

@@ -149,32 +149,32 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
 
 def check_summary(result: CheckResult) -> str:
     r = result.report
-    c = r["intervals"]
+    c = r.intervals
     zone = zoneinfo.ZoneInfo(result.site.timezone)
-    start, end = (dt.datetime.fromisoformat(r["period"][k]).astimezone(zone).isoformat()
-                  for k in ("start_utc", "end_utc"))
-    lines = [f"{r['site']}: {start} to {end} ({result.site.timezone}), "
-             f"{r['interval_min']}-minute meter intervals",
+    start, end = (dt.datetime.fromisoformat(t).astimezone(zone).isoformat()
+                  for t in (r.start_utc, r.end_utc))
+    lines = [f"{r.site}: {start} to {end} ({result.site.timezone}), "
+             f"{r.interval_min}-minute meter intervals",
              f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
              f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
-    for e, h in r["run_hours"].items():
+    for e, h in r.run_hours.items():
         lines.append(f"  {e:<20} {h:>10,.1f} run h")
-    for a, b, rho in r["inseparable_pairs"]:
+    for a, b, rho in r.inseparable_pairs:
         lines.append(f"cannot be told apart: {a} and {b} (correlation of hours {rho:.3f})")
-    for e in r["inseparable_from_baseload"]:
+    for e in r.inseparable_from_baseload:
         lines.append(f"cannot be told apart from the baseload schedule: {e}")
-    for e in r["not_run"]:
+    for e in r.not_run:
         lines.append(f"never ran in this period: {e}")
-    findings = r.get("findings", [])
+    findings = r.findings
     if findings:
         lines.append(f"Meter validation: {len(findings)} finding{'s' * (len(findings) != 1)}")
-        lines += [f"  {f['message']}" for f in findings]
+        lines += [f"  {f.message}" for f in findings]
     else:
         lines.append("Meter validation: no gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours or register rollovers found")
-    lines += [f"Note: {n}" for n in r["notes"]]
-    if "clock_offset" in r:
-        lines.append(f"Run-log clock: {r['clock_offset']['verdict']}")
+    lines += [f"Note: {n}" for n in r.notes]
+    if r.clock_offset is not None:
+        lines.append(f"Run-log clock: {r.clock_offset.verdict}")
     return "\n".join(lines)
 
 def drift_summary(result: DriftResult) -> str:

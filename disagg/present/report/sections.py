@@ -676,7 +676,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
     unknown = {k: v for k, v in fit.unknown_intervals_by_equipment.items() if v}
     findings = fit.meter_validation
     warnings = fit.warnings
-    finding_messages = {str(fd.get("message", "")) for fd in findings}
+    finding_messages = {fd.message for fd in findings}
     other_warnings = group_kinds([w for w in warnings if str(w) not in finding_messages])
     parts = ['<section class="page" id="fit"><h2>4. How good the fit is</h2>',
              _figure(svg1, f"Metered and fitted energy per local {unit} (sums of the intervals "
@@ -698,7 +698,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
                      + e(", ".join(f"{k} {v:,}" for k, v in unknown.items())) + ".</p>")
     if findings:
         parts.append("<h3>Meter validation findings</h3>"
-                     + _list([e(str(fd.get("message", ""))) for fd in findings]))
+                     + _list([e(fd.message) for fd in findings]))
     else:
         parts.append("<p>The meter validation (gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours, register rollovers) raised no finding; "
