@@ -75,3 +75,22 @@ def test_drift_json_is_the_drift_summarys_json_form(tmp_path):
     assert json.loads(to_json(result.summary.as_json())) == on_disk
     assert [a["equipment"] for a in on_disk["alarms"]] == ["DH-1"]
     assert on_disk["alarms"][0]["first_alarm_date"] == result.summary.alarms[0].first_alarm_date
+
+
+def test_compare_json_is_the_compare_reports_json_form(tmp_path):
+    # The bundled demo building (invented): spring against autumn of its one year.
+    import datetime as dt
+
+    from disagg.analyses.compare import compare_site
+    from disagg.analyses.summary import CompareReport
+    from disagg.present.outputs import write_compare
+
+    result = compare_site(ROOT / "configs" / "demo.toml",
+                          (dt.date(2025, 3, 1), dt.date(2025, 5, 31)),
+                          (dt.date(2025, 9, 1), dt.date(2025, 11, 30)))
+    assert isinstance(result.report, CompareReport)
+    write_compare(result, tmp_path)
+    on_disk = json.loads((tmp_path / "compare.json").read_text())
+    assert json.loads(to_json(result.report.as_json())) == on_disk
+    assert on_disk["periods"]["before"]["from"] == "2025-03-01"
+    assert on_disk["periods"]["after"]["intervals_used"] == result.report.after.intervals_used

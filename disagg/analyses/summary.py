@@ -306,3 +306,54 @@ class CheckReport:
     findings: list[Finding]  # the meter validation's (disagg.inputs.vee)
     notes: list[str]
     clock_offset: ClockOffset | None = None
+
+
+@dataclass
+class ComparePeriod:
+    """One period of `disagg compare`: its dates (local, inclusive) and its own fit."""
+
+    date_from: str  # ISO date
+    date_to: str
+    intervals_used: int
+    days: int
+    critical_value: float
+    baseload_row: str
+    fit_quality: dict
+    warnings: list[str]
+
+    def as_json(self) -> dict:
+        return {"from": self.date_from, "to": self.date_to,
+                "intervals_used": self.intervals_used, "days": self.days,
+                "critical_value": self.critical_value, "baseload_row": self.baseload_row,
+                "fit_quality": self.fit_quality, "warnings": self.warnings}
+
+
+@dataclass
+class CompareReport:
+    """What `disagg compare` found, typed; `as_json` gives compare.json's layout.
+
+    equipment: one mapping per compare.csv row with the standard errors, z, the change's
+    interval, both periods' flags and why a verdict is unclear (compare.compare_estimates).
+    """
+
+    tool: str
+    site: str
+    timezone: str
+    site_file: str
+    confidence: float
+    min_change: float
+    method: str
+    groups: list[str]
+    before: ComparePeriod
+    after: ComparePeriod
+    equipment: list[dict]
+    data_notes: list[str]
+    caution: str
+
+    def as_json(self) -> dict:
+        return {"tool": self.tool, "site": self.site, "timezone": self.timezone,
+                "site_file": self.site_file, "confidence": self.confidence,
+                "min_change": self.min_change, "method": self.method, "groups": self.groups,
+                "periods": {"before": self.before.as_json(), "after": self.after.as_json()},
+                "equipment": self.equipment, "data_notes": self.data_notes,
+                "caution": self.caution}

@@ -360,6 +360,6 @@ def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
     site = result.site
     files = {
         "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
-        "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
+        "compare.json": lambda p: p.write_text(to_json(result.report.as_json()), encoding="utf-8"),
     }
     return write_atomically(out_dir, files, site.input_files())

@@ -214,11 +214,11 @@ def drift_summary(result: DriftResult) -> str:
 def compare_summary(result: CompareResult) -> str:
     """A short readable table of both periods' draws, the verdicts, notes and the caution."""
     r = result.report
-    pb, pa = r["periods"]["before"], r["periods"]["after"]
-    level = f"{100 * r['confidence']:g} %"
-    lines = [(f"{r['site']}: draws before {pb['from']} to {pb['to']} ({pb['intervals_used']:,} "
-             f"intervals used) and after {pa['from']} to {pa['to']} ({pa['intervals_used']:,} "
-             "intervals used)"),
+    pb, pa = r.before, r.after
+    level = f"{100 * r.confidence:g} %"
+    lines = [(f"{r.site}: draws before {pb.date_from} to {pb.date_to} ({pb.intervals_used:,} "
+             f"intervals used) and after {pa.date_from} to {pa.date_to} "
+             f"({pa.intervals_used:,} intervals used)"),
              "",
              f"kW: running draw [kW] and its {level} range; change: after / before - 1 [%]",
              (f"{'equipment':<22} {'kW before':>9} {'range':>15} {'kW after':>9} {'range':>15} "
@@ -236,21 +236,21 @@ def compare_summary(result: CompareResult) -> str:
                      f"{_num_spec(row['kw_after'], ',.2f'):>9} "
                      f"{rng(row['kw_after_low'], row['kw_after_high']):>15} "
                      f"{change:>8} {p_text:>8}  {row['verdict']}")
-    lines.append(f"rising/falling: p-value under {1 - r['confidence']:.3g} and a change of at "
-                 f"least {100 * r['min_change']:g} %; steady: two one-sided tests put the change "
-                 f"inside +-{100 * r['min_change']:g} %; unclear: the data cannot tell (why "
+    lines.append(f"rising/falling: p-value under {1 - r.confidence:.3g} and a change of at "
+                 f"least {100 * r.min_change:g} %; steady: two one-sided tests put the change "
+                 f"inside +-{100 * r.min_change:g} %; unclear: the data cannot tell (why "
                  "below).")
-    for d in r["equipment"]:
+    for d in r.equipment:
         if d.get("reference_temp_c") is not None:
             lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
                          "outdoor temperature")
-    for d in r["equipment"]:
+    for d in r.equipment:
         if d["reason"]:
             lines.append(f"unclear {d['equipment']}: {d['reason']}")
     for name, p in (("before", pb), ("after", pa)):
-        for w in p["warnings"]:
+        for w in p.warnings:
             lines.append(f"Note ({name}): {w}")
-    for n in r["data_notes"]:
+    for n in r.data_notes:
         lines.append(f"Note: {n}")
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
