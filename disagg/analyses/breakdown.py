@@ -89,8 +89,9 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
             run_h = float(run_hs[i])
             kw = float(est.kw[i])
             if t.column is None:
+                # Did not run in this fit: no draw to state (its prior is in fit.json).
                 kwh = kwh_lo = kwh_hi = 0.0
-                lo = hi = float("nan")
+                kw = lo = hi = float("nan")
             elif i in est.weather and run_h > 0:
                 # Draw varies with outdoor temperature: energy = b0 x run_h + slope x
                 # sum(run_h x degrees beyond balance), interval from their covariance.
