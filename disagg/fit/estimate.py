@@ -52,6 +52,7 @@ from disagg.fit.intervals import (  # noqa: F401  (re-exported for callers and t
     between_week_variance,
     fitted_of,
     intervals,
+    level_sum_variance,
     schedule_edge_share,
 )
 from disagg.fit.select import (
@@ -140,6 +141,10 @@ class Estimates:
     # (n_used,) each interval's local week label: the monthly kWh intervals use them.
     tau2_kw2: np.ndarray | None = None
     week: np.ndarray | None = None
+    # With the wandering level: local month (year x 100 + month) -> variance of the month's
+    # baseload energy, the profile's and the level's together [kWh^2]
+    # (intervals.level_sum_variance); None without the level (cov_base then suffices).
+    base_var_kwh2: dict[int, float] | None = None
 
 
 
@@ -340,6 +345,11 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
     quality["monthly"] = {"months": len(np.unique(rows.month)),
                           "nmbe_pct": float(100 * (y_sum - float(np.sum(fitted))) / y_sum)
                           if y_sum else float("nan")}
+    base_var = None
+    if s.level:
+        covs = (cov,) + ((jk.cov_jack * (jk.q_jack / jk.q_hac) ** 2,) if jk.checked else ())
+        base_var = level_sum_variance(rows.sp, s.choice.form.q, s.fit.sigma2, X, base_slice,
+                                      rows.month, covs)
     k = s.k
     return Estimates(
         terms=plan.terms, base_names=s.base_names, base_id=plan.base_id, frame=rows.frame,
@@ -352,7 +362,7 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
         warnings=warnings, form=s.choice, level_kwh=s.level_kwh,
         tau2_kw2=np.array([iv.tau2[t.column] if t.column is not None and t.column < k else 0.0
                            for t in plan.terms]),
-        week=iv.week)
+        week=iv.week, base_var_kwh2=base_var)
 
 
 def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, days: np.ndarray,

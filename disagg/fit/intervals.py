@@ -11,12 +11,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import polars as pl
+from scipy.linalg import solveh_banded
 
 from disagg.fit.design import BaseloadBuilder, Rows
 from disagg.fit.select import FormChoice
 from disagg.fit.solve import Priors, Solved
 from disagg.fit.solvers import chi2_upper_quantile, fit_model, jackknife_cov, quantile
 from disagg.fit.terms import Term
+from disagg.fit.wander import Spacing
 from disagg.inputs.config import BaseloadSettings, SiteConfig
 
 # An estimate whose posterior precision comes at least half from its prior is prior-driven.
@@ -338,6 +340,55 @@ def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
                      edge_moves=edge_moves, schedule_bound=bound,
                      width_hac=(coef + half_hac) - np.maximum(coef - half_hac, 0.0),
                      tau2=tau2, week=week, variants=variants)
+
+
+def level_sum_variance(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base: slice,
+                       labels: np.ndarray, covs: tuple[np.ndarray, ...]) -> dict[int, float]:
+    """Variance of each label's (month's) baseload energy with the wandering level [kWh^2]:
+    the profile's part c'b (c: the label's summed baseload columns [h]) plus the level's
+    energy L = sum h_t mu_t over the label's rows.
+
+    Given the coefficients b, the level's posterior is Gaussian with precision
+    A / sigma^2, A = V^-1 + D' W D tridiagonal (the smoother of wander.smooth_level: V the
+    rows' relative noise variances, W = h0 / (q dt) the random walk's step weights); its
+    covariance sigma^2 A^-1 is the smoothed state variance (Durbin & Koopman 2012, sec. 4.4
+    and 2.4; a diffuse first level). With a = h on the label's rows and x = A^-1 a (one
+    banded solve), Var(L | b) = sigma^2 a'x. The level's mean depends on b through the
+    residuals: dL/db = -X'(x / (v h)), so b's error adds g' C g with
+    g = (0, ..., c) - X'(x / (v h)) (total variance: E Var(L | b) + Var E(L | b)); C is the
+    wider (larger g' C g) of the covariances given (HAC and scaled jackknife).
+
+    Args:
+        sp: the rows' spacing; q: noise ratio (0: a constant level); sigma2: noise variance
+            of an h0-long interval's kW [kW^2]; X: (n, p) design [h, h degC, h]; base: its
+            baseload columns; labels: (n,) integer label of each row; covs: (p, p) [kW^2].
+
+    References:
+        Durbin, J. & Koopman, S. J. (2012). Time Series Analysis by State Space Methods, 2nd
+        ed. Oxford University Press (state smoothing variance).
+    """
+    h = sp.h
+    iv = 1.0 / sp.v
+    band = None
+    if q > 0.0 and len(h) >= 2:
+        w = sp.h0 / (q * sp.dt)
+        diag = iv.copy()
+        diag[:-1] += w
+        diag[1:] += w
+        band = np.vstack([np.concatenate([[0.0], -w]), diag])
+    out: dict[int, float] = {}
+    for lab in np.unique(labels):
+        m = labels == lab
+        a = np.where(m, h, 0.0)
+        if band is None:  # a constant level: the weighted mean of the residual kW
+            x = np.full(len(h), a.sum() / iv.sum())
+        else:
+            x = solveh_banded(band, a, check_finite=False)
+        g = -(X.T @ (iv * x / h))
+        g[base] += X[m, base].sum(axis=0)
+        var_b = max(float(g @ C @ g) for C in covs)
+        out[int(lab)] = sigma2 * float(a @ x) + max(var_b, 0.0)
+    return out
 
 
 def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndarray:
