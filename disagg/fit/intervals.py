@@ -384,8 +384,8 @@ def level_sum_variance(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base
             x = np.full(len(h), a.sum() / iv.sum())
         else:
             x = solveh_banded(band, a, check_finite=False)
-        g = -(X.T @ (iv * x / h))
-        g[base] += X[m, base].sum(axis=0)
+        g = -(X.T @ (iv * x / h))  # matrix-vector products on X: no copy of its rows
+        g[base] += (X.T @ m.astype(float))[base]
         var_b = max(float(g @ C @ g) for C in covs)
         out[int(lab)] = sigma2 * float(a @ x) + max(var_b, 0.0)
     return out
