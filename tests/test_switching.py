@@ -1,4 +1,4 @@
-"""The switching-steps check (disagg.fit.estimate.switching_steps): a load's draw from the
+"""The switching-steps check (disagg.fit.intervals.switching_steps): a load's draw from the
 meter's steps where it switches on against those where it switches off. Synthetic data with
 known truth (invented here, tests/synthetic.py) and an outside check against statsmodels OLS."""
 
@@ -11,12 +11,8 @@ import polars as pl
 import pytest
 import statsmodels.api as sm
 
-from disagg.fit.estimate import (
-    STEP_SENSITIVE,
-    estimate_draws,
-    split_switching,
-    switching_steps,
-)
+from disagg.fit.estimate import estimate_draws
+from disagg.fit.intervals import STEP_SENSITIVE, split_switching, switching_steps
 from synthetic import make_building
 
 
