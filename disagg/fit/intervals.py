@@ -339,9 +339,9 @@ class Intervals:
 
     low, high: the final interval [kW] (low >= 0); widened: where a check widened it; moved,
     form_moves, edge_moves, step_moves: how the estimate moved (phrases for the flags);
-    schedule_bound: draws the by-day projection leaves to their prior; width_hac: the HAC interval's width
-    (clipped at 0) [kW]; tau2: (k,) between-week variance of the draws [kW^2]; week: (n,)
-    local Monday-start week of each row; variants: fit.json's "variants".
+    schedule_bound: draws the by-day projection leaves to their prior; width_hac: the HAC
+    interval's width (clipped at 0) [kW]; tau2: (k,) between-week variance of the draws
+    [kW^2]; week: (n,) local Monday-start week of each row; variants: fit.json's "variants".
     """
 
     jk: Jackknife
