@@ -110,3 +110,63 @@ def test_nlms_keeping_some_rows_equals_those_rows_of_the_full_run(monkeypatch):
                                   full[rows])
     with pytest.raises(ValueError, match="increasing"):
         nlms(X, y, np.zeros(4), 0.5, 1.0, scale, rows=np.array([5, 3]))
+
+
+# --- memory limits ------------------------------------------------------------------------
+
+# The limit is set after the command's modules are loaded (as under a limit that lets the
+# program start), with `room` MB of address space to spare.
+_UNDER_LIMIT = """
+import resource, sys
+from disagg.cli import app
+import disagg.analyses.drift, disagg.jobs.site, disagg.present.report, typer.rich_utils
+vm = [int(x.split()[1]) * 1024 for x in open('/proc/self/status') if x.startswith('VmSize:')][0]
+resource.setrlimit(resource.RLIMIT_AS, (vm + int(sys.argv[1]) * 2**20, resource.RLIM_INFINITY))
+sys.argv = ['disagg'] + sys.argv[2:]
+app()
+"""
+
+
+@pytest.mark.parametrize("command", ["breakdown", "report", "drift"])
+def test_a_run_that_cannot_fit_under_a_memory_limit_is_one_error_line(tmp_path, command):
+    """Under `ulimit -v` (RLIMIT_AS) with 64 MB of address space to spare, a site of 200,000
+    meter rows is refused before reading with one Error line and exit 1, not an allocation
+    abort (exit 134, as before the check) or a traceback. The rows are invented and never
+    parsed."""
+    import subprocess
+    import sys
+
+    from sitefiles import write_site_toml
+
+    t0 = dt.datetime(2025, 1, 1, 0, 1)
+    rows = "".join(f"{t0 + dt.timedelta(minutes=i):%Y-%m-%dT%H:%M},0.5\n"
+                   for i in range(200_000))
+    (tmp_path / "meter.csv").write_text("time,kwh\n" + rows)
+    (tmp_path / "log.csv").write_text("time,point,state\n2025-01-01T00:00,A,on\n")
+    site = write_site_toml(tmp_path / "site.toml", name="Limit test", timezone="UTC",
+                           meter_file="meter.csv", runlog_file="log.csv",
+                           equipment=["A", "B", "C"])
+    out = subprocess.run([sys.executable, "-c", _UNDER_LIMIT, "64", command, str(site),
+                          "--out", str(tmp_path / "out")],
+                         capture_output=True, text=True, timeout=120)
+    lines = out.stderr.strip().splitlines()
+    assert out.returncode == 1, out.stderr
+    assert len(lines) == 1 and lines[0].startswith("Error: "), out.stderr
+    assert "meter.csv: 200001 lines x 3 loads" in lines[0] and "ulimit -v" in lines[0]
+    assert not (tmp_path / "out").exists()
+
+
+def test_memory_error_is_one_error_line(capsys):
+    """numpy raises MemoryError when an array cannot be allocated: one Error line, exit 1."""
+    import typer
+
+    from disagg import cli
+
+    def fails():
+        raise MemoryError("Unable to allocate 1.26 GiB for an array with shape (5259600, 30)")
+
+    with pytest.raises(typer.Exit) as exc:
+        cli._guard(fails)
+    assert exc.value.exit_code == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("Error: out of memory")
