@@ -170,3 +170,23 @@ def test_memory_error_is_one_error_line(capsys):
     assert exc.value.exit_code == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("Error: out of memory")
+
+
+def test_a_whole_range_fit_shares_the_aligned_hours_with_its_design(site_file):
+    """After the whole-range fit, aligned.hours is a read-only view of the fit's term columns
+    with the same numbers (one (n, k) array, not two); a fit of some intervals leaves it."""
+    import dataclasses
+
+    from disagg.fit.estimate import estimate_draws
+
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    assert aligned.use.all()
+    before = aligned.hours.copy()
+    part = dataclasses.replace(aligned, use=np.arange(len(aligned.use)) < 700)
+    estimate_draws(site, part)
+    assert part.hours is aligned.hours  # a fit of some intervals shares nothing
+    est = estimate_draws(site, aligned)
+    assert np.shares_memory(aligned.hours, est.hours)
+    assert not aligned.hours.flags.writeable
+    np.testing.assert_array_equal(aligned.hours, before)

@@ -241,6 +241,30 @@ def term_hours(aligned: Aligned, term_members: list[list[str]],
     return out
 
 
+def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]]) -> bool:
+    """Point aligned.hours at a design's term columns Hf when they hold the same numbers, so
+    that a whole-range fit of a long series keeps one (n, k) array of hours, not two.
+
+    They do when every interval is used and the terms are the loads themselves, one each, in
+    aligned's order (no combined, folded or idle load); the columns are compared, and
+    aligned.hours is left alone otherwise. aligned.hours then becomes a read-only view of the
+    design (the same values; nothing writes into aligned hours after alignment).
+
+    Returns:
+        True when aligned.hours now shares Hf's memory.
+    """
+    H = aligned.hours
+    if (not aligned.use.all() or Hf.shape != H.shape or Hf is H
+            or term_members != [[e] for e in aligned.equipment_ids]):
+        return False
+    if not all(np.array_equal(Hf[:, j], H[:, j]) for j in range(H.shape[1])):
+        return False
+    view = Hf.view()
+    view.flags.writeable = False
+    aligned.hours = view
+    return True
+
+
 def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
               base: np.ndarray) -> tuple[int, list[float] | None]:
     """Residual sum of squares of the non-negative least-squares fit of the meter on the

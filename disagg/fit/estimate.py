@@ -21,6 +21,7 @@ from disagg.fit.align import (
     edge_columns,
     frame_arrays,
     frame_baseload,
+    share_hours,
     term_hours,
 )
 from disagg.fit.select import (
@@ -417,6 +418,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     X[:, k:kx] = weather_columns(X[:, :k], temp, wspecs)
     X[:, kx:] = B
     Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
+    share_hours(aligned, Hf, [t.members for t in fitted_terms])
 
     # --- fit ----------------------------------------------------------------------------
     def priors(m: int) -> tuple[np.ndarray, np.ndarray]:
@@ -437,6 +439,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
         B, base_names = base_for(profile)
         X = np.column_stack([Hx, B])
         Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
+        share_hours(aligned, Hf, [t.members for t in fitted_terms])
     level_kwh = np.zeros(n)
     if choice.form.level:
         keep = kept_columns(profile, B.shape[1])
@@ -444,6 +447,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
         base_names = [base_names[i] for i in keep]
         X = np.column_stack([Hx, B])
         Hf, Wf, Hx = X[:, :k], X[:, k:kx], X[:, :kx]
+        share_hours(aligned, Hf, [t.members for t in fitted_terms])
     p_mean, p_sd = priors(B.shape[1])
     lower = np.zeros(X.shape[1])
     if choice.form.level:
