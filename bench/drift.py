@@ -48,8 +48,8 @@ STEP_CASES = {"cycling AC-1": ("AC-1", dt.date(2025, 6, 1)),
 
 
 def first_alarms(result) -> dict[str, dt.date]:
-    return {a["equipment"]: dt.date.fromisoformat(a["first_alarm_date"])
-            for a in result.summary["alarms"]}
+    return {a.equipment: dt.date.fromisoformat(a.first_alarm_date)
+            for a in result.summary.alarms}
 
 
 def chiller(n_seeds: int) -> None:
@@ -64,8 +64,8 @@ def chiller(n_seeds: int) -> None:
         first = first_alarms(r)
         if GROUP in first:
             delays.append((first[GROUP] - CHILLER_STEP_ON).days)
-            a = next(a for a in r.summary["alarms"] if a["equipment"] == GROUP)
-            covered += a["change_low"] <= GROUP_TRUE_CHANGE <= a["change_high"]
+            a = next(a for a in r.summary.alarms if a.equipment == GROUP)
+            covered += a.change_low <= GROUP_TRUE_CHANGE <= a.change_high
         for eq in first:
             if eq != GROUP:
                 others[eq] = others.get(eq, 0) + 1
@@ -86,7 +86,7 @@ def false_alarms(n_seeds: int, wander_kw: float = 0.0) -> None:
         s = make_year(1000 + seed, wander_kw=wander_kw)
         r = drift_aligned(s.site, s.aligned)
         first = first_alarms(r)
-        n_loads += len(r.summary["band_sd_kw"])
+        n_loads += len(r.summary.band_sd_kw)
         runs += bool(first)
         load_years += len(first)
         for eq in first:

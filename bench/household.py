@@ -363,14 +363,14 @@ def run_month(minutes: pl.DataFrame, month: str, folder: Path, threshold_wh: flo
     mm = month_of(minutes, month)
     site = write_site(folder / f"{month}_{threshold_wh:g}_{baseload}", mm, threshold_wh, baseload)
     result = breakdown_site(site)
-    out = compare_month(month, result.breakdown, measured_kwh(mm), result.fit)
+    out = compare_month(month, result.breakdown, measured_kwh(mm), result.fit.as_json())
     for row in out.rows:  # energy the run log cannot see: the circuit's minutes logged "off"
         row["off_kwh"] = sum(float(mm.filter(pl.col(c) <= threshold_wh)[c].sum()) / 1000.0
                              for c in row["members"] if c in CIRCUITS)
     out.intervals = dict(result.aligned.counts)
-    out.warnings = list(result.fit["warnings"])
-    out.quality = result.fit["fit_quality"]
-    form = result.fit["baseload"].get("form") or {}
+    out.warnings = list(result.fit.warnings)
+    out.quality = result.fit.fit_quality
+    form = result.fit.baseload.form or {}
     out.form = form.get("used", "")
     return out
 

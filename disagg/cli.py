@@ -26,6 +26,9 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 
 app = typer.Typer(
     add_completion=False,
+    # Plain help text: site-file tables such as [runlog] are written as they are (rich markup
+    # would read them as style tags and drop them), and flags show no value placeholder.
+    rich_markup_mode=None,
     no_args_is_help=True,
     help="Per-equipment monthly energy from one interval meter and the building automation "
          "run logs, with honest uncertainty.",

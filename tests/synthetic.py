@@ -10,7 +10,7 @@ and draws that vary with a weather-like signal).
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -30,6 +30,8 @@ class Synthetic:
     aligned: Aligned
     true_kw: dict[str, float]  # energy / run-hours over the whole period [kW]
     true_kwh_month: dict[tuple[str, str], float]
+    # The unlogged baseload's energy by local month "YYYY-MM" [kWh] (noise excluded).
+    true_base_kwh_month: dict[str, float] = field(default_factory=dict)
 
 
 def aligned_15min(start_utc: pl.Series, energy_kwh: np.ndarray, status: dict[str, np.ndarray],
@@ -146,7 +148,8 @@ def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_k
     true_kw = {i: float(energy[i].sum() / hours[:, k].sum()) for k, i in enumerate(ids)}
     month = local.dt.strftime("%Y-%m").to_numpy()
     true_month = {(m, i): float(energy[i][month == m].sum()) for m in set(month) for i in ids}
-    return Synthetic(site, aligned, true_kw, true_month)
+    true_base = {m: float(base_kw[month == m].sum() * 0.25) for m in set(month)}
+    return Synthetic(site, aligned, true_kw, true_month, true_base)
 
 
 # --- buildings whose baseload moves with the time of day or drifts (issue 10) --------------
@@ -247,4 +250,5 @@ def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: fl
     true_month = {(m, i): float(energy[i][month == m].sum()) for m in set(month) for i in ids}
     for m in set(month):
         true_month[(m, "AHU-1+AP-1")] = true_month[(m, "AHU-1")] + true_month[(m, "AP-1")]
-    return Synthetic(site, aligned, true_kw, true_month)
+    true_base = {m: float(np.maximum(base, 0)[month == m].sum() * 0.25) for m in set(month)}
+    return Synthetic(site, aligned, true_kw, true_month, true_base)

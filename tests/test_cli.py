@@ -627,3 +627,14 @@ def test_a_nan_meter_reading_is_an_error_line(tmp_path):
     assert result.exit_code == 1
     assert result.stderr == (f"Error: {s['meter']}: line 6, column 'kwh': 'NaN' is not a number; "
                              "expected energy in kWh\n")
+
+
+def test_help_keeps_site_file_tables_and_shows_no_value_for_flags():
+    # Help text names site-file tables such as [runlog]; a markup renderer would drop them.
+    r = runner.invoke(app, ["breakdown", "--help"], terminal_width=100)
+    assert r.exit_code == 0
+    text = " ".join(r.output.split())
+    assert "the site file's [runlog] log_offset_minutes, else 0." in text
+    assert "the site file's [meter] on_duplicate, else error." in text
+    assert "--xlsx Also write breakdown.xlsx" in text  # a flag takes no value
+    assert "<bool>" not in text

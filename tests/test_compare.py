@@ -524,8 +524,8 @@ def test_the_group_is_compared_and_its_members_say_so():
     s = make_year(0, steps={"CH-1": (1.15, CHILLER_STEP_ON)})
     result = compare_aligned(s.site, s.aligned, (dt.date(2025, 4, 1), dt.date(2025, 7, 24)),
                              (dt.date(2025, 8, 1), dt.date(2025, 10, 31)))
-    rows = {r["equipment"]: r for r in result.report["equipment"]}
-    assert result.report["groups"] == ["CH-1+CWP-1"]
+    rows = {r["equipment"]: r for r in result.report.equipment}
+    assert result.report.groups == ["CH-1+CWP-1"]
     g = rows["CH-1+CWP-1"]
     assert g["verdict"] == "rising", g
     assert g["change_low"] <= 18.0 / 135.0 <= g["change_high"], g

@@ -47,9 +47,9 @@ def test_demo_breakdown_adds_up_and_combines_the_pair():
     truth = {r["equipment"]: r for r in
              pl.read_csv(ROOT / "demo_meters" / "truth.csv").iter_rows(named=True)}
     covered = 0
-    for d in result.fit["draws"]:
-        true_kw = (sum(truth[m]["kwh"] for m in d["members"]) / truth[d["members"][0]]["run_hours"])
-        covered += d["kw_low"] <= true_kw <= d["kw_high"]
+    for d in result.fit.draws:
+        true_kw = sum(truth[m]["kwh"] for m in d.members) / truth[d.members[0]]["run_hours"]
+        covered += d.kw_low <= true_kw <= d.kw_high
     assert covered >= 8, covered
     monthly = pl.read_csv(ROOT / "demo_meters" / "truth_monthly.csv")
     err = total = 0.0
@@ -69,8 +69,8 @@ def test_unstable_is_kept_for_intervals_that_matter():
     # whole-year draw moves with the time period and is flagged; the chiller group's widening
     # is about +-0.1 % of 90 kW, below UNSTABLE_MIN_HALF_SHARE, and is not.
     result = breakdown_site(ROOT / "configs" / "demo.toml")
-    flags = {d["equipment"]: d["flags"] for d in result.fit["draws"]}
+    flags = {d.equipment: d.flags for d in result.fit.draws}
     assert "unstable" in flags["DH-1"]
     assert "unstable" not in flags["CH-1+CHWP-1"]
-    ch = next(d for d in result.fit["draws"] if d["equipment"] == "CH-1+CHWP-1")
-    assert (ch["kw_high"] - ch["kw_low"]) / 2 < 0.02 * ch["kw"]
+    ch = result.fit.draw("CH-1+CHWP-1")
+    assert (ch.kw_high - ch.kw_low) / 2 < 0.02 * ch.kw

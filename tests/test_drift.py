@@ -46,8 +46,8 @@ THRESHOLD = 0.10
 
 
 def _first_alarms(result) -> dict[str, dt.date]:
-    return {a["equipment"]: dt.date.fromisoformat(a["first_alarm_date"])
-            for a in result.summary["alarms"]}
+    return {a.equipment: dt.date.fromisoformat(a.first_alarm_date)
+            for a in result.summary.alarms}
 
 
 def test_a_15_percent_step_is_alarmed_for_that_load_only_within_the_stated_delay():
@@ -67,9 +67,9 @@ def test_a_15_percent_step_is_alarmed_for_that_load_only_within_the_stated_delay
         # the reference (the tracker's lag taken out), its interval carrying that level's
         # and the reference's errors. Measured: 0.139-0.171; the 95 % interval holds the true
         # 0.15 in 10 of 10 seeds (before, without the lag and the reference's error: 2 of 10).
-        a = result.summary["alarms"][0]
-        assert THRESHOLD < a["change"] < 0.2, (seed, a["change"])
-        covered += a["change_low"] <= STEP_FACTOR - 1 <= a["change_high"]
+        a = result.summary.alarms[0]
+        assert THRESHOLD < a.change < 0.2, (seed, a.change)
+        covered += a.change_low <= STEP_FACTOR - 1 <= a.change_high
     assert max(delays) <= MAX_DELAY_DAYS, delays
     assert min(delays) > 0, delays
     # 95 % intervals: 8 or more of 10 hold the truth with probability 0.99 (binomial).
@@ -137,7 +137,7 @@ def test_a_step_outside_the_stable_range_is_refused(building_120_days, step, sho
 def test_a_step_just_inside_the_range_runs(building_120_days):
     s = building_120_days
     result = drift_aligned(s.site, s.aligned, step=1.99)
-    assert result.summary["step_size_mu"] == 1.99
+    assert result.summary.step_size_mu == 1.99
     assert np.isfinite(result.table["kw_tracked"].to_numpy()).all()
 
 
@@ -153,7 +153,7 @@ def test_a_memory_needing_an_unstable_step_is_refused_naming_the_shortest_memory
     shortest = float(m.group(2))
     # The memory it names is accepted, and gives a step inside the range.
     result = drift_aligned(s.site, s.aligned, memory_days=shortest)
-    mu = result.summary["step_size_mu"]
+    mu = result.summary.step_size_mu
     assert mu > 1.0 and mu < 2.0
 
 
@@ -161,8 +161,8 @@ def test_memory_over_a_third_of_the_data_is_warned_about(building_120_days):
     s = building_120_days
     note = ("the memory of 41 days is over a third of the 120 days of data: the tracker cannot "
             "follow a change within this data; use a shorter --memory")
-    assert note in drift_aligned(s.site, s.aligned, memory_days=41).summary["notes"]
-    notes = drift_aligned(s.site, s.aligned, memory_days=39).summary["notes"]
+    assert note in drift_aligned(s.site, s.aligned, memory_days=41).summary.notes
+    notes = drift_aligned(s.site, s.aligned, memory_days=39).summary.notes
     assert not any("over a third" in n for n in notes)
 
 
@@ -182,24 +182,24 @@ def test_loads_that_run_together_are_tracked_and_alarmed_as_their_group():
                       step=("CH-1", STEP_FACTOR), step_on=dt.date(2025, 6, 15))
     result = drift_aligned(s.site, s.aligned)
     summary = result.summary
-    assert summary["groups"] == ["CH-1+P-1"]
-    status = {r["equipment"]: r for r in summary["equipment"]}
+    assert summary.groups == ["CH-1+P-1"]
+    status = {r["equipment"]: r for r in summary.equipment}
     for eq in ("CH-1", "P-1"):
         assert status[eq]["status"] == "covered by group"
         assert status[eq]["tracked_as"] == "CH-1+P-1"
         assert eq not in set(result.table["equipment"])
     assert ("CH-1: covered by the group CH-1+P-1: its members run together and the data "
             "cannot tell them apart; the group's combined draw is tracked and alarmed"
-            ) in summary["notes"]
+            ) in summary.notes
     first = _first_alarms(result)
     assert set(first) == {"CH-1+P-1"}
     # Measured: alarmed 2025-07-06 (21 days after the step), change +13.4 % (13.0 to 13.9).
     assert dt.date(2025, 6, 15) < first["CH-1+P-1"] <= dt.date(2025, 6, 15) + dt.timedelta(days=45)
-    alarm = summary["alarms"][0]
-    assert alarm["members"] == ["CH-1", "P-1"]
+    alarm = summary.alarms[0]
+    assert alarm.members == ["CH-1", "P-1"]
     truth = 9.0 / 67.5
-    assert alarm["change_low"] <= truth <= alarm["change_high"]
-    assert alarm["kw_reference"] == pytest.approx(67.5, rel=0.02)
+    assert alarm.change_low <= truth <= alarm.change_high
+    assert alarm.kw_reference == pytest.approx(67.5, rel=0.02)
 
 
 # --- the synthetic office year of tests/synthetic_year.py ----------------------------------
@@ -217,13 +217,13 @@ def test_the_degrading_chiller_group_is_alarmed_within_45_days_and_nothing_else(
     delay = (first["CH-1+CWP-1"] - CHILLER_STEP_ON).days
     assert 0 < delay <= 45, delay
     # The lag chiller is tracked from its own season, not missing.
-    windows = result.summary["reference_per_equipment"]
+    windows = result.summary.reference_per_equipment
     assert "CH-2" in windows
     assert dt.date.fromisoformat(windows["CH-2"][0]) >= dt.date(2025, 4, 1)
     assert windows["AC-1"] == ["2025-01-01", "2025-03-31"]
     # The group's true change: +18 kW on 135 kW.
-    a = result.summary["alarms"][0]
-    assert a["change_low"] <= 18.0 / 135.0 <= a["change_high"], a
+    a = result.summary.alarms[0]
+    assert a.change_low <= 18.0 / 135.0 <= a.change_high, a
 
 
 def test_a_seasonal_load_is_tracked_from_its_own_season_and_its_step_alarmed():
@@ -231,7 +231,7 @@ def test_a_seasonal_load_is_tracked_from_its_own_season_and_its_step_alarmed():
     # +30 % step from 2025-08-10 (late in its season) is alarmed on CH-2 alone.
     s = make_year(1, steps={"CH-2": (1.30, dt.date(2025, 8, 10))})
     result = drift_aligned(s.site, s.aligned)
-    window = [dt.date.fromisoformat(d) for d in result.summary["reference_per_equipment"]["CH-2"]]
+    window = [dt.date.fromisoformat(d) for d in result.summary.reference_per_equipment["CH-2"]]
     local = s.aligned.frame["start_utc"].dt.convert_time_zone("America/Chicago").dt.date()
     first_run = local.filter(s.aligned.hours[:, s.aligned.equipment_ids.index("CH-2")] > 0).min()
     assert window[0] == first_run
@@ -241,7 +241,7 @@ def test_a_seasonal_load_is_tracked_from_its_own_season_and_its_step_alarmed():
     assert dt.date(2025, 8, 10) < first["CH-2"] <= dt.date(2025, 9, 30)
     # With one reference for all (the first 90 days) CH-2 never ran in it: listed, with why.
     pinned = drift_aligned(s.site, s.aligned, reference=(dt.date(2025, 1, 1), dt.date(2025, 3, 31)))
-    status = {r["equipment"]: r for r in pinned.summary["equipment"]}
+    status = {r["equipment"]: r for r in pinned.summary.equipment}
     assert status["CH-2"]["status"] == "no reference"
     assert "did not run in its reference period" in status["CH-2"]["detail"]
     assert "CH-2" not in set(pinned.table["equipment"])
@@ -251,13 +251,13 @@ def test_loads_that_never_reach_the_reference_run_hours_are_listed_with_the_reas
     s = make_year(2, days=200)
     # 200 days: CH-2 runs about 440 h in all, the air compressor AC-1 about 525 h per 90 days.
     result = drift_aligned(s.site, s.aligned, min_reference_run_h=600.0)
-    status = {r["equipment"]: r for r in result.summary["equipment"]}
+    status = {r["equipment"]: r for r in result.summary.equipment}
     assert status["CH-2"]["status"] == "no reference"
     for eq in ("CH-2", "AC-1"):
         assert status[eq]["status"] == "no reference"
         assert status[eq]["detail"].startswith("no 90 days of the data hold 600 of its run-hours")
         assert any(n.startswith(f"{eq}: no 90 days of the data hold 600")
-                   for n in result.summary["notes"])
+                   for n in result.summary.notes)
         assert eq not in set(result.table["equipment"])
     assert status["FZ-1"]["status"] == "tracked"
     # Nothing reaches 5000 run-hours in 90 days: one clear error.

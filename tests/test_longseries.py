@@ -1,6 +1,6 @@
 """Long series (1-minute data over years): the memory-saving paths give the same numbers.
 
-The chunked and in-place paths (align.term_hours, align.probe_rss, drift.differences in
+The chunked and in-place paths (align.probe_rss, align.share_hours, drift.differences in
 place, track.nlms keeping some rows) are checked against the plain whole-array computation
 they replace, with small chunks so that the chunk edges are crossed. The data are the
 synthetic clock-test building (invented). The memory itself is measured by
@@ -20,7 +20,7 @@ from disagg.analyses.drift import differences
 from disagg.analyses.track import nlms
 from disagg.fit import align as align_mod
 from disagg.fit import solvers
-from disagg.fit.align import align, frame_baseload, probe_rss, term_hours
+from disagg.fit.align import align, frame_baseload, probe_rss
 from disagg.fit.estimate import design, weather_columns, weather_specs
 from test_clock import LOADS, Building, _read
 
@@ -58,8 +58,7 @@ def test_probe_rss_is_the_fit_of_each_aligned_log(site_file, monkeypatch, small_
     np.testing.assert_allclose(rss, expected, rtol=1e-9)
 
 
-def test_term_hours_and_design_match_the_whole_array_construction(site_file, monkeypatch):
-    monkeypatch.setattr(align_mod, "CHUNK_ROWS", 100)
+def test_design_matches_the_whole_array_construction(site_file):
     site, meter, log = _read(site_file)
     aligned = align(site, meter, log)
     use = aligned.use.copy()
@@ -69,7 +68,6 @@ def test_term_hours_and_design_match_the_whole_array_construction(site_file, mon
     index = {e: j for j, e in enumerate(aligned.equipment_ids)}
     H = aligned.hours[use]
     expected = np.column_stack([H[:, [index[m] for m in t]].mean(axis=1) for t in terms])
-    np.testing.assert_array_equal(term_hours(aligned, terms), expected)
     d = design(site, aligned, terms)
     f = aligned.frame.filter(pl.Series(use))
     s_ns, e_ns = (f[c].dt.epoch("ns").to_numpy() for c in ("start_utc", "end_utc"))

@@ -745,3 +745,53 @@ def test_a_null_in_a_typed_parquet_time_column_is_an_error(tmp_path):
         _read_meter(MeterSettings(path, "t", "kwh", "kWh", "end", None), "America/Chicago")
     assert str(exc.value) == (f"{path}: row 2, column 't': empty time; expected a date and time "
                               "such as 2025-03-09T03:15:00")
+
+
+# ---------------------------------------------------------------------------------------
+# Text encoding and empty files
+
+
+def test_a_latin1_meter_file_is_named_with_its_line_and_byte(tmp_path):
+    # "Zähler" written as Latin-1 (ISO/IEC 8859-1: ä is the single byte 0xE4, which no
+    # UTF-8 text holds on its own; RFC 3629 section 3).
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"])
+    rows = ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,2.0", "2025-01-06 00:45:00,3.0"]
+    path.write_bytes(("time,kwh\n" + "\n".join(rows[:2]) + "\n").encode() + "Zähler,4\n".encode(
+        "latin-1"))
+    with pytest.raises(InputError) as e:
+        read_meter(site.meter, site.timezone)
+    assert _message(e) == (f"{path}: line 4: byte 0xE4 is not UTF-8 text; expected a UTF-8 "
+                           "meter file (it may be Latin-1 or Windows-1252): export or save it "
+                           "as UTF-8")
+
+
+def test_a_latin1_header_is_blamed_on_the_encoding_not_a_missing_column(tmp_path):
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"], header="time,kwh")
+    path.write_bytes("time,kwh,Zähler\n2025-01-06 00:15:00,1.0,x\n".encode("latin-1"))
+    text = site.path.read_text(encoding="utf-8").replace('value_column = "kwh"',
+                                                        'value_column = "Zähler"')
+    site.path.write_text(text, encoding="utf-8")
+    site = load_site(site.path)
+    with pytest.raises(InputError) as e:
+        read_meter(site.meter, site.timezone)
+    assert _message(e).startswith(f"{path}: line 1: byte 0xE4 is not UTF-8 text")
+
+
+def test_first_non_utf8_carries_a_character_split_between_chunks(tmp_path):
+    from disagg.inputs.readers.tables import first_non_utf8
+
+    path = tmp_path / "t.csv"
+    path.write_bytes("a\nbä\n".encode())  # ä: two bytes in UTF-8, 0xC3 0xA4
+    for chunk in (1, 2, 3, 4, 64):
+        assert first_non_utf8(path, chunk) is None
+    path.write_bytes("a\nb\n".encode() + b"\xc3")  # a character cut off at the end
+    assert first_non_utf8(path, 2) == (3, 0xC3)
+
+
+def test_a_meter_file_with_only_its_header_says_so(tmp_path):
+    site, path = _meter(tmp_path, [])
+    path.write_text("time,kwh\n", encoding="utf-8")
+    with pytest.raises(InputError) as e:
+        read_meter(site.meter, site.timezone)
+    assert _message(e) == (f"{path}: no readings: the file has its header line but no data "
+                           "rows; expected one reading per line below the header")

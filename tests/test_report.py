@@ -505,7 +505,7 @@ def test_a_negative_unexplained_part_is_drawn_below_zero(result):
 def test_the_headline_counts_the_meter_rows_missing_from_the_file(site_f, result_f, report_f):
     rows = pl.read_csv(site_f.parent / "meter.csv").height
     assert rows == 16 * 96 - DROPPED
-    c = result_f.fit["intervals"]
+    c = result_f.fit.intervals
     # Every row in the file is used; the DROPPED rows, absent from it, are not.
     assert (c["intervals"], c["absent"], c["used"]) == (rows, DROPPED, rows)
     text = plain_text(report_f)
@@ -550,10 +550,10 @@ def test_from_celsius_is_the_inverse_of_the_configs_to_celsius():
 
 
 def test_temperatures_are_stated_in_the_sites_weather_unit(result_f, report_f):
-    draw = next(d for d in result_f.fit["draws"] if d["equipment"] == "CH-1")
+    draw = result_f.fit.draw("CH-1")
     # The fit works in °C: 62 °F is 16.7 °C, 77 °F is 25 °C.
-    assert draw["weather"]["balance_temp_c"] == pytest.approx(to_celsius(BALANCE_F, "F"))
-    assert draw["weather"]["reference_temp_c"] == pytest.approx(to_celsius(REFERENCE_F, "F"))
+    assert draw.weather.balance_temp_c == pytest.approx(to_celsius(BALANCE_F, "F"))
+    assert draw.weather.reference_temp_c == pytest.approx(to_celsius(REFERENCE_F, "F"))
     text = plain_text(report_f)
     assert (f"CH-1 draws more the hotter it is beyond {BALANCE_F:.1f} °F outdoors; its draw is "
             f"stated at {REFERENCE_F:.1f} °F.") in text
@@ -802,7 +802,7 @@ def test_the_summary_names_drift_alarms_when_there_are_some(result, drift):
     from disagg.present.report.sections import _summary
 
     html = _summary(result, drift, [])
-    alarmed = [a["equipment"] for a in drift.summary["alarms"]]
+    alarmed = [a.equipment for a in drift.summary.alarms]
     if alarmed:
         assert "drift alarms for" in html and all(a in html for a in alarmed)
     else:
@@ -819,18 +819,23 @@ def test_the_summary_points_at_a_run_log_clock_offset_first(result):
 
     from disagg.present.report.sections import _summary
 
-    fit = dict(result.fit)
-    fit["warnings"] = list(fit.get("warnings", [])) + [
+    fit = dataclasses.replace(result.fit, warnings=list(result.fit.warnings) + [
         "the run logs match the meter best when shifted by +4.0 min (60 % smaller residual "
-        "than as read): ..."]
+        "than as read): ..."])
     html = _summary(dataclasses.replace(result, fit=fit), None, [])
     look = html[html.index("What to look at:"):]
     assert look.index("run-log clock seems off") < look.index("note")
 
 
-@pytest.mark.parametrize("key", ["months", "draws", "warnings", "fit_quality", "intervals"])
-def test_a_missing_fit_key_fails_loudly_instead_of_an_empty_section(result, key):
-    # fit.json's content is read by key: a renamed key must not give a silently empty page.
-    broken = dataclasses.replace(result, fit={k: v for k, v in result.fit.items() if k != key})
+@pytest.mark.parametrize("part, key", [("fit_quality", "interval"),
+                                       ("fit_quality", "monthly"),
+                                       ("fit_quality", "ashrae_guideline_14"),
+                                       ("identifiability", "correlation_bound"),
+                                       ("identifiability", "folded_into_baseload")])
+def test_a_missing_metric_key_fails_loudly_instead_of_an_empty_section(result, part, key):
+    # The fit's details are typed (disagg.analyses.summary); its metric mappings are read by
+    # key: a renamed key must not give a silently empty page.
+    kept = {k: v for k, v in getattr(result.fit, part).items() if k != key}
+    broken = dataclasses.replace(result, fit=dataclasses.replace(result.fit, **{part: kept}))
     with pytest.raises(KeyError):
         render_report(broken, None)

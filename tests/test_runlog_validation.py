@@ -398,3 +398,10 @@ def test_an_events_log_without_rows_for_a_load_fails_naming_that_equipment(tmp_p
         "; no known state at all for AHU-1 (expected run-log rows with AHU-1 in column "
         "'point')\n")
     assert not (tmp_path / "out").exists()
+
+
+def test_a_row_cut_short_is_named_as_such_not_as_an_empty_id(tmp_path):
+    site = _site(tmp_path, ["2025-01-06 00:00:00,CH-1,on", "2025-01-06 00:10:00,"])
+    assert _error(site) == (f"{site.runlog.file}: line 3: no 'point' and no 'state': the row "
+                            "ends early (is the file cut short?); expected a value in each of "
+                            "'time', 'point', 'state'")

@@ -128,7 +128,7 @@ def _costs(toml: Path) -> tuple[dict, dict, dict]:
     assert set(rows) == {"P-1", "F-1", "baseload", "unexplained"}
     assert {r["period"] for r in rows.values()} == {"2025-02"}
     return ({k: r["cost"] for k, r in rows.items()}, {k: r["peak_kw"] for k, r in rows.items()},
-            result.fit["tariff"])
+            None if result.fit.tariff is None else result.fit.tariff.as_json())
 
 
 @pytest.mark.parametrize("tariff, expected, month", [
@@ -229,11 +229,11 @@ def test_a_peak_left_out_of_the_fit_is_named(tmp_path):
     log.filter(~((pl.col("point") == "F-1") & pl.col("time").str.starts_with("2025-02-01"))
                ).write_csv(tmp_path / "runlog.csv")
     result = breakdown_site(toml)
-    (m,) = result.fit["tariff"]["months"]
-    assert m["peak_kw"] == pytest.approx(30.0, abs=1e-6)
+    (m,) = result.fit.tariff.months
+    assert m.peak_kw == pytest.approx(30.0, abs=1e-6)
     assert any(w.startswith("2025-02: the month's highest reading, 50.0 kW from "
                             "2025-02-01T09:00:00+00:00, is in an interval left out of the fit")
-               for w in result.fit["warnings"])
+               for w in result.fit.warnings)
 
 
 def test_interval_prices_equal_a_minute_by_minute_count_across_a_clock_change():

@@ -442,29 +442,30 @@ def test_check_report_and_summary_list_the_findings(tmp_path):
     rows = _spike_rows()
     del rows[200]  # one missing reading too
     result = check_site(_site(tmp_path, rows))
-    kinds = [f["kind"] for f in result.report["findings"]]
+    kinds = [f.kind for f in result.report.findings]
     assert kinds == ["gap", "spike"]
-    assert set(result.report["findings"][0]) == {"kind", "count", "times", "policy", "message"}
+    assert set(result.report.findings[0].as_dict()) == {"kind", "count", "times", "policy",
+                                                        "message"}
     lines = check_summary(result).splitlines()
     at = lines.index("Meter validation: 2 findings")
-    assert lines[at + 1] == "  " + result.report["findings"][0]["message"]
-    assert lines[at + 2] == "  " + result.report["findings"][1]["message"]
-    assert not any(f["message"] in n for n in result.report["notes"]
-                   for f in result.report["findings"])
+    assert lines[at + 1] == "  " + result.report.findings[0].message
+    assert lines[at + 2] == "  " + result.report.findings[1].message
+    assert not any(f.message in n for n in result.report.notes
+                   for f in result.report.findings)
 
 
 def test_breakdown_carries_the_findings_and_leaves_the_spike_out(tmp_path):
     result = breakdown_site(_site(tmp_path, _spike_rows()))
-    assert [f["kind"] for f in result.fit["meter_validation"]] == ["spike"]
-    assert result.findings[0].message in result.fit["warnings"]
-    assert result.fit["intervals"]["spikes"] == 1
+    assert [f.kind for f in result.fit.meter_validation] == ["spike"]
+    assert result.findings[0].message in result.fit.warnings
+    assert result.fit.intervals["spikes"] == 1
     # The months add up to the metered kWh of the intervals used: 144 x 8 + 143 x 12, no 100.
     assert result.breakdown["kwh"].sum() == pytest.approx(144 * 8.0 + 143 * 12.0, abs=1e-6)
 
 
 def test_check_summary_says_when_nothing_was_found(tmp_path):
     result = check_site(_site(tmp_path, _rows(200, lambda i: 8.0 + (i % 7))))
-    assert result.report["findings"] == []
+    assert result.report.findings == []
     assert ("Meter validation: no gaps, duplicates, spikes, zero runs, interval changes, "
             "daylight-saving hours or register rollovers found") in check_summary(result)
 
@@ -475,7 +476,7 @@ def test_check_keeps_conflicting_duplicates_when_told(tmp_path):
     with pytest.raises(InputError):
         check_site(path)
     result = check_site(path, on_duplicate="keep-last")
-    assert [f["kind"] for f in result.report["findings"]] == ["duplicate"]
+    assert [f.kind for f in result.report.findings] == ["duplicate"]
     assert result.aligned.frame["energy_kwh"][1] == 9.5
 
 

@@ -70,14 +70,14 @@ def test_a_warm_summer_is_not_degradation_with_the_weather_term():
     site, aligned, _, _ = _warm_building(5, days=150, noise_kwh=0.5)
     ref = (dt.date(2025, 5, 5), dt.date(2025, 6, 15))
     with_term = drift_aligned(site, aligned, memory_days=20, reference=ref)
-    assert with_term.summary["alarms"] == []
+    assert with_term.summary.alarms == []
     # The same building without the term: the chiller's rising draw looks like drift (of the
     # chiller or of the pump that runs with it; seed 5 alarms the pump).
     plain_site = dataclasses.replace(site, equipment=tuple(
         dataclasses.replace(e, weather=None, balance_temp_c=None) for e in site.equipment),
         weather=None)
     plain = drift_aligned(plain_site, aligned, memory_days=20, reference=ref)
-    assert {a["equipment"] for a in plain.summary["alarms"]} & {"CH-1", "P-1"}
+    assert {a.equipment for a in plain.summary.alarms} & {"CH-1", "P-1"}
 
 
 def test_interval_temperature_interpolates_and_marks_gaps():

@@ -89,8 +89,9 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
             run_h = float(run_hs[i])
             kw = float(est.kw[i])
             if t.column is None:
+                # Did not run in this fit: no draw to state (its prior is in fit.json).
                 kwh = kwh_lo = kwh_hi = 0.0
-                lo = hi = float("nan")
+                kw = lo = hi = float("nan")
             elif i in est.weather and run_h > 0:
                 # Draw varies with outdoor temperature: energy = b0 x run_h + slope x
                 # sum(run_h x degrees beyond balance), interval from their covariance.
@@ -124,7 +125,9 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
         base_kwh = float(c @ est.base_kw)
         if est.level_kwh is not None:
             base_kwh += float(est.level_kwh[m].sum())
-        half = est.critical * float(np.sqrt(max(c @ est.cov_base @ c, 0.0)))
+        # With the wandering level, its own estimation error too (estimate.base_var_kwh2).
+        var = (est.base_var_kwh2 or {}).get(int(code), c @ est.cov_base @ c)
+        half = est.critical * float(np.sqrt(max(var, 0.0)))
         base_lo, base_hi = max(base_kwh - half, 0.0), base_kwh + half
         explained += base_kwh
         rows.append(_row(period, est.base_id, hours, base_kwh / hours, base_lo / hours,

@@ -21,6 +21,7 @@ import polars as pl
 from disagg import __version__
 from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
 from disagg.analyses.pipeline import CAUTION, check_confidence, load_inputs
+from disagg.analyses.summary import ComparePeriod, CompareReport
 from disagg.analyses.verdict import RULE as VERDICT_RULE
 from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: F401 - VERDICTS: API
 from disagg.errors import ConfigError, InputError
@@ -66,7 +67,7 @@ class CompareResult:
 
     site: SiteConfig
     table: pl.DataFrame
-    report: dict
+    report: CompareReport
 
 
 def _unclear_flags(flags: list[str]) -> list[str]:
@@ -287,16 +288,11 @@ def _period_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
         raise InputError(f"{site.meter.file}: {where}: {exc}") from None
 
 
-def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> dict:
-    return {
-        "from": period[0].isoformat(), "to": period[1].isoformat(),
-        "intervals_used": int(est.frame.height),
-        "days": int(est.fit.n_blocks),
-        "critical_value": est.critical,
-        "baseload_row": est.base_id,
-        "fit_quality": est.quality,
-        "warnings": est.warnings,
-    }
+def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> ComparePeriod:
+    return ComparePeriod(date_from=period[0].isoformat(), date_to=period[1].isoformat(),
+                         intervals_used=int(est.frame.height), days=int(est.fit.n_blocks),
+                         critical_value=est.critical, baseload_row=est.base_id,
+                         fit_quality=est.quality, warnings=est.warnings)
 
 
 def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
@@ -344,21 +340,12 @@ def compare_aligned(site: SiteConfig, aligned: Aligned, before: tuple[dt.date, d
     est_after = _period_fit(gsite, aligned, local_day, after, "--after", confidence)
     table, details = compare_estimates(est_before, est_after, confidence, min_change)
     table, details = add_member_rows(table, details, groups)
-    report = {
-        "tool": f"disagg {__version__}",
-        "site": site.name,
-        "timezone": site.timezone,
-        "site_file": str(site.path),
-        "confidence": confidence,
-        "min_change": min_change,
-        "method": METHOD,
-        "groups": [group_id(g) for g in groups],
-        "periods": {"before": _period_report(est_before, before),
-                    "after": _period_report(est_after, after)},
-        "equipment": details,
-        "data_notes": aligned.notes,
-        "caution": CAUTION,
-    }
+    report = CompareReport(
+        tool=f"disagg {__version__}", site=site.name, timezone=site.timezone,
+        site_file=str(site.path), confidence=confidence, min_change=min_change, method=METHOD,
+        groups=[group_id(g) for g in groups],
+        before=_period_report(est_before, before), after=_period_report(est_after, after),
+        equipment=details, data_notes=aligned.notes, caution=CAUTION)
     return CompareResult(site, table, report)
 
 

@@ -33,6 +33,7 @@ from scipy.special import ndtri
 
 from disagg.analyses.groups import group_id, grouped_site, inseparable_groups
 from disagg.analyses.pipeline import CAUTION, load_inputs, require_usable
+from disagg.analyses.summary import DriftAlarm, DriftSummary
 from disagg.analyses.track import (
     EWMA_L,
     MU_MAX,
@@ -91,7 +92,7 @@ class DriftResult:
     """drift.csv rows, drift.json content, and the state to continue from."""
 
     table: pl.DataFrame
-    summary: dict
+    summary: DriftSummary
     state: dict
 
 
@@ -565,13 +566,12 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         lvl = float(recent[-1, j])
         sd_recent = float(sd_recent_all[-1, j])
         low, high = _change_interval(lvl, sd_recent, ref_kw[j], ref_se[j], z)
-        alarms.append({
-            "equipment": eq, "members": members[j], "first_alarm_date": first_date,
-            "kw_reference": float(ref_kw[j]), "kw_latest": kw, "kw_recent": lvl,
-            "change": lvl / ref_kw[j] - 1.0, "change_low": low, "change_high": high,
-            "change_tracked": kw / ref_kw[j] - 1.0,
-            "recent_days": min(lag_days[j], len(series) - 1), "as_of": days[-1].isoformat(),
-        })
+        alarms.append(DriftAlarm(
+            equipment=eq, members=members[j], first_alarm_date=first_date,
+            kw_reference=float(ref_kw[j]), kw_latest=kw, kw_recent=lvl,
+            change=lvl / ref_kw[j] - 1.0, change_low=low, change_high=high,
+            change_tracked=kw / ref_kw[j] - 1.0,
+            recent_days=min(lag_days[j], len(series) - 1), as_of=days[-1].isoformat()))
     span_days = (days[-1] - days[0]).days + 1
     memory_used = {eq: float(tau_days[j]) if np.isfinite(tau_days[j]) else None
                    for j, eq in enumerate(ids)}
@@ -597,36 +597,36 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                                        "change": pl.Float64, "alarm": pl.Boolean,
                                        "kw_recent": pl.Float64, "change_low": pl.Float64,
                                        "change_high": pl.Float64})
-    summary = {
-        "site": site.name,
-        "step_size_mu": mu,
-        "stable_range": (f"0 < mu < {MU_MAX:g} (normalized LMS; Haykin, Adaptive Filter "
-                         "Theory; it holds for the per-weight form, which is normalized LMS "
-                         "on inputs rescaled by the square roots of the per-weight scales)"),
-        "memory_days_requested": None if step is not None or state is not None else memory_days,
-        "memory_days_per_equipment": memory_used,
-        "reference": reference_info,
-        "reference_per_equipment": windows_info,
-        "groups": [group_id(g) for g in groups],
-        "equipment": status,
-        "threshold": threshold,
-        "rule": ("alarm when |recent level - reference| exceeds both L standard deviations "
-                 "(of the recent level, the mean draw of the last memory-length with the "
-                 "tracker's lag taken out, and of the reference together; an EWMA control "
-                 "chart, Roberts 1959, read without its lag; "
-                 f"L = Phi^-1(1 - {FALSE_ALARM_PER_LOAD_YEAR:g} / (2 x 365 / memory)), at least "
-                 f"{EWMA_L:g}, for about {FALSE_ALARM_PER_LOAD_YEAR:.0%} false alarms per load "
-                 "and year) and threshold x reference"),
-        "chart_limit_L": {eq: chart_limit(tau_days[j]) for j, eq in enumerate(ids)},
-        "change_interval": ("change: the mean draw of the last recent_days days (the tracker's "
-                            "lag taken out, track.recent_level) over the reference draw, minus "
-                            "1; its interval carries that level's and the reference's standard "
-                            "errors (delta method)"),
-        "band_sd_kw": {eq: float(sd[j]) for j, eq in enumerate(ids)},
-        "alarms": alarms,
-        "notes": notes,
-        "caution": CAUTION,
-    }
+    summary = DriftSummary(
+        site=site.name,
+        step_size_mu=mu,
+        stable_range=(f"0 < mu < {MU_MAX:g} (normalized LMS; Haykin, Adaptive Filter "
+                      "Theory; it holds for the per-weight form, which is normalized LMS "
+                      "on inputs rescaled by the square roots of the per-weight scales)"),
+        memory_days_requested=None if step is not None or state is not None else memory_days,
+        memory_days_per_equipment=memory_used,
+        reference=reference_info,
+        reference_per_equipment=windows_info,
+        groups=[group_id(g) for g in groups],
+        equipment=status,
+        threshold=threshold,
+        rule=("alarm when |recent level - reference| exceeds both L standard deviations "
+              "(of the recent level, the mean draw of the last memory-length with the "
+              "tracker's lag taken out, and of the reference together; an EWMA control "
+              "chart, Roberts 1959, read without its lag; "
+              f"L = Phi^-1(1 - {FALSE_ALARM_PER_LOAD_YEAR:g} / (2 x 365 / memory)), at least "
+              f"{EWMA_L:g}, for about {FALSE_ALARM_PER_LOAD_YEAR:.0%} false alarms per load "
+              "and year) and threshold x reference"),
+        chart_limit_L={eq: chart_limit(tau_days[j]) for j, eq in enumerate(ids)},
+        change_interval=("change: the mean draw of the last recent_days days (the tracker's "
+                         "lag taken out, track.recent_level) over the reference draw, minus "
+                         "1; its interval carries that level's and the reference's standard "
+                         "errors (delta method)"),
+        band_sd_kw={eq: float(sd[j]) for j, eq in enumerate(ids)},
+        alarms=alarms,
+        notes=notes,
+        caution=CAUTION,
+    )
     new_state = {
         "version": STATE_VERSION, "site": site.name, "timezone": tz,
         "baseload_profile": site.baseload.profile,

@@ -18,6 +18,18 @@ import polars as pl
 from disagg import __version__
 from disagg.analyses.breakdown import monthly_breakdown
 from disagg.analyses.clock import offset_warning
+from disagg.analyses.summary import (
+    BaseloadColumn,
+    BaseloadSummary,
+    CheckReport,
+    ClockOffset,
+    Draw,
+    FitSummary,
+    MonthFit,
+    TariffMonth,
+    TariffSummary,
+    WeatherDraw,
+)
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import (
     BASELOAD_COLUMN_COUNT,
@@ -49,7 +61,7 @@ class BreakdownResult:
 
     site: SiteConfig
     breakdown: pl.DataFrame
-    fit: dict
+    fit: FitSummary
     estimates: Estimates
     aligned: Aligned
     findings: list[Finding] = field(default_factory=list)  # the meter validation's (disagg.inputs.vee)
@@ -136,7 +148,7 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
 
     on_duplicate: see load_inputs. progress: called as progress(step, done, total) while
     reading and fitting (disagg.progress). The meter validation's findings are in the result, in
-    fit["meter_validation"] and, one line each, in fit["warnings"].
+    fit.meter_validation and, one line each, in fit.warnings.
 
     Raises:
         ConfigError, InputError: bad settings, files, or too little usable data.
@@ -159,12 +171,12 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
     if estimate:
         table, estimated_months = _add_estimated_gaps(table, aligned, site.timezone)
     fit = fit_summary(site, aligned, est)
-    fit["estimated_months"] = estimated_months
-    fit["months"] = months
-    fit["meter_validation"] = [f.as_dict() for f in findings]
-    fit["tariff"] = tariff_summary(site, table, aligned)
-    if fit["tariff"]:
-        fit["warnings"] += fit["tariff"]["warnings"]
+    fit.estimated_months = estimated_months
+    fit.months = months
+    fit.meter_validation = list(findings)
+    fit.tariff = tariff_summary(site, table, aligned)
+    if fit.tariff is not None:
+        fit.warnings += fit.tariff.warnings
     return BreakdownResult(site, table, fit, est, aligned, findings)
 
 
@@ -228,7 +240,8 @@ def _peaks(aligned: Aligned, tz: str) -> pl.DataFrame:
         .alias("all_at"))
 
 
-def tariff_summary(site: SiteConfig, table: pl.DataFrame, aligned: Aligned) -> dict | None:
+def tariff_summary(site: SiteConfig, table: pl.DataFrame,
+                   aligned: Aligned) -> TariffSummary | None:
     """The tariff and each month's cost for fit.json (None without a [tariff])."""
     t = site.tariff
     if t is None:
@@ -246,28 +259,28 @@ def tariff_summary(site: SiteConfig, table: pl.DataFrame, aligned: Aligned) -> d
                 f"{p['all_at'].isoformat()}, is in an interval left out of the fit; its demand "
                 f"cost uses the highest interval used, {p['used_kw']:,.1f} kW from "
                 f"{p['used_at'].isoformat()}, so a bill's demand charge can be higher")
-    return {
-        "currency": t.currency,
-        "energy_price_per_kwh": t.energy_price_per_kwh,
-        "demand_price_per_kw": t.demand_price_per_kw,
-        "periods": [{"name": p.name, "price_per_kwh": p.price_per_kwh,
-                     "spells": list(p.spell_text)} for p in t.periods],
-        "holidays": [d.isoformat() for d in t.holidays],
-        "months": [{"period": r["period"], "metered_kwh": r["metered_kwh"],
-                    "peak_kw": r["peak_kw"],
-                    "peak_start_utc": (peaks[r["period"]]["used_at"].isoformat()
-                                       if r["period"] in peaks else None),
-                    "demand_cost": r["peak_kw"] * t.demand_price_per_kw,
-                    "energy_cost": r["cost"] - r["peak_kw"] * t.demand_price_per_kw,
-                    "cost": r["cost"]} for r in months.iter_rows(named=True)],
-        "method": ("cost of the intervals used by the fit: each row's estimated energy in "
-                   "every interval at that interval's price, plus the demand price x the row's "
-                   "estimated draw in the interval of the month's highest metered demand "
-                   "(the meter interval taken as the demand interval); intervals left out of "
-                   "the fit and estimated-gaps rows are not priced, so a utility bill can be "
-                   "higher"),
-        "warnings": warnings,
-    }
+    return TariffSummary(
+        currency=t.currency,
+        energy_price_per_kwh=t.energy_price_per_kwh,
+        demand_price_per_kw=t.demand_price_per_kw,
+        periods=[{"name": p.name, "price_per_kwh": p.price_per_kwh,
+                  "spells": list(p.spell_text)} for p in t.periods],
+        holidays=[d.isoformat() for d in t.holidays],
+        months=[TariffMonth(period=r["period"], metered_kwh=r["metered_kwh"],
+                            peak_kw=r["peak_kw"],
+                            peak_start_utc=(peaks[r["period"]]["used_at"].isoformat()
+                                            if r["period"] in peaks else None),
+                            demand_cost=r["peak_kw"] * t.demand_price_per_kw,
+                            energy_cost=r["cost"] - r["peak_kw"] * t.demand_price_per_kw,
+                            cost=r["cost"]) for r in months.iter_rows(named=True)],
+        method=("cost of the intervals used by the fit: each row's estimated energy in "
+                "every interval at that interval's price, plus the demand price x the row's "
+                "estimated draw in the interval of the month's highest metered demand "
+                "(the meter interval taken as the demand interval); intervals left out of "
+                "the fit and estimated-gaps rows are not priced, so a utility bill can be "
+                "higher"),
+        warnings=warnings,
+    )
 
 
 def _never_known(site: SiteConfig, aligned: Aligned) -> str:
@@ -301,7 +314,8 @@ MIN_MONTH_DAYS = 7
 
 
 def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
-                 confidence: float, progress: Progress | None = None) -> tuple[pl.DataFrame, dict]:
+                 confidence: float,
+                 progress: Progress | None = None) -> tuple[pl.DataFrame, dict[str, MonthFit]]:
     """Breakdown rows with each month's own fit, so a month's kWh follows that month's draws.
 
     A range of one month is the whole-range fit. A month with fewer than MIN_MONTH_DAYS days
@@ -338,49 +352,45 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
                 pl.when(own).then(pl.concat_str([pl.col("flags"), pl.lit("range-draw")],
                                                 separator=";").str.strip_chars(";"))
                 .otherwise(pl.col("flags")).alias("flags")))
-            months[period] = {"own_fit": False, "reason": f"fewer than {MIN_MONTH_DAYS} days of "
-                              "usable intervals: the whole range's draws are used"}
+            months[period] = MonthFit(own_fit=False, reason=f"fewer than {MIN_MONTH_DAYS} days "
+                                      "of usable intervals: the whole range's draws are used")
             continue
         tables.append(_same_names(monthly_breakdown(est, tz, site.tariff), combined))
-        months[period] = {"own_fit": True, "draws": draw_list(est), "baseload_row": est.base_id,
-                          "baseload_form": est.form.as_json() if est.form is not None else None,
-                          "fit_quality": est.quality, "warnings": est.warnings}
+        months[period] = MonthFit(
+            own_fit=True, draws=draw_list(est), baseload_row=est.base_id,
+            baseload_form=est.form.as_json() if est.form is not None else None,
+            fit_quality=est.quality, warnings=est.warnings)
     report(progress, "fitting", len(periods) + 1, len(periods) + 1)
     return pl.concat(tables), months
-
-
-# fit.json layout version: 2 added baseload.form, baseload.level_kwh, months' baseload_form
-# and draws' between_week_sd_kw (issue 10).
-FIT_SCHEMA_VERSION = 2
 
 
 def _num(x: float | None) -> float | None:
     return None if x is None or not math.isfinite(x) else float(x)
 
 
-def draw_list(est: Estimates) -> list[dict]:
-    """The fitted draws as JSON-ready rows."""
+def draw_list(est: Estimates) -> list[Draw]:
+    """The fitted draws, one per term."""
     draws = []
     for i, t in enumerate(est.terms):
         c = t.column
-        draws.append({
-            "equipment": t.id, "members": t.members, "name": t.name,
-            "kw": _num(est.kw[i]), "se_kw": _num(est.se_kw[i]),
-            "se_hac_kw": _num(est.se_hac_kw[i]), "se_jackknife_kw": _num(est.se_jackknife_kw[i]),
-            "kw_low": _num(est.kw_low[i]), "kw_high": _num(est.kw_high[i]),
-            "prior_kw": _num(t.prior_kw), "prior_sd_kw": _num(t.prior_sd_kw),
-            "prior_source": t.prior_source,
-            "prior_weight": None if c is None else _num(est.fit.prior_weight[c]),
-            "between_week_sd_kw": (None if est.tau2_kw2 is None or c is None
-                                   else _num(math.sqrt(max(float(est.tau2_kw2[i]), 0.0)))),
-            "run_hours": float(est.hours[:, i].sum()),
-            "flags": t.flags,
-        })
-        if i in est.weather:
-            w = est.weather[i]
-            draws[-1]["kw_at"] = "reference temperature"
-            draws[-1]["weather"] = {k: (v if k != "cov" else None) for k, v in w.items()
-                                    if k != "cov"}
+        w = est.weather.get(i)
+        draws.append(Draw(
+            equipment=t.id, members=t.members, name=t.name,
+            kw=_num(est.kw[i]), se_kw=_num(est.se_kw[i]),
+            se_hac_kw=_num(est.se_hac_kw[i]), se_jackknife_kw=_num(est.se_jackknife_kw[i]),
+            kw_low=_num(est.kw_low[i]), kw_high=_num(est.kw_high[i]),
+            prior_kw=_num(t.prior_kw), prior_sd_kw=_num(t.prior_sd_kw),
+            prior_source=t.prior_source,
+            prior_weight=None if c is None else _num(est.fit.prior_weight[c]),
+            between_week_sd_kw=(None if est.tau2_kw2 is None or c is None
+                                else _num(math.sqrt(max(float(est.tau2_kw2[i]), 0.0)))),
+            run_hours=float(est.hours[:, i].sum()),
+            flags=t.flags,
+            weather=None if w is None else WeatherDraw(
+                mode=w["mode"], balance_temp_c=w["balance_temp_c"],
+                reference_temp_c=w["reference_temp_c"], kw_at_balance=w["kw_at_balance"],
+                slope_kw_per_degc=w["slope_kw_per_degc"],
+                slope_se_kw_per_degc=w["slope_se_kw_per_degc"])))
     return draws
 
 
@@ -398,8 +408,9 @@ def _same_names(table: pl.DataFrame, combined: dict[str, list[str]]) -> pl.DataF
     return table
 
 
-def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
-    """Everything behind the breakdown as plain JSON-ready data."""
+def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> FitSummary:
+    """Everything behind the breakdown, typed (months, meter validation and tariff are
+    filled in by breakdown_site)."""
     start = est.frame["start_utc"].min()
     end = est.frame["end_utc"].max()
     draws = draw_list(est)
@@ -412,27 +423,25 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
                          and abs(quality["hourly"]["nmbe_pct"]) <= G14_HOURLY["nmbe_pct"]),
         "formula": "CV(RMSE) and NMBE with n - p in the denominator, p = fitted parameters",
     }
-    return {
-        "schema_version": FIT_SCHEMA_VERSION,
-        "tool": f"disagg {__version__}",
-        "site": site.name,
-        "timezone": site.timezone,
-        "site_file": str(site.path),
-        "period": {"start_utc": start.isoformat() if start else None,
-                   "end_utc": end.isoformat() if end else None},
-        "confidence": est.confidence,
-        "critical_value": est.critical,
-        "draws": draws,
-        "baseload": {
-            "row": est.base_id, "profile": site.baseload.profile,
-            "spells": list(site.baseload.spell_text),
-            "columns": [{"name": n, "kw": float(b), "se_kw": float(s)}
-                        for n, b, s in zip(est.base_names, est.base_kw, base_se)],
-            "form": est.form.as_json() if est.form is not None else None,
-            "level_kwh": (float(est.level_kwh.sum()) if est.level_kwh is not None else 0.0),
-        },
-        "identifiability": est.identifiability,
-        "stability": {
+    return FitSummary(
+        tool=f"disagg {__version__}",
+        site=site.name,
+        timezone=site.timezone,
+        site_file=str(site.path),
+        start_utc=start.isoformat() if start else None,
+        end_utc=end.isoformat() if end else None,
+        confidence=est.confidence,
+        critical_value=est.critical,
+        draws=draws,
+        baseload=BaseloadSummary(
+            row=est.base_id, profile=site.baseload.profile,
+            spells=list(site.baseload.spell_text),
+            columns=[BaseloadColumn(n, float(b), float(s))
+                     for n, b, s in zip(est.base_names, est.base_kw, base_se)],
+            form=est.form.as_json() if est.form is not None else None,
+            level_kwh=float(est.level_kwh.sum()) if est.level_kwh is not None else 0.0),
+        identifiability=est.identifiability,
+        stability={
             "method": ("interval = widest of: Newey-West HAC on local-day sums of scores "
                        "(Bartlett lag by the Newey-West 1994 rule over days, Student t with "
                        "days - 1 df); delete-a-block jackknife over 10 contiguous time blocks "
@@ -445,17 +454,17 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> dict:
             "hac_lag_days": est.fit.lag, "days": est.fit.n_blocks,
             "baseload_variants": est.variants,
         },
-        "fit_quality": quality,
-        "intervals": aligned.counts,
-        "unknown_intervals_by_equipment": aligned.unknown_by_equipment,
+        fit_quality=quality,
+        intervals=aligned.counts,
+        unknown_intervals_by_equipment=aligned.unknown_by_equipment,
         # With the wandering level the fit's sigma^2 is of the whitened differences [kW^2]:
         # state the interval residuals' sd [kWh] instead (n - fitted coefficients).
-        "residual_sd_kwh": (math.sqrt(est.fit.sigma2) if est.form is None or not est.form.form.level
-                            else math.sqrt(float(np.sum((est.y - est.fitted) ** 2))
-                                           / max(len(est.y) - len(est.design_coef), 1))),
-        "warnings": aligned.notes + est.warnings,
-        "caution": CAUTION,
-    }
+        residual_sd_kwh=(math.sqrt(est.fit.sigma2) if est.form is None or not est.form.form.level
+                         else math.sqrt(float(np.sum((est.y - est.fitted) ** 2))
+                                        / max(len(est.y) - len(est.design_coef), 1))),
+        warnings=aligned.notes + est.warnings,
+        caution=CAUTION,
+    )
 
 
 @dataclass
@@ -464,7 +473,7 @@ class CheckResult:
 
     site: SiteConfig
     aligned: Aligned
-    report: dict
+    report: CheckReport
 
 
 def check_site(site_path: str | Path, date_from: dt.date | None = None,
@@ -492,23 +501,23 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
     run = H.sum(axis=0)
     ids = aligned.equipment_ids
     sep = inseparable(H, B)
-    pairs = [[ids[i], ids[j], r] for i, j, r in sep["pairs"]]
+    pairs = [(ids[i], ids[j], float(r)) for i, j, r in sep["pairs"]]
     with_base = [ids[j] for j in sep["with_baseload"]]
-    report = {
-        "site": site.name,
-        "period": {"start_utc": frame["start_utc"].min().isoformat(),
-                   "end_utc": frame["end_utc"].max().isoformat()},
-        "interval_min": aligned.interval_min,
-        "intervals": aligned.counts,
-        "run_hours": {e: float(h) for e, h in zip(aligned.equipment_ids, run)},
-        "not_run": [e for e, h in zip(aligned.equipment_ids, run) if h == 0],
-        "inseparable_pairs": pairs,
-        "inseparable_from_baseload": with_base,
-        "findings": [f.as_dict() for f in findings],
-        "notes": [n for n in aligned.notes if n not in {f.message for f in findings}],
-    }
+    report = CheckReport(
+        site=site.name,
+        start_utc=frame["start_utc"].min().isoformat(),
+        end_utc=frame["end_utc"].max().isoformat(),
+        interval_min=aligned.interval_min,
+        intervals=aligned.counts,
+        run_hours={e: float(h) for e, h in zip(aligned.equipment_ids, run)},
+        not_run=[e for e, h in zip(aligned.equipment_ids, run) if h == 0],
+        inseparable_pairs=pairs,
+        inseparable_from_baseload=with_base,
+        findings=list(findings),
+        notes=[n for n in aligned.notes if n not in {f.message for f in findings}],
+    )
     if offset_window_min is not None:
-        report["clock_offset"] = find_log_offset(
+        report.clock_offset = find_log_offset(
             site, offset_window_min,
             site.runlog.log_offset_min if log_offset_min is None else log_offset_min,
             on_duplicate=site.meter.on_duplicate if on_duplicate is None else on_duplicate)
@@ -541,7 +550,7 @@ def check_log_offset(offset_min: float) -> None:
 
 
 def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,
-                    on_duplicate: str = "error") -> dict:
+                    on_duplicate: str = "error") -> ClockOffset:
     """Search the run-log clock offset (minutes to add to the log's times, on top of
     log_offset_min) over +-window_min; see disagg.analyses.clock.
 
@@ -560,5 +569,5 @@ def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float =
         r = estimate_log_offset(site, meter, runlog, window_min=window_min)
     except ValueError as exc:
         raise ConfigError(f"--offset-window {window_min:g}: {exc}") from None
-    return {"best_offset_min": r.best_offset_min, "clear": r.clear, "verdict": r.verdict,
-            "window_min": window_min, "already_applied_min": log_offset_min}
+    return ClockOffset(best_offset_min=r.best_offset_min, clear=r.clear, verdict=r.verdict,
+                       window_min=window_min, already_applied_min=log_offset_min)

@@ -210,35 +210,9 @@ class Aligned:
     cache: dict = field(default_factory=dict, repr=False, compare=False)
 
 
-# Rows per chunk of the passes over a long series' hours (term_hours): bounds the temporary
-# memory of 1-minute data (65,536 rows x 30 loads: 16 MB).
+# Rows per chunk of the passes over a long series (probe_rss): bounds the temporary memory
+# of 1-minute data (65,536 rows x 30 loads: 16 MB).
 CHUNK_ROWS = 65536
-
-
-def term_hours(aligned: Aligned, term_members: list[list[str]],
-               out: np.ndarray | None = None) -> np.ndarray:
-    """Each term's hours over the intervals used: the mean of its members' hours [h].
-
-    Row by row the same numbers as aligned.hours[aligned.use][:, members].mean(axis=1), made
-    a chunk of rows at a time, so that no copy of the whole (n, k) hours is made.
-
-    Args:
-        term_members: each term's equipment ids; out: (n_used, terms) array to fill, or
-            None for a new one.
-
-    Returns:
-        (n_used, terms) hours [h] (out, when given).
-    """
-    rows = np.flatnonzero(aligned.use)
-    if out is None:
-        out = np.empty((len(rows), len(term_members)))
-    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
-    cols = [[index[m] for m in members] for members in term_members]
-    for a in range(0, len(rows), CHUNK_ROWS):
-        H = aligned.hours[rows[a:a + CHUNK_ROWS]]
-        for c, idx in enumerate(cols):
-            out[a:a + CHUNK_ROWS, c] = H[:, idx].mean(axis=1)
-    return out
 
 
 def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]]) -> bool:

@@ -277,10 +277,10 @@ def _run_site(job: SiteJob) -> SiteOutcome:
     table = result.breakdown
     periods = table["period"].unique().sort()
     totals = table.group_by("equipment", maintain_order=True).agg(pl.col("kwh").sum())
-    hourly = result.fit["fit_quality"].get("hourly") or {}
+    hourly = result.fit.fit_quality.get("hourly") or {}
     month_peaks = (table.filter(pl.col("peak_kw").is_not_null())
                    .group_by("period").agg(pl.col("peak_kw").sum())["peak_kw"])
-    tariff = result.fit.get("tariff")
+    tariff = result.fit.tariff
     alarms, alarmed, drift_note = _alarms(drift)
     return SiteOutcome(
         site_file=job.site_file, folder=job.folder, status="ok", site=site.name,
@@ -289,8 +289,8 @@ def _run_site(job: SiteJob) -> SiteOutcome:
         months=table.select(EQUIPMENT_COLUMNS[2:]).to_dicts(),
         alarms=alarms, cv_rmse_pct=hourly.get("cv_rmse_pct"), nmbe_pct=hourly.get("nmbe_pct"),
         peak_kw=float(month_peaks.max()) if month_peaks.len() else None,
-        cost=float(sum(m["cost"] for m in tariff["months"])) if tariff else None,
-        currency=tariff["currency"] if tariff else None,
+        cost=float(sum(m.cost for m in tariff.months)) if tariff is not None else None,
+        currency=tariff.currency if tariff is not None else None,
         alarm_equipment=alarmed, drift_note=drift_note,
         history_note=" | ".join(run.notes) if run.notes else None,
         files=[str(p) for p in files])
@@ -302,14 +302,14 @@ def _alarms(drift) -> tuple[int | None, list[str] | None, str]:
     there would say nothing)."""
     if drift is None:
         return None, None, DRIFT_NOT_RUN
-    ref = drift.summary["reference"]
+    ref = drift.summary.reference
     dates = drift.table["date"]
     after = dates.filter(dates > dt.date.fromisoformat(ref["to"])).n_unique()
     if after == 0:
         return None, None, (f"no alarm count: no day tracked after the reference period "
                             f"{ref['from']} to {ref['to']} (data to {dates.max()}); alarms "
                             "need data after it: give batch --reference a shorter period")
-    alarmed = [a["equipment"] for a in drift.summary["alarms"]]
+    alarmed = [a.equipment for a in drift.summary.alarms]
     return len(alarmed), alarmed, (f"{after} day{'s' * (after != 1)} tracked after the "
                                    f"reference period {ref['from']} to {ref['to']}")
 

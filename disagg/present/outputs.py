@@ -199,7 +199,7 @@ def write_breakdown(result: BreakdownResult, out_dir: Path, *, xlsx: bool = Fals
     files = {
         "breakdown.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
         "breakdown.parquet": lambda p: table.write_parquet(p),
-        "fit.json": lambda p: p.write_text(to_json(result.fit), encoding="utf-8"),
+        "fit.json": lambda p: p.write_text(to_json(result.fit.as_json()), encoding="utf-8"),
     }
     if xlsx:
         files["breakdown.xlsx"] = lambda p: write_workbook(workbook_tables(result), p)
@@ -233,28 +233,29 @@ def _with_units(frame: pl.DataFrame, currency: str) -> pl.DataFrame:
 
 def workbook_tables(result: BreakdownResult) -> dict[str, pl.DataFrame]:
     """The spreadsheet's sheets: sheet name -> table, units in the column headers."""
-    tariff = result.fit.get("tariff") or {}
-    currency = tariff.get("currency", "")
-    draws = pl.DataFrame([{k: d.get(k) for k in ("equipment", "kw", "kw_low", "kw_high",
-                                                 "se_kw", "prior_kw", "prior_sd_kw",
-                                                 "prior_source", "prior_weight")}
-                          | {"run_hours": d["run_hours"], "flags": ";".join(d["flags"])}
-                          for d in result.fit["draws"]],
+    tariff = result.fit.tariff
+    currency = tariff.currency if tariff is not None else ""
+    draws = pl.DataFrame([{"equipment": d.equipment, "kw": d.kw, "kw_low": d.kw_low,
+                           "kw_high": d.kw_high, "se_kw": d.se_kw, "prior_kw": d.prior_kw,
+                           "prior_sd_kw": d.prior_sd_kw, "prior_source": d.prior_source,
+                           "prior_weight": d.prior_weight, "run_hours": d.run_hours,
+                           "flags": ";".join(d.flags)}
+                          for d in result.fit.draws],
                          schema={"equipment": pl.String, "kw": pl.Float64, "kw_low": pl.Float64,
                                  "kw_high": pl.Float64, "se_kw": pl.Float64,
                                  "prior_kw": pl.Float64, "prior_sd_kw": pl.Float64,
                                  "prior_source": pl.String, "prior_weight": pl.Float64,
                                  "run_hours": pl.Float64, "flags": pl.String})
     table = result.breakdown
-    if not tariff:
+    if tariff is None:
         table = table.drop("cost")
     sheets = {"breakdown": table, "draws": draws}
-    if tariff:
+    if tariff is not None:
         sheets["costs"] = pl.DataFrame(
-            tariff["months"], schema={"period": pl.String, "metered_kwh": pl.Float64,
+            [m.as_json() for m in tariff.months], schema={"period": pl.String, "metered_kwh": pl.Float64,
                                       "peak_kw": pl.Float64, "demand_cost": pl.Float64,
                                       "energy_cost": pl.Float64, "cost": pl.Float64})
-    notes = [("caution", CAUTION)] + [("note", w) for w in result.fit["warnings"]]
+    notes = [("caution", CAUTION)] + [("note", w) for w in result.fit.warnings]
     sheets["notes"] = pl.DataFrame(notes, schema={"kind": pl.String, "text": pl.String},
                                    orient="row")
     return {name: _with_units(frame, currency) for name, frame in sheets.items()}
@@ -312,7 +313,7 @@ def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
     table = result.table
     paths = write_atomically(out_dir, {
         "drift.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
-        "drift.json": lambda p: p.write_text(to_json(result.summary), encoding="utf-8"),
+        "drift.json": lambda p: p.write_text(to_json(result.summary.as_json()), encoding="utf-8"),
     }, inputs)
     if state_path is not None:
         state_path = Path(state_path).resolve()
@@ -359,6 +360,6 @@ def write_compare(result: CompareResult, out_dir: Path) -> list[Path]:
     site = result.site
     files = {
         "compare.csv": lambda p: neutralise_csv_text(t).write_csv(p),
-        "compare.json": lambda p: p.write_text(to_json(result.report), encoding="utf-8"),
+        "compare.json": lambda p: p.write_text(to_json(result.report.as_json()), encoding="utf-8"),
     }
     return write_atomically(out_dir, files, site.input_files())

@@ -43,9 +43,9 @@ def breakdown_summary(result: BreakdownResult) -> str:
                    pl.col("kwh_low").null_count().alias("no_range"), pl.col("flags"),
                    pl.col("cost").sum(), pl.col("cost").null_count().alias("no_cost")))
     metered = float(result.estimates.y.sum())
-    tariff = result.fit.get("tariff")
-    currency = tariff["currency"] if tariff else ""
-    draws = {d["equipment"]: d for d in result.fit["draws"]}
+    tariff = result.fit.tariff
+    currency = tariff.currency if tariff is not None else ""
+    draws = {d.equipment: d for d in result.fit.draws}
     order = {e: i for i, e in enumerate(draws)}
     last = len(order) + 1
     totals = totals.with_columns(
@@ -55,7 +55,7 @@ def breakdown_summary(result: BreakdownResult) -> str:
         .when(pl.col("equipment") == "unexplained").then(last + 1)
         .otherwise(pl.col("o")).alias("o")).sort("o", maintain_order=True)
     periods = t["period"].unique().sort()
-    own = any(m.get("own_fit") for m in result.fit["months"].values())
+    own = any(m.own_fit for m in result.fit.months.values())
     lines = [f"{result.site.name}: {periods[0]} to {periods[-1]}, "
              f"{result.aligned.counts['used']:,} intervals used, metered {metered:,.0f} kWh",
              "",
@@ -63,23 +63,23 @@ def breakdown_summary(result: BreakdownResult) -> str:
              + "kW: the draw fitted over the whole range; run h [h], kWh [kWh], kW [kW]",
              f"{'equipment':<22} {'run h':>7} {'kWh':>10} {'kWh range':>19} {'share':>6} "
              f"{'kW':>7} {'kW range':>13}  "
-             + (f"{'cost ' + currency[:5]:>11}  " if tariff else "") + "flags"]
+             + (f"{'cost ' + currency[:5]:>11}  " if tariff is not None else "") + "flags"]
     any_variable = False
     for r in totals.iter_rows(named=True):
         d = draws.get(r["equipment"])
         kw, kw_rng = "-", "-"
-        if d and d["kw"] is not None:
-            kw = _fmt(d["kw"])
-            if d["kw_low"] is not None:
-                kw_rng = f"{_fmt(d['kw_low'])}-{_fmt(d['kw_high'])}"
+        if d is not None and d.kw is not None:
+            kw = _fmt(d.kw)
+            if d.kw_low is not None:
+                kw_rng = f"{_fmt(d.kw_low)}-{_fmt(d.kw_high)}"
         kwh_rng = "-" if r["no_range"] else f"{_fmt(r['kwh_low'], 0)}-{_fmt(r['kwh_high'], 0)}"
-        flags = ";".join(d["flags"]) if d else ";".join(dict.fromkeys(
+        flags = ";".join(d.flags) if d is not None else ";".join(dict.fromkeys(
             f for cell in r["flags"] for f in (cell or "").split(";") if f))
         any_variable |= "variable" in flags
         kwh = r["kwh"] + 0.0 if abs(r["kwh"]) >= 0.5 else 0.0  # no "-0"
         share = 100 * kwh / metered if metered else 0.0
         cost = ""
-        if tariff:
+        if tariff is not None:
             cost = f"{'-' if r['no_cost'] else _fmt(r['cost'] + 0.0, 2):>11}  "
         lines.append(f"{r['equipment'][:22]:<22} {_fmt(r['run_hours'], 0):>7} {_fmt(kwh, 0):>10} "
                      f"{kwh_rng:>19} {share:>5.1f}% {kw:>7} {kw_rng:>13}  {cost}{flags}")
@@ -92,15 +92,15 @@ def breakdown_summary(result: BreakdownResult) -> str:
     if any_variable:
         lines.append("run h of variable equipment: equivalent full-load hours "
                      "(integral of status ** exponent).")
-    if tariff:
-        months_cost = tariff["months"]
-        total = sum(m["cost"] for m in months_cost)
-        demand = sum(m["demand_cost"] for m in months_cost)
+    if tariff is not None:
+        months_cost = tariff.months
+        total = sum(m.cost for m in months_cost)
+        demand = sum(m.demand_cost for m in months_cost)
         lines += ["", f"Cost of the intervals used: {_fmt(total, 2)} {currency} (energy "
                       f"{_fmt(total - demand, 2)}, demand {_fmt(demand, 2)} over "
                       f"{len(months_cost)} month{'s' if len(months_cost) != 1 else ''}); "
                       "each row's peak_kw and cost are in breakdown.csv."]
-    q = result.fit["fit_quality"]
+    q = result.fit.fit_quality
     hq = q.get("hourly")
     if hq:
         meets = "meets" if q["ashrae_guideline_14"]["hourly_meets"] else "does not meet"
@@ -108,12 +108,12 @@ def breakdown_summary(result: BreakdownResult) -> str:
                       f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
                       "30 % / 10 %)"]
     lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
-    months = result.fit["months"]
+    months = result.fit.months
     if months:
-        n_own = sum(1 for m in months.values() if m.get("own_fit"))
+        n_own = sum(1 for m in months.values() if m.own_fit)
         lines.append(f"{n_own} of {len(months)} months fitted on their own data; their draws, "
                      "flags and notes are in fit.json (months).")
-    for w in group_kinds(result.fit["warnings"]):
+    for w in group_kinds(result.fit.warnings):
         lines.append(f"Note: {w}")
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
@@ -135,64 +135,64 @@ def breakdown_json(result: BreakdownResult, paths: list[Path]) -> str:
              "cost": None if r["no_cost"] else r["cost"],
              "flags": sorted({f for cell in r["flags"] for f in (cell or "").split(";") if f})}
             for r in totals.iter_rows(named=True)]
-    tariff = result.fit.get("tariff")
+    tariff = result.fit.tariff
     periods = t["period"].unique().sort().to_list()
     return to_json({
         "site": result.site.name, "first_period": periods[0], "last_period": periods[-1],
         "intervals_used": result.aligned.counts["used"],
         "metered_kwh": metered,
-        "currency": tariff["currency"] if tariff else None,
-        "cost": sum(m["cost"] for m in tariff["months"]) if tariff else None,
-        "equipment": rows, "fit_quality": result.fit["fit_quality"],
-        "warnings": result.fit["warnings"], "caution": CAUTION,
+        "currency": tariff.currency if tariff is not None else None,
+        "cost": sum(m.cost for m in tariff.months) if tariff is not None else None,
+        "equipment": rows, "fit_quality": result.fit.fit_quality,
+        "warnings": result.fit.warnings, "caution": CAUTION,
         "files": [str(p) for p in paths]})
 
 def check_summary(result: CheckResult) -> str:
     r = result.report
-    c = r["intervals"]
+    c = r.intervals
     zone = zoneinfo.ZoneInfo(result.site.timezone)
-    start, end = (dt.datetime.fromisoformat(r["period"][k]).astimezone(zone).isoformat()
-                  for k in ("start_utc", "end_utc"))
-    lines = [f"{r['site']}: {start} to {end} ({result.site.timezone}), "
-             f"{r['interval_min']}-minute meter intervals",
+    start, end = (dt.datetime.fromisoformat(t).astimezone(zone).isoformat()
+                  for t in (r.start_utc, r.end_utc))
+    lines = [f"{r.site}: {start} to {end} ({result.site.timezone}), "
+             f"{r.interval_min}-minute meter intervals",
              f"intervals {c['intervals']:,}: used {c['used']:,}, absent {c['absent']:,}, "
              f"no reading {c['no_reading']:,}, run-log state unknown {c['log_unknown']:,}"]
-    for e, h in r["run_hours"].items():
+    for e, h in r.run_hours.items():
         lines.append(f"  {e:<20} {h:>10,.1f} run h")
-    for a, b, rho in r["inseparable_pairs"]:
+    for a, b, rho in r.inseparable_pairs:
         lines.append(f"cannot be told apart: {a} and {b} (correlation of hours {rho:.3f})")
-    for e in r["inseparable_from_baseload"]:
+    for e in r.inseparable_from_baseload:
         lines.append(f"cannot be told apart from the baseload schedule: {e}")
-    for e in r["not_run"]:
+    for e in r.not_run:
         lines.append(f"never ran in this period: {e}")
-    findings = r.get("findings", [])
+    findings = r.findings
     if findings:
         lines.append(f"Meter validation: {len(findings)} finding{'s' * (len(findings) != 1)}")
-        lines += [f"  {f['message']}" for f in findings]
+        lines += [f"  {f.message}" for f in findings]
     else:
         lines.append("Meter validation: no gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours or register rollovers found")
-    lines += [f"Note: {n}" for n in r["notes"]]
-    if "clock_offset" in r:
-        lines.append(f"Run-log clock: {r['clock_offset']['verdict']}")
+    lines += [f"Note: {n}" for n in r.notes]
+    if r.clock_offset is not None:
+        lines.append(f"Run-log clock: {r.clock_offset.verdict}")
     return "\n".join(lines)
 
 def drift_summary(result: DriftResult) -> str:
     """Step size, per-equipment latest tracked draw and change, alarms, notes, caution."""
     s = result.summary
     t = result.table
-    lines = [f"{s['site']}: step size mu = {s['step_size_mu']:.4g} "
-             f"(stable range 0 < mu < 2), threshold {100 * s['threshold']:g} %; each load "
+    lines = [f"{s.site}: step size mu = {s.step_size_mu:.4g} "
+             f"(stable range 0 < mu < 2), threshold {100 * s.threshold:g} %; each load "
              "tracked from its own reference period",
              "",
              f"{'equipment':<22} {'reference period':>23} {'reference kW':>12} {'latest kW':>10} "
              f"{'change':>8} {'memory d':>9}  alarm"]
-    windows = s.get("reference_per_equipment", {})
-    alarmed = {a["equipment"]: a for a in s["alarms"]}
+    windows = s.reference_per_equipment
+    alarmed = {a.equipment: a for a in s.alarms}
     for eq in t["equipment"].unique(maintain_order=True):
         rows = t.filter(pl.col("equipment") == eq)
         last = rows.row(-1, named=True)
-        mem = s["memory_days_per_equipment"].get(eq)
+        mem = s.memory_days_per_equipment.get(eq)
         change = last["change"]
         w = windows.get(eq)
         period = f"{w[0]} to {w[1]}" if w else "-"
@@ -200,14 +200,13 @@ def drift_summary(result: DriftResult) -> str:
                      f"{last['kw_tracked']:>10.2f} "
                      f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
                      f"{'-' if mem is None else f'{mem:.0f}':>9}  "
-                     + (f"since {alarmed[eq]['first_alarm_date']}" if eq in alarmed else ""))
-    for a in s["alarms"]:
-        lines.append(f"Alarm: {a['equipment']} from {a['first_alarm_date']}: draw "
-                     f"{100 * a['change']:+.1f} % ({100 * a['change_low']:+.1f} to "
-                     f"{100 * a['change_high']:+.1f} %) as of {a['as_of']}"
-                     + (f" (mean of its last {a['recent_days']} days, the tracker's lag taken "
-                        "out)" if "recent_days" in a else ""))
-    lines += [f"Note: {n}" for n in s["notes"]]
+                     + (f"since {alarmed[eq].first_alarm_date}" if eq in alarmed else ""))
+    for a in s.alarms:
+        lines.append(f"Alarm: {a.equipment} from {a.first_alarm_date}: draw "
+                     f"{100 * a.change:+.1f} % ({100 * a.change_low:+.1f} to "
+                     f"{100 * a.change_high:+.1f} %) as of {a.as_of}"
+                     f" (mean of its last {a.recent_days} days, the tracker's lag taken out)")
+    lines += [f"Note: {n}" for n in s.notes]
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
 
@@ -215,11 +214,11 @@ def drift_summary(result: DriftResult) -> str:
 def compare_summary(result: CompareResult) -> str:
     """A short readable table of both periods' draws, the verdicts, notes and the caution."""
     r = result.report
-    pb, pa = r["periods"]["before"], r["periods"]["after"]
-    level = f"{100 * r['confidence']:g} %"
-    lines = [(f"{r['site']}: draws before {pb['from']} to {pb['to']} ({pb['intervals_used']:,} "
-             f"intervals used) and after {pa['from']} to {pa['to']} ({pa['intervals_used']:,} "
-             "intervals used)"),
+    pb, pa = r.before, r.after
+    level = f"{100 * r.confidence:g} %"
+    lines = [(f"{r.site}: draws before {pb.date_from} to {pb.date_to} ({pb.intervals_used:,} "
+             f"intervals used) and after {pa.date_from} to {pa.date_to} "
+             f"({pa.intervals_used:,} intervals used)"),
              "",
              f"kW: running draw [kW] and its {level} range; change: after / before - 1 [%]",
              (f"{'equipment':<22} {'kW before':>9} {'range':>15} {'kW after':>9} {'range':>15} "
@@ -237,21 +236,21 @@ def compare_summary(result: CompareResult) -> str:
                      f"{_num_spec(row['kw_after'], ',.2f'):>9} "
                      f"{rng(row['kw_after_low'], row['kw_after_high']):>15} "
                      f"{change:>8} {p_text:>8}  {row['verdict']}")
-    lines.append(f"rising/falling: p-value under {1 - r['confidence']:.3g} and a change of at "
-                 f"least {100 * r['min_change']:g} %; steady: two one-sided tests put the change "
-                 f"inside +-{100 * r['min_change']:g} %; unclear: the data cannot tell (why "
+    lines.append(f"rising/falling: p-value under {1 - r.confidence:.3g} and a change of at "
+                 f"least {100 * r.min_change:g} %; steady: two one-sided tests put the change "
+                 f"inside +-{100 * r.min_change:g} %; unclear: the data cannot tell (why "
                  "below).")
-    for d in r["equipment"]:
+    for d in r.equipment:
         if d.get("reference_temp_c") is not None:
             lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
                          "outdoor temperature")
-    for d in r["equipment"]:
+    for d in r.equipment:
         if d["reason"]:
             lines.append(f"unclear {d['equipment']}: {d['reason']}")
     for name, p in (("before", pb), ("after", pa)):
-        for w in p["warnings"]:
+        for w in p.warnings:
             lines.append(f"Note ({name}): {w}")
-    for n in r["data_notes"]:
+    for n in r.data_notes:
         lines.append(f"Note: {n}")
     lines += ["", f"Caution: {CAUTION}"]
     return "\n".join(lines)
@@ -267,7 +266,7 @@ def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
         line += f", cost {_fmt_report(float(table['cost'].sum()), 2)} {_currency(result)}"
     if drift is None:
         return line + "; drift left out"
-    alarms = [a["equipment"] for a in drift.summary.get("alarms", [])]
+    alarms = [a.equipment for a in drift.summary.alarms]
     return line + (f"; drift alarms: {', '.join(alarms)}" if alarms else "; no drift alarm")
 
 

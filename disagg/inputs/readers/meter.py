@@ -119,6 +119,9 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
     path = settings.file
     raw = read_table(path, "meter", [settings.time_column, settings.value_column])
     require_columns(raw, path, [settings.time_column, settings.value_column])
+    if raw.height == 0:
+        raise InputError(f"{path}: no readings: the file has its header line but no data rows; "
+                         "expected one reading per line below the header")
     times = parse_times(raw, settings.time_column, tz, path, date_order=settings.date_order,
                         setting="[meter] date_order")
     values = _numbers(raw, settings.value_column, path, f"energy in {settings.unit}")

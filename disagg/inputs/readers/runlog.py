@@ -326,6 +326,14 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         cols = [settings.time_column, settings.equipment_column, settings.minutes_column]
     require_columns(raw, path, cols)  # type: ignore[arg-type]
     eq = raw.get_column(settings.equipment_column).cast(pl.String).str.strip_chars()  # type: ignore[arg-type]
+    # A row cut short (a file truncated mid-line) has neither id nor state: say so rather
+    # than blame an empty id.
+    cut = ((eq.is_null() | (eq == "")) & raw.get_column(cols[2]).is_null()).fill_null(False)
+    if cut.any():
+        idx = int(cut.arg_max())  # type: ignore[arg-type]
+        raise InputError(f"{path}: {_row_label(path, idx)}: no {cols[1]!r} and no {cols[2]!r}: "
+                         "the row ends early (is the file cut short?); expected a value in "
+                         f"each of {', '.join(repr(c) for c in cols)}")
     _check_ids(eq, ids, path, settings.equipment_column, aliases)  # type: ignore[arg-type]
     written = eq
     if aliases:

@@ -19,6 +19,44 @@ def _row_label(path: Path, index: int) -> str:
     return f"line {index + 2}" if path.suffix.lower() == ".csv" else f"row {index + 1}"
 
 
+def first_non_utf8(path: Path, chunk_bytes: int = 1 << 20) -> tuple[int, int] | None:
+    """(line number, byte value) of the first byte that is not UTF-8 text, None when the whole
+    file is; read a chunk at a time (a character split between chunks is carried over)."""
+    line, carry = 1, b""
+    with path.open("rb") as f:
+        while True:
+            chunk = f.read(chunk_bytes)
+            data = carry + chunk
+            if not data:
+                return None
+            try:
+                data.decode("utf-8")
+                carry = b""
+                line += data.count(b"\n")
+            except UnicodeDecodeError as exc:
+                if exc.reason == "unexpected end of data" and chunk:
+                    carry = data[exc.start:]
+                    line += data[:exc.start].count(b"\n")
+                else:
+                    return line + data[:exc.start].count(b"\n"), data[exc.start]
+            if not chunk:
+                return None
+
+
+def _encoding_error(path: Path, what: str) -> InputError | None:
+    """The error for a file that is not UTF-8 text (None when it is, or cannot be read)."""
+    try:
+        bad = first_non_utf8(path)
+    except OSError:
+        return None
+    if bad is None:
+        return None
+    line, byte = bad
+    return InputError(f"{path}: line {line}: byte 0x{byte:02X} is not UTF-8 text; expected a "
+                      f"UTF-8 {what} file (it may be Latin-1 or Windows-1252): export or save "
+                      "it as UTF-8")
+
+
 def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.DataFrame:
     """Read a CSV (every column as text) or Parquet file.
 
@@ -50,10 +88,18 @@ def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.Da
             names = lazy.collect_schema().names()
             for col in columns:
                 if col not in names:
+                    if suffix == ".csv" and any("\ufffd" in c for c in names):
+                        raise _encoding_error(path, what) or InputError(
+                            f"{path}: column {col!r} not found; the file has "
+                            f"{', '.join(repr(c) for c in names)}")
                     raise InputError(f"{path}: column {col!r} not found; the file has "
                                      f"{', '.join(repr(c) for c in names)}")
             return lazy.select(list(dict.fromkeys(columns))).collect()
     except (pl.exceptions.PolarsError, OSError) as exc:
+        if suffix == ".csv" and "utf-8" in str(exc).lower().replace("utf8", "utf-8"):
+            encoding = _encoding_error(path, what)
+            if encoding is not None:
+                raise encoding from None
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{path}: cannot read the {what} file ({first})") from None
     raise InputError(f"{path}: unknown file type {suffix!r}; expected .csv or .parquet")

@@ -83,7 +83,7 @@ def render_report(result: BreakdownResult, drift: DriftResult | None = None, *,
             _glance(result, ch, table_names),
             _months(result, ch, table_names, periods),
             _drift_section(drift, ch, drift_names, drift_note,
-                           {str(w) for w in result.fit["warnings"]}),
+                           {str(w) for w in result.fit.warnings}),
             _fit_section(result, ch),
             _priors_section(result),
             _caution_section(result),
@@ -93,6 +93,6 @@ def render_report(result: BreakdownResult, drift: DriftResult | None = None, *,
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n"
             f"<title>{e(title)}</title>\n<style>{CSS}</style>\n</head>\n<body>\n<main>\n"
             + "\n".join(parts)
-            + f"\n<footer>Produced by {e(str(fit['tool']))} from the site file "
-              f"{e(Path(str(fit['site_file'])).name)}. Every figure in this report is an "
+            + f"\n<footer>Produced by {e(fit.tool)} from the site file "
+              f"{e(Path(fit.site_file).name)}. Every figure in this report is an "
               "estimate from the meter and the run logs.</footer>\n</main>\n</body>\n</html>\n")

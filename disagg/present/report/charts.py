@@ -17,7 +17,7 @@ from disagg.analyses.pipeline import BreakdownResult
 from disagg.progress import report as _report_progress
 
 if TYPE_CHECKING:
-    pass
+    from disagg.analyses.summary import DriftSummary
 from disagg.present.report.styles import (
     _WIDTH_IN,
     ALARM_COLOUR,
@@ -76,7 +76,7 @@ def _is_base(name: str) -> bool:
 def equipment_order(result: BreakdownResult, extra: list[str] | None = None) -> list[str]:
     """Row names in report order: the fit's draws, other names met in the table or in
     `extra`, then the baseload row(s), estimated gaps and unexplained."""
-    names = [d["equipment"] for d in result.fit["draws"]]
+    names = [d.equipment for d in result.fit.draws]
     seen = set(names)
     for n in list(result.breakdown["equipment"].unique(maintain_order=True)) + (extra or []):
         if n not in seen:
@@ -261,7 +261,7 @@ def _date_axis(ax) -> None:
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc))
 
 
-def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: dict,
+def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: DriftSummary,
                  part: int) -> str:
     """Small multiples: each load's tracked daily draw, its band, the reference draw, the
     reference period shaded and alarm days marked."""
@@ -273,11 +273,11 @@ def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: di
     nrows = math.ceil(len(names) / cols)
     fig = Figure(figsize=(_WIDTH_IN, 0.7 + 2.0 * nrows), layout="constrained")
     axes = fig.subplots(nrows, cols, squeeze=False, sharex=True)
-    ref = summary.get("reference", {})
+    ref = summary.reference
     ref0 = dt.date.fromisoformat(ref["from"]) if ref.get("from") else None
     ref1 = dt.date.fromisoformat(ref["to"]) if ref.get("to") else None
-    alarms = {a["equipment"]: a for a in summary.get("alarms", [])}
-    own = summary.get("reference_per_equipment", {})
+    alarms = {a.equipment: a for a in summary.alarms}
+    own = summary.reference_per_equipment
     for k, name in enumerate(names):
         ax = axes[k // cols][k % cols]
         ref0, ref1 = (tuple(dt.date.fromisoformat(d) for d in own[name]) if name in own
@@ -312,7 +312,7 @@ def _drift_chart(ch: _Charts, table: pl.DataFrame, names: list[str], summary: di
         ax.set_ylim(y0, y1)
         title = _short(name)
         if name in alarms:
-            title += f": alarm from {alarms[name]['first_alarm_date']}"
+            title += f": alarm from {alarms[name].first_alarm_date}"
         if clipped:
             title += " (band wider than shown)"
         ax.set_title(title, loc="left", color=ALARM_COLOUR if name in alarms else "#222222")

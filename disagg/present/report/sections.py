@@ -10,6 +10,7 @@ import numpy as np
 import polars as pl
 
 from disagg.analyses.pipeline import CAUTION, BreakdownResult
+from disagg.analyses.summary import TariffSummary
 from disagg.inputs.notes import group_kinds
 
 if TYPE_CHECKING:
@@ -183,7 +184,8 @@ def _flag_text(flags: str | list[str]) -> str:
 
 
 def _currency(result: BreakdownResult) -> str:
-    return str((result.fit.get("tariff") or {}).get("currency") or "currency")
+    tariff = result.fit.tariff
+    return (tariff.currency if tariff is not None else "") or "currency"
 
 
 def _has_cost(table: pl.DataFrame) -> bool:
@@ -257,15 +259,15 @@ def _summary(result: BreakdownResult, drift: DriftResult | None,
 
 
 def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
-    if drift is not None and drift.summary.get("alarms"):
-        parts = [f"{e(a['equipment'])} {_pct(a['change'])} since the reference period "
-                 f"(first alarm {e(a['first_alarm_date'])})" for a in drift.summary["alarms"]]
+    if drift is not None and drift.summary.alarms:
+        parts = [f"{e(a.equipment)} {_pct(a.change)} since the reference period "
+                 f"(first alarm {e(a.first_alarm_date)})" for a in drift.summary.alarms]
         return "drift alarms for " + "; ".join(parts) + " (see Drift over time)."
-    months = {p: m for p, m in sorted(result.fit["months"].items()) if m.get("own_fit")}
+    months = result.fit.own_months()
     if len(months) >= 2:
         (p0, m0), (p1, m1) = next(iter(months.items())), list(months.items())[-1]
-        first = {d["equipment"]: d["kw"] for d in m0["draws"] if d.get("kw")}
-        last = {d["equipment"]: d["kw"] for d in m1["draws"] if d.get("kw")}
+        first = {d.equipment: d.kw for d in m0.draws if d.kw}
+        last = {d.equipment: d.kw for d in m1.draws if d.kw}
         moves = sorted(((last[k] / first[k] - 1.0, k) for k in first if k in last
                         and first[k] > 0), key=lambda m: -abs(m[0]))
         named = [f"{e(k)} {_num(first[k], 1)} kW in {p0} to {_num(last[k], 1)} kW in {p1} "
@@ -282,24 +284,23 @@ def _what_changed(result: BreakdownResult, drift: DriftResult | None) -> str:
 def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[str]:
     fit = result.fit
     out = []
-    clock = [w for w in fit["warnings"] if "match the meter best" in str(w)
+    clock = [w for w in fit.warnings if "match the meter best" in str(w)
              or "run-log clock looks off" in str(w)]
     if clock:
         out.append("the run-log clock seems off from the meter's (see the notes on the fit "
                    "page): fix it first, it biases every draw.")
-    grouped = [d["equipment"] for d in fit["draws"] if "+" in d["equipment"]]
+    grouped = [d.equipment for d in fit.draws if "+" in d.equipment]
     if grouped:
         out.append(f"{_names(grouped)} run together and are shown as one row: a separate "
                    "run-log point or a spot measurement would split them.")
-    hourly = (fit["fit_quality"] or {}).get("ashrae_guideline_14") or {}
-    if hourly and hourly.get("hourly_meets") is False:
+    if fit.fit_quality["ashrae_guideline_14"]["hourly_meets"] is False:
         out.append("the hourly fit does not meet the ASHRAE Guideline 14 criteria: read the "
                    "figures as rough.")
     unexplained = sum(r["kwh"] for r in rows if r["equipment"] == "unexplained")
     if metered and abs(unexplained) / metered >= UNEXPLAINED_WORTH_NAMING:
         out.append(f"{_num(100 * unexplained / metered, 0)} % of the metered energy is "
                    "unexplained: a load without a run log may be missing.")
-    n_notes = len(group_kinds(fit["warnings"]))
+    n_notes = len(group_kinds(fit.warnings))
     if n_notes:
         out.append(f"{n_notes} note{'s' * (n_notes != 1)} on the data and the fit (fit page).")
     return out[:LOOK_AT]
@@ -308,7 +309,7 @@ def _look_at(result: BreakdownResult, rows: list[dict], metered: float) -> list[
 def _header(result: BreakdownResult, periods: list[str]) -> str:
     first, last = local_span(result)
     fit = result.fit
-    c = fit["intervals"]
+    c = fit.intervals
     months = (f"{len(periods)} month{'s' * (len(periods) != 1)}, {periods[0]} to {periods[-1]}"
               if periods else "no months")
     sections = ["The range at a glance", "Month by month", "Drift over time", "How good the fit is",
@@ -317,7 +318,7 @@ def _header(result: BreakdownResult, periods: list[str]) -> str:
     toc = "".join(f'<li><a href="#{i}">{s}</a></li>' for i, s in zip(ids, sections))
     made = dt.datetime.now(_zone(result.site.timezone)).date().isoformat()
     return (f'<header class="top"><h1>{e(result.site.name)}</h1>'
-            f"<p>Generated on {made} by {e(str(fit['tool']))}.</p>"
+            f"<p>Generated on {made} by {e(fit.tool)}.</p>"
             f"<p>Energy by equipment, {e(first)} to {e(last)} (local dates, "
             f"{e(result.site.timezone)}): {e(months)}.</p>"
             f"<p>{interval_counts(c)}; intervals at {100 * result.estimates.confidence:g} % "
@@ -331,7 +332,7 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
     rows = _range_rows(table, names, metered)
     has_cost, has_peak = _has_cost(table), _has_peak(table)
     cur = _currency(result)
-    draws = {d["equipment"]: d for d in result.fit["draws"]}
+    draws = {d.equipment: d for d in result.fit.draws}
     full_names = {eq.id: eq.name for eq in result.site.equipment}
     loads_kwh = sum(r["kwh"] for r in rows if not _is_base(r["equipment"])
                     and r["equipment"] not in ("unexplained", "estimated-gaps"))
@@ -358,18 +359,20 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
         n = r["equipment"]
         d = draws.get(n)
         if d is not None:
-            name = d.get("name") or n
+            name = d.name or n
         elif _is_base(n):
             name = "baseload (load no run log explains)"
         elif n == "unexplained":
             name = "metered minus everything fitted"
         else:
             name = full_names.get(n, n)
-        kw = _num(d["kw"], 1) if d and d.get("kw") is not None else "-"
+        kw = _num(d.kw, 1) if d is not None and d.kw is not None else "-"
         interval = (f"{_num(r['kwh_low'])}–{_num(r['kwh_high'])}"
                     if r["kwh_low"] is not None else "-")
-        flags = d["flags"] if d else table.filter(pl.col("equipment") == n)["flags"].to_list()
-        if not d:
+        if d is not None:
+            flags = d.flags
+        else:
+            flags = table.filter(pl.col("equipment") == n)["flags"].to_list()
             flags = [f for cell in flags for f in (cell or "").split(";") if f]
         label = _eq(n, ch.colour(n))
         if name != n:
@@ -393,7 +396,7 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
     tab = tab.replace("</tbody>", "<tr class=\"total\">" + "".join(
         f'<td class="num">{c}</td>' if headers[i][1] else f"<td>{c}</td>"
         for i, c in enumerate(total)) + "</tr></tbody>")
-    own = any(m.get("own_fit") for m in result.fit["months"].values())
+    own = any(m.own_fit for m in result.fit.months.values())
     notes = [
         "Energy and its interval are sums over the months"
         + (" of each month's own fit" if own else "")
@@ -413,15 +416,15 @@ def _glance(result: BreakdownResult, ch: _Charts, names: list[str]) -> str:
     if estimated:
         notes.append("Estimated gaps: energy filled in by linear interpolation for short meter "
                      "gaps; not metered, so not in the total or the shares.")
-    tariff = result.fit.get("tariff") or {}
+    tariff = result.fit.tariff
     if has_peak:
         notes.append("Peak share [kW]: each row's estimated draw during the interval of a "
                      "month's highest metered demand, which is when the demand charge is set "
                      "(the billing peak), not the load's own maximum; the column shows the "
                      "largest over the months. The rows of a month add up to that month's peak "
                      "demand. " + UNEXPLAINED_PEAK)
-    if has_cost and tariff.get("method"):
-        notes.append("Cost: " + e(str(tariff["method"])) + ". The tariff and the time of each "
+    if has_cost and tariff is not None:
+        notes.append("Cost: " + e(tariff.method) + ". The tariff and the time of each "
                      'month\'s peak are on the <a href="#months">month-by-month page</a>.')
     return (f'<section class="page first" id="glance"><h2>1. The range at a glance</h2>'
             f'<div class="kpis">{kpi_html}</div>'
@@ -454,24 +457,19 @@ def _local_time(utc_iso: str | None, tz) -> str:
     return e(when.astimezone(tz).strftime("%a %Y-%m-%d %H:%M %Z"))
 
 
-def _tariff_table(result: BreakdownResult, tariff: dict) -> str:
+def _tariff_table(result: BreakdownResult, tariff: TariffSummary) -> str:
     """The tariff as priced: energy prices (outside and in each time-of-use period, with its
     spells), holidays and the demand price, with how demand is measured."""
-    cur = e(str(tariff.get("currency") or _currency(result)))
-    periods = tariff.get("periods") or []
-    holidays = tariff.get("holidays") or []
-    settings = result.site.tariff
-    demand = tariff.get("demand_price_per_kw")
-    if demand is None and settings is not None:
-        demand = settings.demand_price_per_kw
-    energy = tariff.get("energy_price_per_kwh")
-    if energy is None and settings is not None:
-        energy = settings.energy_price_per_kwh
+    cur = e(tariff.currency or _currency(result))
+    periods = tariff.periods
+    holidays = tariff.holidays
+    demand = tariff.demand_price_per_kw
+    energy = tariff.energy_price_per_kwh
     rows = [["energy, outside the periods below" if periods else "energy",
              _price(energy), "kWh", "every other hour" if periods else "every hour"]]
     for p in periods:
-        rows.append([f"energy, {e(str(p.get('name', '')))}", _price(p.get("price_per_kwh")),
-                     "kWh", e(", ".join(str(x) for x in p.get("spells", []))) + " (local time)"
+        rows.append([f"energy, {e(str(p['name']))}", _price(p["price_per_kwh"]),
+                     "kWh", e(", ".join(str(x) for x in p["spells"])) + " (local time)"
                      + (", not on holidays" if holidays else "")])
     if holidays:
         rows.append(["holidays", "-", "-",
@@ -540,17 +538,17 @@ def _months(result: BreakdownResult, ch: _Charts, names: list[str], periods: lis
                 if r["cost"] is not None}
         parts += [f"<h3>Cost per month ({e(cur)}, rounded to whole units)</h3>",
                   _month_table(names, periods, cost, ch.colours, cur, 0)]
-        tariff = result.fit.get("tariff") or {}
-        if tariff:
+        tariff = result.fit.tariff
+        if tariff is not None:
             parts += ["<h3>The tariff</h3>", _tariff_table(result, tariff)]
-        months = tariff.get("months") or []
+        months = tariff.months if tariff is not None else []
         if months:
             tz = _zone(result.site.timezone)
-            rows = [[_eq(str(m["period"])),
-                     f'<span class="eq">{_local_time(m.get("peak_start_utc"), tz)}</span>',
-                     _num(m.get("metered_kwh")), _num(m.get("peak_kw"), 1),
-                     _num(m.get("energy_cost"), 2), _num(m.get("demand_cost"), 2),
-                     _num(m.get("cost"), 2)] for m in months]
+            rows = [[_eq(m.period),
+                     f'<span class="eq">{_local_time(m.peak_start_utc, tz)}</span>',
+                     _num(m.metered_kwh), _num(m.peak_kw, 1),
+                     _num(m.energy_cost, 2), _num(m.demand_cost, 2),
+                     _num(m.cost, 2)] for m in months]
             parts += ["<h3>The bill, month by month</h3>",
                       _table([("month", False), ("peak interval starts (local)", False),
                               ("metered [kWh]", True), ("peak demand [kW]", True),
@@ -562,10 +560,10 @@ def _months(result: BreakdownResult, ch: _Charts, names: list[str], periods: lis
                        "peak share [kW] is its estimated draw during that interval (coincident "
                        "with the billing peak, not the load's own maximum), and its demand cost "
                        f"is that share times the demand price. {UNEXPLAINED_PEAK}</p>")]
-    not_own = {p: m for p, m in result.fit["months"].items() if not m.get("own_fit")}
+    not_own = {p: m for p, m in result.fit.months.items() if not m.own_fit}
     if not_own:
         parts.append("<p class=\"muted\">"
-                     + "; ".join(f"{e(p)}: {e(str(m.get('reason', '')))}"
+                     + "; ".join(f"{e(p)}: {e(str(m.reason))}"
                                  for p, m in not_own.items()) + ".</p>")
     parts.append("</section>")
     return "".join(parts)
@@ -582,18 +580,18 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
     t = drift.table
     parts = [head,
              ("<p>Each equipment's draw is tracked day by day (per-weight normalized LMS, "
-              f"step size {s.get('step_size_mu', float('nan')):.3g}, the same memory for every "
+              f"step size {s.step_size_mu:.3g}, the same memory for every "
               "load) from its draw in its own reference period (in the table; loads that run "
               "together and cannot be told apart are tracked as their group A+B). "
-              f"Rule: {e(str(s.get('rule', '')))}; threshold "
-              f"{_num(100 * float(s.get('threshold', float('nan'))), 0)} %.</p>")]
-    alarms = s.get("alarms", [])
+              f"Rule: {e(s.rule)}; threshold "
+              f"{_num(100 * s.threshold, 0)} %.</p>")]
+    alarms = s.alarms
     if alarms:
-        parts.append(_list([f'<span class="alarm">Alarm: {e(a["equipment"])}</span> from '
-                            f"{e(a['first_alarm_date'])}: draw "
-                            f"{_num(100 * a['change'], 1)} % ({_num(100 * a['change_low'], 1)} "
-                            f"to {_num(100 * a['change_high'], 1)} %) against its reference, as "
-                            f"of {e(a['as_of'])}" for a in alarms]))
+        parts.append(_list([f'<span class="alarm">Alarm: {e(a.equipment)}</span> from '
+                            f"{e(a.first_alarm_date)}: draw "
+                            f"{_num(100 * a.change, 1)} % ({_num(100 * a.change_low, 1)} "
+                            f"to {_num(100 * a.change_high, 1)} %) against its reference, as "
+                            f"of {e(a.as_of)}" for a in alarms]))
     else:
         parts.append("<p>No alarm: no tracked draw moved beyond both its band and the "
                      "threshold.</p>")
@@ -603,10 +601,10 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
         parts.append(_figure(svg, "Tracked daily draw (line), its band (shaded), the reference "
                                   "draw (dashed), the reference period (grey) and alarm days "
                                   "(red dots)."))
-    memory = s.get("memory_days_per_equipment", {})
-    band = s.get("band_sd_kw", {})
-    own = s.get("reference_per_equipment", {})
-    first_alarm = {a["equipment"]: a["first_alarm_date"] for a in alarms}
+    memory = s.memory_days_per_equipment
+    band = s.band_sd_kw
+    own = s.reference_per_equipment
+    first_alarm = {a.equipment: a.first_alarm_date for a in alarms}
     rows = []
     for n in names:
         last = t.filter(pl.col("equipment") == n).sort("date").row(-1, named=True)
@@ -623,7 +621,7 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
                          ("reference draw [kW]", True),
                          ("latest tracked [kW]", True), ("change [%]", True),
                          ("band sd [kW]", True), ("memory [d]", True), ("alarm", False)], rows))
-    notes = [n for n in s.get("notes", []) if n not in shown]
+    notes = [n for n in s.notes if n not in shown]
     if notes:
         parts.append("<h3>Notes</h3>" + _list([e(str(n)) for n in notes]))
     parts.append("</section>")
@@ -634,10 +632,10 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
     fit = result.fit
     when, y, f, unit = _fit_series(result)
     svg1, svg2 = _fit_charts(ch, when, y, f, unit)
-    q = fit["fit_quality"]
-    g14 = q.get("ashrae_guideline_14", {})
-    hc = g14.get("hourly_criteria", {"cv_rmse_pct": 30.0, "nmbe_pct": 10.0})
-    mc = g14.get("monthly_criteria", {"cv_rmse_pct": 15.0, "nmbe_pct": 5.0})
+    q = fit.fit_quality
+    g14 = q["ashrae_guideline_14"]
+    hc = g14["hourly_criteria"]
+    mc = g14["monthly_criteria"]
 
     def verdict(ok: bool | None) -> str:
         if ok is None:
@@ -645,7 +643,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
         return '<span class="meets">meets</span>' if ok else '<span class="fails">does not meet</span>'
 
     rows = []
-    iq = q.get("interval")
+    iq = q["interval"]
     if iq:
         rows.append(["meter interval", _num(iq.get("n")), _num(iq.get("cv_rmse_pct"), 2), "-",
                      _num(iq.get("nmbe_pct"), 2), "-", "no criterion"])
@@ -655,7 +653,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
         rows.append(["hourly", _num(hq.get("n")), _num(hq.get("cv_rmse_pct"), 2),
                      _num(hc["cv_rmse_pct"], 0), _num(hq.get("nmbe_pct"), 2),
                      _num(hc["nmbe_pct"], 0), verdict(ok)])
-    mq = q.get("monthly")
+    mq = q["monthly"]
     if mq:
         nmbe = mq.get("nmbe_pct")
         ok = None if nmbe is None or not math.isfinite(nmbe) else abs(nmbe) <= mc["nmbe_pct"]
@@ -664,7 +662,7 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
     quality = _table([("level", False), ("points [count]", True), ("CV(RMSE) [%]", True),
                       ("limit [%]", True), ("NMBE [%]", True), ("limit [%]", True),
                       ("ASHRAE Guideline 14 criteria", False)], rows)
-    c = fit["intervals"]
+    c = fit.intervals
     words = [("in_range", "meter intervals in the range (first to last reading)"),
              ("intervals", "in the meter file"),
              ("used", "used by the fit"),
@@ -675,10 +673,10 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
              ("weather_unknown", "no outdoor temperature near them (left out)")]
     c = {**c, "in_range": int(c.get("intervals", 0)) + int(c.get("absent", 0))}
     count_rows = [[e(w), _num(c.get(k))] for k, w in words if k in c]
-    unknown = {k: v for k, v in fit["unknown_intervals_by_equipment"].items() if v}
-    findings = fit["meter_validation"]
-    warnings = fit["warnings"]
-    finding_messages = {str(fd.get("message", "")) for fd in findings}
+    unknown = {k: v for k, v in fit.unknown_intervals_by_equipment.items() if v}
+    findings = fit.meter_validation
+    warnings = fit.warnings
+    finding_messages = {fd.message for fd in findings}
     other_warnings = group_kinds([w for w in warnings if str(w) not in finding_messages])
     parts = ['<section class="page" id="fit"><h2>4. How good the fit is</h2>',
              _figure(svg1, f"Metered and fitted energy per local {unit} (sums of the intervals "
@@ -700,12 +698,12 @@ def _fit_section(result: BreakdownResult, ch: _Charts) -> str:
                      + e(", ".join(f"{k} {v:,}" for k, v in unknown.items())) + ".</p>")
     if findings:
         parts.append("<h3>Meter validation findings</h3>"
-                     + _list([e(str(fd.get("message", ""))) for fd in findings]))
+                     + _list([e(fd.message) for fd in findings]))
     else:
         parts.append("<p>The meter validation (gaps, duplicates, spikes, zero runs, interval "
                      "changes, daylight-saving hours, register rollovers) raised no finding; "
                      "intervals left out for other reasons are counted above.</p>")
-    form = fit["baseload"].get("form")
+    form = fit.baseload.form
     if form:
         parts.append("<h3>The baseload's form</h3><p>" + form_sentence(form) + "</p>")
     if other_warnings:
@@ -742,25 +740,25 @@ def _temp(value_c: float | None, unit: str) -> str:
 
 def _priors_section(result: BreakdownResult) -> str:
     fit = result.fit
-    ident = fit["identifiability"]
-    bound = ident.get("correlation_bound", 0.95)
-    pd_weight = ident.get("prior_driven_weight", 0.5)
-    draws = fit["draws"]
+    ident = fit.identifiability
+    bound = ident["correlation_bound"]
+    pd_weight = ident["prior_driven_weight"]
+    draws = fit.draws
     unit = result.site.weather.unit if result.site.weather is not None else "C"
     sentences: list[str] = []
     groups: dict[str, list[str]] = {"not-run": [], "unstable": [], "variable": [],
                                     "meter": [], "form-sensitive": [], "schedule-edge": []}
     for d in draws:
-        n = d["equipment"]
-        flags = d.get("flags", [])
-        src = str(d.get("prior_source") or "none")
-        w = d.get("prior_weight")
-        prior = (f"{_num(d['prior_kw'], 1)} ± {_num(d.get('prior_sd_kw'), 1)} kW"
-                 if d.get("prior_kw") is not None else None)
+        n = d.equipment
+        flags = d.flags
+        src = d.prior_source or "none"
+        w = d.prior_weight
+        prior = (f"{_num(d.prior_kw, 1)} ± {_num(d.prior_sd_kw, 1)} kW"
+                 if d.prior_kw is not None else None)
         decided_by_prior = False
         if "combined" in flags:
             sentences.append(
-                f"{_names(d.get('members', []))} ran together whenever they ran (their "
+                f"{_names(d.members)} ran together whenever they ran (their "
                 f"run-hours correlate at {bound:g} or more) and no size or draw was given that "
                 "could split them: the meter cannot tell their energy apart, so it is "
                 f"reported as one row, <b>{e(n)}</b>.")
@@ -778,13 +776,13 @@ def _priors_section(result: BreakdownResult) -> str:
                 f"prior ({e(src)}), at least the {_num(100 * pd_weight, 0)} % that makes it "
                 "prior-driven: the prior, more than the meter, decided this draw.")
             decided_by_prior = True
-        if d.get("weather"):
-            wd = d["weather"]
+        if d.weather is not None:
+            wd = d.weather
             sentences.append(
                 f"<b>{e(n)}</b> draws more the "
-                f"{'hotter' if wd.get('mode') == 'cooling' else 'colder'} it is beyond "
-                f"{_temp(wd.get('balance_temp_c'), unit)} outdoors; its draw is stated at "
-                f"{_temp(wd.get('reference_temp_c'), unit)}.")
+                f"{'hotter' if wd.mode == 'cooling' else 'colder'} it is beyond "
+                f"{_temp(wd.balance_temp_c, unit)} outdoors; its draw is stated at "
+                f"{_temp(wd.reference_temp_c, unit)}.")
         if "not-run" in flags:
             groups["not-run"].append(n)
             continue
@@ -818,9 +816,9 @@ def _priors_section(result: BreakdownResult) -> str:
                          "moved with the time period or with the baseload schedule assumed, so "
                          f"{'its interval was' if one else 'their intervals were'} widened to "
                          "cover those results (the notes on the fit page say by how much).")
-    folded = ident.get("folded_into_baseload", [])
+    folded = ident["folded_into_baseload"]
     if folded:
-        base = fit["baseload"].get("row", "baseload")
+        base = fit.baseload.row
         sentences.append(f"{_names(folded)} ran on the same schedule as the baseload and have "
                          f"no prior: their energy is reported in the row <b>{e(base)}</b>.")
     if groups["meter"]:
@@ -834,13 +832,13 @@ def _priors_section(result: BreakdownResult) -> str:
                          "fit of that month's own: those months use the whole range's draws.")
     rows = []
     for d in draws:
-        prior = (f"{_num(d['prior_kw'], 1)} ± {_num(d.get('prior_sd_kw'), 1)}"
-                 if d.get("prior_kw") is not None else "-")
-        rng = (f"{_num(d.get('kw_low'), 1)}–{_num(d.get('kw_high'), 1)}"
-               if d.get("kw_low") is not None else "-")
-        rows.append([_eq(d["equipment"]), prior,
-                     _num(d.get("kw"), 1), rng, _weight(d.get("prior_weight")),
-                     e(str(d.get("prior_source") or "none")), _flag_text(d.get("flags", []))])
+        prior = (f"{_num(d.prior_kw, 1)} ± {_num(d.prior_sd_kw, 1)}"
+                 if d.prior_kw is not None else "-")
+        rng = (f"{_num(d.kw_low, 1)}–{_num(d.kw_high, 1)}"
+               if d.kw_low is not None else "-")
+        rows.append([_eq(d.equipment), prior,
+                     _num(d.kw, 1), rng, _weight(d.prior_weight),
+                     e(d.prior_source or "none"), _flag_text(d.flags)])
     tab = _table([("equipment", False), ("prior [kW]", True), ("fitted [kW]", True),
                   ("interval [kW]", True), ("prior weight [%]", True), ("prior from", False),
                   ("notes", False)], rows)

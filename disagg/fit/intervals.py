@@ -1,0 +1,517 @@
+"""The intervals stage: each draw's HAC interval widened where the estimate moves with the time
+period (delete-a-block jackknife), with a more flexible baseload profile (variants hull),
+with a separate baseload level for each day (by-day projection), between credible baseload
+forms (their weighted spread) or with the baseload's own shape around the schedule's edges;
+and each draw's real week-to-week variation (DerSimonian-Laird tau^2) for the monthly kWh.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import polars as pl
+from scipy.linalg import solveh_banded
+
+from disagg.fit.design import BaseloadBuilder, Rows
+from disagg.fit.select import FormChoice
+from disagg.fit.solve import Priors, Solved
+from disagg.fit.solvers import chi2_upper_quantile, fit_model, jackknife_cov, quantile
+from disagg.fit.terms import Term
+from disagg.fit.wander import Spacing
+from disagg.inputs.config import BaseloadSettings, SiteConfig
+
+# An estimate whose posterior precision comes at least half from its prior is prior-driven.
+PRIOR_DRIVEN_WEIGHT = 0.5
+JACKKNIFE_BLOCKS = 10
+# A baseload variant is refitted only with at least this many intervals per fitted column
+# (common practice, no source): fewer, and it fits the noise.
+MIN_ROWS_PER_COLUMN = 10
+# Differences in kW smaller than this fraction of the draw (or of 1 kW) are rounding, not a
+# change: they neither widen an interval nor flag it.
+NUMERICAL_TOL = 1e-6
+MORE_FLEXIBLE = {"constant": ("occupied", "hour-of-week"), "occupied": ("hour-of-week",),
+                 "occupied-edges": ("hour-of-week",), "hour-of-week": (),
+                 "hour-of-week-edges": ()}
+# A draw that moves by more than this fraction between credible baseload forms (and by more
+# than its own interval's half-width) is flagged form-sensitive. Common practice, no source.
+FORM_SENSITIVE = 0.10
+# A load with at least this share of its switching within SCHEDULE_EDGE_MIN minutes of the
+# declared schedule's edges (and at least SCHEDULE_EDGE_MIN_SWITCHES switches) is flagged
+# schedule-edge. Common practice, no source.
+SCHEDULE_EDGE_SHARE = 0.5
+SCHEDULE_EDGE_MIN = 60
+SCHEDULE_EDGE_MIN_SWITCHES = 8
+
+
+@dataclass
+class Jackknife:
+    """The HAC interval and the delete-a-block jackknife's check of it (per design column).
+
+    se_hac, half_hac: HAC standard error and half-width [kW]; se_jack, cov_jack: jackknife
+    (NaN / zeros with fewer than 4 days); use_jack: where the jackknife is significantly
+    larger; q_hac, q_jack: critical values; half: the interval's half-width after it.
+    """
+
+    se_hac: np.ndarray
+    half_hac: np.ndarray
+    se_jack: np.ndarray
+    cov_jack: np.ndarray
+    use_jack: np.ndarray
+    q_hac: float
+    q_jack: float
+    half: np.ndarray
+    n_days: int
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def checked(self) -> bool:
+        return self.n_days >= 4
+
+
+def jackknife(s: Solved, rows: Rows, confidence: float) -> Jackknife:
+    """Widen to the jackknife only where it is significantly larger than the HAC standard
+    error: (se_J / se_HAC)^2 against the chi-square(K-1)/(K-1) upper quantile."""
+    fit, coef = s.fit, s.coef
+    se_hac = fit.se
+    df = max(fit.n_blocks - 1, 1)
+    n_days = int(rows.days.max())
+    se_jack = np.full(s.X.shape[1], np.nan)
+    cov_jack = np.zeros_like(fit.cov)
+    warnings = []
+    if n_days >= 4:
+        K = min(JACKKNIFE_BLOCKS, n_days)
+        blocks = np.minimum((s.blk - 1) * K // n_days, K - 1)
+        cov_jack, _ = jackknife_cov(s.Xs, s.ys, s.p_mean, fit.penalty, s.lower, blocks)
+        se_jack = np.sqrt(np.maximum(np.diag(cov_jack), 0.0))
+        df_jack = K - 1
+    else:
+        warnings.append("fewer than 4 days of data: intervals are not checked for stability")
+        df_jack = df
+    q_hac = quantile(confidence, df)
+    q_jack = quantile(confidence, df_jack)
+    half_hac = q_hac * se_hac
+    ratio_bound = chi2_upper_quantile(df_jack, 1.0 - confidence) / df_jack
+    with np.errstate(invalid="ignore", divide="ignore"):
+        use_jack = ((np.nan_to_num(np.square(se_jack / se_hac), nan=0.0) > ratio_bound)
+                    & (np.nan_to_num(se_jack) > NUMERICAL_TOL * np.maximum(np.abs(coef), 1.0)))
+    half = np.where(use_jack, np.maximum(half_hac, q_jack * np.nan_to_num(se_jack)), half_hac)
+    return Jackknife(se_hac=se_hac, half_hac=half_hac, se_jack=se_jack, cov_jack=cov_jack,
+                     use_jack=use_jack, q_hac=q_hac, q_jack=q_jack, half=half, n_days=n_days,
+                     warnings=warnings)
+
+
+@dataclass
+class Hull:
+    """The interval being widened, per design column: low, high [kW], whether widened and how
+    the estimate moved (column -> phrases)."""
+
+    coef: np.ndarray
+    se_hac: np.ndarray
+    q_hac: float
+    z_bound: float
+    low: np.ndarray
+    high: np.ndarray
+    widened: np.ndarray
+    moved: dict[int, list[str]] = field(default_factory=dict)
+
+    @classmethod
+    def start(cls, coef: np.ndarray, jk: Jackknife, confidence: float) -> Hull:
+        return cls(coef=coef, se_hac=jk.se_hac, q_hac=jk.q_hac, z_bound=quantile(confidence),
+                   low=coef - jk.half, high=coef + jk.half, widened=jk.use_jack.copy())
+
+    def widen_with(self, c: int, b_v: float, se_v: float, what: str) -> None:
+        """Take the variant's interval into the hull when it differs significantly
+        (Hausman 1978: var(b_v - b) = se_v^2 - se^2 for nested fits; floored at
+        (se_v / 4)^2, common practice, no source)."""
+        coef = self.coef
+        var_d = max(se_v**2 - self.se_hac[c] ** 2, (0.25 * se_v) ** 2)
+        tiny = NUMERICAL_TOL * max(abs(coef[c]), 1.0)
+        if abs(b_v - coef[c]) > max(self.z_bound * np.sqrt(var_d), tiny):
+            self.low[c] = min(self.low[c], b_v - self.q_hac * se_v)
+            self.high[c] = max(self.high[c], b_v + self.q_hac * se_v)
+            self.widened[c] = True
+            self.moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
+
+
+def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
+                     priors: Priors, fitted: list[Term], hull: Hull) -> dict[str, dict]:
+    """Refit with each more flexible static profile (MORE_FLEXIBLE) and take a variant's
+    interval into the hull where it differs significantly. With the wandering level, the
+    rival forms are the credible ones of the comparison (form_spread): a static profile the
+    data rule out would only widen the interval (tried: the misspecified building's
+    scheduled fan then had a 16 kW wide interval for an 11 kW draw).
+
+    Returns fit.json's "variants" entries: variant -> term id -> kw, se_kw, prior_weight,
+    separable (or {"skipped": why})."""
+    variants: dict[str, dict] = {}
+    rivals = () if s.level else MORE_FLEXIBLE[s.choice.form.profile]
+    kx, n = s.kx, rows.n
+    for variant in rivals:
+        if variant == "occupied" and not site.baseload.spells:
+            continue
+        ind = None
+        if variant == "hour-of-week":
+            # The 168 hour-of-week columns are stored by row (solvers.Indicators), the closure
+            # column (if any) stays dense; the baseload columns' order does not matter.
+            Bv, ind = builder.hour_of_week_sparse()
+            m_cols = Bv.shape[1] + ind.n_levels
+        else:
+            Bv, _ = builder.columns(variant)
+            m_cols = Bv.shape[1]
+        if n < MIN_ROWS_PER_COLUMN * (kx + m_cols):
+            variants[variant] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
+                                            "fitted column"}
+            continue
+        Xv = np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
+        mv, sv = priors(m_cols)
+        fv = fit_model(Xv, rows.y, mv, sv, np.zeros(kx + m_cols), block=rows.days,
+                       indicators=ind)
+        se_v = fv.se
+        entry = {}
+        for t in fitted:
+            c = t.column
+            # Near-collinearity with the variant's baseload shows in its standard error;
+            # only an estimate its (weak) prior decided says nothing about the draw.
+            separable = fv.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
+            entry[t.id] = {"kw": float(fv.coef[c]), "se_kw": float(se_v[c]),
+                           "prior_weight": float(fv.prior_weight[c]),
+                           "separable": bool(separable)}
+            if separable:
+                hull.widen_with(c, float(fv.coef[c]), float(se_v[c]), variant)
+        variants[variant] = entry
+    return variants
+
+
+def by_day_variant(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], n_days: int,
+                   hull: Hull) -> tuple[str, dict, list[int]] | None:
+    """The baseload's level may change from one local day to the next (closures, holidays,
+    events) in ways no weekly profile knows. Profile out a separate baseload level for each
+    day (occupied and unoccupied separately when spells are declared) by Frisch-Waugh-Lovell
+    projection, and refit the draws on what is left.
+
+    Returns (variant name, its fit.json entry, columns of the draws the projection leaves to
+    their prior: schedule-bound), or None when the check does not apply."""
+    profile = s.choice.form.profile
+    k, kx, n = s.k, s.kx, rows.n
+    n_day_cols = n_days * (2 if profile.startswith("occupied") else 1)
+    if not (k and not s.level and n_days >= 7
+            and n >= MIN_ROWS_PER_COLUMN * (n_day_cols + kx)):
+        return None
+    B = s.B
+    if profile.startswith("occupied"):
+        C = B[:, :2]  # occupied and unoccupied hours, one level each per day
+        rest = B[:, 2:]
+    else:
+        C = rows.interval_h[:, None]
+        rest = B if profile == "hour-of-week" else np.zeros((n, 0))
+    rest = np.ascontiguousarray(rest)
+    Xd = _project_out_days(np.column_stack([s.Hx, rest, rows.y]), C, rows.days)
+    yd = Xd[:, -1]
+    Xd = Xd[:, :-1]
+    md, sdd = priors(rest.shape[1])
+    fd = fit_model(Xd, yd, md, sdd,
+                   np.concatenate([np.zeros(kx), np.full(rest.shape[1], -np.inf)]),
+                   block=rows.days)
+    se_d = fd.se
+    entry = {}
+    bound: list[int] = []
+    Hf = s.Hf
+    for t in fitted:
+        c = t.column
+        tss = float(np.sum((Hf[:, c] - Hf[:, c].mean()) ** 2))
+        r2_day = 1.0 - float(np.sum(Xd[:, c] ** 2)) / tss if tss > 0 else 1.0
+        separable = fd.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
+        entry[t.id] = {"kw": float(fd.coef[c]), "se_kw": float(se_d[c]),
+                       "prior_weight": float(fd.prior_weight[c]),
+                       "separable": bool(separable), "r2_with_daily_baseload": r2_day}
+        if separable:
+            hull.widen_with(c, float(fd.coef[c]), float(se_d[c]), "daily baseload levels")
+        else:
+            bound.append(c)
+    return f"{profile}-by-day", entry, bound
+
+
+def form_spread(choice: FormChoice, k: int, jk: Jackknife, hull: Hull) -> dict[int, list[str]]:
+    """Disagreement between credible baseload forms (model averaging): the weighted spread
+    of their draws about the chosen form's is added to the interval in quadrature. Returns
+    the columns that move by more than FORM_SENSITIVE between credible forms (-> phrases)."""
+    coef, low, high, q_hac = hull.coef, hull.low, hull.high, jk.q_hac
+    chosen = next(sc for sc in choice.scores if sc.form.name == choice.form.name)
+    form_moves: dict[int, list[str]] = {}
+    credible = choice.credible()
+    for c in range(k):
+        spread2 = sum(sc.weight * (sc.draws_kw[c] - chosen.draws_kw[c]) ** 2
+                      for sc in credible if sc is not chosen)
+        if spread2 > (NUMERICAL_TOL * max(abs(coef[c]), 1.0)) ** 2:
+            extra = q_hac * np.sqrt(spread2)
+            low[c] = coef[c] - np.hypot(coef[c] - low[c], extra)
+            high[c] = coef[c] + np.hypot(high[c] - coef[c], extra)
+            hull.widened[c] = True
+        for sc in credible:
+            if sc is chosen:
+                continue
+            d = abs(sc.draws_kw[c] - chosen.draws_kw[c])
+            if d > FORM_SENSITIVE * max(abs(chosen.draws_kw[c]), 1e-9) and d > jk.half_hac[c]:
+                form_moves.setdefault(c, []).append(
+                    f"{sc.draws_kw[c]:.3g} kW with the {sc.form.name} baseload "
+                    f"(weight {sc.weight:.2f})")
+                hull.moved.setdefault(c, []).append(f"{sc.draws_kw[c]:.3g} kW with {sc.form.name}")
+    return form_moves
+
+
+def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
+                  hull: Hull) -> dict[int, str]:
+    """Loads that switch near the declared schedule's edges: their draw depends on the
+    baseload's shape around the edges, which only the occupied-edges form states. The
+    edges form's interval joins the hull where it moves the draw. Returns column -> the
+    share of its switching there, in words."""
+    coef, q_hac = hull.coef, jk.q_hac
+    choice = s.choice
+    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.tz,
+                                     rows.frame["start_utc"])
+    edge_rival = min((sc for sc in choice.scores if sc.form.profile.endswith("-edges")),
+                     key=lambda sc: sc.criterion, default=None)
+    edge_moves: dict[int, str] = {}
+    for c in range(s.k):
+        if edge_share[c] < SCHEDULE_EDGE_SHARE:
+            continue
+        edge_moves.setdefault(c, f"{100 * edge_share[c]:.0f} % of its switching")
+        if edge_rival is not None and not choice.form.profile.endswith("-edges"):
+            b_e, s_e = float(edge_rival.draws_kw[c]), float(edge_rival.se_kw[c])
+            if abs(b_e - coef[c]) > jk.half_hac[c]:
+                hull.low[c] = min(hull.low[c], b_e - q_hac * s_e)
+                hull.high[c] = max(hull.high[c], b_e + q_hac * s_e)
+                hull.widened[c] = True
+                hull.moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
+    return edge_moves
+
+
+@dataclass
+class Intervals:
+    """The intervals stage's result, per design column.
+
+    low, high: the final interval [kW] (low >= 0); widened: where a check widened it; moved,
+    form_moves, edge_moves: how the estimate moved (phrases for the flags); schedule_bound:
+    draws the by-day projection leaves to their prior; width_hac: the HAC interval's width
+    (clipped at 0) [kW]; tau2: (k,) between-week variance of the draws [kW^2]; week: (n,)
+    local Monday-start week of each row; variants: fit.json's "variants".
+    """
+
+    jk: Jackknife
+    low: np.ndarray
+    high: np.ndarray
+    widened: np.ndarray
+    moved: dict[int, list[str]]
+    form_moves: dict[int, list[str]]
+    edge_moves: dict[int, str]
+    schedule_bound: list[int]
+    width_hac: np.ndarray
+    tau2: np.ndarray
+    week: np.ndarray
+    variants: dict[str, dict]
+
+    @property
+    def se_final(self) -> np.ndarray:
+        return self.jk.half / self.jk.q_hac
+
+
+def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
+              priors: Priors, fitted: list[Term], confidence: float) -> Intervals:
+    """Every check in turn: jackknife, static variants, by-day levels, credible forms,
+    schedule edges; then the between-week variance."""
+    jk = jackknife(s, rows, confidence)
+    hull = Hull.start(s.coef, jk, confidence)
+    variants = profile_variants(site, rows, s, builder, priors, fitted, hull)
+    bound: list[int] = []
+    day = by_day_variant(rows, s, priors, fitted, jk.n_days, hull)
+    if day is not None:
+        name, entry, bound = day
+        variants[name] = entry
+    form_moves = form_spread(s.choice, s.k, jk, hull)
+    edge_moves = schedule_edge(site, rows, s, jk, hull)
+    # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
+    week = (rows.local_date.astype(np.int64) + 3) // 7  # Monday-start local weeks
+    resid = rows.y - fitted_of(s.X, s.coef, s.level_kwh)
+    tau2 = between_week_variance(s.Hf, resid, s.coef[:s.k], week, rows.days)
+    coef, half_hac = s.coef, jk.half_hac
+    return Intervals(jk=jk, low=np.maximum(hull.low, 0.0), high=hull.high,
+                     widened=hull.widened, moved=hull.moved, form_moves=form_moves,
+                     edge_moves=edge_moves, schedule_bound=bound,
+                     width_hac=(coef + half_hac) - np.maximum(coef - half_hac, 0.0),
+                     tau2=tau2, week=week, variants=variants)
+
+
+def level_sum_variance(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base: slice,
+                       labels: np.ndarray, covs: tuple[np.ndarray, ...]) -> dict[int, float]:
+    """Variance of each label's (month's) baseload energy with the wandering level [kWh^2]:
+    the profile's part c'b (c: the label's summed baseload columns [h]) plus the level's
+    energy L = sum h_t mu_t over the label's rows.
+
+    Given the coefficients b, the level's posterior is Gaussian with precision
+    A / sigma^2, A = V^-1 + D' W D tridiagonal (the smoother of wander.smooth_level: V the
+    rows' relative noise variances, W = h0 / (q dt) the random walk's step weights); its
+    covariance sigma^2 A^-1 is the smoothed state variance (Durbin & Koopman 2012, sec. 4.4
+    and 2.4; a diffuse first level). With a = h on the label's rows and x = A^-1 a (one
+    banded solve), Var(L | b) = sigma^2 a'x. The level's mean depends on b through the
+    residuals: dL/db = -X'(x / (v h)), so b's error adds g' C g with
+    g = (0, ..., c) - X'(x / (v h)) (total variance: E Var(L | b) + Var E(L | b)); C is the
+    wider (larger g' C g) of the covariances given (HAC and scaled jackknife).
+
+    Args:
+        sp: the rows' spacing; q: noise ratio (0: a constant level); sigma2: noise variance
+            of an h0-long interval's kW [kW^2]; X: (n, p) design [h, h degC, h]; base: its
+            baseload columns; labels: (n,) integer label of each row; covs: (p, p) [kW^2].
+
+    References:
+        Durbin, J. & Koopman, S. J. (2012). Time Series Analysis by State Space Methods, 2nd
+        ed. Oxford University Press (state smoothing variance).
+    """
+    h = sp.h
+    iv = 1.0 / sp.v
+    band = None
+    if q > 0.0 and len(h) >= 2:
+        w = sp.h0 / (q * sp.dt)
+        diag = iv.copy()
+        diag[:-1] += w
+        diag[1:] += w
+        band = np.vstack([np.concatenate([[0.0], -w]), diag])
+    out: dict[int, float] = {}
+    for lab in np.unique(labels):
+        m = labels == lab
+        a = np.where(m, h, 0.0)
+        if band is None:  # a constant level: the weighted mean of the residual kW
+            x = np.full(len(h), a.sum() / iv.sum())
+        else:
+            x = solveh_banded(band, a, check_finite=False)
+        g = -(X.T @ (iv * x / h))  # matrix-vector products on X: no copy of its rows
+        g[base] += (X.T @ m.astype(float))[base]
+        var_b = max(float(g @ C @ g) for C in covs)
+        out[int(lab)] = sigma2 * float(a @ x) + max(var_b, 0.0)
+    return out
+
+
+def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndarray:
+    """Fitted energy of each interval [kWh]: design x coefficients plus the level."""
+    return X @ coef + level_kwh
+
+
+def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.ndarray,
+                          days: np.ndarray) -> np.ndarray:
+    """Each draw's real variation from week to week: the DerSimonian-Laird tau^2 [kW^2].
+
+    Per week, the draw's own estimate with the other terms held at the whole fit's values
+    (b_w = b + sum h u / sum h^2 over the week), its variance from the week's local-day sums
+    of h u (robust to noise that persists within a day); then the random-effects moment
+    estimator over the weeks with at least one run-hour.
+
+    Args:
+        H: (n, k) run-hours [h]; u: (n,) residual energy of the whole fit [kWh];
+        b: (k,) draws [kW]; week, days: (n,) non-decreasing week and local-day labels.
+
+    References:
+        DerSimonian, R. & Laird, N. (1986). Meta-analysis in clinical trials. Controlled
+        Clinical Trials 7(3), 177-188.
+    """
+    k = H.shape[1]
+    tau2 = np.zeros(k)
+    if k == 0 or len(u) == 0:
+        return tau2
+    _, wfirst = np.unique(week, return_index=True)
+    wfirst = np.sort(wfirst)
+    _, dfirst = np.unique(days, return_index=True)
+    dfirst = np.sort(dfirst)
+    day_week = week[dfirst]
+    _, dw = np.unique(day_week, return_inverse=True)
+    dw = dw.reshape(-1)
+    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
+        h = H[:, j]
+        hu = h * u
+        hh = np.add.reduceat(h * h, wfirst)
+        run = np.add.reduceat(h, wfirst)
+        var_num = np.bincount(dw, weights=np.add.reduceat(hu, dfirst) ** 2,
+                              minlength=len(wfirst))
+        ok = (run >= 1.0) & (hh > 0) & (var_num > 0)
+        if ok.sum() < 3:
+            continue
+        est = b[j] + np.add.reduceat(hu, wfirst)[ok] / hh[ok]
+        var = var_num[ok] / hh[ok] ** 2
+        w = 1.0 / var
+        mean = np.sum(w * est) / np.sum(w)
+        Q = float(np.sum(w * (est - mean) ** 2))
+        denom = float(np.sum(w) - np.sum(w**2) / np.sum(w))
+        if denom > 0:
+            tau2[j] = max(0.0, (Q - (ok.sum() - 1)) / denom)
+    return tau2
+
+
+def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
+                        start_utc: pl.Series) -> np.ndarray:
+    """Share of each load's switching (its on-fraction changing by at least half an interval
+    from one interval to the next) that happens within SCHEDULE_EDGE_MIN minutes of a
+    declared spell's start or end, on the days the spell applies; 0 without spells."""
+    k = H.shape[1]
+    if not base.spells or len(interval_h) < 2 or k == 0:
+        return np.zeros(k)
+    local = start_utc.dt.convert_time_zone(tz)
+    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
+    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
+    near = np.zeros(len(minute), dtype=bool)
+    for spell in base.spells:
+        on_day = np.isin(weekday, spell.days)
+        for edge in (spell.start_min, spell.end_min):
+            d = np.abs(minute - edge)
+            near |= on_day & (np.minimum(d, 1440 - d) <= SCHEDULE_EDGE_MIN)
+    edge_step = near[1:] | near[:-1]
+    total = np.zeros(k)
+    at_edge = np.zeros(k)
+    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
+        switch = np.abs(np.diff(H[:, j] / interval_h)) >= 0.5
+        total[j] = switch.sum()
+        at_edge[j] = (switch & edge_step).sum()
+    return np.where(total >= SCHEDULE_EDGE_MIN_SWITCHES, at_edge / np.maximum(total, 1), 0.0)
+
+
+def _project_out_days(V: np.ndarray, C: np.ndarray, days: np.ndarray) -> np.ndarray:
+    """Residuals of V's columns after least squares on C's columns separately within each day.
+
+    Args:
+        V: (n, q) columns to residualize, overwritten with the residuals (and returned);
+        C: (n, c) per-day nuisance columns; days: (n,) non-decreasing day labels.
+
+    Each day's C columns are orthonormalised by Gram-Schmidt (twice, for orthogonality to
+    working precision), all days at once; a column that adds no direction within a day (all
+    zero, or a multiple of the earlier ones: norm left at most c_rows x machine epsilon x the
+    day's largest column norm, as the SVD least-squares rank rule) is skipped for that day.
+    The projection on them is then subtracted from V, a few weeks of rows at a time.
+    """
+    n = len(days)
+    starts = np.flatnonzero(np.concatenate([[True], np.diff(days) != 0]))
+    bounds = np.append(starts, n)
+    chunk_days = max(1, _PROJECT_CHUNK_ROWS * len(starts) // max(n, 1))
+    for d0 in range(0, len(starts), chunk_days):
+        d1 = min(d0 + chunk_days, len(starts))
+        rows = slice(bounds[d0], bounds[d1])
+        local = bounds[d0:d1] - bounds[d0]  # first row of each day in the chunk
+        sizes = np.diff(np.append(local, bounds[d1] - bounds[d0]))
+        day_of = np.repeat(np.arange(d1 - d0), sizes)
+        Cc = C[rows]
+        tol = (np.finfo(float).eps * np.maximum(sizes, C.shape[1])
+               * np.sqrt(np.add.reduceat(Cc * Cc, local, axis=0).max(axis=1)))
+        basis: list[np.ndarray] = []
+        for k in range(C.shape[1]):
+            r = Cc[:, k].copy()
+            for _ in range(2):
+                for q in basis:
+                    r -= q * np.add.reduceat(q * r, local)[day_of]
+            norm = np.sqrt(np.add.reduceat(r * r, local))
+            keep = norm > tol
+            basis.append(np.where(keep[day_of], r / np.where(keep, norm, 1.0)[day_of], 0.0))
+        Vc = V[rows]
+        for q in basis:
+            Vc -= q[:, None] * np.add.reduceat(q[:, None] * Vc, local, axis=0)[day_of]
+    return V
+
+
+# Rows per chunk of _project_out_days (whole days): bounds its temporary memory.
+_PROJECT_CHUNK_ROWS = 65536
