@@ -188,3 +188,16 @@ def test_a_whole_range_fit_shares_the_aligned_hours_with_its_design(site_file):
     assert np.shares_memory(aligned.hours, est.hours)
     assert not aligned.hours.flags.writeable
     np.testing.assert_array_equal(aligned.hours, before)
+
+
+def test_a_small_site_runs_under_a_generous_memory_limit(tmp_path, site_file):
+    """The check does not refuse what fits: the clock-test building (1,344 intervals) under
+    a limit 3 GB above the loaded program runs to the end (exit 0, its files written)."""
+    import subprocess
+    import sys
+
+    out = subprocess.run([sys.executable, "-c", _UNDER_LIMIT, "3072", "breakdown",
+                          str(site_file), "--out", str(tmp_path / "out"), "-q"],
+                         capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert (tmp_path / "out" / "breakdown.csv").is_file()
