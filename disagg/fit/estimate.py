@@ -435,16 +435,15 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
             profiles.append(form.profile)  # pinned beyond what the data would be offered
     cols = {p: base_for(p)[0] for p in profiles}
     mean, sd = prior
+    names = ({sc.form.name for sc in rivals} | {given.form.name}
+             if isinstance(given, FormChoice) else None)
     scores, resid = compare_forms(Hx, y, sp, cols, days, mean, sd, levels=levels,
-                                  fixed_q=fixed or None)
+                                  fixed_q=fixed or None, only=names)
     if form is not None and not form.level and not any(sc.form.name == form.name for sc in scores):
         # A wide profile (hour-of-week) is compared with the level only: a pinned static
         # one is scored on its own.
         scores += compare_forms(Hx, y, sp, {form.profile: cols[form.profile]}, days, mean, sd,
                                 levels=False)[0]
-    if isinstance(given, FormChoice):
-        names = {sc.form.name for sc in rivals} | {given.form.name}
-        scores = [sc for sc in scores if sc.form.name in names]
     c = overdispersion(resid) if resid is not None else 1.0
     score(scores, c, max(len(y) - 1, 1))
     if form is not None:

@@ -39,7 +39,14 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from disagg.fit.solvers import newey_west_lag, solve_regularized
-from disagg.fit.wander import Spacing, normal_solve, profile_q, whiten
+from disagg.fit.wander import (
+    Spacing,
+    band_factor,
+    neg2_loglik_n,
+    normal_solve,
+    profile_q,
+    whiten_columns,
+)
 
 # A form whose weight is at least this is credible: its draws count in the intervals.
 # Common practice, no source (a model with 5 % weight is one the data do not rule out).
@@ -124,12 +131,22 @@ def drop_constant(profile: str, B: np.ndarray, h: np.ndarray) -> np.ndarray:
 
 @dataclass
 class _Gram:
-    """W'W of the whitened [X, z] at one q, and log det T."""
+    """W'W of the whitened [X, z] at one q, and log det T; W = [E, Zb, z] whitened, kept in
+    its parts (the shared [E, z] and the profile's Zb) for the residual."""
 
     G: np.ndarray
     logdet: float
     n: int
-    W: np.ndarray  # the whitened [X, z]
+    Wez: np.ndarray  # the whitened [E, z]
+    Wb: np.ndarray  # the whitened profile columns
+
+    def residual(self, b: np.ndarray) -> np.ndarray:
+        """Whitened residual z - [E, Zb] b."""
+        k = self.Wez.shape[1] - 1
+        r = self.Wez[:, k] - self.Wez[:, :k] @ b[:k]
+        if self.Wb.shape[1]:
+            r = r - self.Wb @ b[k:]
+        return r
 
     def fit(self, mean: np.ndarray, pen: np.ndarray, lower: np.ndarray) -> tuple[np.ndarray, float]:
         """Bounded ridge solve from the Gram matrix; (coefficients, residual sum of squares)."""
@@ -137,8 +154,10 @@ class _Gram:
         Gxx, gxz, gzz = self.G[:p, :p], self.G[:p, p], self.G[p, p]
         if p == 0:
             return np.zeros(0), float(gzz)
-        b = normal_solve(Gxx, gxz)
-        if (pen > 0).any() or np.any(b < lower):
+        # The unpenalised solution is needed only without a penalty (and to see whether it
+        # keeps the bounds).
+        b = None if (pen > 0).any() else normal_solve(Gxx, gxz)
+        if b is None or np.any(b < lower):
             # The compressed system R'R = Gxx, R'c = gxz has the same least-squares problem.
             w, V = np.linalg.eigh(Gxx)
             keep = w > w.max() * 1e-12 if w.size else w
@@ -149,9 +168,41 @@ class _Gram:
         return b, max(rss, 0.0)
 
 
-def _gram(Z: np.ndarray, z: np.ndarray, sp: Spacing, q: float) -> _Gram:
-    w = whiten(Z, z, sp, q)
-    return _Gram(w.W.T @ w.W, w.logdet, len(w.z), w.W)
+class _Whitening:
+    """The whitened columns every form shares (the equipment's E and the metered z), per
+    noise ratio q, over one run of rows: each form whitens only its own profile columns
+    (whitening is column by column, see wander.whiten_columns)."""
+
+    def __init__(self, E: np.ndarray, z: np.ndarray, sp: Spacing):
+        self.Ez = np.column_stack([E, z])
+        self.sp = sp
+        self._by_q: dict[float, tuple[np.ndarray, float, np.ndarray, np.ndarray]] = {}
+
+    def _shared(self, q: float) -> tuple[np.ndarray, float, np.ndarray, np.ndarray]:
+        if q not in self._by_q:
+            lower, logdet = band_factor(self.sp, q)
+            Wez = whiten_columns(self.Ez, lower)
+            self._by_q[q] = (lower, logdet, Wez, Wez.T @ Wez)
+        return self._by_q[q]
+
+    def gram(self, Zb: np.ndarray, q: float) -> _Gram:
+        """The Gram matrix of the whitened [E, Zb, z] at q."""
+        lower, logdet, Wez, Gez = self._shared(q)
+        k, m = Wez.shape[1] - 1, Zb.shape[1]
+        G = np.empty((k + m + 1, k + m + 1))
+        e, last = slice(0, k), k + m
+        G[e, e] = Gez[e, e]
+        G[e, last] = G[last, e] = Gez[e, k]
+        G[last, last] = Gez[k, k]
+        Wb = whiten_columns(Zb, lower)
+        if m:
+            cross = Wez.T @ Wb  # (k + 1, m)
+            bb = slice(k, last)
+            G[e, bb] = cross[:k]
+            G[bb, e] = cross[:k].T
+            G[bb, bb] = Wb.T @ Wb
+            G[bb, last] = G[last, bb] = cross[k]
+        return _Gram(G, logdet, len(Wez), Wez, Wb)
 
 
 def _rank(G: np.ndarray) -> int:
@@ -165,14 +216,10 @@ def _rank(G: np.ndarray) -> int:
     return int(np.sum(w > w.max() * 1e-9))
 
 
-def neg2_loglik_n(n: int, rss: float, logdet: float) -> float:
-    return n * np.log(max(rss, 1e-300) / n) + logdet
-
-
 def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str, np.ndarray],
                   days: np.ndarray, prior_mean: np.ndarray, prior_sd: np.ndarray,
-                  levels: bool = True, fixed_q: dict[str, float] | None = None
-                  ) -> tuple[list[FormScore], np.ndarray]:
+                  levels: bool = True, fixed_q: dict[str, float] | None = None,
+                  only: set[str] | None = None) -> tuple[list[FormScore], np.ndarray]:
     """Fit every form on the same differences and score it.
 
     Args:
@@ -182,11 +229,17 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
         prior_mean, prior_sd: (k,) the terms' priors [kW] (ridge, as the final fit).
         levels: also score each profile plus the wandering level.
         fixed_q: profile -> q to use instead of the profile-likelihood search.
+        only: the names of the forms to score (None: all); the most flexible form is fitted
+            in any case, for the overdispersion.
 
     A profile of more than WIDE_PROFILE_COLUMNS columns (hour-of-week) after a narrower one
     is scored with the level only, at the narrower profile's noise ratio: q describes the
     level's slow wander, which the narrower profile's fit already shows, and each of its
     likelihood evaluations on a year of rows costs about 0.2 s here.
+
+    The equipment columns and the metered kW are whitened once per noise ratio and shared by
+    every form (and by the noise-ratio searches, which try the same grid of q), each form
+    whitening only its own profile columns.
 
     Returns:
         the scores (criterion not yet filled, see score) and the whitened residuals of the
@@ -200,9 +253,12 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
     residual = None
     last_q = None
     prec = np.where(np.isfinite(prior_sd) & (prior_sd > 0), 1.0 / np.square(prior_sd), 0.0)
+    whole = _Whitening(E, z, sp)
+    windows: dict[tuple[int, int], _Whitening] = {}
+    last_profile = list(profiles)[-1] if profiles else None
     for profile, B in profiles.items():
         Zb = drop_constant(profile, B, h)
-        Z = np.column_stack([E, Zb])
+        p = k + Zb.shape[1]
         mean = np.concatenate([prior_mean, np.zeros(Zb.shape[1])])
         pr = np.concatenate([prec, np.zeros(Zb.shape[1])])
         lower = np.concatenate([np.zeros(k), np.full(Zb.shape[1], -np.inf)])
@@ -213,23 +269,39 @@ def compare_forms(H: np.ndarray, y: np.ndarray, sp: Spacing, profiles: dict[str,
                 if q is None and wide:
                     q = last_q
                 elif q is None:
-                    rows = _window(sp, Z.shape[1])
-                    q = profile_q(Z[rows], z[rows], sp.rows(rows)).q
+                    rows = _window(sp, p)
+                    key = (rows.start, rows.stop)
+                    if key not in windows:
+                        windows[key] = (whole if rows.stop - rows.start == len(z) else
+                                        _Whitening(E[rows], z[rows], sp.rows(rows)))
+                    win, Zw = windows[key], Zb[rows]
+                    q = profile_q(Zw, z[rows], sp.rows(rows),
+                                  gram=lambda qq, _w=win, _z=Zw: _gram_of(_w.gram(_z, qq))).q
                 last_q = q
             else:
                 q = 0.0
-            g = _gram(Z, z, sp, q)
+            name = Form(profile, level).name
+            for_residual = profile == last_profile and (level or not levels)
+            if only is not None and name not in only and not for_residual:
+                continue
+            g = whole.gram(Zb, q)
             b0, rss0 = g.fit(mean, np.zeros_like(pr), np.full(len(pr), -np.inf))
-            sigma2 = rss0 / max(g.n - Z.shape[1], 1)
+            if for_residual:
+                residual = g.residual(b0)
+            if only is not None and name not in only:
+                continue
+            sigma2 = rss0 / max(g.n - p, 1)
             b, rss = g.fit(mean, sigma2 * pr, lower)
             A = g.G[:-1, :-1] + np.diag(sigma2 * pr)
             se = np.sqrt(np.maximum(np.diag(np.linalg.pinv(A)) * sigma2, 0.0))
             scores.append(FormScore(Form(profile, level, q), neg2_loglik_n(g.n, rss0, g.logdet),
                                     _rank(g.G[:-1, :-1]) + 1 + int(level), draws_kw=b[:k],
                                     se_kw=se[:k]))
-            if level or not levels:
-                residual = g.W[:, -1] - g.W[:, :-1] @ b0
     return scores, residual
+
+
+def _gram_of(g: _Gram) -> tuple[np.ndarray, float]:
+    return g.G, g.logdet
 
 
 # See compare_forms.

@@ -33,6 +33,7 @@ References:
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -114,7 +115,7 @@ def whiten(X: np.ndarray, z: np.ndarray, sp: Spacing, q: float,
         scale: (n,) row factors applied first (1 / interval hours for a design in kWh and
             hours), without a scaled copy of X.
     """
-    lower = cholesky_banded(_band(sp, q), lower=True, check_finite=False)
+    lower, logdet = band_factor(sp, q)
     rhs = np.empty((len(z) - 1, X.shape[1] + 1), order="F")
     if scale is None:
         np.subtract(X[1:], X[:-1], out=rhs[:, :-1])
@@ -124,12 +125,35 @@ def whiten(X: np.ndarray, z: np.ndarray, sp: Spacing, q: float,
         for j in range(X.shape[1]):  # one column at a time: no n x p temporary
             np.subtract(X[1:, j] * a, X[:-1, j] * b, out=rhs[:, j])
         np.subtract(z[1:] * a, z[:-1] * b, out=rhs[:, -1])
-    # L is lower bidiagonal, stored as LAPACK's triangular band (diagonal, sub-diagonal):
-    # the triangular band solve (dtbtrs) is the forward substitution, O(n) per column.
+    return Whitened(W=_forward(lower, rhs), logdet=logdet)
+
+
+def band_factor(sp: Spacing, q: float) -> tuple[np.ndarray, float]:
+    """The banded Cholesky factor L of T at noise ratio q (LAPACK's lower triangular band
+    storage: diagonal, sub-diagonal) and log det T."""
+    lower = cholesky_banded(_band(sp, q), lower=True, check_finite=False)
+    return lower, 2.0 * float(np.sum(np.log(lower[0])))
+
+
+def whiten_columns(X: np.ndarray, lower: np.ndarray) -> np.ndarray:
+    """L^-1 Delta X for the factor L of band_factor: the whitening of whiten() for columns
+    alone (each column is whitened on its own, so a design's columns may be whitened in
+    parts that share L)."""
+    rhs = np.empty((len(X) - 1, X.shape[1]), order="F")
+    np.subtract(X[1:], X[:-1], out=rhs)
+    return _forward(lower, rhs)
+
+
+def _forward(lower: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """L^-1 rhs (in place when rhs is Fortran-ordered). L is lower bidiagonal, stored as
+    LAPACK's triangular band (diagonal, sub-diagonal): the triangular band solve (dtbtrs) is
+    the forward substitution, O(n) per column."""
+    if rhs.shape[1] == 0:
+        return rhs
     out, info = dtbtrs(lower, rhs, uplo="L", overwrite_b=1)
     if info != 0:
         raise np.linalg.LinAlgError(f"banded triangular solve failed (info {info})")
-    return Whitened(W=out, logdet=2.0 * float(np.sum(np.log(lower[0]))))
+    return out
 
 
 def neg2_loglik(w: Whitened, rss: float) -> float:
@@ -139,11 +163,20 @@ def neg2_loglik(w: Whitened, rss: float) -> float:
     return n * np.log(max(rss, 1e-300) / n) + w.logdet
 
 
+def neg2_loglik_n(n: int, rss: float, logdet: float) -> float:
+    """neg2_loglik from the number of differences n, the RSS and log det T."""
+    return n * np.log(max(rss, 1e-300) / n) + logdet
+
+
 def gram_rss(w: Whitened) -> float:
     """Residual sum of squares of the least-squares fit of w.z on w.X, from the Gram matrix
     (rank-deficient columns allowed: any solution of the normal equations has the same
     residual)."""
-    G = w.W.T @ w.W
+    return gram_rss_g(w.W.T @ w.W)
+
+
+def gram_rss_g(G: np.ndarray) -> float:
+    """gram_rss from the Gram matrix G of [X, z] (z last)."""
     p = G.shape[0] - 1
     if p == 0:
         return float(G[0, 0])
@@ -175,13 +208,21 @@ class LevelFit:
 
 
 def profile_q(X: np.ndarray, z: np.ndarray, sp: Spacing, grid: int = Q_GRID,
-              q_max: float = Q_MAX) -> LevelFit:
+              q_max: float = Q_MAX,
+              gram: Callable[[float], tuple[np.ndarray, float]] | None = None) -> LevelFit:
     """The noise ratio q maximising the concentrated likelihood of the differences.
 
     A log-spaced grid over [Q_MIN, q_max], then parabolas (in log q) through the best point
     and its neighbours, twice; q = 0 (a constant level) is always a candidate.
+
+    gram: optional q -> (W'W of the whitened [X, z], log det T), for a caller that whitens
+    columns it shares between several designs once (disagg.fit.select); X and z are then
+    used only for the number of rows.
     """
     def f(q: float) -> float:
+        if gram is not None:
+            G, logdet = gram(q)
+            return float(neg2_loglik_n(len(z) - 1, gram_rss_g(G), logdet))
         w = whiten(X, z, sp, q)
         return float(neg2_loglik(w, gram_rss(w)))
 

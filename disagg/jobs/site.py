@@ -28,7 +28,6 @@ from disagg.analyses.pipeline import (
 from disagg.errors import ConfigError, DisaggError, InputError, OutputError
 from disagg.inputs.config import check_regular_file, load_site, resolve_path
 from disagg.inputs.vee import check_on_duplicate
-from disagg.present import history as hist
 from disagg.present import terminal
 from disagg.present.outputs import (
     OPTIONAL_BREAKDOWN_FILES,
@@ -40,7 +39,6 @@ from disagg.present.outputs import (
     write_drift,
     write_report,
 )
-from disagg.present.report.sections import local_span
 from disagg.progress import Progress
 
 if TYPE_CHECKING:
@@ -149,6 +147,7 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
     """
     from disagg.analyses.drift import DEFAULT_REFERENCE_DAYS, drift_aligned
     from disagg.fit.align import BASELOAD_COLUMN_COUNT
+    from disagg.present.report.sections import local_span
 
     if not (math.isfinite(memory_days) and memory_days > 0):
         raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
@@ -241,6 +240,7 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     summary = terminal.breakdown_summary(result)
     folder = result.site.history or opts.history
     if folder is not None:
+        from disagg.present import history as hist  # only when a history is used
         hist.check_folder(folder)  # a bad history folder fails before any output
     written = {"breakdown.xlsx": opts.xlsx, "report.html": html is not None}
     stale = [n for n in OPTIONAL_BREAKDOWN_FILES
@@ -367,6 +367,7 @@ def run_drift(opts: DriftOptions) -> Run:
                         min_reference_run_h=opts.min_reference_run_h)
     summary = terminal.drift_summary(result)
     site = load_site(opts.site)
+    from disagg.present import history as hist  # only when a history is used
     hist.check_configured(site)  # a bad history folder fails before any output
     paths = write_drift(result, opts.out, site.input_files(), opts.state)
     paths += hist.store_drift_configured(site, result, paths)
@@ -398,6 +399,7 @@ def run_compare(opts: CompareOptions) -> Run:
         if site.history is None:
             raise ConfigError(f"{site.path}: --from-history needs a [history] folder in the "
                               "site file, such as [history] folder = \"history\"")
+        from disagg.present import history as hist  # only when a history is used
         result = hist.compare_from_history(site.history, hist.site_id(site.path), opts.before,
                                            opts.after, opts.min_change)
         summary = terminal.comparison_summary(result, CAUTION)
@@ -439,6 +441,7 @@ def run_history(opts: HistoryOptions) -> Run:
     if store is None:
         raise ConfigError(f"{site.path}: no [history] folder; add [history] folder = "
                           "\"history\" to the site file or give --folder")
+    from disagg.present import history as hist  # only when a history is used
     sid = hist.site_id(site.path)
     if opts.before is not None:
         result = hist.compare_from_history(store, sid, hist.parse_months(opts.before, "--before"),

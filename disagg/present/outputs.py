@@ -14,15 +14,18 @@ import os
 import shutil
 from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import polars as pl
 import polars.selectors as cs
 
-from disagg.analyses.compare import CompareResult
-from disagg.analyses.drift import DriftResult
 from disagg.analyses.pipeline import CAUTION, BreakdownResult
 from disagg.errors import OutputError
 from disagg.present import commit
+
+if TYPE_CHECKING:  # types only: a breakdown does not import drift or compare
+    from disagg.analyses.compare import CompareResult
+    from disagg.analyses.drift import DriftResult
 
 # Cells starting with these can run as formulas when a spreadsheet opens a CSV; OWASP
 # ("CSV Injection" page, from memory) recommends a leading single quote.

@@ -17,8 +17,6 @@ import polars as pl
 from disagg.analyses.pipeline import CAUTION, BreakdownResult, CheckResult
 from disagg.inputs.notes import group_kinds
 from disagg.present.outputs import to_json
-from disagg.present.report.charts import _num as _fmt_report
-from disagg.present.report.sections import _currency, _has_cost, _metered_total
 
 if TYPE_CHECKING:
     from disagg.analyses.compare import CompareResult
@@ -258,6 +256,9 @@ def compare_summary(result: CompareResult) -> str:
 
 def report_summary(result: BreakdownResult, drift: DriftResult | None) -> str:
     """One line for the terminal: site, months, metered kWh, cost, drift alarms."""
+    from disagg.present.report.charts import _num as _fmt_report
+    from disagg.present.report.sections import _currency, _has_cost, _metered_total
+
     table = result.breakdown
     periods = sorted(table["period"].unique().to_list())
     line = (f"{result.site.name}: {periods[0]} to {periods[-1]}, metered "
