@@ -562,11 +562,12 @@ def write_results(R: dict) -> None:
         "less than disagg (no validation, priors, bounds, jackknife or baseload refits)."),
         "",
     ]
-    # Keep bench/drift.py's section (between its markers) at the end.
+    # Keep bench/drift.py's and bench/longsite.py's sections (between their markers) at the end.
     old = RESULTS.read_text() if RESULTS.exists() else ""
-    begin, end = "<!-- drift: begin (bench/drift.py) -->", "<!-- drift: end -->"
-    if begin in old and end in old:
-        lines += ["", old[old.index(begin):old.index(end) + len(end)], ""]
+    for begin, end in (("<!-- drift: begin (bench/drift.py) -->", "<!-- drift: end -->"),
+                       ("<!-- longsite: begin (bench/longsite.py) -->", "<!-- longsite: end -->")):
+        if begin in old and end in old:
+            lines += ["", old[old.index(begin):old.index(end) + len(end)], ""]
     RESULTS.write_text("\n".join(lines))
 
 

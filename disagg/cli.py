@@ -86,6 +86,14 @@ def _guarded(fn):
         raise typer.Exit(130) from None
     except SystemExit:
         raise
+    except MemoryError:
+        # numpy (or Python) could not allocate: the data need more memory than the process
+        # may use. (A polars allocation failure aborts instead; see jobs.check_memory_limit.)
+        if _state["debug"]:
+            raise
+        _fail("out of memory: the data need more memory than this process may use (a "
+              "memory limit such as ulimit -v, or the machine's memory); run a shorter "
+              "period with --from/--to, or raise the limit")
     except BaseException as exc:  # noqa: BLE001 - the last line of defence for users
         # BaseException, not Exception: a library panic (polars' PanicException) is one.
         if _state["debug"]:

@@ -22,7 +22,7 @@ import numpy as np
 import polars as pl
 
 from disagg.errors import InputError
-from disagg.fit.align import Aligned, align, baseload_columns, frame_baseload
+from disagg.fit.align import Aligned, align, baseload_columns, frame_baseload, probe_rss
 from disagg.fit.solvers import solve_regularized
 from disagg.inputs.config import SiteConfig
 from disagg.inputs.readers import MeterData, RunLog, Segments
@@ -357,14 +357,17 @@ def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
     """
     if aligned is None:
         aligned = align(site, meter, runlog, date_from, date_to)
-    probes = [aligned] + [align(site, meter, shift_runlog(runlog, p), date_from, date_to)
-                          for p in (-QUICK_PROBE_MIN, QUICK_PROBE_MIN)]
-    mask = probes[0].use & probes[1].use & probes[2].use
-    if mask.sum() < MIN_INTERVALS:
-        return None
     base, _ = frame_baseload(aligned, site.baseload, site.timezone)
-    y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
-    rss = [_rss_quick(np.column_stack([a.hours[mask], base[mask]]), y) for a in probes]
+    moved = [shift_runlog(runlog, p) for p in (-QUICK_PROBE_MIN, QUICK_PROBE_MIN)]
+    # A chunk of rows at a time (no moved log's hours held whole: long 1-minute series).
+    covered, rss = probe_rss(site, aligned, moved, base)
+    if covered < MIN_INTERVALS:
+        return None
+    if rss is None:
+        probes = [aligned] + [align(site, meter, m, date_from, date_to) for m in moved]
+        mask = probes[0].use & probes[1].use & probes[2].use
+        y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
+        rss = [_rss_quick(np.column_stack([a.hours[mask], base[mask]]), y) for a in probes]
     if rss[0] <= min(rss[1], rss[2]):
         return None
     try:

@@ -104,6 +104,17 @@ def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame,
     return d.frame, d.X, d.y
 
 
+# Rows per chunk of the sums over a long series' hours (bounds their temporary memory).
+_SUM_CHUNK_ROWS = 65536
+
+
+def _last_row(frame: pl.DataFrame, X: np.ndarray, y: np.ndarray) -> dict:
+    """The last interval's end, design row and energy, for the saved state (differences'
+    `previous` of the next run)."""
+    return {"end_utc": frame["end_utc"][-1].isoformat(), "x": X[-1].tolist(),
+            "y": float(y[-1])}
+
+
 def bartlett_lrv(x: np.ndarray, lags: int) -> float:
     """Long-run variance of a series about zero: gamma_0 + 2 sum_l (1 - l / (L + 1)) gamma_l
     (Bartlett weights, Newey & West 1987), autocovariances by FFT."""
@@ -118,7 +129,7 @@ def bartlett_lrv(x: np.ndarray, lags: int) -> float:
 
 
 def differences(frame: pl.DataFrame, X: np.ndarray, y: np.ndarray,
-                previous: dict | None) -> tuple[np.ndarray, np.ndarray]:
+                previous: dict | None, *, in_place: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Each interval's design row and energy minus the previous interval's.
 
     A baseload level that wanders slowly, and anything constant over two adjacent intervals,
@@ -129,21 +140,35 @@ def differences(frame: pl.DataFrame, X: np.ndarray, y: np.ndarray,
 
     Args:
         previous: the last interval before `frame` ({"end_utc", "x", "y"}) or None.
+        in_place: overwrite X and y with the differences (and return them): a long 1-minute
+            design is not held twice. The differences are made one column at a time, so the
+            temporary memory is one column.
     """
     start = frame["start_utc"].to_numpy()
     end = frame["end_utc"].to_numpy()
-    dX = np.zeros_like(X)
-    dy = np.zeros_like(y)
-    if len(y) > 1:
-        adjacent = start[1:] == end[:-1]
-        dX[1:] = np.where(adjacent[:, None], X[1:] - X[:-1], 0.0)
-        dy[1:] = np.where(adjacent, y[1:] - y[:-1], 0.0)
-    if previous is not None and len(y):
+    dX = X if in_place else np.empty_like(X)
+    dy = y if in_place else np.empty_like(y)
+    n = len(y)
+    first_x = first_y = None
+    if previous is not None and n:
         prev_end = np.datetime64(dt.datetime.fromisoformat(previous["end_utc"])
                                  .astimezone(dt.UTC).replace(tzinfo=None), "us")
         if start[0].astype("datetime64[us]") == prev_end:
-            dX[0] = X[0] - np.asarray(previous["x"], dtype=float)
-            dy[0] = y[0] - float(previous["y"])
+            first_x = X[0] - np.asarray(previous["x"], dtype=float)
+            first_y = y[0] - float(previous["y"])
+    if n > 1:
+        gap = ~(start[1:] == end[:-1])
+        for j in range(X.shape[1]):
+            col = X[:, j]
+            d = col[1:] - col[:-1]
+            d[gap] = 0.0
+            dX[1:, j] = d
+        d = y[1:] - y[:-1]
+        d[gap] = 0.0
+        dy[1:] = d
+    if n:
+        dX[0] = 0.0 if first_x is None else first_x
+        dy[0] = 0.0 if first_y is None else first_y
     return dX, dy
 
 
@@ -265,14 +290,18 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         groups = inseparable_groups(site, aligned)
         gsite = grouped_site(site, groups)
         grouped = {m for g in groups for m in g}
-        run_total = np.nansum(aligned.hours[aligned.use], axis=0)
+        # Run-hours of each load over the intervals used (only > 0 is asked), a chunk of
+        # rows at a time: no copy of the whole (n, k) hours.
+        used_idx = np.flatnonzero(aligned.use)
+        run_total = np.zeros(aligned.hours.shape[1])
+        for a in range(0, len(used_idx), _SUM_CHUNK_ROWS):
+            run_total += np.nansum(aligned.hours[used_idx[a:a + _SUM_CHUNK_ROWS]], axis=0)
         index = {e: j for j, e in enumerate(aligned.equipment_ids)}
         candidates = [g for g in groups] + [
             [e] for e in aligned.equipment_ids if e not in grouped and run_total[index[e]] > 0]
         order = {e.id: k for k, e in enumerate(site.equipment)}
         candidates.sort(key=lambda m: order.get(m[0], 0))
         # Run-hours per local day of each candidate (a group: the mean of its members').
-        used_idx = np.flatnonzero(aligned.use)
         uniq, pos = np.unique(local_day[used_idx], return_inverse=True)
         day_list = uniq.astype("datetime64[D]").astype(object).tolist()
         pos = pos.reshape(-1)
@@ -280,7 +309,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         no_reference: dict[str, str] = {}
         for members in candidates:
             cid = group_id(members)
-            h = aligned.hours[used_idx][:, [index[m] for m in members]].mean(axis=1)
+            h = aligned.hours[np.ix_(used_idx, [index[m] for m in members])].mean(axis=1)
             per_day_h = np.bincount(pos, weights=h, minlength=len(day_list))
             if reference is not None:
                 windows[cid] = reference
@@ -350,7 +379,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         if X_level.shape[1] != len(w0):
             raise InputError(f"{site.path}: the reference fit has {len(w0)} columns but the "
                              f"tracked design {X_level.shape[1]}")
-        X, y = differences(frame, X_level, y_level, None)
+        last_row = _last_row(frame, X_level, y_level)
+        X, y = differences(frame, X_level, y_level, None, in_place=True)
+        del X_level, y_level  # now the differences
         row_day = (frame["start_utc"].dt.convert_time_zone(tz).dt.date().to_numpy()
                    .astype("datetime64[D]"))
         memory = np.full(X.shape[1], memory_days * per_day)
@@ -454,16 +485,19 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             raise InputError(f"{site.path}: the saved state has {len(w0)} tracked columns but "
                              f"this site's baseload profile gives {X_level.shape[1]}; start "
                              "without --state")
-        X, y = differences(frame, X_level, y_level, state["last_row"])
-
-    W = nlms(X, y, w0, mu, delta, scales)
+        last_row = _last_row(frame, X_level, y_level)
+        X, y = differences(frame, X_level, y_level, state["last_row"], in_place=True)
+        del X_level, y_level  # now the differences
 
     day = frame["start_utc"].dt.convert_time_zone(tz).dt.date()
     last_of_day = np.flatnonzero(np.r_[(day[1:] != day[:-1]).to_numpy(), True])
     days = day.gather(last_of_day).to_list()
-    daily = W[last_of_day, :k].copy()
+    # Only each day's last weights are used (and the very last, for the state): W is
+    # (days, p), not (intervals, p).
+    W = nlms(X, y, w0, mu, delta, scales, rows=last_of_day)
+    daily = W[:, :k].copy()
     for c, s_col, d_ref in at_ref:
-        daily[:, int(c)] += W[last_of_day, int(s_col)] * d_ref
+        daily[:, int(c)] += W[:, int(s_col)] * d_ref
     tau_days = tau_intervals / per_day
     lag_days = [max(1, int(round(t))) if np.isfinite(t) else 1 for t in tau_days]
     n_tail = max(lag_days, default=1) + 1
@@ -610,8 +644,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "ls_factor": ls_factor.tolist(),
         "min_reference_run_h": min_run_h,
         "day_stats_tail": [_pack_day(*item) for item in (stats_tail + day_stats)[-n_tail:]],
-        "last_row": {"end_utc": frame["end_utc"][-1].isoformat(),
-                     "x": X_level[-1].tolist(), "y": float(y_level[-1])},
+        "last_row": last_row,
     }
     return DriftResult(table, summary, new_state)
 

@@ -210,6 +210,103 @@ class Aligned:
     cache: dict = field(default_factory=dict, repr=False, compare=False)
 
 
+# Rows per chunk of the passes over a long series (probe_rss): bounds the temporary memory
+# of 1-minute data (65,536 rows x 30 loads: 16 MB).
+CHUNK_ROWS = 65536
+
+
+def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]]) -> bool:
+    """Point aligned.hours at a design's term columns Hf when they hold the same numbers, so
+    that a whole-range fit of a long series keeps one (n, k) array of hours, not two.
+
+    They do when every interval is used and the terms are the loads themselves, one each, in
+    aligned's order (no combined, folded or idle load); the columns are compared, and
+    aligned.hours is left alone otherwise. aligned.hours then becomes a read-only view of the
+    design (the same values; nothing writes into aligned hours after alignment).
+
+    Returns:
+        True when aligned.hours now shares Hf's memory.
+    """
+    H = aligned.hours
+    if (not aligned.use.all() or Hf.shape != H.shape or Hf is H
+            or term_members != [[e] for e in aligned.equipment_ids]):
+        return False
+    if not all(np.array_equal(Hf[:, j], H[:, j]) for j in range(H.shape[1])):
+        return False
+    view = Hf.view()
+    view.flags.writeable = False
+    aligned.hours = view
+    return True
+
+
+def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
+              base: np.ndarray) -> tuple[int, list[float] | None]:
+    """Residual sum of squares of the non-negative least-squares fit of the meter on the
+    equipment-hours and baseload columns, for aligned's own run log and for each of
+    `runlogs` (the same log moved in time), on the intervals all of them cover [kWh^2].
+
+    The same fits as aligning each run log (align) and solving on the stacked columns
+    (solvers.solve_regularized without penalty, bounds at 0), but a chunk of rows at a time:
+    the moved logs' hours are never held whole, so a long 1-minute series holds no second
+    (n, k) array. The rows are factorised in the same chunks as solvers.compress (the same
+    R factor); the residual sum of squares is read off R (||[X y] [b; -1]||^2, equal up to
+    rounding).
+
+    Returns:
+        (intervals covered by all, [rss of aligned, rss of each of runlogs]); the list is
+        None when the solver would not compress this design (at most 2 x columns intervals,
+        or a design wide enough for solvers.compress's indicator path): the caller then
+        aligns and solves as usual.
+    """
+    from disagg.fit.solvers import DISJOINT_MIN_COLS, QR_CHUNK_ROWS, solve_compressed
+
+    a = frame_arrays(aligned, site.timezone)
+    start_ns, end_ns = a["start_ns"], a["end_ns"]
+    eqs = site.equipment
+    # Pass 1: the intervals whose state every moved log knows.
+    mask = aligned.use.copy()
+    for lo in range(0, len(mask), CHUNK_ROWS):
+        hi = min(lo + CHUNK_ROWS, len(mask))
+        for log in runlogs:
+            for eq in eqs:
+                _, unknown_h = overlap_hours(log.segments[eq.id], start_ns[lo:hi],
+                                             end_ns[lo:hi], eq.exponent)
+                mask[lo:hi] &= ~(unknown_h > _UNKNOWN_TOL_H)
+    rows = np.flatnonzero(mask)
+    p = len(eqs) + base.shape[1]
+    if len(rows) <= 2 * p or p >= DISJOINT_MIN_COLS:
+        return len(rows), None
+    y_all = aligned.frame["energy_kwh"].to_numpy().astype(float)
+    # Pass 2: each probe's [hours, baseload, meter] in chunks of QR_CHUNK_ROWS rows, each
+    # chunk's R kept (solvers.compress's tall-skinny QR).
+    step = QR_CHUNK_ROWS * max(1, CHUNK_ROWS // QR_CHUNK_ROWS)
+    parts: list[list[np.ndarray]] = [[] for _ in range(len(runlogs) + 1)]
+    for lo in range(0, len(rows), step):
+        r = rows[lo:lo + step]
+        tail = np.column_stack([base[r], y_all[r]])
+        for i in range(len(runlogs) + 1):
+            if i == 0:
+                H = aligned.hours[r]
+            else:
+                H = np.empty((len(r), len(eqs)))
+                for j, eq in enumerate(eqs):
+                    H[:, j], _ = overlap_hours(runlogs[i - 1].segments[eq.id], start_ns[r],
+                                               end_ns[r], eq.exponent)
+            Z = np.column_stack([H, tail])
+            if len(rows) <= 2 * QR_CHUNK_ROWS:
+                parts[i].append(Z)
+                continue
+            parts[i] += [np.linalg.qr(Z[c:c + QR_CHUNK_ROWS], mode="r")
+                         for c in range(0, len(Z), QR_CHUNK_ROWS)]
+    out = []
+    for i in range(len(runlogs) + 1):
+        R = np.linalg.qr(np.vstack(parts[i]), mode="r")
+        parts[i] = []
+        b = solve_compressed(R[:p, :p], R[:p, p], np.zeros(p), np.zeros(p), np.zeros(p))
+        out.append(float(np.sum((R @ np.append(b, -1.0)) ** 2)))
+    return len(rows), out
+
+
 def frame_arrays(aligned: Aligned, tz: str) -> dict[str, np.ndarray]:
     """Arrays over every interval of aligned.frame, computed once per frame and time zone.
 

@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import polars as pl
 
-from disagg.fit.align import NS_PER_H, Aligned
+from disagg.fit.align import NS_PER_H, Aligned, share_hours
 from disagg.fit.design import (  # noqa: F401  (design, baseload_level, weather_specs: API)
     BaseloadBuilder,
     Design,
@@ -170,6 +170,9 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     specs = weather_specs(site, plan.members)
     X = design_matrix([term_hours(H, index, m) for m in plan.members], rows.temp_c, specs, B)
     del H, B
+    # Long series: aligned.hours becomes a view of the design's term columns when they are
+    # the same numbers (one (n, k) array through the fit, not two; align.share_hours).
+    share_hours(aligned, X[:, :len(plan.members)], plan.members)
     k, kx = len(plan.fitted), len(plan.fitted) + len(specs)
     priors = Priors(plan.fitted, len(specs), WEAK_SD_FACTOR * max(float(np.max(
         rows.y / rows.interval_h)), 1.0))
@@ -177,6 +180,7 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
                          builder.columns, form, (rows.start_ns, rows.end_ns, rows.local_date))
     solved = solve(rows, X, k, kx, base_names, choice, builder, priors)
     del X
+    share_hours(aligned, solved.Hf, plan.members)  # the chosen form's design, if rebuilt
     iv = intervals(site, rows, solved, builder, priors, plan.fitted, confidence)
     warnings += iv.jk.warnings
     res = term_results(site, rows, plan, solved, iv, specs)
@@ -242,7 +246,10 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
     se_kw = np.full(nt, np.nan)
     se_h = np.full(nt, np.nan)
     se_j = np.full(nt, np.nan)
-    hours = np.zeros((n, nt))
+    # With every term fitted, in design order, the term hours are the design's own columns:
+    # a view, not a second (n, k) copy (a site-year of 1-minute data: ~125 MB).
+    as_design = [t.column for t in terms] == list(range(k))
+    hours = Hf if as_design else np.zeros((n, nt))
     weather_hours = np.zeros((n, nt))
     weather_info: dict[int, dict] = {}
     for i, t in enumerate(terms):
@@ -251,7 +258,8 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
                 kw[i] = t.prior_kw
             continue
         c = t.column
-        hours[:, i] = Hf[:, c]
+        if not as_design:
+            hours[:, i] = Hf[:, c]
         kw[i], kw_low[i], kw_high[i] = coef[c], low[c], high[c]
         # The standard error that goes with the final (possibly widened, lopsided) interval.
         se_kw[i] = max(se_final[c], (coef[c] - low[c]) / q_hac, (high[c] - coef[c]) / q_hac)

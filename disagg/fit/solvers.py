@@ -95,6 +95,13 @@ def solve_regularized(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray,
     return _solve_small(X, y, prior_mean, penalty, lower)
 
 
+def solve_compressed(R: np.ndarray, z: np.ndarray, prior_mean: np.ndarray,
+                     penalty: np.ndarray, lower: np.ndarray) -> np.ndarray:
+    """solve_regularized's bounded solve on a system already compressed to (R, z) (see
+    compress), e.g. one factorised a chunk of rows at a time (align.probe_rss)."""
+    return _solve_small(R, z, prior_mean, penalty, lower)
+
+
 def _solve_small(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray, penalty: np.ndarray,
                  lower: np.ndarray) -> np.ndarray:
     """solve_regularized's bounded ridge solve on a (compressed) system."""
@@ -236,10 +243,12 @@ _QR_CHUNK_ROWS = 2048
 # Rows per chunk of the passes that only sum over rows (projections, score sums): bounds the
 # temporary memory of a long design (1-minute data) without slowing a short one.
 _SUM_CHUNK_ROWS = 65536
+QR_CHUNK_ROWS = _QR_CHUNK_ROWS  # for callers that factorise in the same chunks
 # Designs with at least this many columns are searched for indicator-like columns (one
 # nonzero per row among them, such as the hour-of-week baseload), which compress exactly
 # without a QR.
 _DISJOINT_MIN_COLS = 32
+DISJOINT_MIN_COLS = _DISJOINT_MIN_COLS
 
 
 @dataclass(frozen=True)

@@ -54,6 +54,62 @@ def check_out_folder(out: Path) -> None:
                           "result files")
 
 
+# Virtual memory a breakdown, report or drift run takes beyond what the process holds when
+# it starts (VmPeak at the end less VmSize at the check; measured 2026-12-04, 2 CPUs): a
+# part that does not depend on the data (polars' and numpy's thread pools and their malloc
+# arenas: 720-840 MiB on a 1-minute site-year, 1.0 GiB on the demo site), taken as 900 MiB
+# [bytes], and a part per meter interval and (equipment + 4) columns [bytes]: the largest
+# growth of peak virtual memory per year of 1-minute data with 30 loads among the three
+# commands, 819 MiB (breakdown; bench/longsite.py, bench/LONGSITE.md), is 48 bytes, taken
+# as 50. Used only under a memory limit (ulimit -v), to refuse a run that cannot fit with one
+# Error line instead of an allocation abort in the middle of it.
+RUN_BASE_BYTES = 900 * 2**20
+RUN_BYTES_PER_CELL = 50
+
+
+def check_memory_limit(site_path: Path, date_from: dt.date | None = None,
+                       date_to: dt.date | None = None) -> None:
+    """Raise InputError, before reading, when a memory limit (ulimit -v: RLIMIT_AS, or
+    RLIMIT_DATA) leaves too little room for this site's meter file.
+
+    The need is estimated from the meter file's lines (a CSV file; other formats and runs
+    over a date range are not estimated) times (equipment + 4) columns times
+    RUN_BYTES_PER_CELL. Without a limit nothing is read. A polars allocation that fails
+    under such a limit aborts the process (no Python exception), hence the check up front.
+    """
+    import resource
+
+    limits = []
+    for name, status_field in (("RLIMIT_AS", "VmSize"), ("RLIMIT_DATA", "VmData")):
+        soft = resource.getrlimit(getattr(resource, name))[0]
+        if soft != resource.RLIM_INFINITY and soft > 0:
+            limits.append((soft, status_field))
+    if not limits or date_from is not None or date_to is not None:
+        return
+    try:
+        status = Path("/proc/self/status").read_text(encoding="utf-8")
+    except OSError:
+        return
+    used = {line.split(":")[0]: int(line.split()[1]) * 1024
+            for line in status.splitlines() if line.startswith(("VmSize:", "VmData:"))}
+    site = load_site(site_path)
+    meter = Path(site.meter.file)
+    if meter.suffix.lower() not in (".csv", ".txt") or not meter.is_file():
+        return
+    lines = 0
+    with meter.open("rb") as fh:
+        while chunk := fh.read(1 << 20):
+            lines += chunk.count(b"\n")
+    need = RUN_BASE_BYTES + lines * (len(site.equipment) + 4) * RUN_BYTES_PER_CELL
+    for soft, status_field in limits:
+        if used.get(status_field, 0) + need > soft:
+            raise InputError(
+                f"{meter}: {lines} lines x {len(site.equipment)} loads need about "
+                f"{(used.get(status_field, 0) + need) / 2**30:.1f} GB of memory, but this "
+                f"process may use {soft / 2**30:.1f} GB (ulimit -v); raise the limit or run "
+                "a shorter period with --from/--to")
+
+
 @dataclass
 class Run:
     """What a job did.
@@ -166,6 +222,7 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     after the outputs were written says so (disagg.present.history.outputs_already_written).
     With opts.drift the result is a (BreakdownResult, DriftResult) pair.
     """
+    check_memory_limit(opts.site, opts.date_from, opts.date_to)
     result = breakdown_site(opts.site, opts.date_from, opts.date_to, opts.confidence,
                             opts.log_offset_min, on_duplicate=opts.on_duplicate,
                             estimate=opts.estimate_gaps, progress=progress)
@@ -300,6 +357,7 @@ def _read_state(path: Path | None) -> dict | None:
 
 def run_drift(opts: DriftOptions) -> Run:
     """Track every draw, write drift.csv/.json (and the state), store the days tracked."""
+    check_memory_limit(opts.site, opts.date_from, opts.date_to)
     from disagg.analyses.drift import drift_site
 
     saved = _read_state(opts.state)
@@ -436,17 +494,34 @@ class ReportOptions:
             check_log_offset(self.log_offset_min)
 
 
+def _release_fit_columns(result: BreakdownResult) -> None:
+    """Drop the whole fit's per-interval columns (term hours, baseload and weather columns:
+    estimates.hours, .base, .weather_hours become None) once the breakdown table is made.
+
+    The report renders from the table, the metered and fitted energy and the intervals'
+    frame; the drift run that follows needs the memory (a site-year of 1-minute data with 30
+    loads: about 125 MB, ten years about 1.3 GB). Only run_report does this, and its result
+    says so.
+    """
+    est = result.estimates
+    est.hours = est.base = est.weather_hours = None
+
+
 def run_report(opts: ReportOptions, progress: Progress | None = None) -> Run:
     """Fit the site, track drift on the same intervals, write report.html.
 
-    Returns a Run whose result is (BreakdownResult, DriftResult or None, the HTML).
+    Returns a Run whose result is (BreakdownResult, DriftResult or None, the HTML); with
+    drift, the breakdown's estimates no longer hold the per-interval fit columns (see
+    _release_fit_columns).
     """
+    check_memory_limit(opts.site, opts.date_from, opts.date_to)
     from disagg.present.report import render_report
 
     result: BreakdownResult = breakdown_site(opts.site, opts.date_from, opts.date_to,
                                              opts.confidence, opts.log_offset_min,
                                              progress=progress)
     if opts.drift:
+        _release_fit_columns(result)
         tracked, note = drift_for(result, opts.memory_days, opts.reference)
     else:
         tracked, note = None, "Drift tracking was not asked for in this report."

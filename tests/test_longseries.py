@@ -1,0 +1,203 @@
+"""Long series (1-minute data over years): the memory-saving paths give the same numbers.
+
+The chunked and in-place paths (align.probe_rss, align.share_hours, drift.differences in
+place, track.nlms keeping some rows) are checked against the plain whole-array computation
+they replace, with small chunks so that the chunk edges are crossed. The data are the
+synthetic clock-test building (invented). The memory itself is measured by
+bench/longsite.py, not here (no timed or memory-bound test).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import numpy as np
+import polars as pl
+import pytest
+
+from disagg.analyses import clock
+from disagg.analyses.drift import differences
+from disagg.analyses.track import nlms
+from disagg.fit import align as align_mod
+from disagg.fit import solvers
+from disagg.fit.align import align, frame_baseload, probe_rss
+from disagg.fit.estimate import design, weather_columns, weather_specs
+from test_clock import LOADS, Building, _read
+
+
+@pytest.fixture(scope="module")
+def site_file(tmp_path_factory):
+    b = Building(tmp_path_factory.mktemp("long"), seed=8, loads=LOADS)
+    b.write_meter()
+    return b.write_log("log", 0.0)
+
+
+@pytest.mark.parametrize("small_chunks", [False, True])
+@pytest.mark.parametrize("shift_min", [2.0, 150.0])
+def test_probe_rss_is_the_fit_of_each_aligned_log(site_file, monkeypatch, small_chunks,
+                                                   shift_min):
+    """The chunked probe equals aligning each moved log and solving on the stacked columns
+    (the 150-minute shift moves the log past its 2-hour margin: some intervals are unknown
+    to a moved log and left out of all three fits)."""
+    if small_chunks:  # chunk edges inside the 1,344 intervals, the QR's chunks too
+        monkeypatch.setattr(align_mod, "CHUNK_ROWS", 200)
+        monkeypatch.setattr(solvers, "_QR_CHUNK_ROWS", 64)
+        monkeypatch.setattr(solvers, "QR_CHUNK_ROWS", 64)
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    base, _ = frame_baseload(aligned, site.baseload, site.timezone)
+    moved = [clock.shift_runlog(log, p) for p in (-shift_min, shift_min)]
+    covered, rss = probe_rss(site, aligned, moved, base)
+    probes = [aligned] + [align(site, meter, m) for m in moved]
+    mask = probes[0].use & probes[1].use & probes[2].use
+    y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
+    expected = [clock._rss_quick(np.column_stack([a.hours[mask], base[mask]]), y)
+                for a in probes]
+    assert covered == int(mask.sum())
+    assert (covered < len(mask)) == (shift_min > 120)
+    np.testing.assert_allclose(rss, expected, rtol=1e-9)
+
+
+def test_design_matches_the_whole_array_construction(site_file):
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    use = aligned.use.copy()
+    use[::7] = False  # some intervals left out
+    aligned.use = use
+    terms = [["CH-1"], ["AHU-1", "P-1"]]  # a combined row: the mean of its members
+    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
+    H = aligned.hours[use]
+    expected = np.column_stack([H[:, [index[m] for m in t]].mean(axis=1) for t in terms])
+    d = design(site, aligned, terms)
+    f = aligned.frame.filter(pl.Series(use))
+    s_ns, e_ns = (f[c].dt.epoch("ns").to_numpy() for c in ("start_utc", "end_utc"))
+    B, _ = align_mod.baseload_columns(site.baseload, site.timezone, f["start_utc"], s_ns, e_ns)
+    W = weather_columns(expected, None, weather_specs(site, terms))
+    np.testing.assert_array_equal(d.X, np.column_stack([expected, W, B]))
+
+
+def test_differences_in_place_equal_the_copy():
+    rng = np.random.default_rng(3)
+    t0 = dt.datetime(2025, 1, 1, tzinfo=dt.UTC)
+    steps = np.cumsum(rng.choice([1, 1, 1, 3], 400))  # gaps of two missing minutes
+    starts = [t0 + dt.timedelta(minutes=int(s)) for s in steps]
+    frame = pl.DataFrame({"start_utc": starts,
+                          "end_utc": [s + dt.timedelta(minutes=1) for s in starts]})
+    X = rng.random((400, 5))
+    y = rng.random(400)
+    prev = {"end_utc": starts[0].isoformat(), "x": [0.5] * 5, "y": 0.25}
+    for previous in (None, prev):
+        dX, dy = differences(frame, X, y, previous)
+        X2, y2 = X.copy(), y.copy()
+        dX2, dy2 = differences(frame, X2, y2, previous, in_place=True)
+        assert dX2 is X2 and dy2 is y2
+        np.testing.assert_array_equal(dX2, dX)
+        np.testing.assert_array_equal(dy2, dy)
+        assert dX[1:][np.diff(steps) != 1].sum() == 0.0  # no difference across a gap
+
+
+def test_nlms_keeping_some_rows_equals_those_rows_of_the_full_run(monkeypatch):
+    monkeypatch.setattr("disagg.analyses.track._NLMS_CHUNK_ROWS", 37)
+    rng = np.random.default_rng(4)
+    X = rng.random((300, 4)) * (rng.random((300, 4)) < 0.4)
+    y = X @ np.array([2.0, 5.0, 1.0, 3.0]) + rng.normal(0, 0.1, 300)
+    scale = np.array([1.0, 2.0, 0.5, 1.5])
+    full = nlms(X, y, np.zeros(4), 0.5, 1.0, scale)
+    rows = np.array([0, 36, 37, 150, 299])
+    np.testing.assert_array_equal(nlms(X, y, np.zeros(4), 0.5, 1.0, scale, rows=rows),
+                                  full[rows])
+    with pytest.raises(ValueError, match="increasing"):
+        nlms(X, y, np.zeros(4), 0.5, 1.0, scale, rows=np.array([5, 3]))
+
+
+# --- memory limits ------------------------------------------------------------------------
+
+# The limit is set after the command's modules are loaded (as under a limit that lets the
+# program start), with `room` MB of address space to spare.
+_UNDER_LIMIT = """
+import resource, sys
+from disagg.cli import app
+import disagg.analyses.drift, disagg.jobs.site, disagg.present.report, typer.rich_utils
+vm = [int(x.split()[1]) * 1024 for x in open('/proc/self/status') if x.startswith('VmSize:')][0]
+resource.setrlimit(resource.RLIMIT_AS, (vm + int(sys.argv[1]) * 2**20, resource.RLIM_INFINITY))
+sys.argv = ['disagg'] + sys.argv[2:]
+app()
+"""
+
+
+@pytest.mark.parametrize("command", ["breakdown", "report", "drift"])
+def test_a_run_that_cannot_fit_under_a_memory_limit_is_one_error_line(tmp_path, command):
+    """Under `ulimit -v` (RLIMIT_AS) with 64 MB of address space to spare, a site of 200,000
+    meter rows is refused before reading with one Error line and exit 1, not an allocation
+    abort (exit 134, as before the check) or a traceback. The rows are invented and never
+    parsed."""
+    import subprocess
+    import sys
+
+    from sitefiles import write_site_toml
+
+    t0 = dt.datetime(2025, 1, 1, 0, 1)
+    rows = "".join(f"{t0 + dt.timedelta(minutes=i):%Y-%m-%dT%H:%M},0.5\n"
+                   for i in range(200_000))
+    (tmp_path / "meter.csv").write_text("time,kwh\n" + rows)
+    (tmp_path / "log.csv").write_text("time,point,state\n2025-01-01T00:00,A,on\n")
+    site = write_site_toml(tmp_path / "site.toml", name="Limit test", timezone="UTC",
+                           meter_file="meter.csv", runlog_file="log.csv",
+                           equipment=["A", "B", "C"])
+    out = subprocess.run([sys.executable, "-c", _UNDER_LIMIT, "64", command, str(site),
+                          "--out", str(tmp_path / "out")],
+                         capture_output=True, text=True, timeout=120)
+    lines = out.stderr.strip().splitlines()
+    assert out.returncode == 1, out.stderr
+    assert len(lines) == 1 and lines[0].startswith("Error: "), out.stderr
+    assert "meter.csv: 200001 lines x 3 loads" in lines[0] and "ulimit -v" in lines[0]
+    assert not (tmp_path / "out").exists()
+
+
+def test_memory_error_is_one_error_line(capsys):
+    """numpy raises MemoryError when an array cannot be allocated: one Error line, exit 1."""
+    import typer
+
+    from disagg import cli
+
+    def fails():
+        raise MemoryError("Unable to allocate 1.26 GiB for an array with shape (5259600, 30)")
+
+    with pytest.raises(typer.Exit) as exc:
+        cli._guard(fails)
+    assert exc.value.exit_code == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("Error: out of memory")
+
+
+def test_a_whole_range_fit_shares_the_aligned_hours_with_its_design(site_file):
+    """After the whole-range fit, aligned.hours is a read-only view of the fit's term columns
+    with the same numbers (one (n, k) array, not two); a fit of some intervals leaves it."""
+    import dataclasses
+
+    from disagg.fit.estimate import estimate_draws
+
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    assert aligned.use.all()
+    before = aligned.hours.copy()
+    part = dataclasses.replace(aligned, use=np.arange(len(aligned.use)) < 700)
+    estimate_draws(site, part)
+    assert part.hours is aligned.hours  # a fit of some intervals shares nothing
+    est = estimate_draws(site, aligned)
+    assert np.shares_memory(aligned.hours, est.hours)
+    assert not aligned.hours.flags.writeable
+    np.testing.assert_array_equal(aligned.hours, before)
+
+
+def test_a_small_site_runs_under_a_generous_memory_limit(tmp_path, site_file):
+    """The check does not refuse what fits: the clock-test building (1,344 intervals) under
+    a limit 3 GB above the loaded program runs to the end (exit 0, its files written)."""
+    import subprocess
+    import sys
+
+    out = subprocess.run([sys.executable, "-c", _UNDER_LIMIT, "3072", "breakdown",
+                          str(site_file), "--out", str(tmp_path / "out"), "-q"],
+                         capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert (tmp_path / "out" / "breakdown.csv").is_file()
