@@ -31,6 +31,8 @@ from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _results import put_section  # noqa: E402
 
 import datetime as dt  # noqa: E402
 
@@ -179,7 +181,6 @@ def run_time() -> None:
           f"scales for a 30-day memory from 90 reference days: {t_scales:.3f} s")
 
 
-RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
 BEGIN, END = "<!-- drift: begin (bench/drift.py) -->", "<!-- drift: end -->"
 
 
@@ -203,12 +204,7 @@ def write_results(text: str, n_seeds: int) -> None:
         f"{os.cpu_count()} CPUs, {platform.python_version()}. Synthetic office year with weather "
         "(tests/synthetic_year.py, every number invented); memory 30 days, threshold 10 %.", "",
         "```", text.strip(), "```", "", END])
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else ""
-    if BEGIN in old and END in old:
-        new = old[:old.index(BEGIN)] + section + old[old.index(END) + len(END):]
-    else:
-        new = old.rstrip("\n") + "\n\n" + section + "\n"
-    RESULTS.write_text(new, encoding="utf-8")
+    put_section(BEGIN, END, section)
 
 
 def main(n_seeds: int) -> None:

@@ -26,6 +26,8 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _results import put_section  # noqa: E402
 from sitefiles import write_site_toml  # noqa: E402
 
 TZ = "America/Chicago"
@@ -174,7 +176,6 @@ def main() -> None:
     write_results()
 
 
-RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
 BEGIN, END = "<!-- longsite: begin (bench/longsite.py) -->", "<!-- longsite: end -->"
 
 
@@ -186,12 +187,7 @@ def write_results() -> None:
     section = "\n".join([BEGIN, "", "## Long 1-minute sites: peak memory", "",
                          "Copied from bench/LONGSITE.md by bench/longsite.py (do not edit by "
                          "hand).", "", body, "", END])
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else ""
-    if BEGIN in old and END in old:
-        new = old[:old.index(BEGIN)] + section + old[old.index(END) + len(END):]
-    else:
-        new = old.rstrip("\n") + "\n\n" + section + "\n"
-    RESULTS.write_text(new, encoding="utf-8")
+    put_section(BEGIN, END, section)
 
 
 if __name__ == "__main__":

@@ -755,9 +755,8 @@ def test_a_latin1_meter_file_is_named_with_its_line_and_byte(tmp_path):
     # "Zähler" written as Latin-1 (ISO/IEC 8859-1: ä is the single byte 0xE4, which no
     # UTF-8 text holds on its own; RFC 3629 section 3).
     site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"])
-    rows = ["2025-01-06 00:15:00,1.0", "2025-01-06 00:30:00,2.0", "2025-01-06 00:45:00,3.0"]
-    path.write_bytes(("time,kwh\n" + "\n".join(rows[:2]) + "\n").encode() + "Zähler,4\n".encode(
-        "latin-1"))
+    utf8 = "time,kwh\n2025-01-06 00:15:00,1.0\n2025-01-06 00:30:00,2.0\n"
+    path.write_bytes(utf8.encode() + "Zähler,4\n".encode("latin-1"))
     with pytest.raises(InputError) as e:
         read_meter(site.meter, site.timezone)
     assert _message(e) == (f"{path}: line 4: byte 0xE4 is not UTF-8 text; expected a UTF-8 "
