@@ -201,3 +201,21 @@ def test_a_small_site_runs_under_a_generous_memory_limit(tmp_path, site_file):
                          capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     assert (tmp_path / "out" / "breakdown.csv").is_file()
+
+
+def test_hours_are_not_shared_with_a_much_wider_design(site_file):
+    """A view keeps its whole parent alive: the hours are not pointed at a design more than
+    SHARE_MAX_WIDENING times their size (a wide baseload form), only at a narrow one."""
+    from disagg.fit.align import SHARE_MAX_WIDENING, share_hours
+
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    H = aligned.hours.copy()
+    n, k = H.shape
+    members = [[e] for e in aligned.equipment_ids]
+    wide = np.column_stack([H, np.zeros((n, int(SHARE_MAX_WIDENING * k) + 1))])
+    assert not share_hours(aligned, wide[:, :k], members)
+    assert not np.shares_memory(aligned.hours, wide)
+    narrow = np.column_stack([H, np.zeros((n, 1))])
+    assert share_hours(aligned, narrow[:, :k], members)
+    assert np.shares_memory(aligned.hours, narrow)

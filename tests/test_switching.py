@@ -152,3 +152,26 @@ def test_a_baseload_that_swings_through_the_hour_does_not_move_the_steps():
     assert abs(entry["z_difference"]) < 1.96
     assert entry["kw"] == pytest.approx(s.true_kw["WH-1"], rel=0.05)
     assert entry["kw_at_switch_off"] == pytest.approx(s.true_kw["WH-1"], rel=0.05)
+
+
+def test_a_step_across_a_meter_gap_is_no_switching_step():
+    # The exact building of test_exact_on_and_off_steps_without_noise, read in two pieces with
+    # a gap between them: after the gap the baseload is 40 kW higher and the load is on. The
+    # step across the gap is left out, so both step draws stay exact.
+    n = 400
+    frac = np.tile(np.r_[np.ones(8), np.zeros(8)], n // 16)
+    unlogged = np.tile(np.r_[np.ones(10), np.zeros(6)], n // 16)
+    ih = np.full(n, 0.25)
+    base = np.where(np.arange(n) >= 208, 60.0, 20.0)  # row 208 starts a spell, after the gap
+    y = (10.0 * frac + 3.0 * unlogged + base) * ih
+    X = np.column_stack([frac * ih, ih])
+    days = np.repeat(np.arange(n // 96 + 1), 96)[:n]
+    adjacent = np.ones(n - 1, dtype=bool)
+    adjacent[207] = False  # rows 207 and 208 are hours apart
+    prior = (np.zeros(1), np.full(1, 1e6))
+    st = switching_steps(X, y, 1, 1, ih, prior, days[1:], adjacent=adjacent)
+    assert (st.on_kw[0], st.off_kw[0]) == pytest.approx((13.0, 10.0), abs=1e-6)
+    # Taken as a switching step, the gap's 40 kW jump would move the switch-on draw.
+    moved = switching_steps(X, y, 1, 1, ih, prior, days[1:])
+    assert abs(moved.on_kw[0] - 13.0) > 0.5
+

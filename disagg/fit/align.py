@@ -215,6 +215,12 @@ class Aligned:
 CHUNK_ROWS = 65536
 
 
+# share_hours: the design may be at most this many times the hours' size. Sharing saves an
+# (n, k) copy while the fit runs but keeps the whole design alive after it: a net saving only
+# while the design adds no more columns than the hours have. Common practice, no source.
+SHARE_MAX_WIDENING = 2.0
+
+
 def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]]) -> bool:
     """Point aligned.hours at a design's term columns Hf when they hold the same numbers, so
     that a whole-range fit of a long series keeps one (n, k) array of hours, not two.
@@ -230,6 +236,11 @@ def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]])
     H = aligned.hours
     if (not aligned.use.all() or Hf.shape != H.shape or Hf is H
             or term_members != [[e] for e in aligned.equipment_ids]):
+        return False
+    # A view keeps its whole parent alive: share only when the design adds few columns to
+    # the hours (a wide baseload form's design would otherwise outlive the fit).
+    parent = Hf if Hf.base is None else Hf.base
+    if parent.size > SHARE_MAX_WIDENING * Hf.size:
         return False
     if not all(np.array_equal(Hf[:, j], H[:, j]) for j in range(H.shape[1])):
         return False

@@ -300,14 +300,17 @@ def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
 
 
 def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: Jackknife,
-                 hull: Hull, variants: dict[str, dict]) -> dict[int, str]:
+                 hull: Hull, variants: dict[str, dict],
+                 variable: set[str] = frozenset()) -> dict[int, str]:
     """Loads whose meter steps at switch-on and at switch-off give different draws
     (switching_steps): where they differ significantly and by more than the HAC half-width,
-    both step draws' intervals join the hull. Only on-off loads (a variable-speed load's
-    rises and falls are speed changes). Adds variants["switch steps"]; returns column ->
+    both step draws' intervals join the hull. Only on-off loads and groups of them (a
+    variable-speed load's rises and falls are speed changes; `variable`: their ids). Only
+    steps between intervals that follow each other without a gap. Adds variants["switch steps"]; returns column ->
     the two step draws in words, for those that differ by more than STEP_SENSITIVE."""
     steps = switching_steps(s.X, rows.y, s.k, s.kx, rows.interval_h, priors(0), rows.days[1:],
-                            rows.hour_of_week % 24, priors.weak_sd)
+                            rows.hour_of_week % 24, priors.weak_sd,
+                            adjacent=rows.start_ns[1:] == rows.end_ns[:-1])
     variants["switch steps"] = ({"skipped": "too few steps"} if steps is None else {
         t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
                "kw_at_switch_off": float(steps.off_kw[t.column]),
@@ -316,7 +319,8 @@ def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: 
     step_moves: dict[int, str] = {}
     if steps is None:
         return step_moves
-    on_off = {t.column for t in fitted if "variable" not in t.flags}
+    on_off = {t.column for t in fitted
+              if "variable" not in t.flags and not variable.intersection(t.members)}
     for c in sorted(on_off & set(range(s.k))):
         d = abs(steps.on_kw[c] - steps.off_kw[c])
         if abs(steps.z[c]) > hull.z_bound and d > jk.half_hac[c]:
@@ -377,7 +381,8 @@ def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
         variants[name] = entry
     form_moves = form_spread(s.choice, s.k, jk, hull)
     edge_moves = schedule_edge(site, rows, s, jk, hull)
-    step_moves = switch_steps(rows, s, priors, fitted, jk, hull, variants)
+    variable = {e.id for e in site.equipment if e.control == "variable"}
+    step_moves = switch_steps(rows, s, priors, fitted, jk, hull, variants, variable)
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (rows.local_date.astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = rows.y - fitted_of(s.X, s.coef, s.level_kwh)
@@ -524,8 +529,8 @@ def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, 
 
 def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: np.ndarray,
                     prior: tuple[np.ndarray, np.ndarray], block: np.ndarray,
-                    hour_of_day: np.ndarray | None = None, drift_sd: float = 1e3
-                    ) -> SwitchingSteps | None:
+                    hour_of_day: np.ndarray | None = None, drift_sd: float = 1e3,
+                    adjacent: np.ndarray | None = None) -> SwitchingSteps | None:
     """Refit on first differences (kW) with each of the first k columns (run-hours) split
     into its switch-on and switch-off parts (split_switching): each load gets one draw from
     the meter's steps where it switches on and one from those where it switches off.
@@ -550,7 +555,9 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
         interval_h: (n,) hours of each interval; prior: (>= kx,) prior means and sds of X's
         first kx columns; block: (n - 1,) non-decreasing block labels of the differenced
         rows (for the HAC covariance); hour_of_day: (n,) local hour 0..23 of each interval,
-        or None; drift_sd: prior sd of the hourly mean steps [kW] (weak).
+        or None; drift_sd: prior sd of the hourly mean steps [kW] (weak); adjacent: (n - 1,)
+        whether each interval starts where the one before ends (a step across a meter gap or
+        a left-out interval is no switching step and is left out); None = all adjacent.
 
     Returns:
         The two draws per load, or None when there is nothing to check or fewer than
@@ -563,7 +570,7 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     if k == 0 or n < 3:
         return None
     inv_h = 1.0 / interval_h
-    keep = np.ones(n - 1, dtype=bool)
+    keep = np.ones(n - 1, dtype=bool) if adjacent is None else adjacent.copy()
     for c in range(kx, p):  # one column at a time: no n x p temporary
         keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
     ind = None
