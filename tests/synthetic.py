@@ -18,10 +18,32 @@ import polars as pl
 
 from disagg.fit.align import Aligned
 from disagg.inputs.config import (BaseloadSettings, Equipment, MeterSettings, Prior, RunlogSettings,
-                           SiteConfig, parse_spell)
+                           SiteConfig, WeatherSettings, parse_spell)
 
 TZ = "America/Chicago"
 SPELLS = ("Mon-Fri 07:00-19:00",)
+
+
+def synthetic_site(stem: str, name: str, ids: list[str], priors: dict[str, tuple[float, float]],
+                   prior_source: str, baseload: BaseloadSettings, variable: tuple[str, ...] = (),
+                   weather: WeatherSettings | None = None) -> SiteConfig:
+    """The settings of an in-memory synthetic building (no files behind them): a 15-minute
+    end-stamped kWh meter, an events run log, one load per id (variable speed for those in
+    `variable`, a prior of (kW, sd) for those in `priors`)."""
+    equipment = tuple(
+        Equipment(i, i, "load", "variable" if i in variable else "on-off", 1.0,
+                  Prior(*priors[i], prior_source) if i in priors else Prior(None, None, "none"),
+                  None) for i in ids)
+    return SiteConfig(
+        path=Path(f"/synthetic/{stem}.toml"), name=name, timezone=TZ,
+        meter=MeterSettings(Path("/synthetic/meter.csv"), "t", "v", "kWh", "end", 15),
+        runlog=RunlogSettings(Path("/synthetic/log.csv"), "events", "t", "eq", "s"),
+        baseload=baseload, equipment=equipment, weather=weather)
+
+
+def occupied_baseload(spells: tuple[str, ...]) -> BaseloadSettings:
+    """An occupied/unoccupied baseload declared by weekly spells ("Mon-Fri 07:00-19:00")."""
+    return BaseloadSettings("occupied", tuple(parse_spell(s) for s in spells), spells)
 
 
 @dataclass
@@ -131,18 +153,8 @@ def make_building(seed: int, days: int = 56, misspecified: bool = False, noise_k
     y = np.maximum(y, 0)
 
     ids = list(status)
-    priors = priors or {}
-    equipment = tuple(
-        Equipment(i, i, "load", "on-off", 1.0,
-                  Prior(priors[i][0], priors[i][1], "test") if i in priors
-                  else Prior(None, None, "none"), None) for i in ids)
-    site = SiteConfig(
-        path=Path("/synthetic/site.toml"), name=f"synthetic {seed}", timezone=TZ,
-        meter=MeterSettings(Path("/synthetic/meter.csv"), "t", "v", "kWh", "end", 15),
-        runlog=RunlogSettings(Path("/synthetic/log.csv"), "events", "t", "eq", "s"),
-        baseload=(BaseloadSettings("constant") if misspecified else
-                  BaseloadSettings("occupied", tuple(parse_spell(s) for s in SPELLS), SPELLS)),
-        equipment=equipment)
+    base = BaseloadSettings("constant") if misspecified else occupied_baseload(SPELLS)
+    site = synthetic_site("site", f"synthetic {seed}", ids, priors or {}, "test", base)
     aligned = aligned_15min(start_utc, y, status)
     hours = aligned.hours
     true_kw = {i: float(energy[i].sum() / hours[:, k].sum()) for k, i in enumerate(ids)}
@@ -229,18 +241,9 @@ def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: fl
     y = np.maximum(sum(energy.values()) + np.maximum(base, 0) * 0.25 + e, 0)
 
     ids = list(status)
-    priors = {"WH-1": (12.0, 1.5), "LF-1": (6.0, 1.5)}
-    equipment = tuple(
-        Equipment(i, i, "load", "variable" if i == "VF-1" else "on-off", 1.0,
-                  Prior(*priors[i], "test") if i in priors else Prior(None, None, "none"),
-                  None) for i in ids)
-    site = SiteConfig(
-        path=Path("/synthetic/office.toml"), name=f"office {scenario} {seed}", timezone=TZ,
-        meter=MeterSettings(Path("/synthetic/meter.csv"), "t", "v", "kWh", "end", 15),
-        runlog=RunlogSettings(Path("/synthetic/log.csv"), "events", "t", "eq", "s"),
-        baseload=BaseloadSettings("occupied", tuple(parse_spell(s) for s in OFFICE_SPELLS),
-                                  OFFICE_SPELLS),
-        equipment=equipment)
+    site = synthetic_site("office", f"office {scenario} {seed}", ids,
+                          {"WH-1": (12.0, 1.5), "LF-1": (6.0, 1.5)}, "test",
+                          occupied_baseload(OFFICE_SPELLS), variable=("VF-1",))
     start_utc = local.dt.convert_time_zone("UTC")
     aligned = aligned_15min(start_utc, y, status)
     hours = aligned.hours

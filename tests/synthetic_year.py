@@ -25,9 +25,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from disagg.inputs.config import (BaseloadSettings, Equipment, MeterSettings, Prior, RunlogSettings,
-                           SiteConfig, WeatherSettings, parse_spell)
-from synthetic import Synthetic, _cycle, aligned_15min
+from disagg.inputs.config import WeatherSettings
+from synthetic import Synthetic, _cycle, aligned_15min, occupied_baseload, synthetic_site
 
 TZ = "America/Chicago"
 SPELLS = ("Mon-Fri 07:00-19:00",)
@@ -109,17 +108,10 @@ def make_year(seed: int, days: int = 365, steps: dict[str, tuple[float, dt.date]
     y = np.maximum(sum(energy.values()) + base_kw * 0.25 + rng.normal(0, noise_kwh, n), 0.0)
 
     ids = list(status)
-    equipment = tuple(
-        Equipment(i, i, "load", "on-off", 1.0,
-                  Prior(PRIORS[i][0], PRIORS[i][1], "nameplate") if i in PRIORS
-                  else Prior(None, None, "none"), None) for i in ids)
-    site = SiteConfig(
-        path=Path("/synthetic/year.toml"), name=f"synthetic year {seed}", timezone=TZ,
-        meter=MeterSettings(Path("/synthetic/meter.csv"), "t", "v", "kWh", "end", 15),
-        runlog=RunlogSettings(Path("/synthetic/log.csv"), "events", "t", "eq", "s"),
-        baseload=BaseloadSettings("occupied", tuple(parse_spell(s) for s in SPELLS), SPELLS),
-        equipment=equipment,
-        weather=WeatherSettings(Path("/synthetic/weather.csv"), "t", "temp", "C", None))
+    site = synthetic_site("year", f"synthetic year {seed}", ids, PRIORS, "nameplate",
+                          occupied_baseload(SPELLS),
+                          weather=WeatherSettings(Path("/synthetic/weather.csv"), "t", "temp",
+                                                  "C", None))
     aligned = aligned_15min(start_utc, y, status, temp)
     hours = aligned.hours
     true_kw = {i: float(energy[i].sum() / max(hours[:, k].sum(), 1e-9))
