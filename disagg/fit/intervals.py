@@ -13,7 +13,7 @@ import numpy as np
 import polars as pl
 from scipy.linalg import solveh_banded
 
-from disagg.fit.design import BaseloadBuilder, Rows
+from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows
 from disagg.fit.select import FormChoice
 from disagg.fit.solve import Priors, Solved
 from disagg.fit.solvers import (
@@ -310,7 +310,9 @@ def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: 
     the two step draws in words, for those that differ by more than STEP_SENSITIVE."""
     steps = switching_steps(s.X, rows.y, s.k, s.kx, rows.interval_h, priors(0), rows.days[1:],
                             rows.hour_of_week % 24, priors.weak_sd,
-                            adjacent=rows.start_ns[1:] == rows.end_ns[:-1])
+                            adjacent=rows.start_ns[1:] == rows.end_ns[:-1],
+                            smooth=frozenset(s.kx + i for i, name in enumerate(s.base_names)
+                                             if name.startswith(SLOPE_PREFIX)))
     variants["switch steps"] = ({"skipped": "too few steps"} if steps is None else {
         t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
                "kw_at_switch_off": float(steps.off_kw[t.column]),
@@ -530,7 +532,8 @@ def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, 
 def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: np.ndarray,
                     prior: tuple[np.ndarray, np.ndarray], block: np.ndarray,
                     hour_of_day: np.ndarray | None = None, drift_sd: float = 1e3,
-                    adjacent: np.ndarray | None = None) -> SwitchingSteps | None:
+                    adjacent: np.ndarray | None = None,
+                    smooth: frozenset[int] = frozenset()) -> SwitchingSteps | None:
     """Refit on first differences (kW) with each of the first k columns (run-hours) split
     into its switch-on and switch-off parts (split_switching): each load gets one draw from
     the meter's steps where it switches on and one from those where it switches off.
@@ -557,7 +560,10 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
         rows (for the HAC covariance); hour_of_day: (n,) local hour 0..23 of each interval,
         or None; drift_sd: prior sd of the hourly mean steps [kW] (weak); adjacent: (n - 1,)
         whether each interval starts where the one before ends (a step across a meter gap or
-        a left-out interval is no switching step and is left out); None = all adjacent.
+        a left-out interval is no switching step and is left out); None = all adjacent;
+        smooth: baseload columns that change at every step but only smoothly (the
+        hour-of-week profile's within-hour slopes): not a profile change, their mean step
+        within each hour is the hour's mean step.
 
     Returns:
         The two draws per load, or None when there is nothing to check or fewer than
@@ -572,6 +578,8 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     inv_h = 1.0 / interval_h
     keep = np.ones(n - 1, dtype=bool) if adjacent is None else adjacent.copy()
     for c in range(kx, p):  # one column at a time: no n x p temporary
+        if c in smooth:
+            continue
         keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
     ind = None
     if hour_of_day is not None:
