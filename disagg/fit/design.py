@@ -208,17 +208,18 @@ class BaseloadBuilder:
         cols[np.arange(ih.size), hour] = offset * ih
         return cols, [f"{SLOPE_PREFIX}{h:02d}_kw_per_h" for h in range(24)]
 
-    def hour_of_week_sparse(self) -> tuple[np.ndarray, Indicators]:
+    def hour_of_week_sparse(self) -> tuple[np.ndarray, list[str], Indicators]:
         """The hour-of-week profile stored sparsely: the dense closure column (when closures
-        are declared) and within-hour slopes, and the 168 hour-of-week columns by row
-        (solvers.Indicators)."""
+        are declared) and within-hour slopes with their names, and the 168 hour-of-week
+        columns by row (solvers.Indicators)."""
         r = self.rows
         ind = Indicators(r.hour_of_week, (r.end_ns - r.start_ns) / NS_PER_H, 168)
         base = self.site.baseload
-        dense, _ = self.within_hour_slopes()
+        dense, names = self.within_hour_slopes()
         if base.closed and base.spells:
             dense = np.column_stack([self.closure_column()[:, None], dense])
-        return dense, ind
+            names = ["baseload_closed_kw"] + names
+        return dense, names, ind
 
     def for_form(self, form: Form) -> tuple[np.ndarray, list[str]]:
         """The columns of a form: with the level, without the profile's constant direction
@@ -228,6 +229,12 @@ class BaseloadBuilder:
             keep = kept_columns(form.profile, B.shape[1])
             B, names = B[:, keep], [names[i] for i in keep]
         return B, names
+
+
+def signed_columns(names: list[str]) -> np.ndarray:
+    """Which baseload columns may take either sign (the within-hour slopes); the others are
+    kW levels, non-negative in a static fit."""
+    return np.array([n.startswith(SLOPE_PREFIX) for n in names], dtype=bool)
 
 
 def term_hours(H: np.ndarray, index: dict[str, int], members: list[str]) -> np.ndarray:

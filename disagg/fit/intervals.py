@@ -13,7 +13,7 @@ import numpy as np
 import polars as pl
 from scipy.linalg import solveh_banded
 
-from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows
+from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows, signed_columns
 from disagg.fit.select import FormChoice
 from disagg.fit.solve import Priors, Solved
 from disagg.fit.solvers import (
@@ -165,20 +165,24 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
         ind = None
         if variant == "hour-of-week":
             # The 168 hour-of-week columns are stored by row (solvers.Indicators), the closure
-            # column (if any) stays dense; the baseload columns' order does not matter.
-            Bv, ind = builder.hour_of_week_sparse()
+            # column (if any) and the within-hour slopes stay dense; the baseload columns'
+            # order does not matter.
+            Bv, names_v, ind = builder.hour_of_week_sparse()
             m_cols = Bv.shape[1] + ind.n_levels
+            signed = np.r_[signed_columns(names_v), np.zeros(ind.n_levels, dtype=bool)]
         else:
-            Bv, _ = builder.columns(variant)
+            Bv, names_v = builder.columns(variant)
             m_cols = Bv.shape[1]
+            signed = signed_columns(names_v)
         if n < MIN_ROWS_PER_COLUMN * (kx + m_cols):
             variants[variant] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
         Xv = np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
         mv, sv = priors(m_cols)
-        fv = fit_model(Xv, rows.y, mv, sv, np.zeros(kx + m_cols), block=rows.days,
-                       indicators=ind)
+        lower_v = np.zeros(kx + m_cols)
+        lower_v[kx:][signed] = -np.inf
+        fv = fit_model(Xv, rows.y, mv, sv, lower_v, block=rows.days, indicators=ind)
         se_v = fv.se
         entry = {}
         for t in fitted:
