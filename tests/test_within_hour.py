@@ -145,3 +145,16 @@ def test_static_hour_of_week_fit_matches_statsmodels_ols():
     ids = [t.id for t in e.terms]
     for j, eq in enumerate(aligned.equipment_ids):
         assert e.kw[ids.index(eq)] == pytest.approx(ols.params[j], rel=1e-5)
+
+
+def test_the_switching_steps_check_still_runs_beside_the_slopes():
+    # The slopes change at every step; switching_steps must not take that for a change of
+    # the profile (it would leave out every step and skip the check).
+    site, aligned = swing_building(4, noise_kwh=0.2)
+    e = estimate_draws(site, aligned, form=Form("hour-of-week", True, 0.001))
+    steps = e.variants["switch steps"]
+    assert "skipped" not in steps
+    # The pump P-1 switches at random: its two step draws hold its 8 kW.
+    p = steps["P-1"]
+    assert p["kw"] == pytest.approx(8.0, abs=3 * p["se_kw"] + 1e-9)
+    assert p["kw_at_switch_off"] == pytest.approx(8.0, abs=3 * p["se_at_switch_off_kw"] + 1e-9)
