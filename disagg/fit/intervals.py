@@ -26,7 +26,7 @@ from disagg.fit.solvers import (
     quantile,
 )
 from disagg.fit.terms import LONG_DESIGN_ROWS, Term
-from disagg.fit.wander import Spacing, whiten
+from disagg.fit.wander import Spacing, band_factor, whiten_columns
 from disagg.inputs.config import BaseloadSettings, SiteConfig
 
 # An estimate whose posterior precision comes at least half from its prior is prior-driven.
@@ -406,15 +406,17 @@ def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term]
     ih = rows.interval_h
     R = response_columns(s.X[:, [t.column for t in on_off]], ih, rows.start_ns, rows.end_ns)
     m = R.shape[1]
-    Xa = np.column_stack([s.X, R])
+    if s.choice.form.level:
+        # The solver's rows are the whitened differences (s.Xs): whitening is column by
+        # column, so only the new columns are whitened, with the same factor.
+        band, _ = band_factor(rows.sp, s.choice.form.q)
+        R = whiten_columns(R / ih[:, None], band)
+    Xa = np.column_stack([s.Xs, R])
+    del R
     mean = np.r_[s.p_mean, np.zeros(m)]
     sd = np.r_[s.p_sd, np.full(m, priors.weak_sd)]
     lower = np.r_[s.lower, np.full(m, -np.inf)]
-    if s.choice.form.level:
-        wz = whiten(Xa, rows.y, rows.sp, s.choice.form.q, scale=1.0 / ih)
-        f = fit_model(wz.X, wz.z, mean, sd, lower, block=rows.days[1:])
-    else:
-        f = fit_model(Xa, rows.y, mean, sd, lower, block=rows.days)
+    f = fit_model(Xa, s.ys, mean, sd, lower, block=s.blk)
     del Xa
     entry = {}
     for t in on_off:
