@@ -113,11 +113,59 @@ def test_a_non_finite_reference_temperature_is_refused(base, tmp_path, value):
                    "temperature from -200 to 200")
 
 
-@pytest.mark.parametrize("memory", ["nan", "inf", "-1"])
-def test_drift_memory_that_is_not_a_number_of_days_is_refused(base, tmp_path, memory):
+@pytest.mark.parametrize("option", ["--memory", "--baseload-memory"])
+@pytest.mark.parametrize("memory", ["nan", "inf", "-1", "1e308", "1e200", "3661"])
+def test_drift_memory_that_is_not_a_number_of_days_is_refused(base, tmp_path, option, memory):
+    # 1e200 and 1e308 days used to end in an internal error (an overflow, a failed
+    # eigenvalue solve); the longest memory is ten years (pipeline.MAX_MEMORY_DAYS).
     err = _one_error(["drift", str(base["site"]), "--out", str(tmp_path / "out"),
-                      "--memory", memory])
-    assert err == f"Error: --memory {float(memory):g}: expected a number of days above 0"
+                      option, memory])
+    assert err == (f"Error: {option} {float(memory):g}: expected a number of days above 0 "
+                   "and at most 3660")
+
+
+def test_report_memory_that_is_not_a_number_of_days_is_refused(base, tmp_path):
+    err = _one_error(["report", str(base["site"]), "--out", str(tmp_path / "out"),
+                      "--memory", "1e308"])
+    assert err == "Error: --memory 1e+308: expected a number of days above 0 and at most 3660"
+
+
+@pytest.mark.parametrize("key", ["weights", "mu", "scales", "delta"])
+def test_a_state_file_with_nan_or_null_numbers_is_refused(base, tmp_path, key):
+    # An edited --state file: NaN weights used to give a drift table of NaN whose alarms could
+    # never fire (exit 0), a NaN step an internal error.
+    import json
+
+    state = tmp_path / "state.json"
+    r = runner.invoke(app, ["drift", str(base["site"]), "--out", str(tmp_path / "a"),
+                            "--state", str(state), "--memory", "2"])
+    assert r.exit_code == 0, r.output
+    saved = json.loads(state.read_text())
+    for bad, word in ((float("nan"), "NaN"), (None, None)):
+        edited = dict(saved)
+        edited[key] = ([bad] * len(saved[key]) if isinstance(saved[key], list) else bad)
+        state.write_text(json.dumps(edited))
+        err = _one_error(["drift", str(base["site"]), "--out", str(tmp_path / "b"),
+                          "--state", str(state), "--memory", "2"])
+        if word:
+            assert err == (f"Error: {state}: cannot read the tracker state (NaN where a "
+                           "finite number was expected)")
+        else:
+            assert err == (f"Error: {state}: the tracker state's {key!r} holds something other "
+                           "than numbers; start without --state")
+    assert not (tmp_path / "b").exists()
+
+
+def test_a_site_file_the_user_may_not_read_is_not_a_usage_error(base, tmp_path, monkeypatch):
+    # typer's own readability check (os.access) answered with a usage panel and exit 2; the
+    # job reads the file itself (test_an_unreadable_site_file_is_one_error_line: its Error
+    # line). Here os.access says no while the file can be read (as for root): the run goes on.
+    site = base["site"]
+    real = os.access
+    monkeypatch.setattr(os, "access", lambda p, mode, *a, **k: (
+        False if Path(p) == Path(site) else real(p, mode, *a, **k)))
+    r = runner.invoke(app, ["check", str(site)])
+    assert r.exit_code == 0, r.output
 
 
 def test_interval_minutes_disagreeing_with_the_data_is_an_error(base, tmp_path):

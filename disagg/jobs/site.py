@@ -22,6 +22,7 @@ from disagg.analyses.pipeline import (
     breakdown_site,
     check_confidence,
     check_log_offset,
+    check_memory_days,
     check_range,
     check_site,
 )
@@ -149,8 +150,7 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
     from disagg.fit.align import BASELOAD_COLUMN_COUNT
     from disagg.present.report.sections import local_span
 
-    if not (math.isfinite(memory_days) and memory_days > 0):
-        raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
+    check_memory_days(memory_days)
     first, last = local_span(result)
     span_days = (dt.date.fromisoformat(last) - dt.date.fromisoformat(first)).days + 1
     if reference is None and span_days < DEFAULT_REFERENCE_DAYS + MIN_TRACKED_DAYS:
@@ -330,8 +330,10 @@ class DriftOptions:
     def __post_init__(self) -> None:
         check_out_folder(self.out)
         check_range(self.date_from, self.date_to)
-        if self.step is None and not (math.isfinite(self.memory_days) and self.memory_days > 0):
-            raise ConfigError(f"--memory {self.memory_days:g}: expected a number of days above 0")
+        if self.step is None:
+            check_memory_days(self.memory_days)
+        if self.baseload_memory_days is not None:
+            check_memory_days(self.baseload_memory_days, "--baseload-memory")
         if not self.min_reference_run_h > 0:
             raise ConfigError(f"--reference-hours {self.min_reference_run_h:g}: expected "
                               "run-hours above 0")
@@ -349,10 +351,23 @@ def _read_state(path: Path | None) -> dict | None:
     check_regular_file(resolve_path(path, "--state"), "tracker state file (--state)")
     if not path.exists():
         return None
+    def not_finite(word: str) -> float:
+        # disagg writes no NaN or Infinity (to_json makes them null): the file was edited.
+        raise ValueError(f"{word} where a finite number was expected")
+
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
+        state = json.loads(path.read_text(encoding="utf-8"), parse_constant=not_finite)
     except (OSError, ValueError) as exc:
         raise InputError(f"{path}: cannot read the tracker state ({exc})") from None
+    if isinstance(state, dict):
+        for key in ("weights", "scales", "mu", "delta"):
+            values = state.get(key)
+            flat = values if isinstance(values, list) else [values]
+            if key in state and not all(
+                    isinstance(v, (int, float)) and not isinstance(v, bool) for v in flat):
+                raise InputError(f"{path}: the tracker state's {key!r} holds something other "
+                                 "than numbers; start without --state")
+    return state
 
 
 def run_drift(opts: DriftOptions) -> Run:
@@ -492,6 +507,7 @@ class ReportOptions:
         check_confidence(self.confidence)
         if self.log_offset_min is not None:
             check_log_offset(self.log_offset_min)
+        check_memory_days(self.memory_days)
 
 
 def _release_fit_columns(result: BreakdownResult) -> None:
