@@ -188,6 +188,47 @@ def test_a_fifo_as_state_file_is_refused_before_reading(base, tmp_path):
                    "file (--state) itself")
 
 
+@pytest.mark.parametrize("kind", ["fifo", "folder"])
+def test_a_fifo_or_folder_as_meter_file_is_named_as_such(base, tmp_path, kind):
+    # It used to say "no such meter file" of a file that exists.
+    folder = _copy(base, tmp_path)
+    meter = folder / "meter.csv"
+    meter.unlink()
+    if kind == "fifo":
+        os.mkfifo(meter)  # reading it would block forever
+    else:
+        meter.mkdir()
+    err = _one_error(["check", str(folder / "site.toml")])
+    what = "a FIFO (named pipe)" if kind == "fifo" else "a folder"
+    assert err == f"Error: {meter}: is {what}, not a file; give the meter file itself"
+
+
+def test_a_row_with_an_extra_field_is_named_by_its_line(base, tmp_path):
+    # The reader's own message named no line ("found more fields than defined in 'Schema'").
+    folder = _copy(base, tmp_path)
+    _edit_meter_line(folder, 11, lambda line: line + ",extra")
+    err = _one_error(["check", str(folder / "site.toml")])
+    header = (folder / "meter.csv").read_text().splitlines()[0].count(",") + 1
+    assert err == (f"Error: {folder / 'meter.csv'}: line 11: {header + 1} fields where the "
+                   f"header has {header}; expected a meter file with one value per column (a "
+                   "comma in a value must be inside double quotes)")
+
+
+def test_a_parquet_meter_with_a_list_column_is_refused(base, tmp_path):
+    # A List[f64] column ended in an internal error (a failed cast to text).
+    folder = _copy(base, tmp_path)
+    frame = pl.read_csv(folder / "meter.csv", infer_schema=False)
+    value = next(c for c in frame.columns if c != frame.columns[0])
+    frame = frame.with_columns(pl.col(value).cast(pl.Float64).map_elements(
+        lambda v: [v], return_dtype=pl.List(pl.Float64)))
+    frame.write_parquet(folder / "meter.parquet")
+    site = folder / "site.toml"
+    site.write_text(site.read_text().replace("meter.csv", "meter.parquet"))
+    err = _one_error(["check", str(site)])
+    assert err == (f"Error: {folder / 'meter.parquet'}: column {value!r} holds List(Float64) "
+                   "values; expected one number or text per row")
+
+
 def test_a_device_as_site_file_is_refused(tmp_path):
     err = _one_error(["check", "/dev/zero"])
     assert err == "Error: /dev/zero: is a device, not a file; give the site file itself"

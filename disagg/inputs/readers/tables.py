@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import os
 import re
+import stat
 from pathlib import Path
 
 import polars as pl
@@ -57,6 +59,24 @@ def _encoding_error(path: Path, what: str) -> InputError | None:
                       "it as UTF-8")
 
 
+def existing_file(path: Path, what: str) -> None:
+    """Raise InputError unless path is an existing regular file: a missing one, or a FIFO
+    (reading it would block forever), device (read until memory runs out), socket or folder,
+    named as such (config.check_regular_file does the same for the site file)."""
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such {what} file; check the path in the site file") from None
+    except (OSError, ValueError) as exc:  # a name too long, a symbolic link loop, ...
+        why = getattr(exc, "strerror", None) or exc
+        raise InputError(f"{path}: cannot use this {what} file path ({why})") from None
+    if not stat.S_ISREG(mode):
+        kind = ("a folder" if stat.S_ISDIR(mode) else "a FIFO (named pipe)"
+                if stat.S_ISFIFO(mode) else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
+                else "a socket" if stat.S_ISSOCK(mode) else "not a regular file")
+        raise InputError(f"{path}: is {kind}, not a file; give the {what} file itself")
+
+
 def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.DataFrame:
     """Read a CSV (every column as text) or Parquet file.
 
@@ -68,12 +88,7 @@ def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.Da
         InputError: missing file, unknown extension, a missing column, or a file the reader
         cannot parse.
     """
-    try:
-        exists = path.is_file()
-    except (OSError, ValueError) as exc:  # e.g. a name too long for the file system
-        raise InputError(f"{path}: cannot use this {what} file path ({exc})") from None
-    if not exists:
-        raise InputError(f"{path}: no such {what} file; check the path in the site file")
+    existing_file(path, what)
     suffix = path.suffix.lower()
     try:
         if suffix == ".csv":
@@ -94,15 +109,47 @@ def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.Da
                             f"{', '.join(repr(c) for c in names)}")
                     raise InputError(f"{path}: column {col!r} not found; the file has "
                                      f"{', '.join(repr(c) for c in names)}")
+            if suffix != ".csv":
+                schema = lazy.collect_schema()
+                for col in columns:
+                    if schema[col].is_nested():
+                        raise InputError(f"{path}: column {col!r} holds {schema[col]} values; "
+                                         "expected one number or text per row")
             return lazy.select(list(dict.fromkeys(columns))).collect()
     except (pl.exceptions.PolarsError, OSError) as exc:
         if suffix == ".csv" and "utf-8" in str(exc).lower().replace("utf8", "utf-8"):
             encoding = _encoding_error(path, what)
             if encoding is not None:
                 raise encoding from None
+        if suffix == ".csv" and "more fields" in str(exc):
+            long_row = _first_long_row(path, what)
+            if long_row is not None:
+                raise long_row from None
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{path}: cannot read the {what} file ({first})") from None
     raise InputError(f"{path}: unknown file type {suffix!r}; expected .csv or .parquet")
+
+
+def _first_long_row(path: Path, what: str) -> InputError | None:
+    """The error naming the first line with more fields than the header (read again with
+    the csv module, only after the fast reader failed), or None when none is found."""
+    import csv
+
+    try:
+        with path.open(newline="", encoding="utf-8", errors="replace") as f:
+            rows = csv.reader(f)
+            header = next(rows, None)
+            if header is None:
+                return None
+            for row in rows:
+                if len(row) > len(header):
+                    return InputError(
+                        f"{path}: line {rows.line_num}: {len(row)} fields where the header has "
+                        f"{len(header)}; expected a {what} file with one value per column (a "
+                        "comma in a value must be inside double quotes)")
+    except (OSError, csv.Error):
+        return None
+    return None
 
 
 def require_columns(frame: pl.DataFrame, path: Path, columns: list[str]) -> None:
