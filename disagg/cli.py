@@ -75,10 +75,16 @@ def _guarded(fn):
         _fail(str(exc).replace("\n", " "))
     except typer.Exit:
         raise
-    except BrokenPipeError:
-        # The reader of our output went away (e.g. `| head`): not an error of ours.
-        sys.stderr.close()
-        raise typer.Exit(0) from None
+    except BrokenPipeError as exc:
+        if _stdout_gone():
+            # The reader of our output went away (e.g. `| head`): not an error of ours.
+            sys.stderr.close()
+            raise typer.Exit(0) from None
+        # Another pipe broke (a helper process's): an error like any other.
+        if _state["debug"]:
+            raise
+        _fail(f"internal error (BrokenPipeError: {exc}); run `disagg --debug ...` for the "
+              "full trace and report it", code=2)
     except KeyboardInterrupt:
         # Ctrl-C: every writer commits a whole set or nothing (disagg.present.commit).
         typer.echo("Interrupted: each output folder holds either its previous files or the "
@@ -100,6 +106,19 @@ def _guarded(fn):
             raise
         _fail(f"internal error ({type(exc).__name__}: {exc}); run `disagg --debug ...` for the "
               "full trace and report it", code=2)
+
+
+def _stdout_gone() -> bool:
+    """Whether standard output is a pipe whose reader has gone (poll reports an error on
+    it); True when that cannot be told (no file descriptor), as before this check."""
+    import select
+
+    try:
+        poll = select.poll()
+        poll.register(sys.stdout.fileno(), select.POLLOUT)
+        return any(event & (select.POLLERR | select.POLLHUP) for _, event in poll.poll(0))
+    except (AttributeError, OSError, ValueError):
+        return True
 
 
 def _signal_name(signum: int) -> str:

@@ -650,9 +650,14 @@ def _run_pool(context, jobs: list[SiteJob], indices: list[int], workers: int,
                                initializer=_init_worker, initargs=(stop, state, os.getpid()))
     futures = {}
     try:
-        with signals.held():  # submitting starts the workers
-            for i in indices:
-                futures[pool.submit(_run_job, i, jobs[i])] = i
+        try:
+            with signals.held():  # submitting starts the workers
+                for i in indices:
+                    futures[pool.submit(_run_job, i, jobs[i])] = i
+        except OSError as exc:  # the start method's server or a worker cannot be started
+            _kill_pool(pool)
+            raise DisaggError(f"cannot start the local worker processes ({type(exc).__name__}: "
+                              f"{exc}); no site was run") from None
         procs = list((getattr(pool, "_processes", None) or {}).values())
         for fut in as_completed(futures):
             i = futures[fut]
