@@ -806,7 +806,33 @@ def _run_on_cluster(address: str, jobs: list[SiteJob],
     except ImportError:
         raise ConfigError(f"--cluster {address}: needs dask distributed; install it with "
                           "pip install 'disagg[cluster]'") from None
-    client = _connect(address)
+    with _dask_logs_quiet():
+        return _run_with_client(address, _connect(address), jobs, progress, dask_wait)
+
+
+@contextlib.contextmanager
+def _dask_logs_quiet():
+    """Keep dask's own log records (a lost scheduler is logged as an ERROR with a traceback
+    of some 35 lines) off stderr while the batch runs; what happened is the batch's one
+    Error line."""
+    import logging
+
+    # Every distributed logger by name: dask's configuration sets some children's levels (a
+    # child's record reaches the parent's handlers whatever the parent's level).
+    names = ["distributed"] + [n for n in logging.root.manager.loggerDict
+                               if n.startswith("distributed.")]
+    levels = {n: logging.getLogger(n).level for n in names}
+    for n in names:
+        logging.getLogger(n).setLevel(logging.CRITICAL + 1)
+    try:
+        yield
+    finally:
+        for n, level in levels.items():
+            logging.getLogger(n).setLevel(level)
+
+
+def _run_with_client(address: str, client, jobs: list[SiteJob], progress: Progress | None,
+                     dask_wait) -> list[SiteOutcome]:
     outcomes: list[SiteOutcome | None] = [None] * len(jobs)
     total = len(jobs)
     done = 0
