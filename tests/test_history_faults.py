@@ -236,3 +236,18 @@ def test_site_toml_files_in_folders_whose_ids_would_collide_are_refused(tmp_path
     assert "by the site file north wing/site.toml;" in str(exc.value)
     moved = SimpleNamespace(name="A", path=tmp_path / "elsewhere" / "north wing" / "site.toml")
     history.store_drift(tmp_path / "hist", moved, _drift_of([2]))  # the same building
+
+
+def test_a_foreign_file_under_another_site_is_one_error_naming_it(tmp_path):
+    # A Parquet file with none of the history's columns under another site's folder used to
+    # end every site's `disagg history` in an internal error (a ShapeError from the scan).
+    _store(tmp_path, "old")
+    part = tmp_path / "kind=breakdown" / "site=other" / "period=2025-01" / "part.parquet"
+    part.parent.mkdir(parents=True)
+    pl.DataFrame({"foo": [1, 2], "bar": ["x", "y"]}).write_parquet(part)
+    with pytest.raises(InputError) as exc:
+        history.read_history(tmp_path, "plant")
+    assert str(exc.value) == (f"{part}: not a disagg history file: it has no column "
+                              "'equipment'; move it out of the history folder")
+    part.unlink()
+    assert history.read_history(tmp_path, "plant")["flags"].unique().to_list() == ["old"]
