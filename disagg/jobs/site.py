@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -29,7 +28,7 @@ from disagg.analyses.pipeline import (
 from disagg.errors import ConfigError, DisaggError, InputError, OutputError
 from disagg.inputs.config import check_regular_file, load_site, resolve_path
 from disagg.inputs.vee import check_on_duplicate
-from disagg.present import terminal
+from disagg.present import commit, terminal
 from disagg.present.outputs import (
     OPTIONAL_BREAKDOWN_FILES,
     neutralise_csv_text,
@@ -46,6 +45,14 @@ if TYPE_CHECKING:
     from disagg.analyses.drift import DriftResult
 
 Period = tuple[dt.date, dt.date]
+
+
+def finish_dead_writes(out: Path) -> None:
+    """Before a run: finish (or remove) what runs killed while writing into out left there
+    (disagg.present.commit.recover), so the folder holds whole sets even when this run fails
+    before writing its own."""
+    if Path(out).is_dir():
+        commit.recover(Path(out).resolve())
 
 
 def check_out_folder(out: Path) -> None:
@@ -222,6 +229,7 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     after the outputs were written says so (disagg.present.history.outputs_already_written).
     With opts.drift the result is a (BreakdownResult, DriftResult) pair.
     """
+    finish_dead_writes(opts.out)
     check_memory_limit(opts.site, opts.date_from, opts.date_to)
     result = breakdown_site(opts.site, opts.date_from, opts.date_to, opts.confidence,
                             opts.log_offset_min, on_duplicate=opts.on_duplicate,
@@ -372,6 +380,7 @@ def _read_state(path: Path | None) -> dict | None:
 
 def run_drift(opts: DriftOptions) -> Run:
     """Track every draw, write drift.csv/.json (and the state), store the days tracked."""
+    finish_dead_writes(opts.out)
     check_memory_limit(opts.site, opts.date_from, opts.date_to)
     from disagg.analyses.drift import drift_site
 
@@ -409,6 +418,7 @@ class CompareOptions:
 
 def run_compare(opts: CompareOptions) -> Run:
     """Each draw in two periods and the verdict; writes compare.csv (and compare.json)."""
+    finish_dead_writes(opts.out)
     if opts.from_history:
         site = load_site(opts.site)
         if site.history is None:
@@ -530,6 +540,7 @@ def run_report(opts: ReportOptions, progress: Progress | None = None) -> Run:
     drift, the breakdown's estimates no longer hold the per-interval fit columns (see
     _release_fit_columns).
     """
+    finish_dead_writes(opts.out)
     check_memory_limit(opts.site, opts.date_from, opts.date_to)
     from disagg.present.report import render_report
 
