@@ -764,6 +764,17 @@ def test_a_latin1_meter_file_is_named_with_its_line_and_byte(tmp_path):
                            "as UTF-8")
 
 
+def test_a_utf16_meter_file_is_named_as_utf16(tmp_path):
+    # Python's "utf-16" codec writes the byte order mark FF FE first (little-endian here);
+    # the Unicode Standard (sec. 23.8) defines that mark.
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"])
+    path.write_bytes("time,kwh\n2025-01-06 00:15:00,1.0\n".encode("utf-16"))
+    with pytest.raises(InputError) as e:
+        read_meter(site.meter, site.timezone)
+    assert _message(e) == (f"{path}: line 1: byte 0xFF is not UTF-8 text; expected a UTF-8 "
+                           "meter file (it is UTF-16 text): export or save it as UTF-8")
+
+
 def test_a_latin1_header_is_blamed_on_the_encoding_not_a_missing_column(tmp_path):
     site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"], header="time,kwh")
     path.write_bytes("time,kwh,Zähler\n2025-01-06 00:15:00,1.0,x\n".encode("latin-1"))

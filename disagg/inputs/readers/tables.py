@@ -54,9 +54,16 @@ def _encoding_error(path: Path, what: str) -> InputError | None:
     if bad is None:
         return None
     line, byte = bad
+    try:
+        with path.open("rb") as f:
+            head = f.read(2)
+    except OSError:
+        head = b""
+    # A UTF-16 file starts with its byte order mark FF FE or FE FF (Unicode Standard, sec. 23.8).
+    maybe = ("it is UTF-16 text" if head in (b"\xff\xfe", b"\xfe\xff")
+             else "it may be Latin-1 or Windows-1252")
     return InputError(f"{path}: line {line}: byte 0x{byte:02X} is not UTF-8 text; expected a "
-                      f"UTF-8 {what} file (it may be Latin-1 or Windows-1252): export or save "
-                      "it as UTF-8")
+                      f"UTF-8 {what} file ({maybe}): export or save it as UTF-8")
 
 
 def existing_file(path: Path, what: str) -> None:
