@@ -189,8 +189,13 @@ def load_portfolio(path: str | Path) -> Portfolio:
         table = data["portfolio"]
         for key in table:
             if key not in ("sites", "history"):
-                raise ConfigError(f"{path}: [portfolio] {key}: unknown setting; expected one "
-                                  "of history, sites")
+                import difflib
+
+                near = difflib.get_close_matches(key.lower(), ["history", "sites"], n=1,
+                                                 cutoff=0.6)
+                hint = f" (did you mean {near[0]}?)" if near else ""
+                raise ConfigError(f"{path}: [portfolio] {key}: unknown setting{hint}; expected "
+                                  "one of history, sites")
         listed = table.get("sites")
         if not isinstance(listed, list) or not listed:
             raise ConfigError(f"{path}: [portfolio] sites = {listed!r}: expected a list of "
