@@ -251,3 +251,28 @@ def test_a_foreign_file_under_another_site_is_one_error_naming_it(tmp_path):
                               "'equipment'; move it out of the history folder")
     part.unlink()
     assert history.read_history(tmp_path, "plant")["flags"].unique().to_list() == ["old"]
+
+
+@pytest.mark.parametrize("command", ["breakdown", "drift"])
+def test_a_colliding_history_id_is_refused_before_any_output(tmp_path, command):
+    # The clash used to be found only when storing, after the outputs were written.
+    from test_portfolio import write_site_files
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+
+    runner = CliRunner()
+    hist = str(tmp_path / "hist")
+    first = write_site_files(tmp_path, "a b", 5, days=20, history=hist)
+    second = write_site_files(tmp_path, "a_b", 6, days=20, history=hist)
+    r = runner.invoke(app, [command, str(first), "--out", str(tmp_path / "out1")] +
+                      (["--memory", "2"] if command == "drift" else []))
+    assert r.exit_code == 0, r.output
+    r = runner.invoke(app, [command, str(second), "--out", str(tmp_path / "out2")] +
+                      (["--memory", "2"] if command == "drift" else []))
+    assert r.exit_code == 1
+    assert r.stderr.splitlines() == [
+        f"Error: {second}: its history id 'a_b' is already used in {tmp_path / 'hist'} by the "
+        "site file a b.toml; names that differ only in characters other than letters, digits, "
+        "'.', '_' and '-' share an id: rename one of the two"]
+    assert not (tmp_path / "out2").exists()

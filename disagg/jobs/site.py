@@ -250,6 +250,7 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     if folder is not None:
         from disagg.present import history as hist  # only when a history is used
         hist.check_folder(folder)  # a bad history folder fails before any output
+        hist.check_site_id(folder, result.site)  # so does an id another site file uses
     written = {"breakdown.xlsx": opts.xlsx, "report.html": html is not None}
     stale = [n for n in OPTIONAL_BREAKDOWN_FILES
              if not written[n] and (Path(opts.out) / n).is_file()]

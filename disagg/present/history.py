@@ -145,6 +145,15 @@ def check_folder(folder: str | Path) -> Path:
     return folder
 
 
+def check_site_id(folder: str | Path, site, kinds: tuple[str, ...] = KINDS) -> None:
+    """Refuse, before any output is written, a site whose history id another site file's
+    history already uses (see _check_id; storing checks again under the lock)."""
+    folder = Path(folder).resolve()
+    sid = site_id(site.path)
+    for kind in kinds:
+        _check_id(folder, kind, sid, site)
+
+
 @contextlib.contextmanager
 def outputs_already_written(written: list[Path]) -> Iterator[None]:
     """Around storing that follows writing a run's outputs: a DisaggError raised inside
@@ -659,10 +668,12 @@ def site_folder(folder: str | Path, kind: str, site_file: str | Path) -> Path:
 
 
 def check_configured(site) -> None:
-    """check_folder on the site's [history] folder, when its file names one."""
+    """check_folder and check_site_id on the site's [history] folder, when its file names
+    one."""
     folder = getattr(site, "history", None)
     if folder is not None:
         check_folder(folder)
+        check_site_id(folder, site)
 
 
 def store_drift_configured(site, drift_result, written: list[Path] | None = None) -> list[Path]:
