@@ -216,8 +216,10 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
     outside = (year < FIRST_YEAR) | (year > LAST_YEAR)
     if outside.any():
         idx = int(outside.arg_max())  # type: ignore[arg-type]
+        # The time as the file has it (not converted to UTC), when it is text.
+        written = frame[column][idx] if frame[column].dtype == pl.String else times[idx]
         raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: time "
-                         f"{times[idx]} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
+                         f"{written} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
                          "expected a date and time such as 2025-03-09T03:15:00")
     return times
 
