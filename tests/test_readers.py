@@ -134,6 +134,21 @@ def test_meter_naive_hourly_times_fall_back_hour_written_twice(tmp_path):
     assert m.frame["energy_kwh"].to_list() == [1.0, 2.0, 3.0, 4.0]
 
 
+def test_meter_naive_times_sorted_as_text_across_the_fall_back_hour_say_why(tmp_path):
+    # Sorted as text, the repeated hour's two passes interleave (01:00, 01:00, 01:15, ...):
+    # the order no longer tells them apart, and the error says the hour repeats.
+    local = ["00:45", "01:00", "01:00", "01:15", "01:15", "01:30", "01:30", "01:45", "01:45",
+             "02:00"]
+    site, path = _meter(tmp_path, [f"2025-11-02 {t}:00,{i + 1}" for i, t in enumerate(local)])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: line 6, column 'time': time 2025-11-02 07:15:00+00:00 repeats line 5 with a "
+        "different reading; expected one reading per interval; 2025-11-02 01:15 local time "
+        "occurs twice on the day the clocks go back (America/Chicago): give times with their "
+        "UTC offset (such as 2025-11-02T01:15:00-06:00) or in UTC")
+
+
 def test_meter_naive_skipped_spring_forward_time_is_an_error_naming_the_row(tmp_path):
     site, path = _meter(tmp_path, [
         "2025-03-09 01:30:00,1.0",

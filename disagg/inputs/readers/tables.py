@@ -198,6 +198,25 @@ def _parse_offset_times(text: pl.Series) -> pl.Series | None:
     return pl.from_epoch(wall.dt.epoch("us") - shift_us, time_unit="us").dt.replace_time_zone("UTC")
 
 
+def repeated_hour_hint(t, tz: str) -> str:
+    """"; ..." naming the hour the clocks repeat when they go back, when the UTC time t falls
+    in it in the zone tz (two rows there with local times without their UTC offset read as
+    one time), else ""."""
+    import zoneinfo
+
+    try:
+        zone = zoneinfo.ZoneInfo(tz)
+        wall = t.astimezone(zone).replace(tzinfo=None)
+    except (AttributeError, ValueError, OverflowError, zoneinfo.ZoneInfoNotFoundError):
+        return ""
+    if (wall.replace(tzinfo=zone, fold=0).utcoffset()
+            == wall.replace(tzinfo=zone, fold=1).utcoffset()):
+        return ""
+    return (f"; {wall:%Y-%m-%d %H:%M} local time occurs twice on the day the clocks go back "
+            f"({tz}): give times with their UTC offset (such as "
+            f"{wall.replace(tzinfo=zone, fold=1).isoformat()}) or in UTC")
+
+
 # Times outside these years are typing or export errors, and beyond them the nanosecond
 # times of the alignment (numpy datetime64[ns]: years 1678 to 2261) would overflow.
 FIRST_YEAR, LAST_YEAR = 1900, 2199
