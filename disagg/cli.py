@@ -175,7 +175,8 @@ def _path_option(*names: str, **kwargs):
     return typer.Option(*names, readable=False, **kwargs)
 
 
-SiteArg = Annotated[Path, _path_argument(help="The site TOML file.", show_default=False)]
+SiteArg = Annotated[Path, _path_argument(help="The site TOML file.", show_default=False,
+                                          metavar="SITE")]
 FromOpt = Annotated[Optional[str], typer.Option("--from", help="First local date to use "
                                                 "(YYYY-MM-DD); default: the meter's first.")]
 ToOpt = Annotated[Optional[str], typer.Option("--to", help="Last local date to use "
@@ -362,7 +363,7 @@ def batch(
     portfolio: Annotated[Path, _path_argument(help="A folder of site TOML files (every *.toml "
                                               "directly in it and every */site.toml one level "
                                               "down), or a portfolio TOML listing them.",
-                                              show_default=False)],
+                                              show_default=False, metavar="PORTFOLIO")],
     out: Annotated[Path, _path_option("--out", help="Folder for portfolio.csv, "
                                       "portfolio_equipment.csv and one output folder per site "
                                       "(its site file's path in the portfolio without "
