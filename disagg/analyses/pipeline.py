@@ -558,6 +558,19 @@ def check_log_offset(offset_min: float) -> None:
                           f"-{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
 
 
+# Longest tracker memory [d]: ten years, longer than any meter history a drift run compares
+# against (common practice, no source).
+MAX_MEMORY_DAYS = 3660.0
+
+
+def check_memory_days(days: float, option: str = "--memory") -> None:
+    """Raise ConfigError for a tracker memory that is not a finite number of days above 0 and
+    at most MAX_MEMORY_DAYS (option: the command-line option named in the message)."""
+    if not (math.isfinite(days) and 0 < days <= MAX_MEMORY_DAYS):
+        raise ConfigError(f"{option} {days:g}: expected a number of days above 0 and at most "
+                          f"{MAX_MEMORY_DAYS:g}")
+
+
 def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,
                     on_duplicate: str = "error") -> ClockOffset:
     """Search the run-log clock offset (minutes to add to the log's times, on top of
