@@ -89,13 +89,12 @@ def test_refit_matches_statsmodels_ols_on_the_same_columns():
     e = estimate_draws(s.site, aligned, form=Form("occupied", False))
     members = [t.members for t in e.terms if t.id in aligned.equipment_ids]
     d = design(s.site, aligned, members, Form("occupied", False))
-    k = len(members)
-    on_off = [j for j, m in enumerate(members)]  # all five loads of make_building are on-off
+    k = len(members)  # all five loads of make_building are on-off: each gets its columns
     start = d.frame["start_utc"].dt.epoch("ns").to_numpy()
     end = d.frame["end_utc"].dt.epoch("ns").to_numpy()
-    R = response_columns(d.X[:, on_off], d.frame["interval_h"].to_numpy(), start, end)
+    R = response_columns(d.X[:, :k], d.frame["interval_h"].to_numpy(), start, end)
     ols = sm.OLS(d.y, np.column_stack([d.X, R])).fit()
-    for j, m in enumerate(members[:k]):
+    for j, m in enumerate(members):
         got = e.variants["switch-on response"][m[0]]["kw"]
         assert got == pytest.approx(ols.params[j], rel=1e-6), m
 

@@ -16,6 +16,7 @@ import pytest
 import statsmodels.api as sm
 
 import disagg.fit.design as design_module
+from disagg.fit.align import Aligned
 from disagg.fit.design import BaseloadBuilder, rows_of
 from disagg.fit.estimate import estimate_draws
 from disagg.fit.select import Form
@@ -29,8 +30,8 @@ def swing_building(seed: int, days: int = 56, noise_kwh: float = 0.0,
                    piecewise_linear: bool = False, interval_min: int = 15):
     """A building of two loads: a cycling pump P-1 (on-off, 8 kW) and a variable-speed fan
     F-1 (15 kW at full speed; on about 70 % of working days, from a random hour until
-    19:00, at a speed setting of the day) whose speed follows the baseload's daily swing. The baseload
-    is 20 kW + 6 kW x sin(2 pi (t - 9 h) / 24 h) every day (t: the interval's local
+    19:00, at a speed setting of the day) whose speed follows the baseload's daily swing.
+    The baseload is 20 kW + 6 kW x sin(2 pi (t - 9 h) / 24 h) every day (t: the interval's local
     midpoint), or, with piecewise_linear, that curve's value and slope at the middle of each
     clock hour continued straight through the hour (exactly hourly levels plus within-hour
     slopes). Declared baseload: hour-of-week."""
@@ -63,14 +64,14 @@ def swing_building(seed: int, days: int = 56, noise_kwh: float = 0.0,
     y = y + rng.normal(0, noise_kwh, n) if noise_kwh else y
     site = synthetic_site("swing", f"swing {seed}", list(status), {}, "test",
                           BaseloadSettings("hour-of-week"), variable=("F-1",))
-    from synthetic import aligned_15min as _  # noqa: F401  (the same builder)
-    aligned = aligned_15min(local.dt.convert_time_zone("UTC"), y, status) if interval_min == 15 \
-        else _aligned(local.dt.convert_time_zone("UTC"), y, status, step)
+    start_utc = local.dt.convert_time_zone("UTC")
+    aligned = (aligned_15min(start_utc, y, status) if interval_min == 15
+               else _aligned(start_utc, y, status, step))
     return site, aligned
 
 
 def _aligned(start_utc, y, status, step):
-    from disagg.fit.align import Aligned
+    """Every interval of `step` hours used, each load's run-hours status x step [h]."""
     n = len(y)
     frame = pl.DataFrame({"start_utc": start_utc,
                           "end_utc": start_utc + dt.timedelta(hours=step),
