@@ -514,10 +514,6 @@ class SwitchingSteps:
     z: np.ndarray
 
 
-# Rows per chunk in switching_steps (bounds its temporaries on long 1-minute series).
-_STEP_CHUNK_ROWS = 8192
-
-
 def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Split one run-hours column [h] into a switch-on part and a switch-off part [h] that
     add up to it: the on part's on-fraction accumulates the rises of the load's on-fraction
@@ -575,12 +571,8 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
         return None
     inv_h = 1.0 / interval_h
     keep = np.ones(n - 1, dtype=bool) if adjacent is None else adjacent.copy()
-    # A chunk of rows at a time: no n x p temporary (the same numbers as whole columns).
-    chunks = [(a, min(a + _STEP_CHUNK_ROWS, n - 1)) for a in range(0, n - 1, _STEP_CHUNK_ROWS)]
-    if p > kx:
-        for a, b in chunks:
-            dz = np.diff(X[a:b + 1, kx:] * inv_h[a:b + 1, None], axis=0)
-            keep[a:b] &= (np.abs(dz) <= NUMERICAL_TOL).all(axis=1)
+    for c in range(kx, p):  # one column at a time: no n x p temporary
+        keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
     ind = None
     if hour_of_day is not None:
         hours, level = np.unique(hour_of_day[1:][keep], return_inverse=True)
@@ -589,17 +581,13 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     m = k + kx
     if keep.sum() < MIN_ROWS_PER_COLUMN * (m + nh):
         return None
-    # The first differences of split_switching's parts in kW are the rises and the falls of
-    # the on-fraction: taken from the differences directly (no cumulative sums to difference).
     Xd = np.empty((int(keep.sum()), m))
-    at = 0
-    for a, b in chunks:
-        d = np.diff(X[a:b + 1, :kx] * inv_h[a:b + 1, None], axis=0)[keep[a:b]]
-        r = slice(at, at + len(d))
-        np.maximum(d[:, :k], 0.0, out=Xd[r, :k])
-        np.subtract(d[:, :k], Xd[r, :k], out=Xd[r, k:2 * k])
-        Xd[r, 2 * k:] = d[:, k:]
-        at += len(d)
+    for c in range(k):
+        up, down = split_switching(X[:, c], interval_h)
+        Xd[:, c] = np.diff(up * inv_h)[keep]
+        Xd[:, k + c] = np.diff(down * inv_h)[keep]
+    for c in range(k, kx):
+        Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
     mean, sd = prior
     f = fit_model(Xd, np.diff(y * inv_h)[keep], np.concatenate([mean[:k], mean[:kx], np.zeros(nh)]),
                   np.concatenate([sd[:k], sd[:kx], np.full(nh, drift_sd)]),
