@@ -234,8 +234,9 @@ def run(cmd: list[str]) -> dict:
             "stderr": err.strip().splitlines()[-1:] if err.strip() else []}
 
 
-# What a breakdown imports before it runs (the start-up measure).
-STARTUP_IMPORTS = "import disagg.cli, disagg.jobs.site"
+# What a breakdown imports before it runs (the start-up measure), leaving as the `disagg`
+# command does (disagg.cli.main: no interpreter teardown).
+STARTUP_IMPORTS = "import os, disagg.cli, disagg.jobs.site; os._exit(0)"
 
 
 def compile_disagg() -> tuple[bool, list[Path]]:
