@@ -9,7 +9,6 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import math
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -159,22 +158,14 @@ def breakdown_site(site_path: str | Path, date_from: dt.date | None = None,
                                                        log_offset_min, on_duplicate, progress)
     require_usable(site, aligned)
     applied = site.runlog.log_offset_min if log_offset_min is None else log_offset_min
-    report(progress, "fitting", 0, 1)
-    # The quick clock test runs beside the whole-range fit, in a thread of its own: both
-    # spend most of their time in numpy and LAPACK, which release the GIL, so with a free
-    # core the test adds little to the wall time. Neither changes what the other reads (the
-    # fit never reads aligned.notes; the hours it may share are the same numbers,
-    # align.share_hours), and the test's warning joins the notes where it did before.
-    with ThreadPoolExecutor(1, thread_name_prefix="disagg-clock") as pool:
-        clock = pool.submit(offset_warning, site, meter, runlog, applied, aligned, date_from,
-                            date_to)
-        try:
-            est = estimate_draws(site, aligned, confidence)
-        except ValueError as exc:
-            raise InputError(f"{_short_data_source(site, aligned)}: {exc}") from None
-        clock_warning = clock.result()
+    clock_warning = offset_warning(site, meter, runlog, applied, aligned, date_from, date_to)
     if clock_warning:
         aligned.notes.append(clock_warning)
+    report(progress, "fitting", 0, 1)
+    try:
+        est = estimate_draws(site, aligned, confidence)
+    except ValueError as exc:
+        raise InputError(f"{_short_data_source(site, aligned)}: {exc}") from None
     table, months = monthly_fits(site, aligned, est, confidence, progress)
     estimated_months: list[str] = []
     if estimate:
