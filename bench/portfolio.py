@@ -208,7 +208,7 @@ def office_fits() -> dict:
 
 # --- measuring ------------------------------------------------------------------------------
 
-def run(cmd: list[str], env: dict[str, str] | None = None) -> dict:
+def run(cmd: list[str], env: dict[str, str] | None = None, cwd: str | None = None) -> dict:
     """Run cmd; wall time [s], CPU time [s], max RSS [MB] of the process, exit status.
 
     The max RSS comes from GNU time (/usr/bin/time) when present: the rusage of a child
@@ -221,7 +221,7 @@ def run(cmd: list[str], env: dict[str, str] | None = None) -> dict:
                 if gnu_time.exists() else cmd)
         t = time.perf_counter()
         proc = subprocess.Popen(full, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-                                env=None if env is None else {**os.environ, **env})
+                                env=None if env is None else {**os.environ, **env}, cwd=cwd)
         _, status, usage = os.wait4(proc.pid, 0)
         wall = time.perf_counter() - t
         err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
@@ -263,13 +263,15 @@ def startups(n: int = 5) -> tuple[tuple[float, float], tuple[float, float]]:
     first on the path, PYTHONDONTWRITEBYTECODE=1: every process compiles disagg's modules);
     the two kinds taken in turn, so both see the same load."""
     runs: dict[bool, list[dict]] = {True: [], False: []}
-    with tempfile.TemporaryDirectory() as src:
+    # Run from an empty folder: `python -c` puts the working folder first on the path, and
+    # a checkout's own disagg there would be imported instead of the one meant.
+    with tempfile.TemporaryDirectory() as src, tempfile.TemporaryDirectory() as here:
         shutil.copytree(disagg_package(), Path(src) / "disagg",
                         ignore=shutil.ignore_patterns("__pycache__"))
         for _ in range(n):
             for compiled in (True, False):
                 env = None if compiled else {"PYTHONPATH": src, "PYTHONDONTWRITEBYTECODE": "1"}
-                runs[compiled].append(run([sys.executable, "-c", STARTUP_IMPORTS], env))
+                runs[compiled].append(run([sys.executable, "-c", STARTUP_IMPORTS], env, here))
     med = statistics.median
     return tuple((med(r["wall_s"] for r in runs[c]), med(r["cpu_s"] for r in runs[c]))
                  for c in (True, False))  # type: ignore[return-value]
