@@ -3,6 +3,10 @@ restructuring of disagg/fit/estimate.py changes no number.
 
     python bench/estimate_golden.py save /tmp/golden.pkl      # before the change
     python bench/estimate_golden.py compare /tmp/golden.pkl   # after: differences > 1e-12
+    python bench/estimate_golden.py compare /tmp/golden.pkl --tol 1e-9   # a speed change
+
+The fit.json blocks (form, variants, identifiability, quality) are saved as JSON text and
+compared number by number, to the same tolerance (relative, or absolute below 1).
 
 Cases (all invented data: the demo building and tests/synthetic*.py): the demo site's whole
 breakdown; well-specified and misspecified synthetic buildings (occupied profile, constant
@@ -95,6 +99,19 @@ def cases() -> dict[str, dict]:
 
 
 def _diff(a, b, path: str, tol: float, bad: list[str]) -> None:
+    if isinstance(a, str) and isinstance(b, str) and a[:1] in "{[" and a != b:
+        try:  # a fit.json block as JSON text: compare its numbers to the tolerance
+            a, b = json.loads(a), json.loads(b)
+        except ValueError:
+            pass
+    if isinstance(a, list) and isinstance(b, list) and any(
+            isinstance(x, (dict, list)) for x in a + b):
+        if len(a) != len(b):
+            bad.append(f"{path}: length {len(a)} != {len(b)}")
+            return
+        for i, (x, z) in enumerate(zip(a, b)):
+            _diff(x, z, f"{path}[{i}]", tol, bad)
+        return
     if isinstance(a, dict):
         if set(a) != set(b):
             bad.append(f"{path}: keys {sorted(map(str, set(a) ^ set(b)))}")
@@ -119,7 +136,8 @@ def _diff(a, b, path: str, tol: float, bad: list[str]) -> None:
             i = np.flatnonzero(~ok.ravel())[0]
             bad.append(f"{path}: {(~ok).sum()} values differ, first {x.ravel()[i]!r} -> "
                        f"{z.ravel()[i]!r}")
-    elif isinstance(a, float) and isinstance(b, float):
+    elif (isinstance(a, (int, float)) and isinstance(b, (int, float))
+          and not isinstance(a, bool) and not isinstance(b, bool)):
         if not (abs(a - b) <= tol * max(abs(a), 1.0) or (np.isnan(a) and np.isnan(b))):
             bad.append(f"{path}: {a!r} -> {b!r}")
     elif a != b:
@@ -127,8 +145,14 @@ def _diff(a, b, path: str, tol: float, bad: list[str]) -> None:
 
 
 def main() -> int:
-    mode, path = sys.argv[1], Path(sys.argv[2])
-    skip = set(sys.argv[3:])  # fields to leave out of the comparison (changed on purpose)
+    args = sys.argv[1:]
+    tol = 1e-12
+    if "--tol" in args:
+        i = args.index("--tol")
+        tol = float(args[i + 1])
+        del args[i:i + 2]
+    mode, path = args[0], Path(args[1])
+    skip = set(args[2:])  # fields to leave out of the comparison (changed on purpose)
     now = cases()
     if mode == "save":
         path.write_bytes(pickle.dumps(now))
@@ -139,8 +163,8 @@ def main() -> int:
     for name, fields in before.items():
         for k, v in fields.items():
             if k not in skip:
-                _diff(v, now[name][k], f"{name}.{k}", 1e-12, bad)
-    print("\n".join(bad) if bad else f"all {len(before)} cases identical to 1e-12")
+                _diff(v, now[name][k], f"{name}.{k}", tol, bad)
+    print("\n".join(bad) if bad else f"all {len(before)} cases identical to {tol:g}")
     return 1 if bad else 0
 
 

@@ -8,7 +8,8 @@ loads, ~300k event-log rows each, known truth) and one site-year of 1-minute dat
 loads, then measures, and writes the table to bench/RESULTS.md (replaced on every run):
 
 - `disagg breakdown SITE --out DIR` end-to-end as a fresh process (process start included),
-  each site once: median seconds per site-year, max RSS of the process (os.wait4);
+  each site once after one untimed run (the generated files synced to disk first): median
+  seconds per site-year, max RSS of the process (os.wait4);
 - in a fresh process per site, each step alone (the better of two runs, so imports and
   caches are warm; wall and CPU time): reading, alignment, the whole-range fit (with the
   baseload form comparison), the 12 monthly fits as a breakdown does them (each month
@@ -17,6 +18,8 @@ loads, then measures, and writes the table to bench/RESULTS.md (replaced on ever
 - `disagg batch FOLDER --out DIR --workers 1` and `--workers 2`: portfolio throughput, and
   from it the time for 1,000 site-years on 2 cores;
 - max RSS of the breakdown of the 1-minute, 50-load site-year;
+- process start-up alone (a process that imports what a breakdown imports), also once
+  without disagg's compiled bytecode;
 - the straightforward approach (pandas reads the CSV files, a Python loop over the run log's
   on-spells builds the run-hours of every interval, statsmodels OLS with Newey-West HAC
   covariance for the whole year and each of the 12 months) as a fresh process on the same
@@ -25,6 +28,13 @@ loads, then measures, and writes the table to bench/RESULTS.md (replaced on ever
 
 Every wall time is next to the 1-minute load average when it was taken: the machine may be
 shared, and other work inflates wall times but hardly CPU times.
+
+Bytecode: `pip install .` compiles a package's modules when it installs them, so an installed
+disagg (like pandas and statsmodels beside it) starts from compiled bytecode. From a source
+tree (an editable install) with PYTHONDONTWRITEBYTECODE=1 set, every process would compile
+disagg's modules again (about 0.1 s, not what a user's install does): the benchmark compiles
+them first (compileall, as pip does; the __pycache__ folders it made are removed at the end)
+and reports start-up both ways.
 
 --quick: 3 sites (the default is 8). --keep DIR: generate into DIR and keep the files.
 """
@@ -199,7 +209,7 @@ def office_fits() -> dict:
 
 # --- measuring ------------------------------------------------------------------------------
 
-def run(cmd: list[str]) -> dict:
+def run(cmd: list[str], env: dict[str, str] | None = None, cwd: str | None = None) -> dict:
     """Run cmd; wall time [s], CPU time [s], max RSS [MB] of the process, exit status.
 
     The max RSS comes from GNU time (/usr/bin/time) when present: the rusage of a child
@@ -211,7 +221,8 @@ def run(cmd: list[str]) -> dict:
         full = ([str(gnu_time), "-f", "%M %U %S", "-o", str(stats)] + cmd
                 if gnu_time.exists() else cmd)
         t = time.perf_counter()
-        proc = subprocess.Popen(full, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        proc = subprocess.Popen(full, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                                env=None if env is None else {**os.environ, **env}, cwd=cwd)
         _, status, usage = os.wait4(proc.pid, 0)
         wall = time.perf_counter() - t
         err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
@@ -223,6 +234,48 @@ def run(cmd: list[str]) -> dict:
     return {"wall_s": wall, "cpu_s": cpu, "rss_mb": rss_mb,
             "ok": os.waitstatus_to_exitcode(status) == 0,
             "stderr": err.strip().splitlines()[-1:] if err.strip() else []}
+
+
+# What a breakdown imports before it runs (the start-up measure), leaving as the `disagg`
+# command does (disagg.cli.main: no interpreter teardown).
+STARTUP_IMPORTS = "import os, disagg.cli, disagg.jobs.site; os._exit(0)"
+
+
+def disagg_package() -> Path:
+    import disagg
+
+    return Path(disagg.__file__).resolve().parent
+
+
+def compile_disagg() -> list[Path]:
+    """Compile disagg's modules to bytecode as `pip install` does (compileall); the
+    __pycache__ folders made, for removal at the end."""
+    import compileall
+
+    package = disagg_package()
+    before = set(package.rglob("__pycache__"))
+    compileall.compile_dir(str(package), quiet=1)
+    return sorted(set(package.rglob("__pycache__")) - before)
+
+
+def startups(n: int = 5) -> tuple[tuple[float, float], tuple[float, float]]:
+    """Median wall and CPU time [s] of a process that imports what a breakdown imports:
+    with disagg's bytecode, and without it (a copy of the package without __pycache__
+    first on the path, PYTHONDONTWRITEBYTECODE=1: every process compiles disagg's modules);
+    the two kinds taken in turn, so both see the same load."""
+    runs: dict[bool, list[dict]] = {True: [], False: []}
+    # Run from an empty folder: `python -c` puts the working folder first on the path, and
+    # a checkout's own disagg there would be imported instead of the one meant.
+    with tempfile.TemporaryDirectory() as src, tempfile.TemporaryDirectory() as here:
+        shutil.copytree(disagg_package(), Path(src) / "disagg",
+                        ignore=shutil.ignore_patterns("__pycache__"))
+        for _ in range(n):
+            for compiled in (True, False):
+                env = None if compiled else {"PYTHONPATH": src, "PYTHONDONTWRITEBYTECODE": "1"}
+                runs[compiled].append(run([sys.executable, "-c", STARTUP_IMPORTS], env, here))
+    med = statistics.median
+    return tuple((med(r["wall_s"] for r in runs[c]), med(r["cpu_s"] for r in runs[c]))
+                 for c in (True, False))  # type: ignore[return-value]
 
 
 def disagg_exe() -> str:
@@ -327,11 +380,18 @@ def main() -> None:
     sites = [make_site(portfolio, i) for i in range(n_sites)]
     big = make_site(work / "one_minute", 0, interval_min=1, n_equipment=50)
     exe = disagg_exe()
+    print("disagg compiled to bytecode (compileall), as pip install does", flush=True)
+    made = compile_disagg()
     R: dict = {"info": info, "sites": n_sites,
                "event_rows": statistics.median(s.event_rows for s in sites),
                "big_event_rows": big.event_rows, "big_intervals": big.intervals}
 
-    print("disagg breakdown, one fresh process per site", flush=True)
+    # The generated files (about 0.5 GB) are written out before anything is timed: the
+    # kernel's write-back of them would otherwise land in the first timed runs. One
+    # untimed run of each program first (as for the steps, which are the better of two).
+    os.sync()
+    print("disagg breakdown, one fresh process per site (after one untimed run)", flush=True)
+    run([exe, "breakdown", str(sites[0].toml), "--out", str(work / "out_warm")])
     e2e, d_err, d_err_month = [], [], []
     for s in sites:
         out = work / "out" / s.toml.stem
@@ -358,6 +418,7 @@ def main() -> None:
     print("straightforward approach (pandas + loop + statsmodels), one process per site",
           flush=True)
     nv, nv_cpu, n_err, n_err_month, nv_in = [], [], [], [], []
+    child_json(["--naive", str(sites[0].toml)])  # untimed, as for disagg
     for s in sites:
         res, r = child_json(["--naive", str(s.toml)])
         nv.append(r["wall_s"])
@@ -379,10 +440,7 @@ def main() -> None:
     R["big_load"] = os.getloadavg()[0]
 
     print("start-up: a process that only imports what a breakdown imports", flush=True)
-    starts = [run([sys.executable, "-c", "import disagg.cli, disagg.jobs.site"])
-              for _ in range(3)]
-    R["startup"] = statistics.median(r["wall_s"] for r in starts)
-    R["startup_cpu"] = statistics.median(r["cpu_s"] for r in starts)
+    (R["startup"], R["startup_cpu"]), R["startup_src"] = startups()
     R["startup_load"] = os.getloadavg()[0]
 
     def batch(folder: Path, workers: int, name: str) -> dict:
@@ -410,6 +468,8 @@ def main() -> None:
     else:
         print("disagg batch is not available: portfolio throughput not measured", flush=True)
     R["load"] = (load_start, os.getloadavg())
+    for d in made:
+        shutil.rmtree(d, ignore_errors=True)
     write_results(R)
     print(RESULTS.read_text())
     if not a.keep:
@@ -453,9 +513,14 @@ def write_results(R: dict) -> None:
          (f"{fmt(e2e)} (median of {n}; min {fmt(min(R['e2e_wall']))}, max "
          f"{fmt(max(R['e2e_wall']))}; load {R['e2e_load']:.2f}); CPU {fmt(e2e_cpu)}"),
          f"< {TARGET_SITE_S}", verdict(e2e < TARGET_SITE_S)),
-        ("process start-up and imports [s]",
+        ("process start-up and imports (median of 5) [s]",
          (f"{fmt(R['startup'], 3)} (load {R['startup_load']:.2f}); CPU "
           f"{fmt(R['startup_cpu'], 3)}"), "", ""),
+        ("process start-up and imports without disagg's bytecode (each process compiles "
+         "disagg's modules: a source tree under PYTHONDONTWRITEBYTECODE=1; taken in turn "
+         "with the row above) [s]",
+         f"{fmt(R['startup_src'][0], 3)}; CPU {fmt(R['startup_src'][1], 3)}",
+         "", ""),
         ("reading the meter file [s]", step("read_meter_s"), "", ""),
         ("reading the run log [s]", step("read_runlog_s"), "", ""),
         ("alignment alone [s]", step("align_s"), "", ""),
@@ -475,6 +540,10 @@ def write_results(R: dict) -> None:
           f"{fmt(med(R['naive_cpu']))}"), "", ""),
         ("disagg's speed as a ratio to it", f"{ratio:.1f}x (CPU time: {ratio_cpu:.1f}x)",
          f">= {TARGET_RATIO:g}x", verdict(ratio >= TARGET_RATIO)),
+        ("the most that ratio could be with disagg's start-up alone: straightforward time / "
+         "disagg's start-up and imports",
+         (f"{naive_s / R['startup']:.1f}x (CPU time: "
+          f"{med(R['naive_cpu']) / R['startup_cpu']:.1f}x)"), "", ""),
         ("portfolio, `disagg batch --workers 1` [s for the portfolio; site-years/min]",
          (f"{fmt(b[1]['wall_s'])}; {60 * n / b[1]['wall_s']:.1f}"
           if 1 in b and b[1]["ok"] else "not measured"), "", ""),
@@ -548,7 +617,9 @@ def write_results(R: dict) -> None:
          "and on each month (13 fits; a month reuses the range's choice and noise ratio), "
          "each with a Newey-West covariance and a 10-block jackknife; a static form also gets "
          "the hour-of-week and per-day baseload refits. CPU times are the process's user + "
-         "system time: on a shared machine they change much less than wall times."),
+         "system time: on a shared machine they change much less than wall times. Every "
+         "process starts from compiled bytecode, as after `pip install` (disagg's modules "
+         "compiled first with compileall; pandas and statsmodels came compiled)."),
         "",
         (f"Slowest step of a breakdown: {slowest} ({fmt(steps[slowest], 3)} s of "
          f"{fmt(e2e)} s). Batch figures are the better of two runs (load average "

@@ -490,8 +490,39 @@ def report(
     _guard(run)
 
 
-def main() -> None:  # pragma: no cover - console entry point
-    app()
+def main() -> None:  # pragma: no cover - console entry point ([project.scripts] disagg)
+    """The `disagg` command. After the command has finished, the process leaves without the
+    interpreter's teardown: freeing every module, frame and array one by one costs about
+    0.1 s of CPU (measured on a breakdown of a 15-minute site-year), while everything the
+    command writes is already closed (result files are committed before it returns) and
+    its output is flushed here. A process with more than this thread (a batch's watcher,
+    a cluster client) or with child processes exits as usual."""
+    try:
+        app()
+        code: object = 0
+    except SystemExit as exc:
+        code = exc.code
+    _leave(code)
+
+
+def _leave(code: object) -> None:  # pragma: no cover - console entry point
+    """Exit with code: at once (os._exit) when nothing is left to clean up, else as usual."""
+    import threading
+
+    if code is not None and not isinstance(code, int):
+        sys.exit(code)  # a message: the usual exit prints it
+    mp = sys.modules.get("multiprocessing")
+    if threading.active_count() > 1 or (mp is not None and mp.active_children()):
+        sys.exit(code)
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+    except (OSError, ValueError):  # a closed or broken stream: let Python report it
+        sys.exit(code)
+    logging = sys.modules.get("logging")
+    if logging is not None:
+        logging.shutdown()
+    os._exit(code or 0)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -325,14 +325,15 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         (the breakdown table, per-month draws for fit.json).
     """
     tz = site.timezone
-    whole_table = monthly_breakdown(whole, tz, site.tariff)
+    # The whole range's rows are needed only for a month without a fit of its own.
+    whole_table: pl.DataFrame | None = None
     arrays = frame_arrays(aligned, tz)
     month_code, day = arrays["month"], arrays["local_date"]
     codes = np.unique(month_code[aligned.use])
     periods = [f"{c // 100:04d}-{c % 100:02d}" for c in codes]
     if len(periods) <= 1:
         report(progress, "fitting", 1, 1)
-        return whole_table, {}
+        return monthly_breakdown(whole, tz, site.tariff), {}
     combined = {t.id: t.members for t in whole.terms if len(t.members) > 1}
     tables, months = [], {}
     for done, (code, period) in enumerate(zip(codes, periods, strict=True)):
@@ -346,6 +347,8 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
             except ValueError:
                 est = None
         if est is None:
+            if whole_table is None:
+                whole_table = monthly_breakdown(whole, tz, site.tariff)
             rows = whole_table.filter(pl.col("period") == period)
             own = ~pl.col("equipment").is_in([whole.base_id, "unexplained"])
             tables.append(rows.with_columns(

@@ -257,8 +257,9 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
     `runlogs` (the same log moved in time), on the intervals all of them cover [kWh^2].
 
     The same fits as aligning each run log (align) and solving on the stacked columns
-    (solvers.solve_regularized without penalty, bounds at 0), but a chunk of rows at a time:
-    the moved logs' hours are never held whole, so a long 1-minute series holds no second
+    (solvers.solve_regularized without penalty, bounds at 0), but a chunk of rows at a time,
+    in one pass (each moved log's hours and unknown time from one overlap_hours call): the
+    moved logs' hours are never held whole, so a long 1-minute series holds no second
     (n, k) array. The rows are factorised in the same chunks as solvers.compress (the same
     R factor); the residual sum of squares is read off R (||[X y] [b; -1]||^2, equal up to
     rounding).
@@ -274,48 +275,66 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
     a = frame_arrays(aligned, site.timezone)
     start_ns, end_ns = a["start_ns"], a["end_ns"]
     eqs = site.equipment
-    # Pass 1: the intervals whose state every moved log knows.
-    mask = aligned.use.copy()
-    for lo in range(0, len(mask), CHUNK_ROWS):
-        hi = min(lo + CHUNK_ROWS, len(mask))
-        for log in runlogs:
-            for eq in eqs:
-                _, unknown_h = overlap_hours(log.segments[eq.id], start_ns[lo:hi],
-                                             end_ns[lo:hi], eq.exponent)
-                mask[lo:hi] &= ~(unknown_h > _UNKNOWN_TOL_H)
-    rows = np.flatnonzero(mask)
     p = len(eqs) + base.shape[1]
-    if len(rows) <= 2 * p or p >= DISJOINT_MIN_COLS:
-        return len(rows), None
+    wide = p >= DISJOINT_MIN_COLS  # the solver would not compress: count the rows only
     y_all = aligned.frame["energy_kwh"].to_numpy().astype(float)
-    # Pass 2: each probe's [hours, baseload, meter] in chunks of QR_CHUNK_ROWS rows, each
-    # chunk's R kept (solvers.compress's tall-skinny QR).
-    step = QR_CHUNK_ROWS * max(1, CHUNK_ROWS // QR_CHUNK_ROWS)
-    parts: list[list[np.ndarray]] = [[] for _ in range(len(runlogs) + 1)]
-    for lo in range(0, len(rows), step):
-        r = rows[lo:lo + step]
+    n_probes = len(runlogs) + 1
+    # One pass, CHUNK_ROWS intervals at a time: each moved log's hours and unknown time
+    # together; the rows every log knows join each probe's [hours, baseload, meter] rows,
+    # factorised QR_CHUNK_ROWS kept rows at a time in the order of the rows kept (the
+    # chunks of solvers.compress: the same R as factorising all the kept rows).
+    pending: list[list[np.ndarray]] = [[] for _ in range(n_probes)]
+    parts: list[list[np.ndarray]] = [[] for _ in range(n_probes)]
+    covered = n_pending = 0
+    chunked = False  # more than 2 x QR_CHUNK_ROWS rows kept: factorised in chunks
+    for lo in range(0, len(start_ns), CHUNK_ROWS):
+        hi = min(lo + CHUNK_ROWS, len(start_ns))
+        keep = aligned.use[lo:hi].copy()
+        moved = []
+        for log in runlogs:
+            H = None if wide else np.empty((hi - lo, len(eqs)))
+            for j, eq in enumerate(eqs):
+                run_h, unknown_h = overlap_hours(log.segments[eq.id], start_ns[lo:hi],
+                                                 end_ns[lo:hi], eq.exponent)
+                keep &= ~(unknown_h > _UNKNOWN_TOL_H)
+                if H is not None:
+                    H[:, j] = run_h
+            moved.append(H)
+        covered += int(keep.sum())
+        if wide:
+            continue
+        r = lo + np.flatnonzero(keep)
         tail = np.column_stack([base[r], y_all[r]])
-        for i in range(len(runlogs) + 1):
-            if i == 0:
-                H = aligned.hours[r]
-            else:
-                H = np.empty((len(r), len(eqs)))
-                for j, eq in enumerate(eqs):
-                    H[:, j], _ = overlap_hours(runlogs[i - 1].segments[eq.id], start_ns[r],
-                                               end_ns[r], eq.exponent)
-            Z = np.column_stack([H, tail])
-            if len(rows) <= 2 * QR_CHUNK_ROWS:
-                parts[i].append(Z)
-                continue
+        for i, H in enumerate([aligned.hours[r]] + [H[keep] for H in moved]):
+            pending[i].append(np.column_stack([H, tail]))
+        del moved
+        n_pending += len(r)
+        chunked = chunked or covered > 2 * QR_CHUNK_ROWS
+        if chunked and n_pending >= QR_CHUNK_ROWS:
+            for i in range(n_probes):
+                Z = np.vstack(pending[i])
+                full = len(Z) - len(Z) % QR_CHUNK_ROWS
+                parts[i] += [np.linalg.qr(Z[c:c + QR_CHUNK_ROWS], mode="r")
+                             for c in range(0, full, QR_CHUNK_ROWS)]
+                pending[i] = [Z[full:]]
+            n_pending %= QR_CHUNK_ROWS
+    if covered <= 2 * p or wide:
+        return covered, None
+    for i in range(n_probes):
+        Z = np.vstack(pending[i])
+        pending[i] = []
+        if chunked:
             parts[i] += [np.linalg.qr(Z[c:c + QR_CHUNK_ROWS], mode="r")
                          for c in range(0, len(Z), QR_CHUNK_ROWS)]
+        else:
+            parts[i].append(Z)
     out = []
     for i in range(len(runlogs) + 1):
         R = np.linalg.qr(np.vstack(parts[i]), mode="r")
         parts[i] = []
         b = solve_compressed(R[:p, :p], R[:p, p], np.zeros(p), np.zeros(p), np.zeros(p))
         out.append(float(np.sum((R @ np.append(b, -1.0)) ** 2)))
-    return len(rows), out
+    return covered, out
 
 
 def frame_arrays(aligned: Aligned, tz: str) -> dict[str, np.ndarray]:

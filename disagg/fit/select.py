@@ -126,7 +126,14 @@ def kept_columns(profile: str, m: int) -> list[int]:
 def drop_constant(profile: str, B: np.ndarray, h: np.ndarray) -> np.ndarray:
     """The profile's columns in kW units (divided by interval hours) without the direction
     of the constant (kept_columns)."""
-    return B[:, kept_columns(profile, B.shape[1])] / h[:, None]
+    n, m = B.shape
+    drop = CONSTANT_COLUMN[profile] if m else 0
+    # Written column-major (as whiten_columns reads it), without a copy of the kept columns.
+    out = np.empty((max(m - 1, 0), n)).T
+    if m:
+        np.divide(B[:, :drop], h[:, None], out=out[:, :drop])
+        np.divide(B[:, drop + 1:], h[:, None], out=out[:, drop:])
+    return out
 
 
 @dataclass

@@ -14,7 +14,6 @@ from disagg.inputs.config import (
     REGISTER_UNIT,
     MeterSettings,
 )
-from disagg.inputs.readers.greenbutton import _greenbutton_frame
 from disagg.inputs.readers.tables import (
     _OFFSET,
     _numbers,
@@ -174,6 +173,9 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
 
 def _read_greenbutton_meter(settings: MeterSettings) -> MeterData:
     """read_meter for a Green Button .xml file: the same checks as for CSV."""
+    # Imported here: only an .xml meter needs the XML reader (a CSV breakdown starts faster).
+    from disagg.inputs.readers.greenbutton import _greenbutton_frame
+
     path = settings.file
     df = _greenbutton_frame(path)
     negative = (df["energy_kwh"] < 0).fill_null(False)

@@ -225,6 +225,24 @@ def _stale_notes(path: Path, eq_id: str, f: pl.DataFrame, hold_min: float,
             "intervals then are left out")]
 
 
+def _sorted_segments(df: pl.DataFrame, ids: list[str]) -> dict[str, Segments]:
+    """_to_segments(df, ids, "end") of a frame already sorted by equipment (eq: an Enum of
+    the ids, in their order) and then time, with one row per equipment and time: each
+    equipment's rows are one run of the frame, sliced without a sort or a partition."""
+    cats = list(dict.fromkeys(ids))
+    code = df["eq"].to_physical().to_numpy()
+    s_ns = df["t"].dt.epoch("ns").to_numpy().astype(np.int64)
+    e_ns = df["end"].dt.epoch("ns").to_numpy().astype(np.int64)
+    v = df["v"].to_numpy().astype(np.float64)
+    bounds = np.searchsorted(code, np.arange(len(cats) + 1))
+    out: dict[str, Segments] = {}
+    for j, eq in enumerate(cats):
+        run = slice(bounds[j], bounds[j + 1])
+        keep = e_ns[run] > s_ns[run]
+        out[eq] = Segments(s_ns[run][keep], e_ns[run][keep], v[run][keep])
+    return out
+
+
 def _to_segments(df: pl.DataFrame, ids: list[str], end_col: str) -> dict[str, Segments]:
     """Frame with eq, t (start), end and value columns -> per-equipment sorted Segments."""
     out: dict[str, Segments] = {}
@@ -383,7 +401,7 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         missing = [e for e in ids if e not in present]
         if missing:
             notes.append(f"no run-log events for {', '.join(missing)}: left out as unknown")
-        return RunLog(_to_segments(df, ids, "end"), path, n_rows, notes)
+        return RunLog(_sorted_segments(df, ids), path, n_rows, notes)
 
     minutes = _numbers(raw, settings.minutes_column, path, "run minutes")  # type: ignore[arg-type]
     df = (pl.DataFrame({"eq": eq, "t": t, "m": minutes,
