@@ -219,3 +219,116 @@ def test_hours_are_not_shared_with_a_much_wider_design(site_file):
     narrow = np.column_stack([H, np.zeros((n, 1))])
     assert share_hours(aligned, narrow[:, :k], members)
     assert np.shares_memory(aligned.hours, narrow)
+
+
+# --- designs made a block of rows at a time (solvers.LazyRows) ----------------------------
+
+def _switching_whole(X, interval_h, keep, k, kx):
+    """switching_steps' differenced design as it was built: each whole column split."""
+    from disagg.fit.intervals import split_switching
+
+    inv_h = 1.0 / interval_h
+    Xd = np.empty((int(keep.sum()), k + kx))
+    for c in range(k):
+        up, down = split_switching(X[:, c], interval_h)
+        Xd[:, c] = np.diff(up * inv_h)[keep]
+        Xd[:, k + c] = np.diff(down * inv_h)[keep]
+    for c in range(k, kx):
+        Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
+    return Xd
+
+
+@pytest.mark.parametrize("block_steps", [7, 64, 5000])
+def test_switching_design_by_blocks_equals_the_whole_columns(block_steps):
+    """Blocks of 7 and 64 steps (checkpoints of the running sum of rises every block) give
+    exactly the numbers of splitting each whole column, with left-out steps and a first
+    kept step at row 0 or later; 5,000 is one block."""
+    from disagg.fit.intervals import switching_design
+
+    rng = np.random.default_rng(12)
+    n, k, kx = 1500, 3, 4
+    interval_h = np.where(rng.random(n) < 0.1, 0.5, 0.25)
+    X = np.column_stack([rng.random((n, k)) * (rng.random((n, k)) < 0.5) * interval_h[:, None],
+                         rng.normal(0, 3, (n, kx - k))])
+    for keep in (rng.random(n - 1) < 0.8, np.r_[False, False, rng.random(n - 3) < 0.5]):
+        lazy = switching_design(X, interval_h, keep, k, kx, block_steps=block_steps)
+        whole = _switching_whole(X, interval_h, keep, k, kx)
+        assert lazy.shape == whole.shape
+        np.testing.assert_array_equal(lazy.dense(), whole)
+        np.testing.assert_array_equal(lazy[13:211], whole[13:211])  # across blocks
+        np.testing.assert_array_equal(lazy @ np.arange(1.0, k + kx + 1),
+                                      whole @ np.arange(1.0, k + kx + 1))
+
+
+@pytest.mark.parametrize("with_levels", [False, True])
+def test_fit_on_a_lazy_design_equals_the_fit_on_the_array(monkeypatch, with_levels):
+    """fit_model reads a LazyRows design by row slices only: the same coefficients,
+    covariance, prior weights and residuals (1e-9) as on the materialised array, with small
+    chunks so that block, QR and sum chunk edges all fall inside the rows; with and without
+    indicator columns (switching_steps' hourly mean steps)."""
+    from disagg.fit.solvers import Indicators, LazyRows, fit_model
+
+    monkeypatch.setattr(solvers, "_QR_CHUNK_ROWS", 64)
+    monkeypatch.setattr(solvers, "_SUM_CHUNK_ROWS", 300)
+    rng = np.random.default_rng(5)
+    n, p = 2000, 6
+    X = rng.random((n, p)) * (rng.random((n, p)) < 0.6)
+    y = X @ np.array([3.0, 1.0, 0.0, 2.0, 5.0, 0.5]) + rng.normal(0, 0.3, n)
+    block = np.repeat(np.arange(n // 50), 50)
+    bounds = np.array([0, 170, 171, 900, 1333, n])
+    lazy = LazyRows(bounds, p, lambda b: X[bounds[b]:bounds[b + 1]].copy())
+    ind = Indicators(rng.integers(-1, 24, n), np.ones(n), 24) if with_levels else None
+    q = p + (24 if with_levels else 0)
+    args = (y, np.zeros(q), np.r_[np.full(p, 4.0), np.full(q - p, 100.0)],
+            np.r_[np.zeros(p), np.full(q - p, -np.inf)])
+    a = fit_model(X, *args, block=block, indicators=ind)
+    b = fit_model(lazy, *args, block=block, indicators=ind)
+    for field in ("coef", "cov", "prior_weight", "residual"):
+        np.testing.assert_allclose(getattr(b, field), getattr(a, field), rtol=1e-9,
+                                   atol=1e-12 * np.abs(getattr(a, field)).max())
+    assert (a.sigma2, a.edf, a.lag, a.n_blocks) == pytest.approx((b.sigma2, b.edf, b.lag,
+                                                                  b.n_blocks), rel=1e-9)
+    np.testing.assert_array_equal(lazy.columns(np.array([4, 1]))[5:900], X[5:900][:, [4, 1]])
+
+
+def test_by_day_variant_by_blocks_equals_the_projected_array(site_file, monkeypatch):
+    """The by-day variant fitted on its projected design made a few days at a time equals
+    the fit on the whole projected array (_project_out_days, as it was built), with blocks of
+    about 3 days so that block edges fall inside the clock-test building's 14 days."""
+    from disagg.fit import intervals as iv_mod
+    from disagg.fit.design import BaseloadBuilder, design_matrix, rows_of, term_hours
+    from disagg.fit.estimate import WEAK_SD_FACTOR, Priors, solve
+    from disagg.fit.select import Form, FormChoice
+    from disagg.fit.solvers import fit_model
+    from disagg.fit.terms import plan_terms
+
+    monkeypatch.setattr(iv_mod, "_PROJECT_CHUNK_ROWS", 300)
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    rows = rows_of(aligned, site.timezone)
+    builder = BaseloadBuilder(site, rows)
+    B, names = builder.columns("constant")
+    H = rows.hours
+    plan = plan_terms(site, aligned.equipment_ids, H, B)
+    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
+    X = design_matrix([term_hours(H, index, m) for m in plan.members], rows.temp_c, {}, B)
+    k = len(plan.fitted)
+    priors = Priors(plan.fitted, 0, WEAK_SD_FACTOR * float(np.max(rows.y / rows.interval_h)))
+    choice = FormChoice(Form("constant", False), True, [], 1.0)
+    s = solve(rows, X, k, k, names, choice, builder, priors)
+    hull = iv_mod.Hull.start(s.coef, iv_mod.jackknife(s, rows, 0.95), 0.95)
+    name, entry, bound = iv_mod.by_day_variant(rows, s, priors, plan.fitted,
+                                               int(rows.days.max()), hull)
+    # The whole projected array, as by_day_variant built it before.
+    V = iv_mod._project_out_days(np.column_stack([s.Hx, rows.y]), rows.interval_h[:, None],
+                                 rows.days)
+    md, sdd = priors(0)
+    fd = fit_model(V[:, :-1], V[:, -1], md, sdd, np.zeros(k), block=rows.days)
+    for t in plan.fitted:
+        c = t.column
+        assert entry[t.id]["kw"] == pytest.approx(float(fd.coef[c]), rel=1e-9)
+        assert entry[t.id]["se_kw"] == pytest.approx(float(fd.se[c]), rel=1e-9)
+        Hc = s.Hf[:, c]
+        r2 = 1.0 - float(np.sum(V[:, c] ** 2)) / float(np.sum((Hc - Hc.mean()) ** 2))
+        assert entry[t.id]["r2_with_daily_baseload"] == pytest.approx(r2, rel=1e-9, abs=1e-12)
+    assert name == "constant-by-day" and len(entry) == k
