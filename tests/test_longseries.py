@@ -332,3 +332,135 @@ def test_by_day_variant_by_blocks_equals_the_projected_array(site_file, monkeypa
         r2 = 1.0 - float(np.sum(V[:, c] ** 2)) / float(np.sum((Hc - Hc.mean()) ** 2))
         assert entry[t.id]["r2_with_daily_baseload"] == pytest.approx(r2, rel=1e-9, abs=1e-12)
     assert name == "constant-by-day" and len(entry) == k
+
+
+# --- the entry guard under a tiny address-space limit -------------------------------------
+
+@pytest.mark.parametrize("limit_mb", [200, 300, 550])
+def test_a_limit_too_small_to_load_the_libraries_is_one_error_line(tmp_path, site_file,
+                                                                    limit_mb):
+    """`ulimit -v` of 200-550 MB (RLIMIT_AS set before the program starts): the imports of
+    numpy/polars would fail inside C extensions (a MemoryError traceback, or a polars import
+    that hung until killed at 550 MB); the entry point refuses with one Error line, exit 1,
+    quickly."""
+    import resource
+    import subprocess
+    import sys
+
+    def limit():
+        resource.setrlimit(resource.RLIMIT_AS, (limit_mb * 2**20, resource.RLIM_INFINITY))
+
+    out = subprocess.run([sys.executable, "-m", "disagg.cli", "breakdown", str(site_file),
+                          "--out", str(tmp_path / "out")], capture_output=True, text=True,
+                         timeout=60, preexec_fn=limit)
+    lines = out.stderr.strip().splitlines()
+    assert out.returncode == 1, out.stderr
+    assert len(lines) == 1 and lines[0].startswith("Error: a memory limit of "), out.stderr
+    assert "ulimit -v" in lines[0]
+    assert not (tmp_path / "out").exists()
+
+
+def test_memory_running_out_in_a_command_s_imports_is_one_error_line(capsys, monkeypatch):
+    """Outside a command's own guard (its lazy imports), an import that fails for want of
+    memory ("failed to map segment", as unicodedata's did under 500 MB) is one Error line and
+    exit 1; any other error is left alone."""
+    from disagg import cli
+
+    monkeypatch.setattr(cli, "_address_limit_error", lambda: None)
+    app = cli._App(add_completion=False)
+
+    @app.command()
+    def boom(kind: str) -> None:
+        if kind == "map":
+            raise ImportError("/usr/lib/x.so: failed to map segment from shared object")
+        if kind == "memory":
+            raise MemoryError()
+        raise ImportError("No module named 'nothere'")
+
+    for kind in ("map", "memory"):
+        with pytest.raises(SystemExit) as exc:
+            app([kind], standalone_mode=True)
+        assert exc.value.code == 1
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and err[0].startswith("Error: out of memory"), err
+    with pytest.raises(ImportError, match="nothere"):
+        app(["other"], standalone_mode=True)
+
+
+# --- designs written over the hours (align.hours_buffer) ----------------------------------
+
+def _fresh_buffer(aligned, site):
+    """aligned with its own hours buffer as align makes it: the hours, then room for the
+    declared profile's baseload columns."""
+    import dataclasses
+
+    from disagg.fit.align import BASELOAD_COLUMN_COUNT
+
+    n, k = aligned.hours.shape
+    base = np.empty((n, k + BASELOAD_COLUMN_COUNT[site.baseload.profile]))
+    base[:, :k] = aligned.hours
+    return dataclasses.replace(aligned, hours=base[:, :k])
+
+
+def test_a_whole_range_design_is_written_beside_the_hours_with_the_same_fit(site_file):
+    """align leaves room beside the hours for the declared profile's baseload columns; the
+    whole-range fit writes its design there (one (n, k + m) array, the hours its first
+    columns) and fits the same numbers as on a design built as a new array."""
+    import dataclasses
+
+    from disagg.fit.align import hours_buffer
+    from disagg.fit.estimate import estimate_draws
+
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    k = aligned.hours.shape[1]
+    members = [[e] for e in aligned.equipment_ids]
+    buf = hours_buffer(aligned, members, aligned.hours.base.shape[1])
+    assert buf is not None and buf.shape[1] > k
+    plain = dataclasses.replace(aligned, hours=np.ascontiguousarray(aligned.hours))
+    assert hours_buffer(plain, members, k + 1) is None  # no room: a new design
+    shared = _fresh_buffer(aligned, site)
+    plain_hours, buffer = plain.hours, shared.hours.base
+    a = estimate_draws(site, plain)
+    b = estimate_draws(site, shared)
+    assert b.hours.base is buffer  # the design is the hours' own buffer
+    assert not np.shares_memory(a.hours, plain_hours)  # a new design
+    for f in ("kw", "kw_low", "kw_high", "se_kw", "base_kw", "cov_base", "fitted"):
+        np.testing.assert_array_equal(getattr(b, f), getattr(a, f))
+    assert b.warnings == a.warnings
+
+
+def test_drift_writing_its_design_over_the_hours_gives_the_same_result():
+    """drift_aligned(consume_hours=True) differences its design in the hours' own buffer
+    (no second (n, k) array) and drops aligned.hours; the drift table, summary and state are
+    those of a run that builds its design as a new array."""
+    from synthetic import make_building
+
+    from disagg.analyses.drift import drift_aligned
+    from disagg.fit.align import hours_buffer
+
+    s = make_building(12, days=120)
+    kept = _fresh_buffer(s.aligned, s.site)
+    consumed = _fresh_buffer(s.aligned, s.site)
+    assert hours_buffer(consumed, [[e] for e in consumed.equipment_ids],
+                        consumed.hours.base.shape[1]) is not None
+    a = drift_aligned(s.site, kept)
+    b = drift_aligned(s.site, consumed, consume_hours=True)
+    assert consumed.hours is None and kept.hours is not None
+    assert a.table.equals(b.table)
+    assert a.state == b.state
+
+
+def test_interval_parts_of_some_rows_equal_those_rows_of_the_whole(site_file):
+    """monthly_breakdown takes each month's interval parts alone (a long series holds one
+    month's (rows, terms + 2) array, not the whole range's): the same numbers."""
+    from disagg.analyses.breakdown import interval_parts_kwh
+    from disagg.fit.estimate import estimate_draws
+
+    site, meter, log = _read(site_file)
+    est = estimate_draws(site, align(site, meter, log))
+    whole = interval_parts_kwh(est)
+    rows = np.zeros(len(est.y), dtype=bool)
+    rows[100:700] = True
+    np.testing.assert_array_equal(interval_parts_kwh(est, rows), whole[rows])
+    np.testing.assert_allclose(whole.sum(axis=1), est.y, rtol=1e-12)
