@@ -110,8 +110,8 @@ def rows_of(aligned: Aligned, tz: str) -> Rows:
     """The used rows of aligned; the whole-frame arrays are computed once
     (align.frame_arrays), a month's fit takes its rows."""
     use = aligned.use
-    frame = aligned.frame.filter(pl.Series(use))
     everything = bool(use.all())
+    frame = aligned.frame if everything else aligned.frame.filter(pl.Series(use))
     arrays = {k: v if everything else v[use] for k, v in frame_arrays(aligned, tz).items()}
     start_ns, end_ns = arrays["start_ns"], arrays["end_ns"]
     return Rows(aligned=aligned, tz=tz, frame=frame, everything=everything,
