@@ -140,10 +140,16 @@ def _guarded(fn):
         _fail(str(exc).replace("\n", " "))
     except typer.Exit:
         raise
-    except BrokenPipeError:
-        # The reader of our output went away (e.g. `| head`): not an error of ours.
-        sys.stderr.close()
-        raise typer.Exit(0) from None
+    except BrokenPipeError as exc:
+        if _stdout_gone():
+            # The reader of our output went away (e.g. `| head`): not an error of ours.
+            sys.stderr.close()
+            raise typer.Exit(0) from None
+        # Another pipe broke (a helper process's): an error like any other.
+        if _state["debug"]:
+            raise
+        _fail(f"internal error (BrokenPipeError: {exc}); run `disagg --debug ...` for the "
+              "full trace and report it", code=2)
     except KeyboardInterrupt:
         # Ctrl-C: every writer commits a whole set or nothing (disagg.present.commit).
         typer.echo("Interrupted: each output folder holds either its previous files or the "
@@ -165,6 +171,19 @@ def _guarded(fn):
             raise
         _fail(f"internal error ({type(exc).__name__}: {exc}); run `disagg --debug ...` for the "
               "full trace and report it", code=2)
+
+
+def _stdout_gone() -> bool:
+    """Whether standard output is a pipe whose reader has gone (poll reports an error on
+    it); True when that cannot be told (no file descriptor), as before this check."""
+    import select
+
+    try:
+        poll = select.poll()
+        poll.register(sys.stdout.fileno(), select.POLLOUT)
+        return any(event & (select.POLLERR | select.POLLHUP) for _, event in poll.poll(0))
+    except (AttributeError, OSError, ValueError):
+        return True
 
 
 def _signal_name(signum: int) -> str:
@@ -211,7 +230,18 @@ def _with_bar(quiet: bool, job):
             bar.close()
 
 
-SiteArg = Annotated[Path, typer.Argument(help="The site TOML file.", show_default=False)]
+# Paths are not checked by typer (readable=False): its check answers a file the user cannot
+# read with a usage panel and exit 2; the job's own checks name the file and the reason.
+def _path_argument(**kwargs):
+    return typer.Argument(readable=False, **kwargs)
+
+
+def _path_option(*names: str, **kwargs):
+    return typer.Option(*names, readable=False, **kwargs)
+
+
+SiteArg = Annotated[Path, _path_argument(help="The site TOML file.", show_default=False,
+                                          metavar="SITE")]
 FromOpt = Annotated[Optional[str], typer.Option("--from", help="First local date to use "
                                                 "(YYYY-MM-DD); default: the meter's first.")]
 ToOpt = Annotated[Optional[str], typer.Option("--to", help="Last local date to use "
@@ -239,7 +269,7 @@ JsonOpt = Annotated[bool, typer.Option("--json", help="Print the summary as JSON
 @app.command()
 def breakdown(
     site: SiteArg,
-    out: Annotated[Path, typer.Option("--out", help="Folder for breakdown.csv, "
+    out: Annotated[Path, _path_option("--out", help="Folder for breakdown.csv, "
                                       "breakdown.parquet and fit.json.")],
     date_from: FromOpt = None,
     date_to: ToOpt = None,
@@ -291,7 +321,7 @@ def check(
 
 @app.command()
 def demo(
-    out: Annotated[Path, typer.Option("--out", help="Folder for the demo site (in demo_site/) "
+    out: Annotated[Path, _path_option("--out", help="Folder for the demo site (in demo_site/) "
                                       "and its breakdown.")],
     confidence: ConfOpt = 0.95,
     xlsx: XlsxOpt = False,
@@ -314,7 +344,7 @@ def demo(
 @app.command()
 def drift(
     site: SiteArg,
-    out: Annotated[Path, typer.Option("--out", help="Folder for drift.csv and drift.json.")],
+    out: Annotated[Path, _path_option("--out", help="Folder for drift.csv and drift.json.")],
     memory: Annotated[float, typer.Option("--memory", help="Tracker memory in days, the same "
                                           "for every load whatever its duty cycle.")] = 30.0,
     step: Annotated[Optional[float], typer.Option("--step", help="Normalized LMS step size "
@@ -331,7 +361,7 @@ def drift(
                                                              "default --memory.")] = None,
     threshold: Annotated[float, typer.Option("--threshold", help="Relative change that "
                                              "matters, a fraction.")] = 0.10,
-    state: Annotated[Optional[Path], typer.Option("--state", help="Tracker state file: "
+    state: Annotated[Optional[Path], _path_option("--state", help="Tracker state file: "
                                                   "continue from it if it exists, and save "
                                                   "the new state to it.")] = None,
     date_from: FromOpt = None,
@@ -363,7 +393,7 @@ def compare(
     after: Annotated[str, typer.Option("--after", show_default=False, help="The later period, "
                                        "FROM:TO local dates inclusive, such as "
                                        "2025-06-01:2025-08-31.")],
-    out: Annotated[Path, typer.Option("--out", help="Folder for compare.csv and compare.json.")],
+    out: Annotated[Path, _path_option("--out", help="Folder for compare.csv and compare.json.")],
     confidence: ConfOpt = 0.95,
     min_change: Annotated[float, typer.Option("--min-change", help="Smallest change called "
                                               "rising or falling, a fraction of the earlier "
@@ -395,11 +425,11 @@ def compare(
 
 @app.command()
 def batch(
-    portfolio: Annotated[Path, typer.Argument(help="A folder of site TOML files (every *.toml "
+    portfolio: Annotated[Path, _path_argument(help="A folder of site TOML files (every *.toml "
                                               "directly in it and every */site.toml one level "
                                               "down), or a portfolio TOML listing them.",
-                                              show_default=False)],
-    out: Annotated[Path, typer.Option("--out", help="Folder for portfolio.csv, "
+                                              show_default=False, metavar="PORTFOLIO")],
+    out: Annotated[Path, _path_option("--out", help="Folder for portfolio.csv, "
                                       "portfolio_equipment.csv and one output folder per site "
                                       "(its site file's path in the portfolio without "
                                       ".toml).")],
@@ -492,7 +522,7 @@ def history(
 @app.command()
 def report(
     site: SiteArg,
-    out: Annotated[Path, typer.Option("--out", help="Folder for report.html.")],
+    out: Annotated[Path, _path_option("--out", help="Folder for report.html.")],
     date_from: FromOpt = None,
     date_to: ToOpt = None,
     confidence: ConfOpt = 0.95,

@@ -4,6 +4,7 @@ All data invented (tests/synthetic.py buildings via test_portfolio.write_site_fi
 
 from __future__ import annotations
 
+import io
 import os
 import signal
 import subprocess
@@ -181,3 +182,55 @@ def test_a_worker_killed_from_outside_costs_no_site(tmp_path):
     finally:
         for pid in _group(proc.pid):
             os.kill(pid, signal.SIGKILL)
+
+
+def test_worker_processes_that_cannot_start_are_an_error_not_a_silent_success(tmp_path,
+                                                                               monkeypatch):
+    # Starting the pool's processes failed with a BrokenPipeError (a forkserver that could
+    # not run as this user): the CLI took it for its own output pipe closing and exited 0
+    # having written nothing.
+    import concurrent.futures
+
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+
+    def broken(self, *args, **kwargs):
+        raise BrokenPipeError(32, "Broken pipe")
+
+    monkeypatch.setattr(concurrent.futures.ProcessPoolExecutor, "submit", broken)
+    jobs = [SiteJob(str(tmp_path / "a.toml"), str(tmp_path / "out" / "a"))]
+    with pytest.raises(batch.DisaggError) as exc:
+        batch._run_locally(jobs, 2, "fork", None)
+    assert str(exc.value) == ("cannot start the local worker processes (BrokenPipeError: "
+                              "[Errno 32] Broken pipe); no site was run")
+    sites = tmp_path / "sites"
+    write_site_files(sites, "s0", 1, days=20, data_dir=tmp_path / "data")
+    write_site_files(sites, "s1", 2, days=20, data_dir=tmp_path / "data")
+    r = CliRunner().invoke(app, ["batch", str(sites), "--out", str(tmp_path / "o"),
+                                 "--workers", "2", "--quiet"])
+    assert r.exit_code == 1, r.output
+    assert r.stderr.splitlines() == [
+        "Error: cannot start the local worker processes (BrokenPipeError: [Errno 32] Broken "
+        "pipe); no site was run"]
+    assert not (tmp_path / "o" / "portfolio.csv").exists()
+
+
+def test_a_broken_pipe_that_is_not_standard_output_is_not_a_silent_success(monkeypatch):
+    # Only a closed standard output (`disagg ... | head`) ends quietly with status 0.
+    import typer
+
+    from disagg import cli
+
+    def fn():
+        raise BrokenPipeError(32, "Broken pipe")
+
+    monkeypatch.setattr(cli, "_stdout_gone", lambda: False)
+    with pytest.raises(typer.Exit) as exc:
+        cli._guarded(fn)
+    assert exc.value.exit_code == 2
+    monkeypatch.setattr(cli, "_stdout_gone", lambda: True)
+    monkeypatch.setattr(sys, "stderr", io.StringIO())  # closed by the quiet exit
+    with pytest.raises(typer.Exit) as exc:
+        cli._guarded(fn)
+    assert exc.value.exit_code == 0

@@ -4,6 +4,7 @@ All data invented (test_portfolio.write_site_files)."""
 
 from __future__ import annotations
 
+import logging
 import socket
 import subprocess
 import sys
@@ -74,12 +75,21 @@ def test_a_scheduler_killed_mid_batch_is_one_error(sites, monkeypatch):
             time.sleep(0.05)
         scheduler.kill()
 
+    # dask's own log handlers write to the real stderr, which CliRunner does not capture: a
+    # handler beside them sees what they would print (a lost scheduler is an ERROR record
+    # with a traceback of some 35 lines).
+    records: list[logging.LogRecord] = []
+    seen = logging.Handler()
+    seen.emit = records.append
+    logging.getLogger("distributed").addHandler(seen)
     try:
         killer = threading.Thread(target=kill_when_started, daemon=True)
         killer.start()
         r = runner.invoke(app, ["batch", str(sites / "sites"), "--out", str(out), "--cluster",
                                 address, "--quiet"])
         killer.join(10)
+        logging.getLogger("distributed").removeHandler(seen)
+        assert [rec for rec in records if rec.levelno >= logging.WARNING] == []
         lines = r.stderr.splitlines()
         assert r.exit_code == 1, r.output
         assert len(lines) == 1, lines

@@ -200,3 +200,64 @@ def test_a_stale_name_that_is_an_input_is_never_removed(tmp_path):
     _with_stale_report(tmp_path)
     write_atomically(tmp_path, _new_files(), [tmp_path / "report.html"], remove=("report.html",))
     assert _contents(tmp_path) == {**NEW, "report.html": "old report\n"}
+
+
+def test_a_run_that_committed_while_another_was_writing_leaves_no_file_beside_its_set(
+        tmp_path, monkeypatch):
+    # Run A (no report) is still writing when run B (with a report) commits into the same
+    # folder; A commits last. A's set must not keep B's report.html beside it (A decided
+    # what was stale before B wrote it; it now decides under the folder's lock, at commit).
+    _old_set(tmp_path)
+    b_done = []
+
+    def hook(name: str) -> None:
+        if name == "staged" and not b_done:
+            b_done.append(True)  # B runs now, inside A's write
+            write_atomically(tmp_path, {**{n: (lambda p, n=n: p.write_text(f"B {n}\n"))
+                                           for n in NAMES},
+                                        "report.html": lambda p: p.write_text("B report\n")},
+                             [])
+    monkeypatch.setattr(commit, "after_step", hook)
+    write_atomically(tmp_path, _new_files(), [], remove=("report.html",))
+    assert _contents(tmp_path) == NEW
+
+
+def test_the_folder_lock_makes_a_second_writer_wait(tmp_path, monkeypatch):
+    # A second process holding the folder's lock: this writer waits, then says so.
+    monkeypatch.setattr(commit, "LOCK_TIMEOUT_S", 0.3)
+    holder = subprocess.Popen(
+        [sys.executable, "-c", textwrap.dedent(f"""
+            import fcntl, os, sys, time
+            fd = os.open({str(tmp_path)!r}, os.O_RDONLY)
+            fcntl.flock(fd, fcntl.LOCK_EX)
+            print("locked", flush=True)
+            time.sleep(30)
+        """)], stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "locked"
+        with pytest.raises(OutputError) as exc:
+            write_atomically(tmp_path, _new_files(), [])
+        assert str(exc.value) == (f"{tmp_path}: another run has been writing into this output "
+                                  "folder for 0.3 s; try again when it has finished")
+        assert not any(p.name.startswith(commit.PREFIX) for p in tmp_path.iterdir())
+    finally:
+        holder.kill()
+        holder.wait(10)
+    write_atomically(tmp_path, _new_files(), [])
+    assert {n: (tmp_path / n).read_text() for n in NAMES} == {n: f"new {n}\n" for n in NAMES}
+
+
+@pytest.mark.parametrize("command", ["breakdown", "drift", "report"])
+def test_a_failing_run_still_finishes_what_a_killed_run_left_in_its_folder(tmp_path, command):
+    # The folder was mixed (breakdown.csv new, the rest old) until the next successful write
+    # into it; now every command writing into --out finishes the dead run's set first.
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+
+    _old_set(tmp_path)
+    assert _killed_writer(tmp_path, "placed breakdown.csv").returncode == 9
+    r = CliRunner().invoke(app, [command, str(tmp_path / "missing.toml"), "--out",
+                                 str(tmp_path)])
+    assert r.exit_code == 1 and r.stderr.startswith("Error: "), r.output
+    assert _contents(tmp_path) == NEW

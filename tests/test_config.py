@@ -262,7 +262,17 @@ def test_bad_timezone(tmp_path):
 def test_duplicate_equipment_id(tmp_path):
     msg, path = _error(tmp_path, SITE_HEAD + EQ + EQ)
     assert msg == (f"{path}: [equipment #2] id = 'CH-1': ids must be unique and not "
-                   "'baseload' or 'unexplained'")
+                   "'baseload', 'unexplained' or 'estimated-gaps' (the breakdown's own rows)")
+
+
+@pytest.mark.parametrize("reserved", ["baseload", "unexplained", "estimated-gaps"])
+def test_an_equipment_id_that_names_a_breakdown_row_is_refused(tmp_path, reserved):
+    # 'estimated-gaps' (the --estimate row) used to be accepted: breakdown.csv then held two
+    # rows with the same month and id.
+    msg, path = _error(tmp_path, SITE_HEAD + EQ.replace("'CH-1'", repr(reserved))
+                       .replace('"CH-1"', f'"{reserved}"'))
+    assert msg == (f"{path}: [equipment #1] id = {reserved!r}: ids must be unique and not "
+                   "'baseload', 'unexplained' or 'estimated-gaps' (the breakdown's own rows)")
 
 
 def test_efficiency_above_one(tmp_path):

@@ -52,10 +52,12 @@ def _edit_meter_line(folder: Path, line_no: int, edit) -> None:
 def test_a_time_in_a_far_year_is_an_error_naming_the_row(base, tmp_path, year):
     folder = _copy(base, tmp_path)
     _edit_meter_line(folder, 6, lambda line: year + line[4:])
+    written = (folder / "meter.csv").read_text().splitlines()[5].split(",")[0]
     err = _one_error(["breakdown", str(folder / "site.toml"), "--out", str(tmp_path / "out")])
-    assert err.startswith(f"Error: {folder / 'meter.csv'}: line 6, column 'end': time {year}-")
-    assert err.endswith("is outside the years 1900 to 2199; expected a date and time such as "
-                        "2025-03-09T03:15:00")
+    # The time as written in the file (it was shown converted to UTC).
+    assert err == (f"Error: {folder / 'meter.csv'}: line 6, column 'end': time {written} is "
+                   "outside the years 1900 to 2199; expected a date and time such as "
+                   "2025-03-09T03:15:00")
 
 
 @pytest.mark.parametrize("value", ["inf", "1e308", "-inf"])
@@ -113,11 +115,59 @@ def test_a_non_finite_reference_temperature_is_refused(base, tmp_path, value):
                    "temperature from -200 to 200")
 
 
-@pytest.mark.parametrize("memory", ["nan", "inf", "-1"])
-def test_drift_memory_that_is_not_a_number_of_days_is_refused(base, tmp_path, memory):
+@pytest.mark.parametrize("option", ["--memory", "--baseload-memory"])
+@pytest.mark.parametrize("memory", ["nan", "inf", "-1", "1e308", "1e200", "3661"])
+def test_drift_memory_that_is_not_a_number_of_days_is_refused(base, tmp_path, option, memory):
+    # 1e200 and 1e308 days used to end in an internal error (an overflow, a failed
+    # eigenvalue solve); the longest memory is ten years (pipeline.MAX_MEMORY_DAYS).
     err = _one_error(["drift", str(base["site"]), "--out", str(tmp_path / "out"),
-                      "--memory", memory])
-    assert err == f"Error: --memory {float(memory):g}: expected a number of days above 0"
+                      option, memory])
+    assert err == (f"Error: {option} {float(memory):g}: expected a number of days above 0 "
+                   "and at most 3660")
+
+
+def test_report_memory_that_is_not_a_number_of_days_is_refused(base, tmp_path):
+    err = _one_error(["report", str(base["site"]), "--out", str(tmp_path / "out"),
+                      "--memory", "1e308"])
+    assert err == "Error: --memory 1e+308: expected a number of days above 0 and at most 3660"
+
+
+@pytest.mark.parametrize("key", ["weights", "mu", "scales", "delta"])
+def test_a_state_file_with_nan_or_null_numbers_is_refused(base, tmp_path, key):
+    # An edited --state file: NaN weights used to give a drift table of NaN whose alarms could
+    # never fire (exit 0), a NaN step an internal error.
+    import json
+
+    state = tmp_path / "state.json"
+    r = runner.invoke(app, ["drift", str(base["site"]), "--out", str(tmp_path / "a"),
+                            "--state", str(state), "--memory", "2"])
+    assert r.exit_code == 0, r.output
+    saved = json.loads(state.read_text())
+    for bad, word in ((float("nan"), "NaN"), (None, None)):
+        edited = dict(saved)
+        edited[key] = ([bad] * len(saved[key]) if isinstance(saved[key], list) else bad)
+        state.write_text(json.dumps(edited))
+        err = _one_error(["drift", str(base["site"]), "--out", str(tmp_path / "b"),
+                          "--state", str(state), "--memory", "2"])
+        if word:
+            assert err == (f"Error: {state}: cannot read the tracker state (NaN where a "
+                           "finite number was expected)")
+        else:
+            assert err == (f"Error: {state}: the tracker state's {key!r} holds something other "
+                           "than numbers; start without --state")
+    assert not (tmp_path / "b").exists()
+
+
+def test_a_site_file_the_user_may_not_read_is_not_a_usage_error(base, tmp_path, monkeypatch):
+    # typer's own readability check (os.access) answered with a usage panel and exit 2; the
+    # job reads the file itself (test_an_unreadable_site_file_is_one_error_line: its Error
+    # line). Here os.access says no while the file can be read (as for root): the run goes on.
+    site = base["site"]
+    real = os.access
+    monkeypatch.setattr(os, "access", lambda p, mode, *a, **k: (
+        False if Path(p) == Path(site) else real(p, mode, *a, **k)))
+    r = runner.invoke(app, ["check", str(site)])
+    assert r.exit_code == 0, r.output
 
 
 def test_interval_minutes_disagreeing_with_the_data_is_an_error(base, tmp_path):
@@ -138,6 +188,47 @@ def test_a_fifo_as_state_file_is_refused_before_reading(base, tmp_path):
                       "--state", str(fifo)])
     assert err == (f"Error: {fifo}: is a FIFO (named pipe), not a file; give the tracker state "
                    "file (--state) itself")
+
+
+@pytest.mark.parametrize("kind", ["fifo", "folder"])
+def test_a_fifo_or_folder_as_meter_file_is_named_as_such(base, tmp_path, kind):
+    # It used to say "no such meter file" of a file that exists.
+    folder = _copy(base, tmp_path)
+    meter = folder / "meter.csv"
+    meter.unlink()
+    if kind == "fifo":
+        os.mkfifo(meter)  # reading it would block forever
+    else:
+        meter.mkdir()
+    err = _one_error(["check", str(folder / "site.toml")])
+    what = "a FIFO (named pipe)" if kind == "fifo" else "a folder"
+    assert err == f"Error: {meter}: is {what}, not a file; give the meter file itself"
+
+
+def test_a_row_with_an_extra_field_is_named_by_its_line(base, tmp_path):
+    # The reader's own message named no line ("found more fields than defined in 'Schema'").
+    folder = _copy(base, tmp_path)
+    _edit_meter_line(folder, 11, lambda line: line + ",extra")
+    err = _one_error(["check", str(folder / "site.toml")])
+    header = (folder / "meter.csv").read_text().splitlines()[0].count(",") + 1
+    assert err == (f"Error: {folder / 'meter.csv'}: line 11: {header + 1} fields where the "
+                   f"header has {header}; expected a meter file with one value per column (a "
+                   "comma in a value must be inside double quotes)")
+
+
+def test_a_parquet_meter_with_a_list_column_is_refused(base, tmp_path):
+    # A List[f64] column ended in an internal error (a failed cast to text).
+    folder = _copy(base, tmp_path)
+    frame = pl.read_csv(folder / "meter.csv", infer_schema=False)
+    value = next(c for c in frame.columns if c != frame.columns[0])
+    frame = frame.with_columns(pl.col(value).cast(pl.Float64).map_elements(
+        lambda v: [v], return_dtype=pl.List(pl.Float64)))
+    frame.write_parquet(folder / "meter.parquet")
+    site = folder / "site.toml"
+    site.write_text(site.read_text().replace("meter.csv", "meter.parquet"))
+    err = _one_error(["check", str(site)])
+    assert err == (f"Error: {folder / 'meter.parquet'}: column {value!r} holds List(Float64) "
+                   "values; expected one number or text per row")
 
 
 def test_a_device_as_site_file_is_refused(tmp_path):

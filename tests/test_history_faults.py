@@ -236,3 +236,43 @@ def test_site_toml_files_in_folders_whose_ids_would_collide_are_refused(tmp_path
     assert "by the site file north wing/site.toml;" in str(exc.value)
     moved = SimpleNamespace(name="A", path=tmp_path / "elsewhere" / "north wing" / "site.toml")
     history.store_drift(tmp_path / "hist", moved, _drift_of([2]))  # the same building
+
+
+def test_a_foreign_file_under_another_site_is_one_error_naming_it(tmp_path):
+    # A Parquet file with none of the history's columns under another site's folder used to
+    # end every site's `disagg history` in an internal error (a ShapeError from the scan).
+    _store(tmp_path, "old")
+    part = tmp_path / "kind=breakdown" / "site=other" / "period=2025-01" / "part.parquet"
+    part.parent.mkdir(parents=True)
+    pl.DataFrame({"foo": [1, 2], "bar": ["x", "y"]}).write_parquet(part)
+    with pytest.raises(InputError) as exc:
+        history.read_history(tmp_path, "plant")
+    assert str(exc.value) == (f"{part}: not a disagg history file: it has no column "
+                              "'equipment'; move it out of the history folder")
+    part.unlink()
+    assert history.read_history(tmp_path, "plant")["flags"].unique().to_list() == ["old"]
+
+
+@pytest.mark.parametrize("command", ["breakdown", "drift"])
+def test_a_colliding_history_id_is_refused_before_any_output(tmp_path, command):
+    # The clash used to be found only when storing, after the outputs were written.
+    from test_portfolio import write_site_files
+    from typer.testing import CliRunner
+
+    from disagg.cli import app
+
+    runner = CliRunner()
+    hist = str(tmp_path / "hist")
+    first = write_site_files(tmp_path, "a b", 5, days=20, history=hist)
+    second = write_site_files(tmp_path, "a_b", 6, days=20, history=hist)
+    r = runner.invoke(app, [command, str(first), "--out", str(tmp_path / "out1")] +
+                      (["--memory", "2"] if command == "drift" else []))
+    assert r.exit_code == 0, r.output
+    r = runner.invoke(app, [command, str(second), "--out", str(tmp_path / "out2")] +
+                      (["--memory", "2"] if command == "drift" else []))
+    assert r.exit_code == 1
+    assert r.stderr.splitlines() == [
+        f"Error: {second}: its history id 'a_b' is already used in {tmp_path / 'hist'} by the "
+        "site file a b.toml; names that differ only in characters other than letters, digits, "
+        "'.', '_' and '-' share an id: rename one of the two"]
+    assert not (tmp_path / "out2").exists()

@@ -416,6 +416,9 @@ def test_two_listed_sites_outside_the_portfolio_folder_with_one_file_name_are_re
                                   "as [\"north-wing.toml\"]")),
     ('[portfolio]\nsites = ["a.toml"]\nworkers = 3\n',
      "[portfolio] workers: unknown setting; expected one of history, sites"),
+    ('[portfolio]\nsites = ["a.toml"]\nhistroy = "h"\n',
+     "[portfolio] histroy: unknown setting (did you mean history?); expected one of history, "
+     "sites"),
 ])
 def test_bad_portfolio_files_name_the_problem(tmp_path, text, expected):
     pf = tmp_path / "p.toml"

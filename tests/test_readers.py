@@ -134,6 +134,21 @@ def test_meter_naive_hourly_times_fall_back_hour_written_twice(tmp_path):
     assert m.frame["energy_kwh"].to_list() == [1.0, 2.0, 3.0, 4.0]
 
 
+def test_meter_naive_times_sorted_as_text_across_the_fall_back_hour_say_why(tmp_path):
+    # Sorted as text, the repeated hour's two passes interleave (01:00, 01:00, 01:15, ...):
+    # the order no longer tells them apart, and the error says the hour repeats.
+    local = ["00:45", "01:00", "01:00", "01:15", "01:15", "01:30", "01:30", "01:45", "01:45",
+             "02:00"]
+    site, path = _meter(tmp_path, [f"2025-11-02 {t}:00,{i + 1}" for i, t in enumerate(local)])
+    with pytest.raises(InputError) as exc:
+        read_meter(site.meter, site.timezone)
+    assert _message(exc) == (
+        f"{path}: line 6, column 'time': time 2025-11-02 07:15:00+00:00 repeats line 5 with a "
+        "different reading; expected one reading per interval; 2025-11-02 01:15 local time "
+        "occurs twice on the day the clocks go back (America/Chicago): give times with their "
+        "UTC offset (such as 2025-11-02T01:15:00-06:00) or in UTC")
+
+
 def test_meter_naive_skipped_spring_forward_time_is_an_error_naming_the_row(tmp_path):
     site, path = _meter(tmp_path, [
         "2025-03-09 01:30:00,1.0",
@@ -762,6 +777,17 @@ def test_a_latin1_meter_file_is_named_with_its_line_and_byte(tmp_path):
     assert _message(e) == (f"{path}: line 4: byte 0xE4 is not UTF-8 text; expected a UTF-8 "
                            "meter file (it may be Latin-1 or Windows-1252): export or save it "
                            "as UTF-8")
+
+
+def test_a_utf16_meter_file_is_named_as_utf16(tmp_path):
+    # Python's "utf-16" codec writes the byte order mark FF FE first (little-endian here);
+    # the Unicode Standard (sec. 23.8) defines that mark.
+    site, path = _meter(tmp_path, ["2025-01-06 00:15:00,1.0"])
+    path.write_bytes("time,kwh\n2025-01-06 00:15:00,1.0\n".encode("utf-16"))
+    with pytest.raises(InputError) as e:
+        read_meter(site.meter, site.timezone)
+    assert _message(e) == (f"{path}: line 1: byte 0xFF is not UTF-8 text; expected a UTF-8 "
+                           "meter file (it is UTF-16 text): export or save it as UTF-8")
 
 
 def test_a_latin1_header_is_blamed_on_the_encoding_not_a_missing_column(tmp_path):

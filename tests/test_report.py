@@ -673,7 +673,8 @@ def test_report_command_without_enough_days_leaves_drift_out_and_says_why(site, 
 
 
 @pytest.mark.parametrize("args, message", [
-    (["--memory", "0"], "Error: --memory 0: expected a number of days above 0"),
+    (["--memory", "0"], ("Error: --memory 0: expected a number of days above 0 "
+                         "and at most 3660")),
     (["--reference", "2025-02-01"], ("Error: --reference '2025-02-01': expected FROM:TO dates "
                                       "such as 2025-06-01:2025-08-31")),
     (["--from", "2025-13-01"], "Error: --from '2025-13-01': expected a date such as 2025-03-01"),

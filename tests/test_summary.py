@@ -36,7 +36,7 @@ def written(tmp_path_factory):
 def test_fit_json_is_the_summarys_json_form(written):
     result, on_disk = written
     assert isinstance(result.fit, FitSummary)
-    assert on_disk["schema_version"] == FIT_SCHEMA_VERSION == 2
+    assert on_disk["schema_version"] == FIT_SCHEMA_VERSION == 3
     # The file holds exactly the typed summary, key for key, in order.
     assert json.loads(to_json(result.fit.as_json())) == on_disk
     assert list(on_disk) == list(result.fit.as_json())

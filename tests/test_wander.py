@@ -7,6 +7,7 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
+import polars as pl
 import pytest
 import statsmodels.api as sm
 
@@ -199,3 +200,34 @@ def test_the_report_says_which_form_was_used_and_how_the_others_compared():
     assert "wanders slowly" in text
     others = [f.form.name for f in e.form.scores if f.form.name != e.form.form.name]
     assert others and all(name in text for name in others[:4])
+
+
+def test_fit_json_gives_the_baseload_energy_with_the_levels_error():
+    """fit.json's baseload energy_kwh / se_kwh: without the level, the columns' error alone;
+    with the level, the level's error and the columns' together (intervals.level_sum_variance
+    over the whole range, checked against statsmodels in test_stages), which is not the
+    columns' alone (they are kW above the level and move against it) and no larger than the
+    monthly rows' errors added as if perfectly correlated (Var(sum) <= (sum of sd)^2,
+    Cauchy-Schwarz); the energy equals the months' baseload rows."""
+    from disagg.analyses.breakdown import monthly_breakdown
+    from disagg.analyses.pipeline import fit_summary
+
+    plain = make_building(2)
+    e = estimate_draws(plain.site, plain.aligned)
+    assert not e.form.form.level
+    b = fit_summary(plain.site, plain.aligned, e).baseload
+    c = e.base.sum(axis=0)
+    assert b.se_kwh == pytest.approx(float(np.sqrt(c @ e.cov_base @ c)), rel=1e-12)
+
+    s = make_building(2, misspecified=True)
+    e = estimate_draws(s.site, s.aligned)
+    assert e.form.form.level
+    b = fit_summary(s.site, s.aligned, e).baseload
+    c = e.base.sum(axis=0)
+    columns_only = float(np.sqrt(c @ e.cov_base @ c))
+    assert b.se_kwh > 0 and abs(b.se_kwh - columns_only) > 0.01 * columns_only
+    table = monthly_breakdown(e, s.site.timezone).filter(pl.col("equipment") == e.base_id)
+    assert b.energy_kwh == pytest.approx(float(table["kwh"].sum()), rel=1e-9)
+    month_sd = sum(float(np.sqrt(v)) for v in e.base_var_kwh2.values())
+    assert b.se_kwh <= month_sd * (1 + 1e-9)
+    assert b.as_json()["se_kwh"] == b.se_kwh

@@ -415,6 +415,14 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> FitSummar
     end = est.frame["end_utc"].max()
     draws = draw_list(est)
     base_se = np.sqrt(np.maximum(np.diag(est.cov_base), 0))
+    # The baseload row's energy over the range and its standard error: the profile's columns'
+    # error, and with the wandering level the level's own error too (estimate.assemble).
+    c = est.base.sum(axis=0)
+    base_kwh = float(c @ est.base_kw)
+    if est.level_kwh is not None:
+        base_kwh += float(est.level_kwh.sum())
+    base_var = (est.base_range_var_kwh2 if est.base_range_var_kwh2 is not None
+                else float(c @ est.cov_base @ c))
     quality = dict(est.quality)
     quality["ashrae_guideline_14"] = {
         "hourly_criteria": G14_HOURLY, "monthly_criteria": G14_MONTHLY,
@@ -439,7 +447,8 @@ def fit_summary(site: SiteConfig, aligned: Aligned, est: Estimates) -> FitSummar
             columns=[BaseloadColumn(n, float(b), float(s))
                      for n, b, s in zip(est.base_names, est.base_kw, base_se)],
             form=est.form.as_json() if est.form is not None else None,
-            level_kwh=float(est.level_kwh.sum()) if est.level_kwh is not None else 0.0),
+            level_kwh=float(est.level_kwh.sum()) if est.level_kwh is not None else 0.0,
+            energy_kwh=base_kwh, se_kwh=float(np.sqrt(max(base_var, 0.0)))),
         identifiability=est.identifiability,
         stability={
             "method": ("interval = widest of: Newey-West HAC on local-day sums of scores "
@@ -547,6 +556,19 @@ def check_log_offset(offset_min: float) -> None:
     if not (math.isfinite(offset_min) and abs(offset_min) <= MAX_LOG_OFFSET_MIN):
         raise ConfigError(f"--log-offset {offset_min:g}: expected a number of minutes from "
                           f"-{MAX_LOG_OFFSET_MIN} to {MAX_LOG_OFFSET_MIN}")
+
+
+# Longest tracker memory [d]: ten years, longer than any meter history a drift run compares
+# against (common practice, no source).
+MAX_MEMORY_DAYS = 3660.0
+
+
+def check_memory_days(days: float, option: str = "--memory") -> None:
+    """Raise ConfigError for a tracker memory that is not a finite number of days above 0 and
+    at most MAX_MEMORY_DAYS (option: the command-line option named in the message)."""
+    if not (math.isfinite(days) and 0 < days <= MAX_MEMORY_DAYS):
+        raise ConfigError(f"{option} {days:g}: expected a number of days above 0 and at most "
+                          f"{MAX_MEMORY_DAYS:g}")
 
 
 def find_log_offset(site: SiteConfig, window_min: float, log_offset_min: float = 0.0, *,

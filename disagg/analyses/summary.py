@@ -19,8 +19,8 @@ from dataclasses import dataclass, field
 from disagg.inputs.vee import Finding
 
 # fit.json layout version: 2 added baseload.form, baseload.level_kwh, months' baseload_form
-# and draws' between_week_sd_kw.
-FIT_SCHEMA_VERSION = 2
+# and draws' between_week_sd_kw; 3 added baseload.energy_kwh and baseload.se_kwh.
+FIT_SCHEMA_VERSION = 3
 
 
 @dataclass
@@ -116,12 +116,18 @@ class BaseloadSummary:
     columns: list[BaseloadColumn]
     form: dict | None  # disagg.fit.select.FormChoice.as_json
     level_kwh: float  # the wandering level's energy over the range [kWh]
+    # The row's energy over the range [kWh] and its standard error [kWh]: the columns' error
+    # and, with the wandering level, the level's own (its se is not in the columns' se_kw,
+    # which are kW above the level).
+    energy_kwh: float
+    se_kwh: float
 
     def as_json(self) -> dict:
         return {"row": self.row, "profile": self.profile, "spells": self.spells,
                 "columns": [{"name": c.name, "kw": c.kw, "se_kw": c.se_kw}
                             for c in self.columns],
-                "form": self.form, "level_kwh": self.level_kwh}
+                "form": self.form, "level_kwh": self.level_kwh,
+                "energy_kwh": self.energy_kwh, "se_kwh": self.se_kwh}
 
 
 @dataclass

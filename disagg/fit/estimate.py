@@ -145,6 +145,8 @@ class Estimates:
     # baseload energy, the profile's and the level's together [kWh^2]
     # (intervals.level_sum_variance); None without the level (cov_base then suffices).
     base_var_kwh2: dict[int, float] | None = None
+    # The same for the whole range's baseload energy [kWh^2] (None without the level).
+    base_range_var_kwh2: float | None = None
 
 
 
@@ -361,11 +363,14 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
     quality["monthly"] = {"months": len(np.unique(rows.month)),
                           "nmbe_pct": float(100 * (y_sum - float(np.sum(fitted))) / y_sum)
                           if y_sum else float("nan")}
-    base_var = None
+    base_var = base_range_var = None
     if s.level:
         covs = (cov,) + ((jk.cov_jack * (jk.q_jack / jk.q_hac) ** 2,) if jk.checked else ())
         base_var = level_sum_variance(rows.sp, s.choice.form.q, s.fit.sigma2, X, base_slice,
                                       rows.month, covs)
+        base_range_var = level_sum_variance(rows.sp, s.choice.form.q, s.fit.sigma2, X,
+                                            base_slice, np.zeros(rows.n, dtype=np.int64),
+                                            covs)[0]
     k = s.k
     return Estimates(
         terms=plan.terms, base_names=s.base_names, base_id=plan.base_id, frame=rows.frame,
@@ -378,7 +383,7 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
         warnings=warnings, form=s.choice, level_kwh=s.level_kwh,
         tau2_kw2=np.array([iv.tau2[t.column] if t.column is not None and t.column < k else 0.0
                            for t in plan.terms]),
-        week=iv.week, base_var_kwh2=base_var)
+        week=iv.week, base_var_kwh2=base_var, base_range_var_kwh2=base_range_var)
 
 
 def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, days: np.ndarray,

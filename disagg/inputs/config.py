@@ -528,6 +528,10 @@ def _prior(t: _Table, eq_id: str) -> tuple[Prior, float | None]:
     return Prior(None, None, "none (no size or draw given)"), None
 
 
+# The breakdown's own rows: no equipment may take their names.
+RESERVED_IDS = ("baseload", "unexplained", "estimated-gaps")
+
+
 def _equipment(path: Path, index: int, data: object, seen: set[str],
                weather: WeatherSettings | None = None) -> Equipment:
     t = _Table(path, f"[equipment] #{index + 1}", data)
@@ -536,9 +540,10 @@ def _equipment(path: Path, index: int, data: object, seen: set[str],
     if not eq_id or any(c in eq_id for c in "+;,\n"):
         raise ConfigError(f"{t.where('id')} = {eq_id!r}: expected a non-empty id without "
                           "'+', ';', ',' or line breaks")
-    if eq_id in seen or eq_id in ("baseload", "unexplained"):
+    if eq_id in seen or eq_id in RESERVED_IDS:
         raise ConfigError(f"{t.where('id')} = {eq_id!r}: ids must be unique and not "
-                          "'baseload' or 'unexplained'")
+                          "'baseload', 'unexplained' or 'estimated-gaps' (the breakdown's own "
+                          "rows)")
     seen.add(eq_id)
     t.name = f"equipment {eq_id}"
     t.only({"id", "name", "kind", "control", "exponent", "rated_kw", "hp", "efficiency", "volts",

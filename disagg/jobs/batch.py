@@ -189,8 +189,13 @@ def load_portfolio(path: str | Path) -> Portfolio:
         table = data["portfolio"]
         for key in table:
             if key not in ("sites", "history"):
-                raise ConfigError(f"{path}: [portfolio] {key}: unknown setting; expected one "
-                                  "of history, sites")
+                import difflib
+
+                near = difflib.get_close_matches(key.lower(), ["history", "sites"], n=1,
+                                                 cutoff=0.6)
+                hint = f" (did you mean {near[0]}?)" if near else ""
+                raise ConfigError(f"{path}: [portfolio] {key}: unknown setting{hint}; expected "
+                                  "one of history, sites")
         listed = table.get("sites")
         if not isinstance(listed, list) or not listed:
             raise ConfigError(f"{path}: [portfolio] sites = {listed!r}: expected a list of "
@@ -650,9 +655,14 @@ def _run_pool(context, jobs: list[SiteJob], indices: list[int], workers: int,
                                initializer=_init_worker, initargs=(stop, state, os.getpid()))
     futures = {}
     try:
-        with signals.held():  # submitting starts the workers
-            for i in indices:
-                futures[pool.submit(_run_job, i, jobs[i])] = i
+        try:
+            with signals.held():  # submitting starts the workers
+                for i in indices:
+                    futures[pool.submit(_run_job, i, jobs[i])] = i
+        except OSError as exc:  # the start method's server or a worker cannot be started
+            _kill_pool(pool)
+            raise DisaggError(f"cannot start the local worker processes ({type(exc).__name__}: "
+                              f"{exc}); no site was run") from None
         procs = list((getattr(pool, "_processes", None) or {}).values())
         for fut in as_completed(futures):
             i = futures[fut]
@@ -801,7 +811,33 @@ def _run_on_cluster(address: str, jobs: list[SiteJob],
     except ImportError:
         raise ConfigError(f"--cluster {address}: needs dask distributed; install it with "
                           "pip install 'disagg[cluster]'") from None
-    client = _connect(address)
+    with _dask_logs_quiet():
+        return _run_with_client(address, _connect(address), jobs, progress, dask_wait)
+
+
+@contextlib.contextmanager
+def _dask_logs_quiet():
+    """Keep dask's own log records (a lost scheduler is logged as an ERROR with a traceback
+    of some 35 lines) off stderr while the batch runs; what happened is the batch's one
+    Error line."""
+    import logging
+
+    # Every distributed logger by name: dask's configuration sets some children's levels (a
+    # child's record reaches the parent's handlers whatever the parent's level).
+    names = ["distributed"] + [n for n in logging.root.manager.loggerDict
+                               if n.startswith("distributed.")]
+    levels = {n: logging.getLogger(n).level for n in names}
+    for n in names:
+        logging.getLogger(n).setLevel(logging.CRITICAL + 1)
+    try:
+        yield
+    finally:
+        for n, level in levels.items():
+            logging.getLogger(n).setLevel(level)
+
+
+def _run_with_client(address: str, client, jobs: list[SiteJob], progress: Progress | None,
+                     dask_wait) -> list[SiteOutcome]:
     outcomes: list[SiteOutcome | None] = [None] * len(jobs)
     total = len(jobs)
     done = 0

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -22,13 +21,14 @@ from disagg.analyses.pipeline import (
     breakdown_site,
     check_confidence,
     check_log_offset,
+    check_memory_days,
     check_range,
     check_site,
 )
 from disagg.errors import ConfigError, DisaggError, InputError, OutputError
 from disagg.inputs.config import check_regular_file, load_site, resolve_path
 from disagg.inputs.vee import check_on_duplicate
-from disagg.present import terminal
+from disagg.present import commit, terminal
 from disagg.present.outputs import (
     OPTIONAL_BREAKDOWN_FILES,
     neutralise_csv_text,
@@ -45,6 +45,14 @@ if TYPE_CHECKING:
     from disagg.analyses.drift import DriftResult
 
 Period = tuple[dt.date, dt.date]
+
+
+def finish_dead_writes(out: Path) -> None:
+    """Before a run: finish (or remove) what runs killed while writing into out left there
+    (disagg.present.commit.recover), so the folder holds whole sets even when this run fails
+    before writing its own."""
+    if Path(out).is_dir():
+        commit.recover(Path(out).resolve())
 
 
 def check_out_folder(out: Path) -> None:
@@ -149,8 +157,7 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
     from disagg.fit.align import BASELOAD_COLUMN_COUNT
     from disagg.present.report.sections import local_span
 
-    if not (math.isfinite(memory_days) and memory_days > 0):
-        raise ConfigError(f"--memory {memory_days:g}: expected a number of days above 0")
+    check_memory_days(memory_days)
     first, last = local_span(result)
     span_days = (dt.date.fromisoformat(last) - dt.date.fromisoformat(first)).days + 1
     if reference is None and span_days < DEFAULT_REFERENCE_DAYS + MIN_TRACKED_DAYS:
@@ -225,6 +232,7 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     after the outputs were written says so (disagg.present.history.outputs_already_written).
     With opts.drift the result is a (BreakdownResult, DriftResult) pair.
     """
+    finish_dead_writes(opts.out)
     check_memory_limit(opts.site, opts.date_from, opts.date_to)
     result = breakdown_site(opts.site, opts.date_from, opts.date_to, opts.confidence,
                             opts.log_offset_min, on_duplicate=opts.on_duplicate,
@@ -245,6 +253,7 @@ def run_breakdown(opts: BreakdownOptions, progress: Progress | None = None) -> R
     if folder is not None:
         from disagg.present import history as hist  # only when a history is used
         hist.check_folder(folder)  # a bad history folder fails before any output
+        hist.check_site_id(folder, result.site)  # so does an id another site file uses
     written = {"breakdown.xlsx": opts.xlsx, "report.html": html is not None}
     stale = [n for n in OPTIONAL_BREAKDOWN_FILES
              if not written[n] and (Path(opts.out) / n).is_file()]
@@ -333,8 +342,10 @@ class DriftOptions:
     def __post_init__(self) -> None:
         check_out_folder(self.out)
         check_range(self.date_from, self.date_to)
-        if self.step is None and not (math.isfinite(self.memory_days) and self.memory_days > 0):
-            raise ConfigError(f"--memory {self.memory_days:g}: expected a number of days above 0")
+        if self.step is None:
+            check_memory_days(self.memory_days)
+        if self.baseload_memory_days is not None:
+            check_memory_days(self.baseload_memory_days, "--baseload-memory")
         if not self.min_reference_run_h > 0:
             raise ConfigError(f"--reference-hours {self.min_reference_run_h:g}: expected "
                               "run-hours above 0")
@@ -352,14 +363,28 @@ def _read_state(path: Path | None) -> dict | None:
     check_regular_file(resolve_path(path, "--state"), "tracker state file (--state)")
     if not path.exists():
         return None
+    def not_finite(word: str) -> float:
+        # disagg writes no NaN or Infinity (to_json makes them null): the file was edited.
+        raise ValueError(f"{word} where a finite number was expected")
+
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
+        state = json.loads(path.read_text(encoding="utf-8"), parse_constant=not_finite)
     except (OSError, ValueError) as exc:
         raise InputError(f"{path}: cannot read the tracker state ({exc})") from None
+    if isinstance(state, dict):
+        for key in ("weights", "scales", "mu", "delta"):
+            values = state.get(key)
+            flat = values if isinstance(values, list) else [values]
+            if key in state and not all(
+                    isinstance(v, (int, float)) and not isinstance(v, bool) for v in flat):
+                raise InputError(f"{path}: the tracker state's {key!r} holds something other "
+                                 "than numbers; start without --state")
+    return state
 
 
 def run_drift(opts: DriftOptions) -> Run:
     """Track every draw, write drift.csv/.json (and the state), store the days tracked."""
+    finish_dead_writes(opts.out)
     check_memory_limit(opts.site, opts.date_from, opts.date_to)
     from disagg.analyses.drift import drift_site
 
@@ -397,6 +422,7 @@ class CompareOptions:
 
 def run_compare(opts: CompareOptions) -> Run:
     """Each draw in two periods and the verdict; writes compare.csv (and compare.json)."""
+    finish_dead_writes(opts.out)
     if opts.from_history:
         site = load_site(opts.site)
         if site.history is None:
@@ -495,6 +521,7 @@ class ReportOptions:
         check_confidence(self.confidence)
         if self.log_offset_min is not None:
             check_log_offset(self.log_offset_min)
+        check_memory_days(self.memory_days)
 
 
 def _release_fit_columns(result: BreakdownResult) -> None:
@@ -517,6 +544,7 @@ def run_report(opts: ReportOptions, progress: Progress | None = None) -> Run:
     drift, the breakdown's estimates no longer hold the per-interval fit columns (see
     _release_fit_columns).
     """
+    finish_dead_writes(opts.out)
     check_memory_limit(opts.site, opts.date_from, opts.date_to)
     from disagg.present.report import render_report
 

@@ -37,6 +37,7 @@ import signal
 import socket
 import tempfile
 import threading
+import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 
@@ -157,6 +158,49 @@ def _fsync_write(path: Path, text: str) -> None:
         f.write(text)
         f.flush()
         os.fsync(f.fileno())
+
+
+# How long a run waits for another run's lock on a folder it writes into [s] (common
+# practice, no source: long enough for any commit, short enough to say so).
+LOCK_TIMEOUT_S = 60.0
+
+
+@contextlib.contextmanager
+def folder_locked(folder: Path, what: str = "output folder") -> Iterator[None]:
+    """Hold an exclusive lock on the folder itself (fcntl.flock on its descriptor: no lock
+    file) inside the block: two runs writing one folder take turns to decide and commit
+    their sets, so neither leaves the other's files beside its own.
+
+    Raises:
+        OutputError: another run held the lock for LOCK_TIMEOUT_S seconds.
+    """
+    try:
+        import fcntl
+    except ImportError:  # no flock here: runs are not serialised
+        yield
+        return
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:  # cannot be opened for the lock: the write itself reports the reason
+        yield
+        return
+    try:
+        deadline = time.monotonic() + LOCK_TIMEOUT_S
+        while True:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                break
+            except BlockingIOError:
+                if time.monotonic() > deadline:
+                    raise OutputError(f"{folder}: another run has been writing into this {what} "
+                                      f"for {LOCK_TIMEOUT_S:g} s; try again when it has "
+                                      "finished") from None
+                time.sleep(0.05)
+            except OSError:  # a file system without locks
+                break
+        yield
+    finally:
+        os.close(fd)  # releases the lock
 
 
 def commit(staging_dir: Path, moves: list[tuple[str | None, Path]]) -> None:

@@ -145,6 +145,15 @@ def check_folder(folder: str | Path) -> Path:
     return folder
 
 
+def check_site_id(folder: str | Path, site, kinds: tuple[str, ...] = KINDS) -> None:
+    """Refuse, before any output is written, a site whose history id another site file's
+    history already uses (see _check_id; storing checks again under the lock)."""
+    folder = Path(folder).resolve()
+    sid = site_id(site.path)
+    for kind in kinds:
+        _check_id(folder, kind, sid, site)
+
+
 @contextlib.contextmanager
 def outputs_already_written(written: list[Path]) -> Iterator[None]:
     """Around storing that follows writing a run's outputs: a DisaggError raised inside
@@ -439,6 +448,30 @@ def _conform(frame: pl.DataFrame, schema: dict, where: Path) -> pl.DataFrame:
                         for c, t in schema.items())
 
 
+# Columns every stored month of a kind has had since the first layout: a part.parquet
+# without them was not written by disagg.
+_KEY_COLUMNS = {"breakdown": ("equipment",), "drift": ("date", "equipment")}
+
+
+def _refuse_foreign_files(root: Path, schema: dict) -> None:
+    """Raise InputError naming the first part.parquet under root (another site's included:
+    the scan reads them all) that lacks the kind's key columns, before the scan trips over
+    it (an internal error) or mixes it in.
+
+    Only each file's footer is read (its schema)."""
+    kind = next(k for k, v in _SCHEMAS.items() if v is schema)
+    for part in sorted(root.rglob("part.parquet")):
+        try:
+            names = pl.read_parquet_schema(part)
+        except (OSError, pl.exceptions.PolarsError) as exc:
+            raise InputError(f"{part}: cannot read this history file ({_first_line(exc)})"
+                             ) from None
+        missing = [c for c in _KEY_COLUMNS[kind] if c not in names]
+        if missing:
+            raise InputError(f"{part}: not a disagg history file: it has no column "
+                             f"{missing[0]!r}; move it out of the history folder")
+
+
 def read_history(folder: str | Path, site: str | None = None,
                  kind: str = "breakdown") -> pl.DataFrame:
     """Everything stored of one kind, optionally for one site id (see site_id).
@@ -460,6 +493,7 @@ def read_history(folder: str | Path, site: str | None = None,
     empty = pl.DataFrame(schema={**HIVE_SCHEMA, **schema})
     if not root.is_dir() or not any(root.rglob("part.parquet")):
         return empty
+    _refuse_foreign_files(root, schema)
     try:
         lf = pl.scan_parquet(root, hive_partitioning=True, hive_schema=HIVE_SCHEMA,
                              missing_columns="insert", extra_columns="ignore")
@@ -634,10 +668,12 @@ def site_folder(folder: str | Path, kind: str, site_file: str | Path) -> Path:
 
 
 def check_configured(site) -> None:
-    """check_folder on the site's [history] folder, when its file names one."""
+    """check_folder and check_site_id on the site's [history] folder, when its file names
+    one."""
     folder = getattr(site, "history", None)
     if folder is not None:
         check_folder(folder)
+        check_site_id(folder, site)
 
 
 def store_drift_configured(site, drift_result, written: list[Path] | None = None) -> list[Path]:

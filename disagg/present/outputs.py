@@ -85,10 +85,6 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         if t.is_dir():
             raise OutputError(f"{t}: is a folder, so the file {t.name} cannot be written there; "
                               "move the folder or choose another --out")
-    # An earlier run's file of this kind of set that this run does not write (never an input,
-    # never a folder).
-    stale = [n for n in remove if n not in files and (out_dir / n).is_file()
-             and _resolved(out_dir / n) not in resolved_inputs]
     created = _make_folder(out_dir)
     try:
         tmp = commit.staging(out_dir)
@@ -99,8 +95,14 @@ def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
         for name, write in files.items():
             write(tmp / name)
         commit._step("staged")
-        commit.commit(tmp, [(name, out_dir / name) for name in files]
-                      + [(None, out_dir / name) for name in stale])
+        with commit.folder_locked(out_dir):
+            # An earlier run's file of this kind of set that this run does not write (never
+            # an input, never a folder), decided under the lock: a run that committed since
+            # this one started is "earlier" too.
+            stale = [n for n in remove if n not in files and (out_dir / n).is_file()
+                     and _resolved(out_dir / n) not in resolved_inputs]
+            commit.commit(tmp, [(name, out_dir / name) for name in files]
+                          + [(None, out_dir / name) for name in stale])
     except OSError as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         _remove_if_created(created)

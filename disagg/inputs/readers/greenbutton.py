@@ -10,6 +10,7 @@ from pathlib import Path
 import polars as pl
 
 from disagg.errors import InputError
+from disagg.inputs.readers.tables import existing_file
 
 ATOM_NS = "http://www.w3.org/2005/Atom"
 ESPI_NS = "http://naesb.org/espi"
@@ -64,12 +65,7 @@ def _same_href(a: str | None, b: str | None) -> bool:
 
 def _gb_parse(path: Path) -> ET.Element:
     """The file's XML tree; nothing outside the file is fetched or expanded."""
-    try:
-        exists = path.is_file()
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{path}: cannot use this meter file path ({exc})") from None
-    if not exists:
-        raise InputError(f"{path}: no such meter file; check the path in the site file")
+    existing_file(path, "meter")
     try:
         data = path.read_bytes()
     except OSError as exc:

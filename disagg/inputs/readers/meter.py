@@ -21,6 +21,7 @@ from disagg.inputs.readers.tables import (
     _row_label,
     parse_times,
     read_table,
+    repeated_hour_hint,
     require_columns,
 )
 
@@ -135,7 +136,7 @@ def read_meter(settings: MeterSettings, tz: str, on_duplicate: str = "error") ->
         df, on_duplicate, tz,
         lambda t, r0, r1: (f"{path}: {_row_label(path, r1)}, column {settings.time_column!r}: "
                            f"time {t} repeats {_row_label(path, r0)} with a different reading; "
-                           "expected one reading per interval"))
+                           f"expected one reading per interval{repeated_hour_hint(t, tz)}"))
     dropped = rows_read - df.height
     df = df.sort("t")
     interval_min = settings.interval_min or infer_interval_min(df["t"], path, "meter")

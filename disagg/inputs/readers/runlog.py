@@ -23,6 +23,7 @@ from disagg.inputs.readers.tables import (
     _row_label,
     parse_times,
     read_table,
+    repeated_hour_hint,
     require_columns,
 )
 
@@ -365,7 +366,8 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
             r = (df.join(bad.select("eq", "t").unique(), on=["eq", "t"])
                  .group_by("eq", "t").agg(pl.col("row").min()).sort("row").row(0, named=True))
             raise InputError(f"{path}: {_row_label(path, r['row'])}: equipment {r['eq']!r} has "
-                             f"different states at the same time {r['t']}; expected one state")
+                             f"different states at the same time {r['t']}; expected one state"
+                             f"{repeated_hour_hint(r['t'], tz)}")
         if df.height == 0:
             notes.append(f"{path}: the run log has no rows: every state is unknown")
             return RunLog(_to_segments(df.with_columns(end=pl.col("t")), ids, "end"), path,

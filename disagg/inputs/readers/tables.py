@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import os
 import re
+import stat
 from pathlib import Path
 
 import polars as pl
@@ -52,9 +54,34 @@ def _encoding_error(path: Path, what: str) -> InputError | None:
     if bad is None:
         return None
     line, byte = bad
+    try:
+        with path.open("rb") as f:
+            head = f.read(2)
+    except OSError:
+        head = b""
+    # A UTF-16 file starts with its byte order mark FF FE or FE FF (Unicode Standard, sec. 23.8).
+    maybe = ("it is UTF-16 text" if head in (b"\xff\xfe", b"\xfe\xff")
+             else "it may be Latin-1 or Windows-1252")
     return InputError(f"{path}: line {line}: byte 0x{byte:02X} is not UTF-8 text; expected a "
-                      f"UTF-8 {what} file (it may be Latin-1 or Windows-1252): export or save "
-                      "it as UTF-8")
+                      f"UTF-8 {what} file ({maybe}): export or save it as UTF-8")
+
+
+def existing_file(path: Path, what: str) -> None:
+    """Raise InputError unless path is an existing regular file: a missing one, or a FIFO
+    (reading it would block forever), device (read until memory runs out), socket or folder,
+    named as such (config.check_regular_file does the same for the site file)."""
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such {what} file; check the path in the site file") from None
+    except (OSError, ValueError) as exc:  # a name too long, a symbolic link loop, ...
+        why = getattr(exc, "strerror", None) or exc
+        raise InputError(f"{path}: cannot use this {what} file path ({why})") from None
+    if not stat.S_ISREG(mode):
+        kind = ("a folder" if stat.S_ISDIR(mode) else "a FIFO (named pipe)"
+                if stat.S_ISFIFO(mode) else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
+                else "a socket" if stat.S_ISSOCK(mode) else "not a regular file")
+        raise InputError(f"{path}: is {kind}, not a file; give the {what} file itself")
 
 
 def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.DataFrame:
@@ -68,12 +95,7 @@ def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.Da
         InputError: missing file, unknown extension, a missing column, or a file the reader
         cannot parse.
     """
-    try:
-        exists = path.is_file()
-    except (OSError, ValueError) as exc:  # e.g. a name too long for the file system
-        raise InputError(f"{path}: cannot use this {what} file path ({exc})") from None
-    if not exists:
-        raise InputError(f"{path}: no such {what} file; check the path in the site file")
+    existing_file(path, what)
     suffix = path.suffix.lower()
     try:
         if suffix == ".csv":
@@ -94,15 +116,47 @@ def read_table(path: Path, what: str, columns: list[str] | None = None) -> pl.Da
                             f"{', '.join(repr(c) for c in names)}")
                     raise InputError(f"{path}: column {col!r} not found; the file has "
                                      f"{', '.join(repr(c) for c in names)}")
+            if suffix != ".csv":
+                schema = lazy.collect_schema()
+                for col in columns:
+                    if schema[col].is_nested():
+                        raise InputError(f"{path}: column {col!r} holds {schema[col]} values; "
+                                         "expected one number or text per row")
             return lazy.select(list(dict.fromkeys(columns))).collect()
     except (pl.exceptions.PolarsError, OSError) as exc:
         if suffix == ".csv" and "utf-8" in str(exc).lower().replace("utf8", "utf-8"):
             encoding = _encoding_error(path, what)
             if encoding is not None:
                 raise encoding from None
+        if suffix == ".csv" and "more fields" in str(exc):
+            long_row = _first_long_row(path, what)
+            if long_row is not None:
+                raise long_row from None
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{path}: cannot read the {what} file ({first})") from None
     raise InputError(f"{path}: unknown file type {suffix!r}; expected .csv or .parquet")
+
+
+def _first_long_row(path: Path, what: str) -> InputError | None:
+    """The error naming the first line with more fields than the header (read again with
+    the csv module, only after the fast reader failed), or None when none is found."""
+    import csv
+
+    try:
+        with path.open(newline="", encoding="utf-8", errors="replace") as f:
+            rows = csv.reader(f)
+            header = next(rows, None)
+            if header is None:
+                return None
+            for row in rows:
+                if len(row) > len(header):
+                    return InputError(
+                        f"{path}: line {rows.line_num}: {len(row)} fields where the header has "
+                        f"{len(header)}; expected a {what} file with one value per column (a "
+                        "comma in a value must be inside double quotes)")
+    except (OSError, csv.Error):
+        return None
+    return None
 
 
 def require_columns(frame: pl.DataFrame, path: Path, columns: list[str]) -> None:
@@ -144,6 +198,25 @@ def _parse_offset_times(text: pl.Series) -> pl.Series | None:
     return pl.from_epoch(wall.dt.epoch("us") - shift_us, time_unit="us").dt.replace_time_zone("UTC")
 
 
+def repeated_hour_hint(t, tz: str) -> str:
+    """"; ..." naming the hour the clocks repeat when they go back, when the UTC time t falls
+    in it in the zone tz (two rows there with local times without their UTC offset read as
+    one time), else ""."""
+    import zoneinfo
+
+    try:
+        zone = zoneinfo.ZoneInfo(tz)
+        wall = t.astimezone(zone).replace(tzinfo=None)
+    except (AttributeError, ValueError, OverflowError, zoneinfo.ZoneInfoNotFoundError):
+        return ""
+    if (wall.replace(tzinfo=zone, fold=0).utcoffset()
+            == wall.replace(tzinfo=zone, fold=1).utcoffset()):
+        return ""
+    return (f"; {wall:%Y-%m-%d %H:%M} local time occurs twice on the day the clocks go back "
+            f"({tz}): give times with their UTC offset (such as "
+            f"{wall.replace(tzinfo=zone, fold=1).isoformat()}) or in UTC")
+
+
 # Times outside these years are typing or export errors, and beyond them the nanosecond
 # times of the alignment (numpy datetime64[ns]: years 1678 to 2261) would overflow.
 FIRST_YEAR, LAST_YEAR = 1900, 2199
@@ -162,8 +235,10 @@ def parse_times(frame: pl.DataFrame, column: str, tz: str, path: Path,
     outside = (year < FIRST_YEAR) | (year > LAST_YEAR)
     if outside.any():
         idx = int(outside.arg_max())  # type: ignore[arg-type]
+        # The time as the file has it (not converted to UTC), when it is text.
+        written = frame[column][idx] if frame[column].dtype == pl.String else times[idx]
         raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: time "
-                         f"{times[idx]} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
+                         f"{written} is outside the years {FIRST_YEAR} to {LAST_YEAR}; "
                          "expected a date and time such as 2025-03-09T03:15:00")
     return times
 
