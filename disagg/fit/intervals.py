@@ -551,47 +551,47 @@ def switching_design(X: np.ndarray, interval_h: np.ndarray, keep: np.ndarray, k:
     the first difference of load c's switch-on part in kW (split_switching), column k + c
     its switch-off part, columns 2k..k+kx-1 the differenced weather columns. The same numbers
     as splitting each whole column: the running sum of the rises is continued from a
-    checkpoint every block_steps intervals in the same order (a cumulative sum is
-    sequential), so every value is computed exactly as on the whole column.
+    checkpoint at each block's first row in the same order (a cumulative sum is sequential),
+    so every value is computed exactly as on the whole column.
 
     Args:
         X: (n, >= kx) run-hours then weather columns; interval_h: (n,); keep: (n - 1,) the
             steps kept; block_steps: steps per block (default solvers' sum chunk).
     """
     G = block_steps or _SWITCH_BLOCK_STEPS
-    n = len(interval_h)
     inv_h = 1.0 / interval_h
     steps = np.flatnonzero(keep)
-    # ckpt[q, c]: the running sum of load c's rises over the first q * G differences.
-    ckpt = np.zeros((max(n - 1, 0) // G + 1, k))
-    frac0 = np.empty(k)
-    for c in range(k):
-        frac = X[:, c] / interval_h
-        frac0[c] = frac[0]
-        run = np.cumsum(np.maximum(np.diff(frac), 0.0))
-        ckpt[1:, c] = run[G - 1::G][:len(ckpt) - 1]
     bounds = np.append(np.arange(0, len(steps), G), len(steps))
+    # Block b's steps are made from rows r0 - 1 .. r1 (first(b)); ckpt[b, c]: the running
+    # sum of load c's rises before row first(b) (split_switching's cumulative sum there).
+    first = np.maximum(steps[bounds[:-1]] - 1, 0) if len(steps) else np.zeros(0, np.int64)
+    ckpt = np.zeros((len(first), k))
+    frac0 = X[0, :k] / interval_h[0]
+    for c in range(k):
+        run = np.cumsum(np.maximum(np.diff(X[:, c] / interval_h), 0.0))
+        ckpt[first > 0, c] = run[first[first > 0] - 1]
 
     def block(b: int) -> np.ndarray:
         d = steps[bounds[b]:bounds[b + 1]]
         r0, r1 = int(d[0]), int(d[-1]) + 1  # rows r0..r1 make these steps
-        a = max(r0 - 1, 0)
-        q = a // G  # rises r0 - 1 .. r1 - 1 are summed from the checkpoint before them
-        out = np.empty((len(d), k + kx))
+        a = int(first[b])  # the rises from row a on are summed from ckpt[b]
+        # Loads by row (k, rows): each load's rows contiguous for the running sums.
+        frac = np.ascontiguousarray(X[a:r1 + 1, :k].T) / interval_h[a:r1 + 1]
+        rise = np.maximum(np.diff(frac, axis=1), 0.0)
+        # Continued from the checkpoint in the same order (a cumulative sum is sequential).
+        run = (np.cumsum(np.hstack([ckpt[b][:, None], rise]), axis=1)[:, 1:] if a
+               else np.cumsum(rise, axis=1))
+        up = np.empty((k, r1 + 1 - r0))  # split_switching's up, rows r0..r1
+        if r0 == 0:
+            up[:, 0] = frac0
+        lo = max(r0, 1)
+        up[:, lo - r0:] = run[:, lo - 1 - a:r1 - a] + frac0[:, None]
+        frac = frac[:, r0 - a:]
         ih, ivh = interval_h[r0:r1 + 1], inv_h[r0:r1 + 1]
         pick = d - r0
-        for c in range(k):
-            rise = np.maximum(np.diff(X[q * G:r1 + 1, c] / interval_h[q * G:r1 + 1]), 0.0)
-            run = np.cumsum(np.concatenate([[ckpt[q, c]], rise]))[1:] if q else np.cumsum(rise)
-            up = np.empty(r1 + 1 - r0)  # split_switching's up, rows r0..r1
-            first = r0 if r0 > 0 else 1
-            if r0 == 0:
-                up[0] = frac0[c]
-            up[first - r0:] = run[first - 1 - q * G:r1 - q * G]
-            up[first - r0:] += frac0[c]
-            frac = X[r0:r1 + 1, c] / ih
-            out[:, c] = np.diff(up * ih * ivh)[pick]
-            out[:, k + c] = np.diff((frac - up) * ih * ivh)[pick]
+        out = np.empty((len(d), k + kx))
+        out[:, :k] = np.diff(up * ih * ivh, axis=1)[:, pick].T
+        out[:, k:2 * k] = np.diff((frac - up) * ih * ivh, axis=1)[:, pick].T
         for c in range(k, kx):
             out[:, k + c] = np.diff(X[r0:r1 + 1, c] * ivh)[pick]
         return out
