@@ -575,23 +575,22 @@ def switching_design(X: np.ndarray, interval_h: np.ndarray, keep: np.ndarray, k:
         d = steps[bounds[b]:bounds[b + 1]]
         r0, r1 = int(d[0]), int(d[-1]) + 1  # rows r0..r1 make these steps
         a = int(first[b])  # the rises from row a on are summed from ckpt[b]
-        # Loads by row (k, rows): each load's rows contiguous for the running sums.
-        frac = np.ascontiguousarray(X[a:r1 + 1, :k].T) / interval_h[a:r1 + 1]
-        rise = np.maximum(np.diff(frac, axis=1), 0.0)
-        # Continued from the checkpoint in the same order (a cumulative sum is sequential).
-        run = (np.cumsum(np.hstack([ckpt[b][:, None], rise]), axis=1)[:, 1:] if a
-               else np.cumsum(rise, axis=1))
-        up = np.empty((k, r1 + 1 - r0))  # split_switching's up, rows r0..r1
-        if r0 == 0:
-            up[:, 0] = frac0
-        lo = max(r0, 1)
-        up[:, lo - r0:] = run[:, lo - 1 - a:r1 - a] + frac0[:, None]
-        frac = frac[:, r0 - a:]
         ih, ivh = interval_h[r0:r1 + 1], inv_h[r0:r1 + 1]
         pick = d - r0
+        lo = max(r0, 1)
         out = np.empty((len(d), k + kx))
-        out[:, :k] = np.diff(up * ih * ivh, axis=1)[:, pick].T
-        out[:, k:2 * k] = np.diff((frac - up) * ih * ivh, axis=1)[:, pick].T
+        # One load at a time (temporaries of one column, as the whole-column split had).
+        for c in range(k):
+            rise = np.maximum(np.diff(X[a:r1 + 1, c] / interval_h[a:r1 + 1]), 0.0)
+            # Continued from the checkpoint in the same order (a cumulative sum is sequential).
+            run = np.cumsum(np.concatenate([ckpt[b, c:c + 1], rise]))[1:] if a else np.cumsum(rise)
+            up = np.empty(r1 + 1 - r0)  # split_switching's up, rows r0..r1
+            if r0 == 0:
+                up[0] = frac0[c]
+            up[lo - r0:] = run[lo - 1 - a:r1 - a] + frac0[c]
+            frac = X[r0:r1 + 1, c] / ih
+            out[:, c] = np.diff(up * ih * ivh)[pick]
+            out[:, k + c] = np.diff((frac - up) * ih * ivh)[pick]
         for c in range(k, kx):
             out[:, k + c] = np.diff(X[r0:r1 + 1, c] * ivh)[pick]
         return out
