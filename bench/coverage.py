@@ -4,6 +4,8 @@ Draws over the whole range (whole-range fit) and monthly kWh (each month's own f
 
 Usage: python bench/coverage.py [SEEDS]   (default 100)
        python bench/coverage.py --office [SEEDS] [DAYS] [SCENARIOS]  (default 5 364 all five)
+       SEEDS: a count (seeds 0..N-1) or a range FIRST:STOP (100:105 = seeds 100-104, for a
+       check on seeds not used while developing)
 
 Prints, for the well-specified and the misspecified building, how often each load's stated
 95 % interval holds its true mean draw, next to the plain HAC interval's coverage.
@@ -65,14 +67,20 @@ def main(n_seeds: int) -> None:
               f"{len(month_hits)} intervals hold the true monthly kWh")
 
 
-def office(n_seeds: int, days: int, scenarios: tuple[str, ...]) -> None:
+def seed_range(text: str) -> range:
+    """'5' -> seeds 0-4; '100:105' -> seeds 100-104."""
+    first, _, stop = text.partition(":")
+    return range(int(first), int(stop)) if stop else range(int(first))
+
+
+def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
     import time
     from collections import Counter
 
     for scenario in scenarios:
         errs: dict[str, list[float]] = {}
         hits, hits_ident, widths, forms, secs = [], [], [], Counter(), []
-        for seed in range(n_seeds):
+        for seed in seeds:
             s = make_office(seed, scenario, days=days)
             t0 = time.perf_counter()
             e = estimate_draws(s.site, s.aligned)
@@ -94,7 +102,8 @@ def office(n_seeds: int, days: int, scenarios: tuple[str, ...]) -> None:
                                 for f in flags.get(r["equipment"], []))
                 if ident:
                     hits_ident.append(ok)
-        print(f"\noffice, scenario {scenario}, {n_seeds} seeds x {days} days: forms "
+        print(f"\noffice, scenario {scenario}, seeds {seeds.start}-{seeds.stop - 1} x {days} "
+              "days: forms "
               f"{dict(forms)}; fit + monthly fits {np.median(secs):.2f} s (median)")
         for k, v in errs.items():
             a = np.array(v)
@@ -107,7 +116,7 @@ def office(n_seeds: int, days: int, scenarios: tuple[str, ...]) -> None:
 
 if __name__ == "__main__":
     if len(sys.argv) > 1 and sys.argv[1] == "--office":
-        office(int(sys.argv[2]) if len(sys.argv) > 2 else 5,
+        office(seed_range(sys.argv[2]) if len(sys.argv) > 2 else range(5),
                int(sys.argv[3]) if len(sys.argv) > 3 else 364,
                tuple(sys.argv[4].split(",")) if len(sys.argv) > 4 else SCENARIOS)
     else:

@@ -24,6 +24,11 @@ from disagg.fit.solvers import Indicators
 from disagg.fit.wander import Spacing, smooth_level
 from disagg.inputs.config import BaseloadSettings, SiteConfig
 
+# Intervals shorter than this [h] give the hour-of-week profile its within-hour slopes
+# (BaseloadBuilder.within_hour_slopes); hourly data have no within-hour shape to fit.
+WITHIN_HOUR_MAX_H = 1.0
+SLOPE_PREFIX = "baseload_slope_h"
+
 
 def degrees(temp_c: np.ndarray, mode: str, balance_c: float) -> np.ndarray:
     """Degrees beyond the balance temperature: (T - Tb)+ for cooling, (Tb - T)+ for heating.
@@ -166,23 +171,56 @@ class BaseloadBuilder:
                                             hourly=profile.startswith("hour-of-week"))
             return np.column_stack([cols, more]), names + more_names
         if profile == base.profile:
-            return self._settings_cols(base, sel)
-        cols, names = self._settings_cols(BaseloadSettings(profile, base.spells,
-                                                           base.spell_text), sel)
-        if base.closed and base.spells:
-            cols = np.column_stack([cols, self.closure_column(sel)])
-            names = names + ["baseload_closed_kw"]
+            cols, names = self._settings_cols(base, sel)
+        else:
+            cols, names = self._settings_cols(BaseloadSettings(profile, base.spells,
+                                                               base.spell_text), sel)
+            if base.closed and base.spells:
+                cols = np.column_stack([cols, self.closure_column(sel)])
+                names = names + ["baseload_closed_kw"]
+        if profile == "hour-of-week":
+            more, more_names = self.within_hour_slopes(sel)
+            if more.shape[1]:
+                cols, names = np.column_stack([cols, more]), names + more_names
         return cols, names
 
-    def hour_of_week_sparse(self) -> tuple[np.ndarray, Indicators]:
+    def within_hour_slopes(self, sel: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """The hour-of-week profile's slope within the clock hour, one column per local hour
+        of the day [h x h]: the interval's length times its midpoint's offset from the middle
+        of its clock hour (the coefficient is kW per hour). None for hourly or longer data.
+
+        Why: hourly levels leave a smooth daily swing's within-hour rise as a sawtooth, and a
+        variable-speed load whose speed follows the same daily shape took part of it (the
+        office's VF-1, +1.1 % on average in the swing scenario; bench/RESULTS_baseload.md).
+        Each column sums to zero over a whole hour of equal intervals, so the hourly levels
+        keep their meaning."""
+        r = self.rows
+        ih = (r.end_ns - r.start_ns) / NS_PER_H
+        if sel is not None:
+            ih = ih[sel]
+        if ih.size == 0 or float(np.median(ih)) >= WITHIN_HOUR_MAX_H:
+            return np.zeros((ih.size, 0)), []
+        starts = r.frame["start_utc"] if sel is None else r.frame["start_utc"].filter(
+            pl.Series(sel))
+        local = starts.dt.convert_time_zone(r.tz)
+        hour = local.dt.hour().to_numpy().astype(np.int64)
+        offset = (local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5
+        cols = np.zeros((ih.size, 24))
+        cols[np.arange(ih.size), hour] = offset * ih
+        return cols, [f"{SLOPE_PREFIX}{h:02d}_kw_per_h" for h in range(24)]
+
+    def hour_of_week_sparse(self) -> tuple[np.ndarray, list[str], Indicators]:
         """The hour-of-week profile stored sparsely: the dense closure column (when closures
-        are declared) and the 168 hour-of-week columns by row (solvers.Indicators)."""
+        are declared) and within-hour slopes with their names, and the 168 hour-of-week
+        columns by row (solvers.Indicators)."""
         r = self.rows
         ind = Indicators(r.hour_of_week, (r.end_ns - r.start_ns) / NS_PER_H, 168)
         base = self.site.baseload
+        dense, names = self.within_hour_slopes()
         if base.closed and base.spells:
-            return self.closure_column()[:, None], ind
-        return np.zeros((r.n, 0)), ind
+            dense = np.column_stack([self.closure_column()[:, None], dense])
+            names = ["baseload_closed_kw"] + names
+        return dense, names, ind
 
     def for_form(self, form: Form) -> tuple[np.ndarray, list[str]]:
         """The columns of a form: with the level, without the profile's constant direction
@@ -192,6 +230,12 @@ class BaseloadBuilder:
             keep = kept_columns(form.profile, B.shape[1])
             B, names = B[:, keep], [names[i] for i in keep]
         return B, names
+
+
+def signed_columns(names: list[str]) -> np.ndarray:
+    """Which baseload columns may take either sign (the within-hour slopes); the others are
+    kW levels, non-negative in a static fit."""
+    return np.array([n.startswith(SLOPE_PREFIX) for n in names], dtype=bool)
 
 
 def term_hours(H: np.ndarray, index: dict[str, int], members: list[str]) -> np.ndarray:

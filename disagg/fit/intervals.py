@@ -1,8 +1,10 @@
 """The intervals stage: each draw's HAC interval widened where the estimate moves with the time
 period (delete-a-block jackknife), with a more flexible baseload profile (variants hull),
 with a separate baseload level for each day (by-day projection), between credible baseload
-forms (their weighted spread) or with the baseload's own shape around the schedule's edges;
-and each draw's real week-to-week variation (DerSimonian-Laird tau^2) for the monthly kWh.
+forms (their weighted spread), with the baseload's own shape around the schedule's edges,
+between the meter's steps where a load switches on and where it switches off, or with the
+energy that follows its switch-ons (switch_on_response); and each draw's real week-to-week
+variation (DerSimonian-Laird tau^2) for the monthly kWh.
 """
 
 from __future__ import annotations
@@ -13,7 +15,7 @@ import numpy as np
 import polars as pl
 from scipy.linalg import solveh_banded
 
-from disagg.fit.design import BaseloadBuilder, Rows
+from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows, signed_columns
 from disagg.fit.select import FormChoice
 from disagg.fit.solve import Priors, Solved
 from disagg.fit.solvers import (
@@ -24,8 +26,8 @@ from disagg.fit.solvers import (
     jackknife_cov,
     quantile,
 )
-from disagg.fit.terms import Term
-from disagg.fit.wander import Spacing
+from disagg.fit.terms import LONG_DESIGN_ROWS, Term
+from disagg.fit.wander import Spacing, band_factor, whiten_columns
 from disagg.inputs.config import BaseloadSettings, SiteConfig
 
 # An estimate whose posterior precision comes at least half from its prior is prior-driven.
@@ -166,20 +168,24 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
         ind = None
         if variant == "hour-of-week":
             # The 168 hour-of-week columns are stored by row (solvers.Indicators), the closure
-            # column (if any) stays dense; the baseload columns' order does not matter.
-            Bv, ind = builder.hour_of_week_sparse()
+            # column (if any) and the within-hour slopes stay dense; the baseload columns'
+            # order does not matter.
+            Bv, names_v, ind = builder.hour_of_week_sparse()
             m_cols = Bv.shape[1] + ind.n_levels
+            signed = np.r_[signed_columns(names_v), np.zeros(ind.n_levels, dtype=bool)]
         else:
-            Bv, _ = builder.columns(variant)
+            Bv, names_v = builder.columns(variant)
             m_cols = Bv.shape[1]
+            signed = signed_columns(names_v)
         if n < MIN_ROWS_PER_COLUMN * (kx + m_cols):
             variants[variant] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
         Xv = np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
         mv, sv = priors(m_cols)
-        fv = fit_model(Xv, rows.y, mv, sv, np.zeros(kx + m_cols), block=rows.days,
-                       indicators=ind)
+        lower_v = np.zeros(kx + m_cols)
+        lower_v[kx:][signed] = -np.inf
+        fv = fit_model(Xv, rows.y, mv, sv, lower_v, block=rows.days, indicators=ind)
         se_v = fv.se
         entry = {}
         for t in fitted:
@@ -327,7 +333,9 @@ def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: 
     the two step draws in words, for those that differ by more than STEP_SENSITIVE."""
     steps = switching_steps(s.X, rows.y, s.k, s.kx, rows.interval_h, priors(0), rows.days[1:],
                             rows.hour_of_week % 24, priors.weak_sd,
-                            adjacent=rows.start_ns[1:] == rows.end_ns[:-1])
+                            adjacent=rows.start_ns[1:] == rows.end_ns[:-1],
+                            smooth=frozenset(s.kx + i for i, name in enumerate(s.base_names)
+                                             if name.startswith(SLOPE_PREFIX)))
     variants["switch steps"] = ({"skipped": "too few steps"} if steps is None else {
         t.id: {"kw": float(steps.on_kw[t.column]), "se_kw": float(steps.se_on_kw[t.column]),
                "kw_at_switch_off": float(steps.off_kw[t.column]),
@@ -352,6 +360,87 @@ def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: 
             if d > STEP_SENSITIVE * abs(hull.coef[c]):
                 step_moves[c] = why
     return step_moves
+
+
+# The switch-on response check: the window after each switch-on [min], split into this many
+# columns per load (project choice, no outside source: on the measured household the rest
+# of the house stays up for about 30 minutes after the water heater switches on), and the
+# longest design it runs on (a year of 1-minute data would need another n x 3k array;
+# terms.LONG_DESIGN_ROWS).
+RESPONSE_WINDOW_MIN = 45.0
+RESPONSE_BLOCKS = 3
+
+
+def response_columns(H: np.ndarray, interval_h: np.ndarray, start_ns: np.ndarray,
+                     end_ns: np.ndarray) -> np.ndarray:
+    """For each column of H (run-hours [h]), RESPONSE_BLOCKS columns [h]: the rises of its
+    on-fraction (its switch-ons, in whole-switch units) in the interval itself and in the
+    intervals before it within RESPONSE_WINDOW_MIN, one column per block of lags, times the
+    interval's hours, so the coefficient is the kW that follows a switch-on in that block
+    whatever the load does afterwards. A rise is counted only between intervals that follow
+    each other without a gap, and a lag only across adjacent intervals."""
+    n, k = H.shape
+    step_min = float(np.median(interval_h)) * 60.0
+    lags = max(1, int(np.ceil(RESPONSE_WINDOW_MIN / step_min - 1e-9)))
+    blocks = min(RESPONSE_BLOCKS, lags)
+    edges = np.linspace(0, lags, blocks + 1).round().astype(int)
+    adjacent = np.r_[False, start_ns[1:] == end_ns[:-1]]
+    # run[t]: how many intervals back from t the rows stay adjacent (a lag may not cross a gap)
+    at = np.arange(n)
+    run = at - np.maximum.accumulate(np.where(adjacent, 0, at))
+    R = np.zeros((n, k * blocks))
+    for j in range(k):
+        frac = H[:, j] / interval_h
+        rise = np.r_[0.0, np.maximum(np.diff(frac), 0.0)] * adjacent
+        for b in range(blocks):
+            col = np.zeros(n)
+            for lag in range(edges[b], edges[b + 1]):
+                if lag == 0:
+                    col += rise
+                else:
+                    col[lag:] += rise[:n - lag] * (run[lag:] >= lag)
+            R[:, j * blocks + b] = col * interval_h
+    return R
+
+
+def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term],
+                       hull: Hull, variants: dict[str, dict],
+                       variable: set[str] = frozenset()) -> None:
+    """Refit the chosen form with, for each on-off load, the energy that follows its
+    switch-ons whatever it does afterwards (response_columns): an unlogged load that starts
+    with it and runs on for a while (people who draw hot water switch on lights) is then not
+    read as its draw; the draw is told apart by how long its spells last. Where the draw
+    moves significantly (Hull.widen_with: a Hausman-type test), the refit's interval joins
+    the hull. Only on-off loads (a variable-speed load's rises are speed changes) and
+    designs of at most LONG_DESIGN_ROWS rows. Adds variants["switch-on response"]."""
+    on_off = [t for t in fitted if t.column < s.k and "variable" not in t.flags
+              and not variable.intersection(t.members)]
+    if not on_off:
+        return
+    if rows.n > LONG_DESIGN_ROWS:
+        variants["switch-on response"] = {"skipped": f"more than {LONG_DESIGN_ROWS} intervals"}
+        return
+    ih = rows.interval_h
+    R = response_columns(s.X[:, [t.column for t in on_off]], ih, rows.start_ns, rows.end_ns)
+    m = R.shape[1]
+    if s.choice.form.level:
+        # The solver's rows are the whitened differences (s.Xs): whitening is column by
+        # column, so only the new columns are whitened, with the same factor.
+        band, _ = band_factor(rows.sp, s.choice.form.q)
+        R = whiten_columns(R / ih[:, None], band)
+    Xa = np.column_stack([s.Xs, R])
+    del R
+    mean = np.r_[s.p_mean, np.zeros(m)]
+    sd = np.r_[s.p_sd, np.full(m, priors.weak_sd)]
+    lower = np.r_[s.lower, np.full(m, -np.inf)]
+    f = fit_model(Xa, s.ys, mean, sd, lower, block=s.blk)
+    del Xa
+    entry = {}
+    for t in on_off:
+        c = t.column
+        entry[t.id] = {"kw": float(f.coef[c]), "se_kw": float(f.se[c])}
+        hull.widen_with(c, float(f.coef[c]), float(f.se[c]), "a switch-on response")
+    variants["switch-on response"] = entry
 
 
 @dataclass
@@ -387,7 +476,7 @@ class Intervals:
 def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
               priors: Priors, fitted: list[Term], confidence: float) -> Intervals:
     """Every check in turn: jackknife, static variants, by-day levels, credible forms,
-    schedule edges, switching steps; then the between-week variance."""
+    schedule edges, switching steps, switch-on response; then the between-week variance."""
     jk = jackknife(s, rows, confidence)
     hull = Hull.start(s.coef, jk, confidence)
     variants = profile_variants(site, rows, s, builder, priors, fitted, hull)
@@ -400,6 +489,7 @@ def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
     edge_moves = schedule_edge(site, rows, s, jk, hull)
     variable = {e.id for e in site.equipment if e.control == "variable"}
     step_moves = switch_steps(rows, s, priors, fitted, jk, hull, variants, variable)
+    switch_on_response(rows, s, priors, fitted, hull, variants, variable)
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (rows.local_date.astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = rows.y - fitted_of(s.X, s.coef, s.level_kwh)
@@ -605,7 +695,8 @@ _SWITCH_BLOCK_STEPS = 65536
 def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: np.ndarray,
                     prior: tuple[np.ndarray, np.ndarray], block: np.ndarray,
                     hour_of_day: np.ndarray | None = None, drift_sd: float = 1e3,
-                    adjacent: np.ndarray | None = None) -> SwitchingSteps | None:
+                    adjacent: np.ndarray | None = None,
+                    smooth: frozenset[int] = frozenset()) -> SwitchingSteps | None:
     """Refit on first differences (kW) with each of the first k columns (run-hours) split
     into its switch-on and switch-off parts (split_switching): each load gets one draw from
     the meter's steps where it switches on and one from those where it switches off.
@@ -632,7 +723,10 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
         rows (for the HAC covariance); hour_of_day: (n,) local hour 0..23 of each interval,
         or None; drift_sd: prior sd of the hourly mean steps [kW] (weak); adjacent: (n - 1,)
         whether each interval starts where the one before ends (a step across a meter gap or
-        a left-out interval is no switching step and is left out); None = all adjacent.
+        a left-out interval is no switching step and is left out); None = all adjacent;
+        smooth: baseload columns that change at every step but only smoothly (the
+        hour-of-week profile's within-hour slopes): not a profile change, their mean step
+        within each hour is the hour's mean step.
 
     Returns:
         The two draws per load, or None when there is nothing to check or fewer than
@@ -647,6 +741,8 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     inv_h = 1.0 / interval_h
     keep = np.ones(n - 1, dtype=bool) if adjacent is None else adjacent.copy()
     for c in range(kx, p):  # one column at a time: no n x p temporary
+        if c in smooth:
+            continue
         keep &= np.abs(np.diff(X[:, c] * inv_h)) <= NUMERICAL_TOL
     ind = None
     if hour_of_day is not None:

@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from disagg.fit.design import BaseloadBuilder, Rows
+from disagg.fit.design import BaseloadBuilder, Rows, signed_columns
 from disagg.fit.select import FormChoice, kept_columns
 from disagg.fit.solvers import Fit, fit_model
 from disagg.fit.terms import Term
@@ -98,6 +98,7 @@ def solve(rows: Rows, X: np.ndarray, k: int, kx: int, base_names: list[str],
         X = np.column_stack([X[:, :kx], B])
     p_mean, p_sd = priors(B.shape[1])
     lower = np.zeros(X.shape[1])
+    lower[kx:][signed_columns(base_names)] = -np.inf  # within-hour slopes: either sign
     if choice.form.level:
         # GLS on whitened differences of the kW (disagg.fit.wander); the profile's columns are
         # kW above the level and may be negative.
