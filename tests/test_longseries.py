@@ -464,3 +464,40 @@ def test_interval_parts_of_some_rows_equal_those_rows_of_the_whole(site_file):
     rows[100:700] = True
     np.testing.assert_array_equal(interval_parts_kwh(est, rows), whole[rows])
     np.testing.assert_allclose(whole.sum(axis=1), est.y, rtol=1e-12)
+
+
+def test_a_long_series_hour_of_week_variant_by_blocks_equals_the_array(monkeypatch):
+    """The hour-of-week rival of a long series is fitted on [run-hours, closure and
+    within-hour slope columns] made a block of rows at a time (no (n, k + 25) copy): the
+    same variant draws, standard errors and prior weights (1e-9) as on the whole array; the
+    blocks' columns are hour_of_week_sparse's exactly. Long is made short here (a threshold
+    of 100 rows, blocks of 3,000) on the 120-day synthetic building (invented)."""
+    from synthetic import make_building
+
+    from disagg.fit import intervals as iv_mod
+    from disagg.fit.design import BaseloadBuilder, rows_of
+    from disagg.fit.estimate import estimate_draws
+    from disagg.fit.select import Form
+
+    s = make_building(12, days=120)
+    builder = BaseloadBuilder(s.site, rows_of(s.aligned, s.site.timezone))
+    dense, names, ind = builder.hour_of_week_blocks()
+    whole, names_w, ind_w = builder.hour_of_week_sparse()
+    assert names == names_w and any(n.startswith("baseload_slope_h") for n in names)
+    np.testing.assert_array_equal(np.vstack([dense(0, 500), dense(500, len(whole))]), whole)
+    np.testing.assert_array_equal(ind.level, ind_w.level)
+    form = Form(s.site.baseload.profile, False)
+    assert "hour-of-week" in iv_mod.MORE_FLEXIBLE[form.profile]
+    a = estimate_draws(s.site, s.aligned, form=form)
+    monkeypatch.setattr(iv_mod, "LONG_DESIGN_ROWS", 100)
+    monkeypatch.setattr(iv_mod, "_VARIANT_BLOCK_ROWS", 3000)
+    b = estimate_draws(s.site, s.aligned, form=form)
+    va, vb = a.variants["hour-of-week"], b.variants["hour-of-week"]
+    assert set(va) == set(vb) and "skipped" not in va
+    for tid in va:
+        for key in ("kw", "se_kw"):
+            assert vb[tid][key] == pytest.approx(va[tid][key], rel=1e-9)
+        assert vb[tid]["prior_weight"] == pytest.approx(va[tid]["prior_weight"], rel=1e-6,
+                                                        abs=1e-12)
+    np.testing.assert_allclose(b.kw_low, a.kw_low, rtol=1e-9)
+    np.testing.assert_allclose(b.kw_high, a.kw_high, rtol=1e-9)

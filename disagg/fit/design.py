@@ -222,6 +222,37 @@ class BaseloadBuilder:
             names = ["baseload_closed_kw"] + names
         return dense, names, ind
 
+    def hour_of_week_blocks(self):
+        """hour_of_week_sparse with its dense columns made for any block of rows instead of
+        held whole (a long series: the within-hour slopes are n x 24 numbers): (a function
+        of (lo, hi) giving rows lo..hi of the dense columns, their names, the Indicators).
+        The same numbers as hour_of_week_sparse's columns."""
+        r = self.rows
+        ind = Indicators(r.hour_of_week, (r.end_ns - r.start_ns) / NS_PER_H, 168)
+        base = self.site.baseload
+        closure = self.closure_column() if base.closed and base.spells else None
+        ih = (r.end_ns - r.start_ns) / NS_PER_H
+        slopes = ih.size > 0 and float(np.median(ih)) < WITHIN_HOUR_MAX_H
+        names = ([] if closure is None else ["baseload_closed_kw"]) + (
+            [f"{SLOPE_PREFIX}{h:02d}_kw_per_h" for h in range(24)] if slopes else [])
+        hour = value = None
+        if slopes:  # within_hour_slopes' one nonzero of each row
+            local = r.frame["start_utc"].dt.convert_time_zone(r.tz)
+            hour = local.dt.hour().to_numpy().astype(np.int64)
+            value = ((local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5) * ih
+        width = len(names)
+
+        def dense(lo: int, hi: int) -> np.ndarray:
+            out = np.zeros((hi - lo, width))
+            if closure is not None:
+                out[:, 0] = closure[lo:hi]
+            if slopes:
+                first = 0 if closure is None else 1
+                out[np.arange(hi - lo), first + hour[lo:hi]] = value[lo:hi]
+            return out
+
+        return dense, names, ind
+
     def for_form(self, form: Form) -> tuple[np.ndarray, list[str]]:
         """The columns of a form: with the level, without the profile's constant direction
         (select.kept_columns)."""

@@ -166,7 +166,18 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
         if variant == "occupied" and not site.baseload.spells:
             continue
         ind = None
-        if variant == "hour-of-week":
+        long = False
+        if variant == "hour-of-week" and n > LONG_DESIGN_ROWS:
+            # A long series: [Hx, dense columns] made a block of rows at a time (LazyRows).
+            dense, names_v, ind = builder.hour_of_week_blocks()
+            Hx, w = s.Hx, len(names_v)
+            bounds = np.append(np.arange(0, n, _VARIANT_BLOCK_ROWS), n)
+            Bv = LazyRows(bounds, kx + w, lambda b: np.column_stack(
+                [Hx[bounds[b]:bounds[b + 1]], dense(bounds[b], bounds[b + 1])]))
+            long = True
+            m_cols = w + ind.n_levels
+            signed = np.r_[signed_columns(names_v), np.zeros(ind.n_levels, dtype=bool)]
+        elif variant == "hour-of-week":
             # The 168 hour-of-week columns are stored by row (solvers.Indicators), the closure
             # column (if any) and the within-hour slopes stay dense; the baseload columns'
             # order does not matter.
@@ -181,7 +192,7 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
             variants[variant] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
-        Xv = np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
+        Xv = Bv if long else np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
         mv, sv = priors(m_cols)
         lower_v = np.zeros(kx + m_cols)
         lower_v[kx:][signed] = -np.inf
@@ -200,6 +211,10 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
                 hull.widen_with(c, float(fv.coef[c]), float(se_v[c]), variant)
         variants[variant] = entry
     return variants
+
+
+# Rows per block of a long series' hour-of-week variant design (profile_variants).
+_VARIANT_BLOCK_ROWS = 65536
 
 
 def by_day_variant(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], n_days: int,
