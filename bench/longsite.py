@@ -1,6 +1,9 @@
 """Peak memory and time of `disagg breakdown`, `report` and `drift` on long 1-minute sites.
 
-    python bench/longsite.py [--years 1 2] [--loads 30]
+    python bench/longsite.py [--years 1 2] [--loads 30] [--keep FILE]
+    python bench/longsite.py --generate DIR 10 30        # a 10-year site (about 350 MB)
+    python bench/longsite.py --measure-site DIR 10       # its three runs, /usr/bin/time -v
+    python bench/longsite.py --render FILE --ten DIR     # the tables, with the 10-year runs
 
 Writes a synthetic site of Y years of 1-minute meter readings with L on/off loads (every
 number invented: random on/off spells of 5 to 60 minutes, draws 3 to 60 kW, a constant
@@ -18,6 +21,7 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import json
 import os
 import subprocess
 import sys
@@ -89,17 +93,40 @@ _WRAP = ("import atexit, re, runpy, sys\n"
          "runpy.run_module('disagg.cli', run_name='__main__')\n")
 
 
-def measure(cmd: list[str]) -> dict:
+def measure(cmd: list[str], time_v: bool = False) -> dict:
+    """Run cmd; its peak resident memory from os.wait4 (with time_v, under /usr/bin/time -v,
+    whose own "Maximum resident set size" of the command is read instead)."""
+    if time_v:
+        cmd = ["/usr/bin/time", "-v", *cmd]
     t = time.perf_counter()
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    _, status, usage = os.wait4(proc.pid, 0)
     err = proc.stderr.read().decode(errors="replace").strip() if proc.stderr else ""
+    _, status, usage = os.wait4(proc.pid, 0)
     lines = err.splitlines()
     vm = [float(x.split()[1]) / 1024.0 for x in lines if x.startswith("VmPeak ")]
-    lines = [x for x in lines if not x.startswith("VmPeak ")]
-    return {"wall_s": time.perf_counter() - t, "rss_mb": usage.ru_maxrss / 1024.0,
+    rss_kb = [float(x.split(":")[1]) for x in lines if "Maximum resident set size" in x]
+    lines = [x for x in lines if not x.startswith("VmPeak ") and not x.startswith("\t")]
+    return {"wall_s": time.perf_counter() - t,
+            "rss_mb": (rss_kb[-1] if rss_kb else usage.ru_maxrss) / 1024.0,
             "vm_mb": vm[-1] if vm else float("nan"),
             "exit": os.waitstatus_to_exitcode(status), "stderr": lines[-1:]}
+
+
+def run_site(folder: Path, years: int, loads: int, time_v: bool = False) -> dict:
+    """breakdown, report and drift on the site in folder, one at a time."""
+    site = folder / "site.toml"
+    disagg = [sys.executable, "-c", _WRAP]
+    results = {}
+    for name, cmd in (
+            ("breakdown", [*disagg, "breakdown", str(site), "--out", str(folder / "b"), "-q"]),
+            ("report", [*disagg, "report", str(site), "--out", str(folder / "r"), "-q"]),
+            ("drift", [*disagg, "drift", str(site), "--out", str(folder / "d")])):
+        r = measure(cmd, time_v)
+        results[name] = r
+        print(f"{name:9s} {years:2d} y x {loads} loads, 1-minute: "
+              f"{r['rss_mb']:7.0f} MB peak ({r['vm_mb']:.0f} MB virtual), "
+              f"{r['wall_s']:6.1f} s, exit {r['exit']} {r['stderr']}", flush=True)
+    return results
 
 
 def main() -> None:
@@ -109,6 +136,16 @@ def main() -> None:
     ap.add_argument("--generate", nargs=3, help=argparse.SUPPRESS)
     ap.add_argument("--results", action="store_true",
                     help="only copy bench/LONGSITE.md into bench/RESULTS.md (no runs)")
+    ap.add_argument("--measure-site", nargs=2, metavar=("DIR", "YEARS"),
+                    help="run the three commands once each on a site already generated in DIR "
+                         "(--generate DIR YEARS LOADS), one at a time under /usr/bin/time -v, "
+                         "and save the figures in DIR/measured.json (for --ten)")
+    ap.add_argument("--ten", metavar="DIR",
+                    help="add the 10-year figures saved by --measure-site DIR 10 to the tables")
+    ap.add_argument("--keep", metavar="FILE",
+                    help="also save the runs' figures in FILE (JSON), for --render")
+    ap.add_argument("--render", metavar="FILE",
+                    help="write the tables from figures saved with --keep (no runs)")
     args = ap.parse_args()
     if args.results:
         write_results()
@@ -117,35 +154,44 @@ def main() -> None:
         folder, years, loads = args.generate
         generate(Path(folder), int(years), int(loads))
         return
+    if args.measure_site:
+        folder = Path(args.measure_site[0])
+        res = run_site(folder, int(args.measure_site[1]), args.loads, time_v=True)
+        (folder / "measured.json").write_text(json.dumps(
+            {"years": int(args.measure_site[1]), "loads": args.loads,
+             "when": f"{dt.datetime.now(dt.UTC):%Y-%m-%d %H:%M} UTC",
+             "load_average": os.getloadavg()[0], "results": res}, indent=1))
+        return
     env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
     results = {}
-    with tempfile.TemporaryDirectory() as tmp:
-        for years in args.years:
-            folder = Path(tmp) / f"y{years}"
-            subprocess.run([sys.executable, __file__, "--generate", str(folder), str(years),
-                            str(args.loads)], check=True, env=env)
-            site = folder / "site.toml"
-            disagg = [sys.executable, "-c", _WRAP]
-            for name, cmd in (
-                    ("breakdown", [*disagg, "breakdown", str(site), "--out", str(folder / "b"),
-                                   "-q"]),
-                    ("report", [*disagg, "report", str(site), "--out", str(folder / "r"),
-                                "-q"]),
-                    ("drift", [*disagg, "drift", str(site), "--out", str(folder / "d")])):
-                r = measure(cmd)
-                results[(name, years)] = r
-                print(f"{name:9s} {years:2d} y x {args.loads} loads, 1-minute: "
-                      f"{r['rss_mb']:7.0f} MB peak ({r['vm_mb']:.0f} MB virtual), "
-                      f"{r['wall_s']:6.1f} s, exit {r['exit']} "
-                      f"{r['stderr']}", flush=True)
+    if args.render:
+        kept = json.loads(Path(args.render).read_text())
+        results = {(r["name"], r["years"]): r for r in kept["runs"]}
+        args.years, args.loads = kept["years"], kept["loads"]
+        when, load = kept["when"], kept["load_average"]
+    else:
+        with tempfile.TemporaryDirectory() as tmp:
+            for years in args.years:
+                folder = Path(tmp) / f"y{years}"
+                subprocess.run([sys.executable, __file__, "--generate", str(folder),
+                                str(years), str(args.loads)], check=True, env=env)
+                for name, r in run_site(folder, years, args.loads).items():
+                    results[(name, years)] = r
+        when, load = f"{dt.datetime.now(dt.UTC):%Y-%m-%d %H:%M}", os.getloadavg()[0]
+        if args.keep:
+            Path(args.keep).write_text(json.dumps(
+                {"years": args.years, "loads": args.loads, "when": when, "load_average": load,
+                 "runs": [dict(r, name=k[0], years=k[1]) for k, r in results.items()]}))
     ys = sorted(args.years)
     import platform
 
     lines = ["# Long 1-minute sites: peak memory", "",
              f"Regenerated by `python bench/longsite.py --years {' '.join(map(str, ys))} "
-             f"--loads {args.loads}` (do not edit by hand) on "
-             f"{dt.datetime.now(dt.UTC):%Y-%m-%d %H:%M} UTC, {os.cpu_count()} CPUs shared with "
-             f"other work (load average {os.getloadavg()[0]:.2f} at the end), Python "
+             f"--loads {args.loads} --keep FILE`"
+             f"{', then `--render FILE --ten DIR`' if args.render else ''} (do not edit by "
+             "hand) on "
+             f"{when} UTC, {os.cpu_count()} CPUs shared with "
+             f"other work (load average {load:.2f} at the end), Python "
              f"{platform.python_version()}. Synthetic site (every number invented): 1-minute "
              f"meter readings, {args.loads} on/off loads, events run log. Peak memory is the "
              "maximum resident set size of the command's process; peak virtual memory is its "
@@ -171,6 +217,20 @@ def main() -> None:
                   f"({per_year:.0f} MB per year; {ten_vm:.0f} MB virtual)")
             lines.append(f"| `disagg {name}` | {per_year:.0f} | {ten:.0f} | "
                          f"{'yes' if ten <= 3072 else 'no'} | {ten_vm:.0f} |")
+    if args.ten:
+        m = json.loads((Path(args.ten) / "measured.json").read_text())
+        lines += ["", f"Measured at {m['years']} years ({m['loads']} loads; the same generator, "
+                  f"`--generate DIR {m['years']} {m['loads']}`, then `--measure-site DIR "
+                  f"{m['years']}`: each command once, one at a time, under /usr/bin/time -v, "
+                  f"on {m['when']}, load average {m['load_average']:.2f} at the end). "
+                  "Target: 3 GB (3,072 MB) each.", "",
+                  "| command | years | peak memory [MB] | within 3 GB | peak virtual [MB] | "
+                  "wall time [s] | exit |", "|---|---|---|---|---|---|---|"]
+        for name in ("breakdown", "report", "drift"):
+            r = m["results"][name]
+            lines.append(f"| `disagg {name}` | {m['years']} | {r['rss_mb']:.0f} | "
+                         f"{'yes' if r['rss_mb'] <= 3072 else 'no'} | {r['vm_mb']:.0f} | "
+                         f"{r['wall_s']:.1f} | {r['exit']} |")
     (Path(__file__).parent / "LONGSITE.md").write_text("\n".join(lines) + "\n",
                                                        encoding="utf-8")
     write_results()

@@ -24,7 +24,72 @@ from disagg.errors import DisaggError
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
-app = typer.Typer(
+# Address space the command's libraries take to load (numpy, polars, scipy and their
+# thread pools: VmPeak 572 MB measured here after importing a breakdown's modules) plus a
+# margin. Under a smaller `ulimit -v` the imports fail inside C extensions (a MemoryError,
+# "failed to map segment", or a polars import that hangs), so the entry point refuses first.
+START_ADDRESS_BYTES = 600 * 2**20
+
+
+def _address_limit_error() -> str | None:
+    """The Error text when RLIMIT_AS leaves too little room to load the libraries, else
+    None. Counts what this process has mapped already (VmSize): libraries loaded before the
+    limit was set need no more room."""
+    import resource
+
+    soft = resource.getrlimit(resource.RLIMIT_AS)[0]
+    if soft == resource.RLIM_INFINITY or soft <= 0:
+        return None
+    try:
+        status = Path("/proc/self/status").read_text(encoding="utf-8")
+        size = next(int(x.split()[1]) * 1024 for x in status.splitlines()
+                    if x.startswith("VmSize:"))
+    except (OSError, StopIteration, ValueError):
+        return None
+    if soft >= max(START_ADDRESS_BYTES, size + 32 * 2**20):
+        return None
+    return (f"a memory limit of {soft / 2**20:.0f} MB (ulimit -v) is too small to start: "
+            f"disagg needs about {START_ADDRESS_BYTES / 2**20:.0f} MB of address space to "
+            "load its libraries, more for the data; raise the limit")
+
+
+def _out_of_memory(exc: BaseException) -> bool:
+    """Whether an exception escaping a command is the process running out of memory (also
+    while importing a library: an ImportError or OSError with ENOMEM / "failed to map")."""
+    import errno
+
+    if isinstance(exc, MemoryError):
+        return True
+    if isinstance(exc, OSError) and exc.errno == errno.ENOMEM:
+        return True
+    text = str(exc).lower()
+    return isinstance(exc, (ImportError, OSError)) and (
+        "failed to map segment" in text or "cannot allocate memory" in text)
+
+
+class _App(typer.Typer):
+    """The typer app with the entry guard: a memory limit too small to start, or memory
+    running out outside a command's own guard (its lazy imports), is one Error line and exit
+    status 1, not a traceback (typer's own traceback printer needs memory to import too)."""
+
+    def __call__(self, *args, **kwargs):
+        message = _address_limit_error()
+        if message is not None:
+            sys.stderr.write(f"Error: {message}\n")
+            raise SystemExit(1)
+        try:
+            return super().__call__(*args, **kwargs)
+        except Exception as exc:  # noqa: BLE001 - only memory failures are handled here
+            if not _out_of_memory(exc) or _state["debug"]:
+                raise
+            sys.stderr.write("Error: out of memory while loading the program's libraries or "
+                             "data (a memory limit such as ulimit -v, or the machine's "
+                             "memory); raise the limit or run a shorter period with "
+                             "--from/--to\n")
+            raise SystemExit(1) from None
+
+
+app = _App(
     add_completion=False,
     # Plain help text: site-file tables such as [runlog] are written as they are (rich markup
     # would read them as style tags and drop them), and flags show no value placeholder.

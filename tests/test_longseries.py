@@ -219,3 +219,285 @@ def test_hours_are_not_shared_with_a_much_wider_design(site_file):
     narrow = np.column_stack([H, np.zeros((n, 1))])
     assert share_hours(aligned, narrow[:, :k], members)
     assert np.shares_memory(aligned.hours, narrow)
+
+
+# --- designs made a block of rows at a time (solvers.LazyRows) ----------------------------
+
+def _switching_whole(X, interval_h, keep, k, kx):
+    """switching_steps' differenced design as it was built: each whole column split."""
+    from disagg.fit.intervals import split_switching
+
+    inv_h = 1.0 / interval_h
+    Xd = np.empty((int(keep.sum()), k + kx))
+    for c in range(k):
+        up, down = split_switching(X[:, c], interval_h)
+        Xd[:, c] = np.diff(up * inv_h)[keep]
+        Xd[:, k + c] = np.diff(down * inv_h)[keep]
+    for c in range(k, kx):
+        Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
+    return Xd
+
+
+@pytest.mark.parametrize("block_steps", [7, 64, 5000])
+def test_switching_design_by_blocks_equals_the_whole_columns(block_steps):
+    """Blocks of 7 and 64 steps (checkpoints of the running sum of rises every block) give
+    exactly the numbers of splitting each whole column, with left-out steps and a first
+    kept step at row 0 or later; 5,000 is one block."""
+    from disagg.fit.intervals import switching_design
+
+    rng = np.random.default_rng(12)
+    n, k, kx = 1500, 3, 4
+    interval_h = np.where(rng.random(n) < 0.1, 0.5, 0.25)
+    X = np.column_stack([rng.random((n, k)) * (rng.random((n, k)) < 0.5) * interval_h[:, None],
+                         rng.normal(0, 3, (n, kx - k))])
+    for keep in (rng.random(n - 1) < 0.8, np.r_[False, False, rng.random(n - 3) < 0.5]):
+        lazy = switching_design(X, interval_h, keep, k, kx, block_steps=block_steps)
+        whole = _switching_whole(X, interval_h, keep, k, kx)
+        assert lazy.shape == whole.shape
+        np.testing.assert_array_equal(lazy.dense(), whole)
+        np.testing.assert_array_equal(lazy[13:211], whole[13:211])  # across blocks
+        np.testing.assert_array_equal(lazy @ np.arange(1.0, k + kx + 1),
+                                      whole @ np.arange(1.0, k + kx + 1))
+
+
+@pytest.mark.parametrize("with_levels", [False, True])
+def test_fit_on_a_lazy_design_equals_the_fit_on_the_array(monkeypatch, with_levels):
+    """fit_model reads a LazyRows design by row slices only: the same coefficients,
+    covariance, prior weights and residuals (1e-9) as on the materialised array, with small
+    chunks so that block, QR and sum chunk edges all fall inside the rows; with and without
+    indicator columns (switching_steps' hourly mean steps)."""
+    from disagg.fit.solvers import Indicators, LazyRows, fit_model
+
+    monkeypatch.setattr(solvers, "_QR_CHUNK_ROWS", 64)
+    monkeypatch.setattr(solvers, "_SUM_CHUNK_ROWS", 300)
+    rng = np.random.default_rng(5)
+    n, p = 2000, 6
+    X = rng.random((n, p)) * (rng.random((n, p)) < 0.6)
+    y = X @ np.array([3.0, 1.0, 0.0, 2.0, 5.0, 0.5]) + rng.normal(0, 0.3, n)
+    block = np.repeat(np.arange(n // 50), 50)
+    bounds = np.array([0, 170, 171, 900, 1333, n])
+    lazy = LazyRows(bounds, p, lambda b: X[bounds[b]:bounds[b + 1]].copy())
+    ind = Indicators(rng.integers(-1, 24, n), np.ones(n), 24) if with_levels else None
+    q = p + (24 if with_levels else 0)
+    args = (y, np.zeros(q), np.r_[np.full(p, 4.0), np.full(q - p, 100.0)],
+            np.r_[np.zeros(p), np.full(q - p, -np.inf)])
+    a = fit_model(X, *args, block=block, indicators=ind)
+    b = fit_model(lazy, *args, block=block, indicators=ind)
+    for field in ("coef", "cov", "prior_weight", "residual"):
+        np.testing.assert_allclose(getattr(b, field), getattr(a, field), rtol=1e-9,
+                                   atol=1e-12 * np.abs(getattr(a, field)).max())
+    assert (a.sigma2, a.edf, a.lag, a.n_blocks) == pytest.approx((b.sigma2, b.edf, b.lag,
+                                                                  b.n_blocks), rel=1e-9)
+    np.testing.assert_array_equal(lazy.columns(np.array([4, 1]))[5:900], X[5:900][:, [4, 1]])
+
+
+def test_by_day_variant_by_blocks_equals_the_projected_array(site_file, monkeypatch):
+    """The by-day variant fitted on its projected design made a few days at a time equals
+    the fit on the whole projected array (_project_out_days, as it was built), with blocks of
+    about 3 days so that block edges fall inside the clock-test building's 14 days."""
+    from disagg.fit import intervals as iv_mod
+    from disagg.fit.design import BaseloadBuilder, design_matrix, rows_of, term_hours
+    from disagg.fit.estimate import WEAK_SD_FACTOR, Priors, solve
+    from disagg.fit.select import Form, FormChoice
+    from disagg.fit.solvers import fit_model
+    from disagg.fit.terms import plan_terms
+
+    monkeypatch.setattr(iv_mod, "_PROJECT_CHUNK_ROWS", 300)
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    rows = rows_of(aligned, site.timezone)
+    builder = BaseloadBuilder(site, rows)
+    B, names = builder.columns("constant")
+    H = rows.hours
+    plan = plan_terms(site, aligned.equipment_ids, H, B)
+    index = {e: j for j, e in enumerate(aligned.equipment_ids)}
+    X = design_matrix([term_hours(H, index, m) for m in plan.members], rows.temp_c, {}, B)
+    k = len(plan.fitted)
+    priors = Priors(plan.fitted, 0, WEAK_SD_FACTOR * float(np.max(rows.y / rows.interval_h)))
+    choice = FormChoice(Form("constant", False), True, [], 1.0)
+    s = solve(rows, X, k, k, names, choice, builder, priors)
+    hull = iv_mod.Hull.start(s.coef, iv_mod.jackknife(s, rows, 0.95), 0.95)
+    name, entry, bound = iv_mod.by_day_variant(rows, s, priors, plan.fitted,
+                                               int(rows.days.max()), hull)
+    # The whole projected array, as by_day_variant built it before.
+    V = iv_mod._project_out_days(np.column_stack([s.Hx, rows.y]), rows.interval_h[:, None],
+                                 rows.days)
+    md, sdd = priors(0)
+    fd = fit_model(V[:, :-1], V[:, -1], md, sdd, np.zeros(k), block=rows.days)
+    for t in plan.fitted:
+        c = t.column
+        assert entry[t.id]["kw"] == pytest.approx(float(fd.coef[c]), rel=1e-9)
+        assert entry[t.id]["se_kw"] == pytest.approx(float(fd.se[c]), rel=1e-9)
+        Hc = s.Hf[:, c]
+        r2 = 1.0 - float(np.sum(V[:, c] ** 2)) / float(np.sum((Hc - Hc.mean()) ** 2))
+        assert entry[t.id]["r2_with_daily_baseload"] == pytest.approx(r2, rel=1e-9, abs=1e-12)
+    assert name == "constant-by-day" and len(entry) == k
+
+
+# --- the entry guard under a tiny address-space limit -------------------------------------
+
+@pytest.mark.parametrize("limit_mb", [200, 300, 550])
+def test_a_limit_too_small_to_load_the_libraries_is_one_error_line(tmp_path, site_file,
+                                                                    limit_mb):
+    """`ulimit -v` of 200-550 MB (RLIMIT_AS set before the program starts): the imports of
+    numpy/polars would fail inside C extensions (a MemoryError traceback, or a polars import
+    that hung until killed at 550 MB); the entry point refuses with one Error line, exit 1,
+    quickly."""
+    import resource
+    import subprocess
+    import sys
+
+    def limit():
+        resource.setrlimit(resource.RLIMIT_AS, (limit_mb * 2**20, resource.RLIM_INFINITY))
+
+    out = subprocess.run([sys.executable, "-m", "disagg.cli", "breakdown", str(site_file),
+                          "--out", str(tmp_path / "out")], capture_output=True, text=True,
+                         timeout=60, preexec_fn=limit)
+    lines = out.stderr.strip().splitlines()
+    assert out.returncode == 1, out.stderr
+    assert len(lines) == 1 and lines[0].startswith("Error: a memory limit of "), out.stderr
+    assert "ulimit -v" in lines[0]
+    assert not (tmp_path / "out").exists()
+
+
+def test_memory_running_out_in_a_command_s_imports_is_one_error_line(capsys, monkeypatch):
+    """Outside a command's own guard (its lazy imports), an import that fails for want of
+    memory ("failed to map segment", as unicodedata's did under 500 MB) is one Error line and
+    exit 1; any other error is left alone."""
+    from disagg import cli
+
+    monkeypatch.setattr(cli, "_address_limit_error", lambda: None)
+    app = cli._App(add_completion=False)
+
+    @app.command()
+    def boom(kind: str) -> None:
+        if kind == "map":
+            raise ImportError("/usr/lib/x.so: failed to map segment from shared object")
+        if kind == "memory":
+            raise MemoryError()
+        raise ImportError("No module named 'nothere'")
+
+    for kind in ("map", "memory"):
+        with pytest.raises(SystemExit) as exc:
+            app([kind], standalone_mode=True)
+        assert exc.value.code == 1
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and err[0].startswith("Error: out of memory"), err
+    with pytest.raises(ImportError, match="nothere"):
+        app(["other"], standalone_mode=True)
+
+
+# --- designs written over the hours (align.hours_buffer) ----------------------------------
+
+def _fresh_buffer(aligned, site):
+    """aligned with its own hours buffer as align makes it: the hours, then room for the
+    declared profile's baseload columns."""
+    import dataclasses
+
+    from disagg.fit.align import BASELOAD_COLUMN_COUNT
+
+    n, k = aligned.hours.shape
+    base = np.empty((n, k + BASELOAD_COLUMN_COUNT[site.baseload.profile]))
+    base[:, :k] = aligned.hours
+    return dataclasses.replace(aligned, hours=base[:, :k])
+
+
+def test_a_whole_range_design_is_written_beside_the_hours_with_the_same_fit(site_file):
+    """align leaves room beside the hours for the declared profile's baseload columns; the
+    whole-range fit writes its design there (one (n, k + m) array, the hours its first
+    columns) and fits the same numbers as on a design built as a new array."""
+    import dataclasses
+
+    from disagg.fit.align import hours_buffer
+    from disagg.fit.estimate import estimate_draws
+
+    site, meter, log = _read(site_file)
+    aligned = align(site, meter, log)
+    k = aligned.hours.shape[1]
+    members = [[e] for e in aligned.equipment_ids]
+    buf = hours_buffer(aligned, members, aligned.hours.base.shape[1])
+    assert buf is not None and buf.shape[1] > k
+    plain = dataclasses.replace(aligned, hours=np.ascontiguousarray(aligned.hours))
+    assert hours_buffer(plain, members, k + 1) is None  # no room: a new design
+    shared = _fresh_buffer(aligned, site)
+    plain_hours, buffer = plain.hours, shared.hours.base
+    a = estimate_draws(site, plain)
+    b = estimate_draws(site, shared)
+    assert b.hours.base is buffer  # the design is the hours' own buffer
+    assert not np.shares_memory(a.hours, plain_hours)  # a new design
+    for f in ("kw", "kw_low", "kw_high", "se_kw", "base_kw", "cov_base", "fitted"):
+        np.testing.assert_array_equal(getattr(b, f), getattr(a, f))
+    assert b.warnings == a.warnings
+
+
+def test_drift_writing_its_design_over_the_hours_gives_the_same_result():
+    """drift_aligned(consume_hours=True) differences its design in the hours' own buffer
+    (no second (n, k) array) and drops aligned.hours; the drift table, summary and state are
+    those of a run that builds its design as a new array."""
+    from synthetic import make_building
+
+    from disagg.analyses.drift import drift_aligned
+    from disagg.fit.align import hours_buffer
+
+    s = make_building(12, days=120)
+    kept = _fresh_buffer(s.aligned, s.site)
+    consumed = _fresh_buffer(s.aligned, s.site)
+    assert hours_buffer(consumed, [[e] for e in consumed.equipment_ids],
+                        consumed.hours.base.shape[1]) is not None
+    a = drift_aligned(s.site, kept)
+    b = drift_aligned(s.site, consumed, consume_hours=True)
+    assert consumed.hours is None and kept.hours is not None
+    assert a.table.equals(b.table)
+    assert a.state == b.state
+
+
+def test_interval_parts_of_some_rows_equal_those_rows_of_the_whole(site_file):
+    """monthly_breakdown takes each month's interval parts alone (a long series holds one
+    month's (rows, terms + 2) array, not the whole range's): the same numbers."""
+    from disagg.analyses.breakdown import interval_parts_kwh
+    from disagg.fit.estimate import estimate_draws
+
+    site, meter, log = _read(site_file)
+    est = estimate_draws(site, align(site, meter, log))
+    whole = interval_parts_kwh(est)
+    rows = np.zeros(len(est.y), dtype=bool)
+    rows[100:700] = True
+    np.testing.assert_array_equal(interval_parts_kwh(est, rows), whole[rows])
+    np.testing.assert_allclose(whole.sum(axis=1), est.y, rtol=1e-12)
+
+
+def test_a_long_series_hour_of_week_variant_by_blocks_equals_the_array(monkeypatch):
+    """The hour-of-week rival of a long series is fitted on [run-hours, closure and
+    within-hour slope columns] made a block of rows at a time (no (n, k + 25) copy): the
+    same variant draws, standard errors and prior weights (1e-9) as on the whole array; the
+    blocks' columns are hour_of_week_sparse's exactly. Long is made short here (a threshold
+    of 100 rows, blocks of 3,000) on the 120-day synthetic building (invented)."""
+    from synthetic import make_building
+
+    from disagg.fit import intervals as iv_mod
+    from disagg.fit.design import BaseloadBuilder, rows_of
+    from disagg.fit.estimate import estimate_draws
+    from disagg.fit.select import Form
+
+    s = make_building(12, days=120)
+    builder = BaseloadBuilder(s.site, rows_of(s.aligned, s.site.timezone))
+    dense, names, ind = builder.hour_of_week_blocks()
+    whole, names_w, ind_w = builder.hour_of_week_sparse()
+    assert names == names_w and any(n.startswith("baseload_slope_h") for n in names)
+    np.testing.assert_array_equal(np.vstack([dense(0, 500), dense(500, len(whole))]), whole)
+    np.testing.assert_array_equal(ind.level, ind_w.level)
+    form = Form(s.site.baseload.profile, False)
+    assert "hour-of-week" in iv_mod.MORE_FLEXIBLE[form.profile]
+    a = estimate_draws(s.site, s.aligned, form=form)
+    monkeypatch.setattr(iv_mod, "LONG_DESIGN_ROWS", 100)
+    monkeypatch.setattr(iv_mod, "_VARIANT_BLOCK_ROWS", 3000)
+    b = estimate_draws(s.site, s.aligned, form=form)
+    va, vb = a.variants["hour-of-week"], b.variants["hour-of-week"]
+    assert set(va) == set(vb) and "skipped" not in va
+    for tid in va:
+        for key in ("kw", "se_kw"):
+            assert vb[tid][key] == pytest.approx(va[tid][key], rel=1e-9)
+        assert vb[tid]["prior_weight"] == pytest.approx(va[tid]["prior_weight"], rel=1e-6,
+                                                        abs=1e-12)
+    np.testing.assert_allclose(b.kw_low, a.kw_low, rtol=1e-9)
+    np.testing.assert_allclose(b.kw_high, a.kw_high, rtol=1e-9)

@@ -23,27 +23,29 @@ _ROW_SCHEMA = {"period": pl.String, "equipment": pl.String, "run_hours": pl.Floa
 SCHEMA = {**_ROW_SCHEMA, "peak_kw": pl.Float64, "cost": pl.Float64}
 
 
-def interval_parts_kwh(est: Estimates) -> np.ndarray:
-    """Each breakdown row's energy in each used interval [kWh], shape (n_used, terms + 2).
+def interval_parts_kwh(est: Estimates, rows: np.ndarray | slice = slice(None)) -> np.ndarray:
+    """Each breakdown row's energy in each used interval [kWh], shape (n_used, terms + 2),
+    or in the intervals `rows` (a month's: a long series never holds all of them at once).
 
     Columns in row order: the terms, the baseload, and the unexplained rest, so that every
     interval's parts add up to its metered energy.
     """
-    n, k = est.hours.shape
+    hours = est.hours[rows]
+    n, k = hours.shape
     parts = np.zeros((n, k + 2))
     for i, t in enumerate(est.terms):
         if t.column is None:
             continue
         if i in est.weather:
             w = est.weather[i]
-            parts[:, i] = (w["kw_at_balance"] * est.hours[:, i]
-                           + w["slope_kw_per_degc"] * est.weather_hours[:, i])
+            parts[:, i] = (w["kw_at_balance"] * hours[:, i]
+                           + w["slope_kw_per_degc"] * est.weather_hours[rows][:, i])
         else:
-            parts[:, i] = est.kw[i] * est.hours[:, i]
-    parts[:, k] = est.base @ est.base_kw
+            parts[:, i] = est.kw[i] * hours[:, i]
+    parts[:, k] = est.base[rows] @ est.base_kw
     if est.level_kwh is not None:
-        parts[:, k] += est.level_kwh
-    parts[:, k + 1] = est.y - parts[:, :k + 1].sum(axis=1)
+        parts[:, k] += est.level_kwh[rows]
+    parts[:, k + 1] = est.y[rows] - parts[:, :k + 1].sum(axis=1)
     return parts
 
 
@@ -62,7 +64,6 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     local = est.frame["start_utc"].dt.convert_time_zone(tz)
     month = (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy()
     interval_h = est.frame["interval_h"].to_numpy()
-    parts = interval_parts_kwh(est)
     price = None
     if tariff is not None:
         start_ns = est.frame["start_utc"].dt.epoch("ns").to_numpy()
@@ -136,8 +137,8 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
         rows.append(_row(period, "unexplained", hours, rest / hours, float("nan"),
                          float("nan"), rest, float("nan"), float("nan"), metered, ""))
         tables.append(price_table(pl.DataFrame(rows, schema=_ROW_SCHEMA, orient="row"),
-                                  parts[m], interval_h[m], None if price is None else price[m],
-                                  demand_price))
+                                  interval_parts_kwh(est, m), interval_h[m],
+                                  None if price is None else price[m], demand_price))
     frame = pl.concat(tables) if tables else pl.DataFrame(schema=SCHEMA)
     return frame.with_columns(pl.col(pl.Float64).fill_nan(None))
 

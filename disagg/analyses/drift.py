@@ -96,11 +96,12 @@ class DriftResult:
     state: dict
 
 
-def _design(site, aligned, term_members: list[list[str]]) -> tuple[pl.DataFrame, np.ndarray, np.ndarray]:
+def _design(site, aligned, term_members: list[list[str]],
+            consume_hours: bool = False) -> tuple[pl.DataFrame, np.ndarray, np.ndarray]:
     """Used intervals, their design rows and energy: the breakdown's own design builder
     (disagg.fit.estimate.design) with the declared profile and no wandering level, in the
     order estimate_draws uses (term hours, weather slope columns, baseload columns)."""
-    d = design(site, aligned, term_members)
+    d = design(site, aligned, term_members, consume_hours=consume_hours)
     return d.frame, d.X, d.y
 
 
@@ -216,7 +217,7 @@ def drift_site(site_path: str | Path, memory_days: float = 30.0, step: float | N
     site, aligned = load_inputs(site_path, date_from, date_to, log_offset_min)
     return drift_aligned(site, aligned, memory_days, step, reference, threshold, confidence,
                          state, baseload_memory_days=baseload_memory_days,
-                         min_reference_run_h=min_reference_run_h)
+                         min_reference_run_h=min_reference_run_h, consume_hours=True)
 
 
 def _fit_window(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
@@ -262,8 +263,13 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                   confidence: float = 0.95, state: dict | None = None, *,
                   baseload_memory_days: float | None = None,
                   min_reference_run_h: float = MIN_REFERENCE_RUN_H,
-                  reference_days: int = DEFAULT_REFERENCE_DAYS) -> DriftResult:
-    """drift_site on intervals already read and aligned (see drift_site for the arguments)."""
+                  reference_days: int = DEFAULT_REFERENCE_DAYS,
+                  consume_hours: bool = False) -> DriftResult:
+    """drift_site on intervals already read and aligned (see drift_site for the arguments).
+
+    consume_hours: the tracked design may be written over aligned.hours (a long series then
+    holds one (n, k) array, not two; design.design); aligned.hours is None afterwards when it
+    was. For callers that need the hours no more (drift_site, the report's drift)."""
     if not 0.0 < threshold < 10.0:
         raise ConfigError(f"--threshold {threshold}: expected a fraction above 0, e.g. 0.10")
     if step is not None and not 0.0 < step < MU_MAX:
@@ -375,7 +381,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                    float(degrees(np.array([found[c][0].weather[found[c][1]]["reference_temp_c"]]),
                                  *specs[c])[0])]
                   for s_i, c in enumerate(specs)]
-        frame, X_level, y_level = _design(site, aligned, members)
+        frame, X_level, y_level = _design(site, aligned, members, consume_hours)
+        if consume_hours and aligned.hours.base is not None and np.shares_memory(
+                X_level[:1], aligned.hours[:1]):
+            aligned.hours = None  # its numbers are about to become the differences
         if X_level.shape[1] != len(w0):
             raise InputError(f"{site.path}: the reference fit has {len(w0)} columns but the "
                              f"tracked design {X_level.shape[1]}")

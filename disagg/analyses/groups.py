@@ -24,9 +24,10 @@ def inseparable_groups(site: SiteConfig, aligned: Aligned) -> list[list[str]]:
     if not use.any():
         return []
     ids = aligned.equipment_ids
-    H = aligned.hours[use]
+    everything = bool(use.all())  # then no copy of a long series' hours
+    H = aligned.hours if everything else aligned.hours[use]
     B, _ = frame_baseload(aligned, site.baseload, site.timezone)
-    sep = inseparable(H, B[use])
+    sep = inseparable(H, B if everything else B[use])
     parent = list(range(len(ids)))
 
     def find(i: int) -> int:

@@ -221,6 +221,31 @@ CHUNK_ROWS = 65536
 SHARE_MAX_WIDENING = 2.0
 
 
+# align leaves room for this many baseload columns beside the hours (hours_buffer).
+SPARE_MAX_COLUMNS = 4
+
+
+def hours_buffer(aligned: Aligned, term_members: list[list[str]], width: int) -> np.ndarray | None:
+    """The (n, width) array whose first k columns are aligned.hours, when a design of the
+    loads themselves (one term each, in aligned's order, every interval used) can be written
+    there in place: its term columns are the hours already, the rest of its columns go into
+    the room align left. None otherwise (the design is then a new array).
+
+    Writing into it changes aligned.hours only beyond its k columns (a design that is
+    differenced in place, as drift's, consumes the hours: drift then drops them).
+    """
+    H = aligned.hours
+    base = H.base
+    n, k = H.shape
+    if (base is None or base.ndim != 2 or base.shape != (n, width) or width < k
+            or not base.flags.c_contiguous or not aligned.use.all()
+            or H.__array_interface__["data"][0] != base.__array_interface__["data"][0]
+            or H.strides != base.strides
+            or term_members != [[e] for e in aligned.equipment_ids]):
+        return None
+    return base
+
+
 def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]]) -> bool:
     """Point aligned.hours at a design's term columns Hf when they hold the same numbers, so
     that a whole-range fit of a long series keeps one (n, k) array of hours, not two.
@@ -402,7 +427,12 @@ def align(site: SiteConfig, meter: MeterData, runlog: RunLog,
     start_ns = frame["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
     end_ns = frame["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
     ids = site.equipment_ids()
-    hours = np.empty((frame.height, len(ids)))
+    # The hours are the first columns of a buffer with room for the declared profile's few
+    # baseload columns: a whole-range fit of the loads themselves then writes its design in
+    # place (hours_buffer), no second (n, k) array.
+    spare = BASELOAD_COLUMN_COUNT.get(site.baseload.profile, 0)
+    spare = spare if spare <= SPARE_MAX_COLUMNS else 0
+    hours = np.empty((frame.height, len(ids) + spare))[:, :len(ids)]
     known = np.ones(frame.height, dtype=bool)
     unknown_by: dict[str, int] = {}
     for j, eq in enumerate(site.equipment):

@@ -17,6 +17,7 @@ from disagg.fit.align import (
     edge_columns,
     frame_arrays,
     frame_baseload,
+    hours_buffer,
 )
 from disagg.fit.select import Form, kept_columns
 from disagg.fit.solvers import Indicators
@@ -114,8 +115,8 @@ def rows_of(aligned: Aligned, tz: str) -> Rows:
     """The used rows of aligned; the whole-frame arrays are computed once
     (align.frame_arrays), a month's fit takes its rows."""
     use = aligned.use
-    frame = aligned.frame.filter(pl.Series(use))
     everything = bool(use.all())
+    frame = aligned.frame if everything else aligned.frame.filter(pl.Series(use))
     arrays = {k: v if everything else v[use] for k, v in frame_arrays(aligned, tz).items()}
     start_ns, end_ns = arrays["start_ns"], arrays["end_ns"]
     return Rows(aligned=aligned, tz=tz, frame=frame, everything=everything,
@@ -221,6 +222,37 @@ class BaseloadBuilder:
             names = ["baseload_closed_kw"] + names
         return dense, names, ind
 
+    def hour_of_week_blocks(self):
+        """hour_of_week_sparse with its dense columns made for any block of rows instead of
+        held whole (a long series: the within-hour slopes are n x 24 numbers): (a function
+        of (lo, hi) giving rows lo..hi of the dense columns, their names, the Indicators).
+        The same numbers as hour_of_week_sparse's columns."""
+        r = self.rows
+        ind = Indicators(r.hour_of_week, (r.end_ns - r.start_ns) / NS_PER_H, 168)
+        base = self.site.baseload
+        closure = self.closure_column() if base.closed and base.spells else None
+        ih = (r.end_ns - r.start_ns) / NS_PER_H
+        slopes = ih.size > 0 and float(np.median(ih)) < WITHIN_HOUR_MAX_H
+        names = ([] if closure is None else ["baseload_closed_kw"]) + (
+            [f"{SLOPE_PREFIX}{h:02d}_kw_per_h" for h in range(24)] if slopes else [])
+        hour = value = None
+        if slopes:  # within_hour_slopes' one nonzero of each row
+            local = r.frame["start_utc"].dt.convert_time_zone(r.tz)
+            hour = local.dt.hour().to_numpy().astype(np.int64)
+            value = ((local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5) * ih
+        width = len(names)
+
+        def dense(lo: int, hi: int) -> np.ndarray:
+            out = np.zeros((hi - lo, width))
+            if closure is not None:
+                out[:, 0] = closure[lo:hi]
+            if slopes:
+                first = 0 if closure is None else 1
+                out[np.arange(hi - lo), first + hour[lo:hi]] = value[lo:hi]
+            return out
+
+        return dense, names, ind
+
     def for_form(self, form: Form) -> tuple[np.ndarray, list[str]]:
         """The columns of a form: with the level, without the profile's constant direction
         (select.kept_columns)."""
@@ -245,17 +277,23 @@ def term_hours(H: np.ndarray, index: dict[str, int], members: list[str]) -> np.n
 
 
 def design_matrix(Hcols: list[np.ndarray], temp_c: np.ndarray | None,
-                  specs: dict[int, tuple[str, float]], B: np.ndarray) -> np.ndarray:
+                  specs: dict[int, tuple[str, float]], B: np.ndarray,
+                  into: np.ndarray | None = None) -> np.ndarray:
     """The design, built once: each term's hours, then each weather term's hours x degrees
     beyond its balance temperature (slope columns, ASHRAE change-point form), then the
     baseload columns. Slices of it are views (a site-year of 1-minute data: ~200 MB per copy
-    saved)."""
+    saved). into: an array of the design's shape to write it in (align.hours_buffer: its
+    first columns are the term hours already)."""
     k = len(Hcols)
     n = B.shape[0]
     kx = k + len(specs)
-    X = np.empty((n, kx + B.shape[1]))
+    shape = (n, kx + B.shape[1])
+    X = into if into is not None and into.shape == shape else np.empty(shape)
     for c in range(k):
-        X[:, c] = Hcols[c]
+        h = Hcols[c]
+        if not (h.__array_interface__["data"][0] == X[:, c].__array_interface__["data"][0]
+                and h.strides == X[:, c].strides):  # not already there (into)
+            X[:, c] = h
     X[:, k:kx] = weather_columns(X[:, :k], temp_c, specs)
     X[:, kx:] = B
     return X
@@ -281,17 +319,24 @@ class Design:
 
 
 def design(site: SiteConfig, aligned: Aligned, term_members: list[list[str]],
-           form: Form | None = None) -> Design:
+           form: Form | None = None, consume_hours: bool = False) -> Design:
     """The design of the intervals aligned.use for the given terms (each a list of equipment
     ids whose hours are averaged, as a combined row) and baseload form (default: the
-    declared profile without the level): the columns estimate_draws fits."""
+    declared profile without the level): the columns estimate_draws fits.
+
+    consume_hours: the design may be written in place of aligned.hours (align.hours_buffer)
+    when it can; the caller must then treat aligned.hours as gone once it changes the
+    design (drift differences it in place and drops them)."""
     form = form or Form(site.baseload.profile, level=False)
     rows = rows_of(aligned, site.timezone)
     index = {e: j for j, e in enumerate(aligned.equipment_ids)}
     H = rows.hours
     specs = weather_specs(site, term_members)
     B, names = BaseloadBuilder(site, rows).for_form(form)
-    X = design_matrix([term_hours(H, index, m) for m in term_members], rows.temp_c, specs, B)
+    into = (hours_buffer(aligned, term_members, len(term_members) + len(specs) + B.shape[1])
+            if consume_hours else None)
+    X = design_matrix([term_hours(H, index, m) for m in term_members], rows.temp_c, specs, B,
+                      into=into)
     return Design(rows.frame, X, rows.y, term_members, len(specs), names, form)
 
 

@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import polars as pl
 
-from disagg.fit.align import NS_PER_H, Aligned, share_hours
+from disagg.fit.align import NS_PER_H, Aligned, hours_buffer, share_hours
 from disagg.fit.design import (  # noqa: F401  (design, baseload_level, weather_specs: API)
     BaseloadBuilder,
     Design,
@@ -170,7 +170,9 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     warnings += plan.warnings
     index = {e: j for j, e in enumerate(aligned.equipment_ids)}
     specs = weather_specs(site, plan.members)
-    X = design_matrix([term_hours(H, index, m) for m in plan.members], rows.temp_c, specs, B)
+    X = design_matrix([term_hours(H, index, m) for m in plan.members], rows.temp_c, specs, B,
+                      into=hours_buffer(aligned, plan.members,
+                                        len(plan.members) + len(specs) + B.shape[1]))
     del H, B
     # Long series: aligned.hours becomes a view of the design's term columns when they are
     # the same numbers (one (n, k) array through the fit, not two; align.share_hours).

@@ -20,6 +20,7 @@ from disagg.fit.select import FormChoice
 from disagg.fit.solve import Priors, Solved
 from disagg.fit.solvers import (
     Indicators,
+    LazyRows,
     chi2_upper_quantile,
     fit_model,
     jackknife_cov,
@@ -165,7 +166,18 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
         if variant == "occupied" and not site.baseload.spells:
             continue
         ind = None
-        if variant == "hour-of-week":
+        long = False
+        if variant == "hour-of-week" and n > LONG_DESIGN_ROWS:
+            # A long series: [Hx, dense columns] made a block of rows at a time (LazyRows).
+            dense, names_v, ind = builder.hour_of_week_blocks()
+            Hx, w = s.Hx, len(names_v)
+            bounds = np.append(np.arange(0, n, _VARIANT_BLOCK_ROWS), n)
+            Bv = LazyRows(bounds, kx + w, lambda b: np.column_stack(
+                [Hx[bounds[b]:bounds[b + 1]], dense(bounds[b], bounds[b + 1])]))
+            long = True
+            m_cols = w + ind.n_levels
+            signed = np.r_[signed_columns(names_v), np.zeros(ind.n_levels, dtype=bool)]
+        elif variant == "hour-of-week":
             # The 168 hour-of-week columns are stored by row (solvers.Indicators), the closure
             # column (if any) and the within-hour slopes stay dense; the baseload columns'
             # order does not matter.
@@ -180,7 +192,7 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
             variants[variant] = {"skipped": f"fewer than {MIN_ROWS_PER_COLUMN} intervals per "
                                             "fitted column"}
             continue
-        Xv = np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
+        Xv = Bv if long else np.column_stack([s.Hx, Bv]) if Bv.shape[1] else s.Hx
         mv, sv = priors(m_cols)
         lower_v = np.zeros(kx + m_cols)
         lower_v[kx:][signed] = -np.inf
@@ -199,6 +211,10 @@ def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadB
                 hull.widen_with(c, float(fv.coef[c]), float(se_v[c]), variant)
         variants[variant] = entry
     return variants
+
+
+# Rows per block of a long series' hour-of-week variant design (profile_variants).
+_VARIANT_BLOCK_ROWS = 65536
 
 
 def by_day_variant(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], n_days: int,
@@ -224,13 +240,29 @@ def by_day_variant(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], n_
         C = rows.interval_h[:, None]
         rest = B if profile == "hour-of-week" else np.zeros((n, 0))
     rest = np.ascontiguousarray(rest)
-    Xd = _project_out_days(np.column_stack([s.Hx, rest, rows.y]), C, rows.days)
-    yd = Xd[:, -1]
-    Xd = Xd[:, :-1]
+    # The projected design [Hx, rest] is made a few weeks at a time whenever the fit reads it
+    # (LazyRows): never a second (n, kx) array beside the design.
+    proj = _DayProjection(C, rows.days)
+    Hx, y = s.Hx, rows.y
+
+    def block(b: int) -> np.ndarray:
+        lo, hi = proj.bounds[b], proj.bounds[b + 1]
+        return proj.apply(b, np.column_stack([Hx[lo:hi], rest[lo:hi], y[lo:hi]]))
+
+    yd = np.empty(n)
+    sq = np.zeros(kx)
+    for b in range(len(proj.bounds) - 1):
+        V = block(b)
+        yd[proj.bounds[b]:proj.bounds[b + 1]] = V[:, -1]
+        sq += np.sum(V[:, :kx] ** 2, axis=0)
+    del V
+    Xd = LazyRows(proj.bounds, kx + rest.shape[1] + 1, block,
+                  np.arange(kx + rest.shape[1]))
     md, sdd = priors(rest.shape[1])
     fd = fit_model(Xd, yd, md, sdd,
                    np.concatenate([np.zeros(kx), np.full(rest.shape[1], -np.inf)]),
                    block=rows.days)
+    del Xd
     se_d = fd.se
     entry = {}
     bound: list[int] = []
@@ -238,7 +270,7 @@ def by_day_variant(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], n_
     for t in fitted:
         c = t.column
         tss = float(np.sum((Hf[:, c] - Hf[:, c].mean()) ** 2))
-        r2_day = 1.0 - float(np.sum(Xd[:, c] ** 2)) / tss if tss > 0 else 1.0
+        r2_day = 1.0 - float(sq[c]) / tss if tss > 0 else 1.0
         separable = fd.prior_weight[c] < PRIOR_DRIVEN_WEIGHT
         entry[t.id] = {"kw": float(fd.coef[c]), "se_kw": float(se_d[c]),
                        "prior_weight": float(fd.prior_weight[c]),
@@ -617,6 +649,64 @@ def split_switching(h: np.ndarray, interval_h: np.ndarray) -> tuple[np.ndarray, 
     return up * interval_h, (frac - up) * interval_h
 
 
+def switching_design(X: np.ndarray, interval_h: np.ndarray, keep: np.ndarray, k: int,
+                     kx: int, block_steps: int | None = None) -> LazyRows:
+    """switching_steps' differenced design on the kept steps, made a block of steps at a time
+    (solvers.LazyRows: a long series never holds the (steps, k + kx) array): column c < k is
+    the first difference of load c's switch-on part in kW (split_switching), column k + c
+    its switch-off part, columns 2k..k+kx-1 the differenced weather columns. The same numbers
+    as splitting each whole column: the running sum of the rises is continued from a
+    checkpoint at each block's first row in the same order (a cumulative sum is sequential),
+    so every value is computed exactly as on the whole column.
+
+    Args:
+        X: (n, >= kx) run-hours then weather columns; interval_h: (n,); keep: (n - 1,) the
+            steps kept; block_steps: steps per block (default solvers' sum chunk).
+    """
+    G = block_steps or _SWITCH_BLOCK_STEPS
+    inv_h = 1.0 / interval_h
+    steps = np.flatnonzero(keep)
+    bounds = np.append(np.arange(0, len(steps), G), len(steps))
+    # Block b's steps are made from rows r0 - 1 .. r1 (first(b)); ckpt[b, c]: the running
+    # sum of load c's rises before row first(b) (split_switching's cumulative sum there).
+    first = np.maximum(steps[bounds[:-1]] - 1, 0) if len(steps) else np.zeros(0, np.int64)
+    ckpt = np.zeros((len(first), k))
+    frac0 = X[0, :k] / interval_h[0]
+    for c in range(k):
+        run = np.cumsum(np.maximum(np.diff(X[:, c] / interval_h), 0.0))
+        ckpt[first > 0, c] = run[first[first > 0] - 1]
+
+    def block(b: int) -> np.ndarray:
+        d = steps[bounds[b]:bounds[b + 1]]
+        r0, r1 = int(d[0]), int(d[-1]) + 1  # rows r0..r1 make these steps
+        a = int(first[b])  # the rises from row a on are summed from ckpt[b]
+        ih, ivh = interval_h[r0:r1 + 1], inv_h[r0:r1 + 1]
+        pick = d - r0
+        lo = max(r0, 1)
+        out = np.empty((len(d), k + kx))
+        # One load at a time (temporaries of one column, as the whole-column split had).
+        for c in range(k):
+            rise = np.maximum(np.diff(X[a:r1 + 1, c] / interval_h[a:r1 + 1]), 0.0)
+            # Continued from the checkpoint in the same order (a cumulative sum is sequential).
+            run = np.cumsum(np.concatenate([ckpt[b, c:c + 1], rise]))[1:] if a else np.cumsum(rise)
+            up = np.empty(r1 + 1 - r0)  # split_switching's up, rows r0..r1
+            if r0 == 0:
+                up[0] = frac0[c]
+            up[lo - r0:] = run[lo - 1 - a:r1 - a] + frac0[c]
+            frac = X[r0:r1 + 1, c] / ih
+            out[:, c] = np.diff(up * ih * ivh)[pick]
+            out[:, k + c] = np.diff((frac - up) * ih * ivh)[pick]
+        for c in range(k, kx):
+            out[:, k + c] = np.diff(X[r0:r1 + 1, c] * ivh)[pick]
+        return out
+
+    return LazyRows(bounds, k + kx, block)
+
+
+# Steps per block of switching_design (and between its checkpoints).
+_SWITCH_BLOCK_STEPS = 65536
+
+
 def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: np.ndarray,
                     prior: tuple[np.ndarray, np.ndarray], block: np.ndarray,
                     hour_of_day: np.ndarray | None = None, drift_sd: float = 1e3,
@@ -677,13 +767,7 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
     m = k + kx
     if keep.sum() < MIN_ROWS_PER_COLUMN * (m + nh):
         return None
-    Xd = np.empty((int(keep.sum()), m))
-    for c in range(k):
-        up, down = split_switching(X[:, c], interval_h)
-        Xd[:, c] = np.diff(up * inv_h)[keep]
-        Xd[:, k + c] = np.diff(down * inv_h)[keep]
-    for c in range(k, kx):
-        Xd[:, k + c] = np.diff(X[:, c] * inv_h)[keep]
+    Xd = switching_design(X, interval_h, keep, k, kx)  # made a block of steps at a time
     mean, sd = prior
     f = fit_model(Xd, np.diff(y * inv_h)[keep], np.concatenate([mean[:k], mean[:kx], np.zeros(nh)]),
                   np.concatenate([sd[:k], sd[:kx], np.full(nh, drift_sd)]),
@@ -738,34 +822,62 @@ def _project_out_days(V: np.ndarray, C: np.ndarray, days: np.ndarray) -> np.ndar
     working precision), all days at once; a column that adds no direction within a day (all
     zero, or a multiple of the earlier ones: norm left at most c_rows x machine epsilon x the
     day's largest column norm, as the SVD least-squares rank rule) is skipped for that day.
-    The projection on them is then subtracted from V, a few weeks of rows at a time.
+    The projection on them is then subtracted from V, a few weeks of rows at a time
+    (_DayProjection: the same numbers a block of whole days at a time).
     """
-    n = len(days)
-    starts = np.flatnonzero(np.concatenate([[True], np.diff(days) != 0]))
-    bounds = np.append(starts, n)
-    chunk_days = max(1, _PROJECT_CHUNK_ROWS * len(starts) // max(n, 1))
-    for d0 in range(0, len(starts), chunk_days):
-        d1 = min(d0 + chunk_days, len(starts))
-        rows = slice(bounds[d0], bounds[d1])
-        local = bounds[d0:d1] - bounds[d0]  # first row of each day in the chunk
-        sizes = np.diff(np.append(local, bounds[d1] - bounds[d0]))
-        day_of = np.repeat(np.arange(d1 - d0), sizes)
-        Cc = C[rows]
-        tol = (np.finfo(float).eps * np.maximum(sizes, C.shape[1])
-               * np.sqrt(np.add.reduceat(Cc * Cc, local, axis=0).max(axis=1)))
-        basis: list[np.ndarray] = []
-        for k in range(C.shape[1]):
-            r = Cc[:, k].copy()
-            for _ in range(2):
-                for q in basis:
-                    r -= q * np.add.reduceat(q * r, local)[day_of]
-            norm = np.sqrt(np.add.reduceat(r * r, local))
-            keep = norm > tol
-            basis.append(np.where(keep[day_of], r / np.where(keep, norm, 1.0)[day_of], 0.0))
-        Vc = V[rows]
-        for q in basis:
-            Vc -= q[:, None] * np.add.reduceat(q[:, None] * Vc, local, axis=0)[day_of]
+    proj = _DayProjection(C, days)
+    for b in range(len(proj.bounds) - 1):
+        lo, hi = proj.bounds[b], proj.bounds[b + 1]
+        proj.apply(b, V[lo:hi])
     return V
+
+
+class _DayProjection:
+    """_project_out_days in blocks of whole days: the orthonormal per-day basis of C's
+    columns (c vectors of n numbers), and its projection subtracted from any block of rows.
+
+    bounds: (blocks + 1,) first row of each block (a few weeks of whole days) and n."""
+
+    def __init__(self, C: np.ndarray, days: np.ndarray):
+        n = len(days)
+        starts = np.flatnonzero(np.concatenate([[True], np.diff(days) != 0]))
+        day_bounds = np.append(starts, n)
+        chunk_days = max(1, _PROJECT_CHUNK_ROWS * len(starts) // max(n, 1))
+        firsts = list(range(0, len(starts), chunk_days))
+        self.bounds = np.append(day_bounds[firsts], n)
+        self.local: list[np.ndarray] = []
+        self.day_of: list[np.ndarray] = []
+        self.basis = [np.empty(n) for _ in range(C.shape[1])]
+        for d0 in firsts:
+            d1 = min(d0 + chunk_days, len(starts))
+            rows = slice(day_bounds[d0], day_bounds[d1])
+            local = day_bounds[d0:d1] - day_bounds[d0]  # first row of each day in the chunk
+            sizes = np.diff(np.append(local, day_bounds[d1] - day_bounds[d0]))
+            day_of = np.repeat(np.arange(d1 - d0), sizes)
+            Cc = C[rows]
+            tol = (np.finfo(float).eps * np.maximum(sizes, C.shape[1])
+                   * np.sqrt(np.add.reduceat(Cc * Cc, local, axis=0).max(axis=1)))
+            basis: list[np.ndarray] = []
+            for k in range(C.shape[1]):
+                r = Cc[:, k].copy()
+                for _ in range(2):
+                    for q in basis:
+                        r -= q * np.add.reduceat(q * r, local)[day_of]
+                norm = np.sqrt(np.add.reduceat(r * r, local))
+                keep = norm > tol
+                basis.append(np.where(keep[day_of], r / np.where(keep, norm, 1.0)[day_of], 0.0))
+                self.basis[k][rows] = basis[-1]
+            self.local.append(local)
+            self.day_of.append(day_of)
+
+    def apply(self, b: int, Vc: np.ndarray) -> np.ndarray:
+        """Subtract the projection from Vc, the rows of block b (in place; returned)."""
+        rows = slice(self.bounds[b], self.bounds[b + 1])
+        local, day_of = self.local[b], self.day_of[b]
+        for q_all in self.basis:
+            q = q_all[rows]
+            Vc -= q[:, None] * np.add.reduceat(q[:, None] * Vc, local, axis=0)[day_of]
+        return Vc
 
 
 # Rows per chunk of _project_out_days (whole days): bounds its temporary memory.

@@ -309,18 +309,97 @@ def compress(X: np.ndarray, y: np.ndarray,
     if p >= _DISJOINT_MIN_COLS:
         disjoint = _disjoint_columns(X)
         if len(disjoint) >= p // 2:
-            D = X[:, disjoint]
-            nz = D != 0
-            level = np.where(nz.any(axis=1), np.argmax(nz, axis=1), -1)
-            value = D.sum(axis=1)  # the one nonzero of each row (the others add 0 exactly)
-            del D, nz
             rest = np.setdiff1d(np.arange(p), disjoint)
-            r, z = _compress_levels(X[:, rest], y, level, value, len(disjoint))
+            if isinstance(X, LazyRows):
+                parts = [_level_value(X[i:i + _SUM_CHUNK_ROWS][:, disjoint])
+                         for i in range(0, len(X), _SUM_CHUNK_ROWS)]
+                level = np.concatenate([a for a, _ in parts])
+                value = np.concatenate([b for _, b in parts])
+                del parts
+                T = X.columns(rest)
+            else:
+                level, value = _level_value(X[:, disjoint])
+                T = X[:, rest]
+            r, z = _compress_levels(T, y, level, value, len(disjoint))
             out = np.empty_like(r)
             out[:, np.concatenate([rest, disjoint])] = r
             return out, z
     r = _tsqr_xy(X, y)
     return r[:p, :p], r[:p, p]
+
+
+def _level_value(D: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The column of the one nonzero of each row of D (-1: none) and its value."""
+    nz = D != 0
+    level = np.where(nz.any(axis=1), np.argmax(nz, axis=1), -1)
+    return level, D.sum(axis=1)  # the others add 0 exactly
+
+
+class LazyRows:
+    """A tall (n, p) design made a block of rows at a time, when a solver reads it.
+
+    The whole array never exists: `make(b)` returns the rows bounds[b]:bounds[b + 1] of the
+    design (blocks chosen by the caller, e.g. whole days), and a row slice X[i:j] is put
+    together from the blocks it meets (the last block made is kept, as slices are read in
+    order). fit_model, compress and _factor_levels accept it where they take a design: they
+    read a design only by row slices and products X @ b, one chunk at a time, so the fit is
+    the one on the materialised array (the same rows in the same chunks). Other callers
+    materialise it (`X[:]`); a small design should be passed as an array.
+    """
+
+    def __init__(self, bounds: np.ndarray, p: int, make, cols: np.ndarray | None = None):
+        self.bounds = np.asarray(bounds, dtype=np.int64)
+        self.make = make
+        self.cols = cols
+        self.shape = (int(self.bounds[-1]), p if cols is None else len(cols))
+        self._last: tuple[int, np.ndarray] | None = None
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def _block(self, b: int) -> np.ndarray:
+        if self._last is None or self._last[0] != b:
+            self._last = None  # release the previous block first
+            self._last = (b, self.make(b))
+        return self._last[1]
+
+    def __getitem__(self, key: slice) -> np.ndarray:
+        if not isinstance(key, slice):
+            raise TypeError("LazyRows takes row slices only")
+        i, j, step = key.indices(self.shape[0])
+        if step != 1:
+            raise TypeError("LazyRows takes row slices with step 1 only")
+        j = max(i, j)
+        first = int(np.searchsorted(self.bounds, i, side="right")) - 1
+        pieces = []
+        b = first
+        while b < len(self.bounds) - 1 and self.bounds[b] < j:
+            lo, hi = self.bounds[b], self.bounds[b + 1]
+            block = self._block(b)
+            pieces.append(block[max(i, lo) - lo:min(j, hi) - lo])
+            b += 1
+        if not pieces:
+            return np.empty((0, self.shape[1]))
+        out = pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
+        if self.cols is not None:
+            out = out[:, self.cols]
+        return np.ascontiguousarray(out)
+
+    def columns(self, cols: np.ndarray) -> LazyRows:
+        """The same rows, only the columns `cols` (of this design's columns)."""
+        full = cols if self.cols is None else self.cols[cols]
+        return LazyRows(self.bounds, 0, self.make, np.asarray(full))
+
+    def __matmul__(self, b: np.ndarray) -> np.ndarray:
+        n = self.shape[0]
+        out = np.empty(n)
+        for i in range(0, n, _SUM_CHUNK_ROWS):
+            out[i:i + _SUM_CHUNK_ROWS] = self[i:i + _SUM_CHUNK_ROWS] @ b
+        return out
+
+    def dense(self) -> np.ndarray:
+        """The whole array (for small designs only)."""
+        return self[0:self.shape[0]]
 
 
 def _tsqr_r(Z: np.ndarray) -> np.ndarray:
@@ -335,6 +414,7 @@ def _tsqr_r(Z: np.ndarray) -> np.ndarray:
 def _tsqr_xy(X: np.ndarray, y: np.ndarray) -> np.ndarray:
     """_tsqr_r of [X, y], one chunk of [X, y] in memory at a time."""
     if len(X) <= 2 * _QR_CHUNK_ROWS:
+        X = X.dense() if isinstance(X, LazyRows) else X
         return np.linalg.qr(np.column_stack([X, y]), mode="r")
     parts = [np.linalg.qr(np.column_stack([X[i:i + _QR_CHUNK_ROWS], y[i:i + _QR_CHUNK_ROWS]]),
                           mode="r")
@@ -346,7 +426,11 @@ def _disjoint_columns(X: np.ndarray) -> np.ndarray:
     """Indices of columns that share no nonzero row with each other, among the nonzero
     columns with at most half their rows nonzero (greedily: the columns that share the
     fewest of their rows with the others first)."""
-    nz = X != 0
+    if isinstance(X, LazyRows):
+        nz = np.concatenate([X[i:i + _SUM_CHUNK_ROWS] != 0
+                             for i in range(0, len(X), _SUM_CHUNK_ROWS)])
+    else:
+        nz = X != 0
     count = nz.sum(axis=0)
     cand = np.flatnonzero((count > 0) & (count <= len(X) // 2))
     if len(cand) == 0:
@@ -609,7 +693,10 @@ def fit_model(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray, prior_sd: np
     """
     if indicators is not None and (block is None or not len(y) > 2 * (X.shape[1]
                                                                        + indicators.n_levels)):
+        X = X.dense() if isinstance(X, LazyRows) else X
         X, indicators = np.column_stack([X, indicators.dense()]), None
+    if isinstance(X, LazyRows) and (block is None or not len(y) > 2 * X.shape[1]):
+        X = X.dense()  # a short design, or scores by row: the plain path
     n, p = X.shape
     q = p + (indicators.n_levels if indicators is not None else 0)
     prec = np.where(np.isfinite(prior_sd) & (prior_sd > 0), 1.0 / np.square(prior_sd), 0.0)
@@ -641,7 +728,8 @@ def fit_model(X: np.ndarray, y: np.ndarray, prior_mean: np.ndarray, prior_sd: np
                 return b
         if tall and ((pen > 0).any() or np.isfinite(lower).any()):
             return _solve_small(r, z, mean, pen, lower)
-        return solve_regularized(X, y, mean, pen, lower)
+        return solve_regularized(X.dense() if isinstance(X, LazyRows) else X, y, mean, pen,
+                                 lower)
 
     inverses: dict[bytes, np.ndarray] = {}
 

@@ -183,8 +183,11 @@ def drift_for(result: BreakdownResult, memory_days: float = 30.0,
                           f"in the data, which cover {first} to {last}; a fit needs at least "
                           f"{needed:,}.")
     try:
+        # The report needs the hours no more (its breakdown table is made): the tracked
+        # design may take their place (drift_aligned consume_hours).
         drift = drift_aligned(result.site, result.aligned, memory_days, None, reference,
-                              threshold, result.estimates.confidence)
+                              threshold, result.estimates.confidence,
+                              consume_hours=result.estimates.hours is None)
     except DisaggError as exc:
         return None, f"Drift is left out: {exc}"
     return drift, None
