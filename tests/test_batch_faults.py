@@ -79,11 +79,11 @@ def test_a_dead_worker_fails_only_its_own_site(tmp_path, monkeypatch):
     assert seen[-1] == ("sites", 6, 6)
 
 
-def _start_batch(tmp_path: Path, out: Path, first_seed: int) -> subprocess.Popen:
-    """`disagg batch` of six 60-day synthetic sites on 2 workers, in its own process group."""
+def _start_batch(tmp_path: Path, out: Path, first_seed: int, days: int = 60) -> subprocess.Popen:
+    """`disagg batch` of six synthetic sites on 2 workers, in its own process group."""
     sites = tmp_path / "sites"
     for i in range(6):
-        write_site_files(sites, f"s{i}", first_seed + i, days=60, data_dir=tmp_path / "data")
+        write_site_files(sites, f"s{i}", first_seed + i, days=days, data_dir=tmp_path / "data")
     return subprocess.Popen([sys.executable, "-m", "disagg.cli", "batch", str(sites),
                              "--out", str(out), "--workers", "2", "--quiet"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE,
@@ -156,7 +156,9 @@ def test_a_worker_killed_from_outside_costs_no_site(tmp_path):
     # As the out-of-memory killer would: SIGKILL one busy worker of a real batch (forkserver).
     # Its site runs again alone and succeeds, the others on a fresh pool: every site is ok.
     out = tmp_path / "out"
-    proc = _start_batch(tmp_path, out, first_seed=50)
+    # Sites long enough that the batch is still running when a worker is killed (with
+    # 60-day sites the whole batch could finish within the wait below).
+    proc = _start_batch(tmp_path, out, first_seed=50, days=240)
     try:
         deadline = time.monotonic() + 120
         workers: list[int] = []
@@ -173,7 +175,7 @@ def test_a_worker_killed_from_outside_costs_no_site(tmp_path):
             workers = [p for p, (ppid, _) in procs.items() if servers and ppid == servers[0]]
             time.sleep(0.05)
         assert workers
-        time.sleep(1.0)  # busy with a site by now
+        time.sleep(0.5)  # busy with a site by now
         os.kill(workers[0], signal.SIGKILL)
         _, err = proc.communicate(timeout=300)
         assert proc.returncode == 0, err.decode()
