@@ -109,3 +109,23 @@ def test_no_widening_without_a_coincident_load():
             if t.id in entry:
                 assert entry[t.id]["kw"] == pytest.approx(e.kw[i], abs=3 * e.se_hac_kw[i])
         assert not any("switch-on response" in w for w in e.warnings)
+
+
+def test_a_month_checks_only_the_loads_whose_draw_moved_in_the_range():
+    # A month's fit looks only at the loads the range's check moved (H-1, whose coincident
+    # load moves the others' draws too), and with nothing to look at says it was screened.
+    from disagg.fit.intervals import response_moved
+
+    s, aligned = with_coincident_load(0)
+    whole = estimate_draws(s.site, aligned, form=Form("occupied", False))
+    moved = response_moved(whole.variants)
+    assert "H-1" in moved and len(moved) < len(whole.variants["switch-on response"])
+    month = dataclasses.replace(aligned, use=aligned.use & (np.arange(len(aligned.use))
+                                                              < 96 * 28))
+    e = estimate_draws(s.site, month, form=whole.form, response_loads={"H-1"})
+    assert set(e.variants["switch-on response"]) == {"H-1"}
+    e = estimate_draws(s.site, month, form=whole.form, response_loads=moved)
+    assert set(e.variants["switch-on response"]) == moved
+    e = estimate_draws(s.site, month, form=whole.form, response_loads=frozenset())
+    assert e.variants["switch-on response"] == {
+        "screened": "no load's draw moved with its switch-on response in the whole range's fit"}

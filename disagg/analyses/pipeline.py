@@ -39,6 +39,7 @@ from disagg.fit.align import (
     frame_arrays,
 )
 from disagg.fit.estimate import Estimates, estimate_draws, inseparable
+from disagg.fit.intervals import response_moved
 from disagg.inputs.config import SiteConfig, load_site
 from disagg.inputs.logcheck import coverage_findings
 from disagg.inputs.notes import tidy
@@ -335,6 +336,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         report(progress, "fitting", 1, 1)
         return monthly_breakdown(whole, tz, site.tariff), {}
     combined = {t.id: t.members for t in whole.terms if len(t.members) > 1}
+    moved = response_moved(whole.variants)  # a month checks only these for a response
     tables, months = [], {}
     for done, (code, period) in enumerate(zip(codes, periods, strict=True)):
         report(progress, "fitting", done + 1, len(periods) + 1)
@@ -343,7 +345,7 @@ def monthly_fits(site: SiteConfig, aligned: Aligned, whole: Estimates,
         if len(np.unique(day[mask])) >= MIN_MONTH_DAYS:
             try:
                 est = estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence,
-                                     form=whole.form)
+                                     form=whole.form, response_loads=moved)
             except ValueError:
                 est = None
         if est is None:

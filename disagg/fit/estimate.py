@@ -17,6 +17,7 @@ estimate_draws is a short sequence of named stages, each with a typed result:
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -151,12 +152,15 @@ class Estimates:
 
 
 def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
-                   form: Form | FormChoice | None = None) -> Estimates:
+                   form: Form | FormChoice | None = None,
+                   response_loads: Collection[str] | None = None) -> Estimates:
     """Fit every draw on the intervals used and decide what can be told apart.
 
     form: the baseload form to use (with its noise ratio q), or a range's FormChoice (a
     month's fit: the same form, the same rivals); None = choose it from the data (or take
     the one pinned by [baseload] form), see disagg.fit.select.
+    response_loads: the loads the switch-on response check looks at (a month's fit: those
+    whose draw moved in the range's check, intervals.response_moved); None = every one.
 
     Raises:
         ValueError: too few usable intervals to fit.
@@ -185,7 +189,8 @@ def estimate_draws(site: SiteConfig, aligned: Aligned, confidence: float = 0.95,
     solved = solve(rows, X, k, kx, base_names, choice, builder, priors)
     del X
     share_hours(aligned, solved.Hf, plan.members)  # the chosen form's design, if rebuilt
-    iv = intervals(site, rows, solved, builder, priors, plan.fitted, confidence)
+    iv = intervals(site, rows, solved, builder, priors, plan.fitted, confidence,
+                   response_loads)
     warnings += iv.jk.warnings
     res = term_results(site, rows, plan, solved, iv, specs)
     warnings += res.warnings

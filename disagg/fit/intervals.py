@@ -9,6 +9,7 @@ variation (DerSimonian-Laird tau^2) for the monthly kWh.
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -135,10 +136,10 @@ class Hull:
         return cls(coef=coef, se_hac=jk.se_hac, q_hac=jk.q_hac, z_bound=quantile(confidence),
                    low=coef - jk.half, high=coef + jk.half, widened=jk.use_jack.copy())
 
-    def widen_with(self, c: int, b_v: float, se_v: float, what: str) -> None:
+    def widen_with(self, c: int, b_v: float, se_v: float, what: str) -> bool:
         """Take the variant's interval into the hull when it differs significantly
         (Hausman 1978: var(b_v - b) = se_v^2 - se^2 for nested fits; floored at
-        (se_v / 4)^2, common practice, no source)."""
+        (se_v / 4)^2, common practice, no source); return whether it did."""
         coef = self.coef
         var_d = max(se_v**2 - self.se_hac[c] ** 2, (0.25 * se_v) ** 2)
         tiny = NUMERICAL_TOL * max(abs(coef[c]), 1.0)
@@ -147,6 +148,8 @@ class Hull:
             self.high[c] = max(self.high[c], b_v + self.q_hac * se_v)
             self.widened[c] = True
             self.moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
+            return True
+        return False
 
 
 def profile_variants(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
@@ -420,16 +423,30 @@ def response_columns(H: np.ndarray, interval_h: np.ndarray, start_ns: np.ndarray
 
 def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term],
                        hull: Hull, variants: dict[str, dict],
-                       variable: set[str] = frozenset()) -> None:
+                       variable: set[str] = frozenset(),
+                       only: Collection[str] | None = None) -> None:
     """Refit the chosen form with, for each on-off load, the energy that follows its
     switch-ons whatever it does afterwards (response_columns): an unlogged load that starts
     with it and runs on for a while (people who draw hot water switch on lights) is then not
     read as its draw; the draw is told apart by how long its spells last. Where the draw
     moves significantly (Hull.widen_with: a Hausman-type test), the refit's interval joins
     the hull. Only on-off loads (a variable-speed load's rises are speed changes) and
-    designs of at most LONG_DESIGN_ROWS rows. Adds variants["switch-on response"]."""
+    designs of at most LONG_DESIGN_ROWS rows. Adds variants["switch-on response"] (each
+    load's refit draw, and whether it moved the interval).
+
+    only: the loads (term ids) to check; None = every on-off load. A month's fit checks only
+    the loads whose draw moved in its whole range's check (response_moved): the range holds
+    all the month's data and more, so a response the range does not show is taken as absent
+    (a screening choice, like the month reusing the range's baseload form)."""
     on_off = [t for t in fitted if t.column < s.k and "variable" not in t.flags
               and not variable.intersection(t.members)]
+    if only is not None:
+        on_off = [t for t in on_off if t.id in only]
+        if not on_off:
+            variants["switch-on response"] = {
+                "screened": "no load's draw moved with its switch-on response in the whole "
+                            "range's fit"}
+            return
     if not on_off:
         return
     if rows.n > LONG_DESIGN_ROWS:
@@ -453,9 +470,15 @@ def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term]
     entry = {}
     for t in on_off:
         c = t.column
-        entry[t.id] = {"kw": float(f.coef[c]), "se_kw": float(f.se[c])}
-        hull.widen_with(c, float(f.coef[c]), float(f.se[c]), "a switch-on response")
+        moved = hull.widen_with(c, float(f.coef[c]), float(f.se[c]), "a switch-on response")
+        entry[t.id] = {"kw": float(f.coef[c]), "se_kw": float(f.se[c]), "moved": moved}
     variants["switch-on response"] = entry
+
+
+def response_moved(variants: dict[str, dict]) -> frozenset[str]:
+    """The loads whose draw moved the interval in a fit's switch-on response check."""
+    entry = variants.get("switch-on response", {})
+    return frozenset(k for k, v in entry.items() if isinstance(v, dict) and v.get("moved"))
 
 
 @dataclass
@@ -489,7 +512,8 @@ class Intervals:
 
 
 def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
-              priors: Priors, fitted: list[Term], confidence: float) -> Intervals:
+              priors: Priors, fitted: list[Term], confidence: float,
+              response_loads: Collection[str] | None = None) -> Intervals:
     """Every check in turn: jackknife, static variants, by-day levels, credible forms,
     schedule edges, switching steps, switch-on response; then the between-week variance."""
     jk = jackknife(s, rows, confidence)
@@ -504,7 +528,7 @@ def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
     edge_moves = schedule_edge(site, rows, s, jk, hull)
     variable = {e.id for e in site.equipment if e.control == "variable"}
     step_moves = switch_steps(rows, s, priors, fitted, jk, hull, variants, variable)
-    switch_on_response(rows, s, priors, fitted, hull, variants, variable)
+    switch_on_response(rows, s, priors, fitted, hull, variants, variable, response_loads)
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (rows.local_date.astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = rows.y - fitted_of(s.X, s.coef, s.level_kwh)
