@@ -165,6 +165,30 @@ def _fsync_write(path: Path, text: str) -> None:
 LOCK_TIMEOUT_S = 60.0
 
 
+def flock_waiting(fd: int, timeout_s: float, busy: str) -> OSError | None:
+    """Take an exclusive flock on fd, waiting up to timeout_s seconds for another holder.
+
+    Returns:
+        None when held; the OSError when the file system has no locks.
+
+    Raises:
+        OutputError: busy, when another process held the lock for timeout_s seconds.
+    """
+    import fcntl
+
+    deadline = time.monotonic() + timeout_s
+    while True:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return None
+        except BlockingIOError:
+            if time.monotonic() > deadline:
+                raise OutputError(busy) from None
+            time.sleep(0.05)
+        except OSError as exc:
+            return exc
+
+
 @contextlib.contextmanager
 def folder_locked(folder: Path, what: str = "output folder") -> Iterator[None]:
     """Hold an exclusive lock on the folder itself (fcntl.flock on its descriptor: no lock
@@ -185,20 +209,9 @@ def folder_locked(folder: Path, what: str = "output folder") -> Iterator[None]:
         yield
         return
     try:
-        deadline = time.monotonic() + LOCK_TIMEOUT_S
-        while True:
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-                break
-            except BlockingIOError:
-                if time.monotonic() > deadline:
-                    raise OutputError(f"{folder}: another run has been writing into this {what} "
-                                      f"for {LOCK_TIMEOUT_S:g} s; try again when it has "
-                                      "finished") from None
-                time.sleep(0.05)
-            except OSError:  # a file system without locks
-                break
-        yield
+        flock_waiting(fd, LOCK_TIMEOUT_S, f"{folder}: another run has been writing into this "
+                      f"{what} for {LOCK_TIMEOUT_S:g} s; try again when it has finished")
+        yield  # a file system without locks (an error returned): runs are not serialised
     finally:
         os.close(fd)  # releases the lock
 

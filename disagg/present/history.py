@@ -52,7 +52,6 @@ import os
 import re
 import shutil
 import tempfile
-import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -66,8 +65,9 @@ from disagg.analyses.verdict import change_verdict
 from disagg.errors import DisaggError, InputError, OutputError
 from disagg.present import commit
 
+# Only whether flock exists here: commit.flock_waiting takes the lock.
 try:
-    import fcntl
+    import fcntl  # noqa: F401
 except ImportError:  # not on this system (Windows): runs do not take turns there
     fcntl = None
 
@@ -189,18 +189,11 @@ def _locked(folder: Path) -> Iterator[None]:
     except OSError as exc:
         raise OutputError(f"{path}: cannot open the history's lock file ({exc.strerror})") from None
     try:
-        deadline = time.monotonic() + LOCK_TIMEOUT_S
-        while True:
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-                break
-            except BlockingIOError:
-                if time.monotonic() > deadline:
-                    raise OutputError(f"{path}: another run has held the history's lock for "
-                                      f"{LOCK_TIMEOUT_S:g} s; try again when it has finished") from None
-                time.sleep(0.05)
-            except OSError as exc:  # a file system without locks
-                raise OutputError(f"{path}: cannot lock the history ({exc.strerror})") from None
+        no_locks = commit.flock_waiting(
+            fd, LOCK_TIMEOUT_S, f"{path}: another run has held the history's lock for "
+            f"{LOCK_TIMEOUT_S:g} s; try again when it has finished")
+        if no_locks is not None:  # a file system without locks
+            raise OutputError(f"{path}: cannot lock the history ({no_locks.strerror})")
         yield
     finally:
         os.close(fd)  # releases the lock
