@@ -12,13 +12,13 @@ import difflib
 import math
 import os
 import re
-import stat
 import tomllib
 import zoneinfo
 from dataclasses import dataclass
 from pathlib import Path
 
 from disagg.errors import ConfigError
+from disagg.inputs.paths import special_kind
 
 METER_UNITS = ("kWh", "Wh", "kW")
 # A cumulative register: each reading is the meter's running total [kWh x multiplier], and an
@@ -260,12 +260,9 @@ def check_regular_file(path: Path, what: str) -> None:
         return
     except OSError as exc:
         raise ConfigError(f"{path}: cannot read the {what} ({exc.strerror})") from None
-    if stat.S_ISREG(mode):
-        return
-    kind = ("a folder" if stat.S_ISDIR(mode) else "a FIFO (named pipe)" if stat.S_ISFIFO(mode)
-            else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
-            else "a socket" if stat.S_ISSOCK(mode) else "not a regular file")
-    raise ConfigError(f"{path}: is {kind}, not a file; give the {what} itself")
+    kind = special_kind(mode)
+    if kind is not None:
+        raise ConfigError(f"{path}: is {kind}, not a file; give the {what} itself")
 
 
 def resolve_path(path: str | Path, what: str) -> Path:

@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import os
 import re
-import stat
 from pathlib import Path
 
 import polars as pl
 
 from disagg.errors import InputError
+from disagg.inputs.paths import special_kind
 
 _OFFSET = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
 _NS_PER_MIN = 60_000_000_000
@@ -69,7 +69,7 @@ def _encoding_error(path: Path, what: str) -> InputError | None:
 def existing_file(path: Path, what: str) -> None:
     """Raise InputError unless path is an existing regular file: a missing one, or a FIFO
     (reading it would block forever), device (read until memory runs out), socket or folder,
-    named as such (config.check_regular_file does the same for the site file)."""
+    named as such (paths.special_kind, as config.check_regular_file for the site file)."""
     try:
         mode = os.stat(path).st_mode
     except FileNotFoundError:
@@ -77,10 +77,8 @@ def existing_file(path: Path, what: str) -> None:
     except (OSError, ValueError) as exc:  # a name too long, a symbolic link loop, ...
         why = getattr(exc, "strerror", None) or exc
         raise InputError(f"{path}: cannot use this {what} file path ({why})") from None
-    if not stat.S_ISREG(mode):
-        kind = ("a folder" if stat.S_ISDIR(mode) else "a FIFO (named pipe)"
-                if stat.S_ISFIFO(mode) else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode)
-                else "a socket" if stat.S_ISSOCK(mode) else "not a regular file")
+    kind = special_kind(mode)
+    if kind is not None:
         raise InputError(f"{path}: is {kind}, not a file; give the {what} file itself")
 
 
