@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import datetime as dt
 import os
+import re
 import sys
 from pathlib import Path
 from typing import Annotated, Optional
@@ -65,6 +66,84 @@ def _out_of_memory(exc: BaseException) -> bool:
     text = str(exc).lower()
     return isinstance(exc, (ImportError, OSError)) and (
         "failed to map segment" in text or "cannot allocate memory" in text)
+
+
+# Plain option values without pydantic. typer (0.2x) turns each command-line value into its
+# Python type with a pydantic TypeAdapter, so any command imported pydantic (about 0.08 s CPU
+# of a breakdown's start, measured here) just to read a path, a word or a number. The values
+# this CLI takes in the plain forms below are converted here, to the very value typer's
+# adapter gives (tests/test_cli.py compares the two); everything else (an empty path, a
+# number written another way, a typer without this layer) goes to typer's own conversion.
+_PLAIN_FLOAT = re.compile(r"-?[0-9]{1,15}(\.[0-9]{1,15})?")
+_PLAIN_INT = re.compile(r"-?[0-9]{1,15}")
+
+
+def _plain_value(annotation, info, value):
+    """The converted value, or _NOT_PLAIN when typer's own conversion must decide."""
+    if (annotation is str and type(value) is str) or (annotation is bool
+                                                       and type(value) is bool):
+        return value
+    if annotation is float:
+        if type(value) is float:
+            return value
+        if type(value) is str and _PLAIN_FLOAT.fullmatch(value):
+            return float(value)
+    if annotation is int:
+        if type(value) is int:
+            return value
+        if type(value) is str and _PLAIN_INT.fullmatch(value):
+            return int(value)
+    if annotation is Path and info.path_type in (None, Path) and (
+            type(value) is str and value) and not (
+            info.exists or info.readable or info.writable or info.resolve_path
+            or info.allow_dash or not info.file_okay or not info.dir_okay):
+        return Path(value)  # typer's path check has nothing to refuse with these settings
+    return _NOT_PLAIN
+
+
+_NOT_PLAIN = object()
+
+
+def _plain_values() -> None:
+    """Let typer's parameters convert the plain values above without pydantic (installed once,
+    when this module is imported; a typer without this layer is left as it is)."""
+    try:
+        from dataclasses import dataclass
+
+        from typer._coercion import RuntimeParam, build_runtime_param
+        from typer.core import _TyperParameter
+    except ImportError:
+        return
+    if not hasattr(_TyperParameter, "get_runtime_param"):
+        return
+
+    @dataclass(frozen=True)
+    class PlainParam(RuntimeParam):
+        descriptor: object = None
+
+        def _coerce_value(self, value, param, ctx):
+            plain = _plain_value(self.annotation, self.parameter_info, value)
+            if plain is not _NOT_PLAIN:
+                return plain
+            return build_runtime_param(self.descriptor)._coerce_value(value, param, ctx)
+
+    typer_runtime_param = _TyperParameter.get_runtime_param
+
+    def get_runtime_param(self):
+        d = self.type_descriptor
+        info = d.parameter_info
+        if (self._runtime_param is None and d.file_annotation is None and not self.multiple
+                and self.nargs == 1 and info.parser is None and info.min is None
+                and info.max is None and not info.clamp
+                and d.annotation in (str, float, int, bool, Path)):
+            self._runtime_param = PlainParam(parameter_info=info, annotation=d.annotation,
+                                             descriptor=d)
+        return typer_runtime_param(self)
+
+    _TyperParameter.get_runtime_param = get_runtime_param
+
+
+_plain_values()
 
 
 class _App(typer.Typer):

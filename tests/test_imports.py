@@ -1,5 +1,6 @@
 """A breakdown imports only what it uses: no drift, compare, report or history code, and
-none of the libraries the other commands need (plotting, workbooks, statsmodels), so that
+none of the libraries the other commands need (plotting, workbooks, statsmodels; pydantic,
+which typer would use to read the options: disagg.cli._plain_value), so that
 a site-year's run does not pay for them at start-up (bench/portfolio.py measures the time)."""
 
 from __future__ import annotations
@@ -9,8 +10,8 @@ import sys
 
 from test_cli import write_site
 
-NOT_IN_A_BREAKDOWN = ("statsmodels", "matplotlib", "xlsxwriter", "disagg.analyses.drift",
-                      "disagg.analyses.compare", "disagg.analyses.track",
+NOT_IN_A_BREAKDOWN = ("statsmodels", "matplotlib", "xlsxwriter", "pydantic",
+                      "disagg.analyses.drift", "disagg.analyses.compare", "disagg.analyses.track",
                       "disagg.present.report", "disagg.present.history")
 
 RUN = """

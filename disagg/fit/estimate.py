@@ -54,6 +54,7 @@ from disagg.fit.intervals import (  # noqa: F401  (re-exported for callers and t
     fitted_of,
     intervals,
     level_sum_variance,
+    level_sum_variances,
     schedule_edge_share,
 )
 from disagg.fit.select import (
@@ -371,11 +372,14 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
     base_var = base_range_var = None
     if s.level:
         covs = (cov,) + ((jk.cov_jack * (jk.q_jack / jk.q_hac) ** 2,) if jk.checked else ())
-        base_var = level_sum_variance(rows.sp, s.choice.form.q, s.fit.sigma2, X, base_slice,
-                                      rows.month, covs)
-        base_range_var = level_sum_variance(rows.sp, s.choice.form.q, s.fit.sigma2, X,
-                                            base_slice, np.zeros(rows.n, dtype=np.int64),
-                                            covs)[0]
+        # Each month's and the whole range's, with one factorisation (the same numbers as
+        # level_sum_variance by months and with one label).
+        months = np.unique(rows.month)
+        var = level_sum_variances(rows.sp, s.choice.form.q, s.fit.sigma2, X, base_slice,
+                                  [rows.month == m for m in months]
+                                  + [np.ones(rows.n, dtype=bool)], covs)
+        base_var = {int(m): v for m, v in zip(months, var)}
+        base_range_var = var[-1]
     k = s.k
     return Estimates(
         terms=plan.terms, base_names=s.base_names, base_id=plan.base_id, frame=rows.frame,

@@ -566,6 +566,17 @@ def level_sum_variance(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base
         Durbin, J. & Koopman, S. J. (2012). Time Series Analysis by State Space Methods, 2nd
         ed. Oxford University Press (state smoothing variance).
     """
+    uniq = np.unique(labels)
+    out = level_sum_variances(sp, q, sigma2, X, base, [labels == lab for lab in uniq], covs)
+    return {int(lab): v for lab, v in zip(uniq, out)}
+
+
+def level_sum_variances(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base: slice,
+                        masks: list[np.ndarray], covs: tuple[np.ndarray, ...]) -> list[float]:
+    """level_sum_variance of each set of rows (masks: (n,) booleans; a month's rows, all the
+    rows), with one factorisation of A for all of them: the banded solves of every set are
+    one LAPACK call with a right-hand side per set, which solves each column on its own (the
+    same numbers as one call per set, about half the time on a site-year's months)."""
     h = sp.h
     iv = 1.0 / sp.v
     band = None
@@ -575,18 +586,24 @@ def level_sum_variance(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base
         diag[:-1] += w
         diag[1:] += w
         band = np.vstack([np.concatenate([[0.0], -w]), diag])
-    out: dict[int, float] = {}
-    for lab in np.unique(labels):
-        m = labels == lab
-        a = np.where(m, h, 0.0)
+    out: list[float] = []
+    if not masks:
+        return out
+    A = np.empty((len(h), len(masks)), order="F")
+    for i, m in enumerate(masks):
+        np.copyto(A[:, i], np.where(m, h, 0.0))
+    if band is not None:
+        xs = solveh_banded(band, A, check_finite=False)
+    for i, m in enumerate(masks):
+        a = A[:, i]
         if band is None:  # a constant level: the weighted mean of the residual kW
             x = np.full(len(h), a.sum() / iv.sum())
         else:
-            x = solveh_banded(band, a, check_finite=False)
+            x = np.ascontiguousarray(xs[:, i])  # contiguous, as a single solve's (BLAS dot)
         g = -(X.T @ (iv * x / h))  # matrix-vector products on X: no copy of its rows
         g[base] += (X.T @ m.astype(float))[base]
         var_b = max(float(g @ C @ g) for C in covs)
-        out[int(lab)] = sigma2 * float(a @ x) + max(var_b, 0.0)
+        out.append(sigma2 * float(a @ x) + max(var_b, 0.0))
     return out
 
 
@@ -681,7 +698,10 @@ def switching_design(X: np.ndarray, interval_h: np.ndarray, keep: np.ndarray, k:
     its switch-off part, columns 2k..k+kx-1 the differenced weather columns. The same numbers
     as splitting each whole column: the running sum of the rises is continued from a
     checkpoint at each block's first row in the same order (a cumulative sum is sequential),
-    so every value is computed exactly as on the whole column.
+    so every value is computed exactly as on the whole column. The loads are taken a group
+    of columns at a time (_SWITCH_GROUP_VALUES numbers per temporary: every operation is
+    elementwise or a cumulative sum down each column, so the numbers are those of one
+    column at a time, with a few numpy calls instead of a few per load).
 
     Args:
         X: (n, >= kx) run-hours then weather columns; interval_h: (n,); keep: (n - 1,) the
@@ -696,35 +716,54 @@ def switching_design(X: np.ndarray, interval_h: np.ndarray, keep: np.ndarray, k:
     first = np.maximum(steps[bounds[:-1]] - 1, 0) if len(steps) else np.zeros(0, np.int64)
     ckpt = np.zeros((len(first), k))
     frac0 = X[0, :k] / interval_h[0]
-    for c in range(k):
-        run = np.cumsum(np.maximum(np.diff(X[:, c] / interval_h), 0.0))
-        ckpt[first > 0, c] = run[first[first > 0] - 1]
+    later = first > 0  # blocks after the first row (none when the steps are one block)
+    if later.any():
+        for cs in _column_groups(k, len(interval_h)):
+            run = np.cumsum(np.maximum(np.diff(X[:, cs] / interval_h[:, None], axis=0), 0.0),
+                            axis=0)
+            ckpt[later, cs] = run[first[later] - 1]
+            del run
 
     def block(b: int) -> np.ndarray:
         d = steps[bounds[b]:bounds[b + 1]]
         r0, r1 = int(d[0]), int(d[-1]) + 1  # rows r0..r1 make these steps
         a = int(first[b])  # the rises from row a on are summed from ckpt[b]
-        ih, ivh = interval_h[r0:r1 + 1], inv_h[r0:r1 + 1]
+        ih, ivh = interval_h[r0:r1 + 1, None], inv_h[r0:r1 + 1, None]
         pick = d - r0
         lo = max(r0, 1)
         out = np.empty((len(d), k + kx))
-        # One load at a time (temporaries of one column, as the whole-column split had).
-        for c in range(k):
-            rise = np.maximum(np.diff(X[a:r1 + 1, c] / interval_h[a:r1 + 1]), 0.0)
+        for cs in _column_groups(k, r1 + 1 - a):
+            frac_a = X[a:r1 + 1, cs] / interval_h[a:r1 + 1, None]  # on-fractions, rows a..r1
+            rise = np.maximum(np.diff(frac_a, axis=0), 0.0)
             # Continued from the checkpoint in the same order (a cumulative sum is sequential).
-            run = np.cumsum(np.concatenate([ckpt[b, c:c + 1], rise]))[1:] if a else np.cumsum(rise)
-            up = np.empty(r1 + 1 - r0)  # split_switching's up, rows r0..r1
+            run = (np.cumsum(np.concatenate([ckpt[b:b + 1, cs], rise]), axis=0)[1:] if a
+                   else np.cumsum(rise, axis=0))
+            del rise
+            up = np.empty((r1 + 1 - r0, cs.stop - cs.start))  # split_switching's up, r0..r1
             if r0 == 0:
-                up[0] = frac0[c]
-            up[lo - r0:] = run[lo - 1 - a:r1 - a] + frac0[c]
-            frac = X[r0:r1 + 1, c] / ih
-            out[:, c] = np.diff(up * ih * ivh)[pick]
-            out[:, k + c] = np.diff((frac - up) * ih * ivh)[pick]
-        for c in range(k, kx):
-            out[:, k + c] = np.diff(X[r0:r1 + 1, c] * ivh)[pick]
+                up[0] = frac0[cs]
+            up[lo - r0:] = run[lo - 1 - a:r1 - a] + frac0[cs]
+            del run
+            frac = frac_a[r0 - a:]
+            out[:, cs] = np.diff(up * ih * ivh, axis=0)[pick]
+            out[:, k + cs.start:k + cs.stop] = np.diff((frac - up) * ih * ivh, axis=0)[pick]
+        if kx > k:
+            out[:, 2 * k:] = np.diff(X[r0:r1 + 1, k:kx] * ivh, axis=0)[pick]
         return out
 
     return LazyRows(bounds, k + kx, block)
+
+
+def _column_groups(k: int, rows: int) -> list[slice]:
+    """Slices of the k load columns, each with at most _SWITCH_GROUP_VALUES numbers over
+    `rows` rows (at least one column)."""
+    size = max(1, _SWITCH_GROUP_VALUES // max(rows, 1))
+    return [slice(c, min(c + size, k)) for c in range(0, k, size)]
+
+
+# Numbers per temporary array of switching_design (8 MB): the 1-minute site-year's blocks
+# of 65,536 steps take 16 loads at a time, a 15-minute site-year's whole range 29.
+_SWITCH_GROUP_VALUES = 2**20
 
 
 # Steps per block of switching_design (and between its checkpoints).
