@@ -407,17 +407,20 @@ def response_columns(H: np.ndarray, interval_h: np.ndarray, start_ns: np.ndarray
     at = np.arange(n)
     run = at - np.maximum.accumulate(np.where(adjacent, 0, at))
     R = np.zeros((n, k * blocks))
-    for j in range(k):
-        frac = H[:, j] / interval_h
-        rise = np.r_[0.0, np.maximum(np.diff(frac), 0.0)] * adjacent
+    ih = interval_h[:, None]
+    # A group of loads at a time (elementwise operations: the numbers of one load at a time).
+    for cs in _column_groups(k, n):
+        rise = np.zeros((n, cs.stop - cs.start))
+        np.maximum(np.diff(H[:, cs] / ih, axis=0), 0.0, out=rise[1:])
+        rise *= adjacent[:, None]
         for b in range(blocks):
-            col = np.zeros(n)
+            col = np.zeros_like(rise)
             for lag in range(edges[b], edges[b + 1]):
                 if lag == 0:
                     col += rise
                 else:
-                    col[lag:] += rise[:n - lag] * (run[lag:] >= lag)
-            R[:, j * blocks + b] = col * interval_h
+                    col[lag:] += rise[:n - lag] * (run[lag:] >= lag)[:, None]
+            R[:, cs.start * blocks + b:cs.stop * blocks:blocks] = col * ih
     return R
 
 

@@ -582,6 +582,9 @@ def _factor_levels(T: np.ndarray, y: np.ndarray, level: np.ndarray, value: np.nd
     v = np.where(has, value, 0.0)
     norm = np.sqrt(np.bincount(lev, weights=v * v, minlength=s))
     w = np.divide(v, norm[lev], out=np.zeros(n), where=v != 0)  # normalised columns, by row
+    # Subtracting a projection of all zeros (the first pass's) changes no number when every
+    # w >= 0 (w x 0 = +0, and E - (+0) is E, -0 and NaN included): it is then skipped.
+    w_nonneg = bool(np.all(w >= 0))
 
     def residual(i: int, size: int, C: np.ndarray) -> np.ndarray:
         """Rows i..i+size of [T, y] minus their projection C on the indicator columns."""
@@ -589,7 +592,8 @@ def _factor_levels(T: np.ndarray, y: np.ndarray, level: np.ndarray, value: np.nd
         E = np.empty((rows, t + 1), order="F")  # columns contiguous, for bincount and QR
         E[:, :t] = T[i:i + rows]
         E[:, t] = y[i:i + rows]
-        E -= w[i:i + rows, None] * C.T[:, lev[i:i + rows]].T
+        if not (w_nonneg and not C.any()):
+            E -= w[i:i + rows, None] * C.T[:, lev[i:i + rows]].T
         return E
 
     C = np.zeros((s, t + 1))
