@@ -8,6 +8,7 @@ short line and exit status 2; ``--debug`` shows its full trace.
 from __future__ import annotations
 
 import datetime as dt
+import gc
 import os
 import re
 import sys
@@ -226,6 +227,10 @@ def _guard(fn):
     """
     import warnings
 
+    if _state.get("gc_paused"):  # the console entry paused it for the imports (main)
+        gc.freeze()
+        gc.enable()
+        _state["gc_paused"] = False
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
@@ -667,6 +672,12 @@ def main() -> None:  # pragma: no cover - console entry point ([project.scripts]
     its output is flushed here. A process with more than this thread (a batch's watcher,
     a cluster client) or with child processes exits as usual."""
     _reuse_freed_memory()
+    # No cyclic garbage collection while the command's libraries are imported (they make
+    # hundreds of thousands of objects that live as long as the process, and each collection
+    # scanned them again: about 0.02-0.04 s CPU of a breakdown, measured here); _guard then
+    # freezes them (gc.freeze: never scanned again) and collects as usual from there on.
+    gc.disable()
+    _state["gc_paused"] = True
     try:
         app()
         code: object = 0

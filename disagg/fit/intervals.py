@@ -590,24 +590,33 @@ def level_sum_variances(sp: Spacing, q: float, sigma2: float, X: np.ndarray, bas
         diag[1:] += w
         band = np.vstack([np.concatenate([[0.0], -w]), diag])
     out: list[float] = []
-    if not masks:
-        return out
-    A = np.empty((len(h), len(masks)), order="F")
-    for i, m in enumerate(masks):
-        np.copyto(A[:, i], np.where(m, h, 0.0))
-    if band is not None:
-        xs = solveh_banded(band, A, check_finite=False)
-    for i, m in enumerate(masks):
-        a = A[:, i]
-        if band is None:  # a constant level: the weighted mean of the residual kW
-            x = np.full(len(h), a.sum() / iv.sum())
-        else:
-            x = np.ascontiguousarray(xs[:, i])  # contiguous, as a single solve's (BLAS dot)
-        g = -(X.T @ (iv * x / h))  # matrix-vector products on X: no copy of its rows
-        g[base] += (X.T @ m.astype(float))[base]
-        var_b = max(float(g @ C @ g) for C in covs)
-        out.append(sigma2 * float(a @ x) + max(var_b, 0.0))
+    # The right-hand sides a group at a time (at most _LEVEL_RHS_VALUES numbers each: all the
+    # months of a 15-minute year at once, a few of a 1-minute year's).
+    size = max(1, _LEVEL_RHS_VALUES // max(len(h), 1))
+    for g0 in range(0, len(masks), size):
+        group = masks[g0:g0 + size]
+        A = np.empty((len(h), len(group)), order="F")
+        for i, m in enumerate(group):
+            np.copyto(A[:, i], np.where(m, h, 0.0))
+        if band is not None:
+            xs = solveh_banded(band, A, check_finite=False)
+        for i, m in enumerate(group):
+            a = A[:, i]
+            if band is None:  # a constant level: the weighted mean of the residual kW
+                x = np.full(len(h), a.sum() / iv.sum())
+            else:
+                x = np.ascontiguousarray(xs[:, i])  # contiguous, as one solve's (BLAS dot)
+            g = -(X.T @ (iv * x / h))  # matrix-vector products on X: no copy of its rows
+            g[base] += (X.T @ m.astype(float))[base]
+            var_b = max(float(g @ C @ g) for C in covs)
+            out.append(sigma2 * float(a @ x) + max(var_b, 0.0))
+        del A
+        xs = None
     return out
+
+
+# Numbers per block of right-hand sides of level_sum_variances (16 MB).
+_LEVEL_RHS_VALUES = 2**21
 
 
 def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndarray:
@@ -764,9 +773,9 @@ def _column_groups(k: int, rows: int) -> list[slice]:
     return [slice(c, min(c + size, k)) for c in range(0, k, size)]
 
 
-# Numbers per temporary array of switching_design (8 MB): the 1-minute site-year's blocks
-# of 65,536 steps take 16 loads at a time, a 15-minute site-year's whole range 29.
-_SWITCH_GROUP_VALUES = 2**20
+# Numbers per temporary array of switching_design (2 MB): the 1-minute site-year's blocks
+# of 65,536 steps take 4 loads at a time, a 15-minute site-year's whole range 7.
+_SWITCH_GROUP_VALUES = 2**18
 
 
 # Steps per block of switching_design (and between its checkpoints).
