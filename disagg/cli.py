@@ -27,7 +27,6 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 
-
 def _reuse_freed_memory() -> None:  # pragma: no cover - console entry point (main)
     """The command's process keeps the memory its arrays free for the next ones (glibc's
     malloc, through mallopt; other C libraries are left alone). By default glibc gives every
@@ -98,8 +97,8 @@ def _out_of_memory(exc: BaseException) -> bool:
 # Python type with a pydantic TypeAdapter, so any command imported pydantic (about 0.08 s CPU
 # of a breakdown's start, measured here) just to read a path, a word or a number. The values
 # this CLI takes in the plain forms below are converted here, to the very value typer's
-# adapter gives (tests/test_cli.py compares the two); everything else (an empty path, a
-# number written another way, a typer without this layer) goes to typer's own conversion.
+# adapter gives (tests/test_plain_values.py compares the two); everything else (an empty
+# path, a number written another way, a typer without this layer) goes to typer's own.
 _PLAIN_FLOAT = re.compile(r"-?[0-9]{1,15}(\.[0-9]{1,15})?")
 _PLAIN_INT = re.compile(r"-?[0-9]{1,15}")
 

@@ -879,10 +879,10 @@ def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSet
     edge_step = near[1:] | near[:-1]
     total = np.zeros(k)
     at_edge = np.zeros(k)
-    for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
-        switch = np.abs(np.diff(H[:, j] / interval_h)) >= 0.5
-        total[j] = switch.sum()
-        at_edge[j] = (switch & edge_step).sum()
+    for cs in _column_groups(k, len(interval_h)):  # bounded temporaries on 1-minute data
+        switch = np.abs(np.diff(H[:, cs] / interval_h[:, None], axis=0)) >= 0.5
+        total[cs] = switch.sum(axis=0)
+        at_edge[cs] = (switch & edge_step[:, None]).sum(axis=0)
     return np.where(total >= SCHEDULE_EDGE_MIN_SWITCHES, at_edge / np.maximum(total, 1), 0.0)
 
 
