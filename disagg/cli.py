@@ -27,29 +27,6 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 
-def _reuse_freed_memory() -> None:  # pragma: no cover - console entry point (main)
-    """The command's process keeps the memory its arrays free for the next ones (glibc's
-    malloc, through mallopt; other C libraries are left alone). By default glibc gives every
-    array above a (self-adjusting) size its own fresh pages from the kernel and returns them
-    when the array is freed, so each fit's temporaries of a few MB were paid again as page
-    faults: a 15-minute site-year's breakdown took about 72,000 minor page faults, 53,000
-    with these settings, and about 0.05-0.1 s less CPU (system time; measured here, see
-    DEVELOPERS.md). Arrays above M_MMAP_THRESHOLD (32 MiB, glibc's largest) still get their
-    own pages and go back at once, so the 1-minute site-year's big arrays are as before.
-    Only allocation changes: every number is the same."""
-    if not sys.platform.startswith("linux"):
-        return
-    try:
-        import ctypes
-
-        mallopt = ctypes.CDLL(None).mallopt
-    except (OSError, AttributeError):
-        return
-    m_trim_threshold, m_mmap_threshold = -1, -3  # glibc's malloc.h
-    mallopt(m_mmap_threshold, 32 * 2**20)
-    mallopt(m_trim_threshold, 256 * 2**20)
-
-
 # Address space the command's libraries take to load (numpy, polars, scipy and their
 # thread pools: VmPeak 572 MB measured here after importing a breakdown's modules) plus a
 # margin. Under a smaller `ulimit -v` the imports fail inside C extensions (a MemoryError,
@@ -670,7 +647,6 @@ def main() -> None:  # pragma: no cover - console entry point ([project.scripts]
     command writes is already closed (result files are committed before it returns) and
     its output is flushed here. A process with more than this thread (a batch's watcher,
     a cluster client) or with child processes exits as usual."""
-    _reuse_freed_memory()
     # No cyclic garbage collection while the command's libraries are imported (they make
     # hundreds of thousands of objects that live as long as the process, and each collection
     # scanned them again: about 0.02-0.04 s CPU of a breakdown, measured here); _guard then
