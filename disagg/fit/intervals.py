@@ -85,6 +85,14 @@ class Jackknife:
         return self.n_days >= 4
 
 
+def kw_text(kw: float) -> str:
+    """A draw in words: three significant figures, trailing zeros kept (10.0, not 10, beside
+    10.2)."""
+    a = abs(kw)
+    return f"{kw:.0f}" if a >= 100 else f"{kw:.1f}" if a >= 10 else f"{kw:.2f}" if a >= 1 \
+        else f"{kw:.3f}"
+
+
 def jackknife(s: Solved, rows: Rows, confidence: float) -> Jackknife:
     """Widen to the jackknife only where it is significantly larger than the HAC standard
     error: (se_J / se_HAC)^2 against the chi-square(K-1)/(K-1) upper quantile."""
@@ -147,7 +155,7 @@ class Hull:
             self.low[c] = min(self.low[c], b_v - self.q_hac * se_v)
             self.high[c] = max(self.high[c], b_v + self.q_hac * se_v)
             self.widened[c] = True
-            self.moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
+            self.moved.setdefault(c, []).append(f"{kw_text(b_v)} kW with {what}")
             return True
         return False
 
@@ -307,9 +315,10 @@ def form_spread(choice: FormChoice, k: int, jk: Jackknife, hull: Hull) -> dict[i
             d = abs(sc.draws_kw[c] - chosen.draws_kw[c])
             if d > FORM_SENSITIVE * max(abs(chosen.draws_kw[c]), 1e-9) and d > jk.half_hac[c]:
                 form_moves.setdefault(c, []).append(
-                    f"{sc.draws_kw[c]:.3g} kW with the {sc.form.name} baseload "
+                    f"{kw_text(sc.draws_kw[c])} kW with the {sc.form.name} baseload "
                     f"(weight {sc.weight:.2f})")
-                hull.moved.setdefault(c, []).append(f"{sc.draws_kw[c]:.3g} kW with {sc.form.name}")
+                hull.moved.setdefault(c, []).append(
+                    f"{kw_text(sc.draws_kw[c])} kW with {sc.form.name}")
     return form_moves
 
 
@@ -336,7 +345,8 @@ def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
                 hull.low[c] = min(hull.low[c], b_e - q_hac * s_e)
                 hull.high[c] = max(hull.high[c], b_e + q_hac * s_e)
                 hull.widened[c] = True
-                hull.moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
+                hull.moved.setdefault(c, []).append(
+                    f"{kw_text(b_e)} kW with {edge_rival.form.name}")
     return edge_moves
 
 
@@ -372,8 +382,8 @@ def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: 
                 hull.low[c] = min(hull.low[c], b_s - jk.q_hac * s_s)
                 hull.high[c] = max(hull.high[c], b_s + jk.q_hac * s_s)
             hull.widened[c] = True
-            why = (f"{steps.on_kw[c]:.3g} kW where it switches on and "
-                   f"{steps.off_kw[c]:.3g} kW where it switches off")
+            why = (f"{kw_text(steps.on_kw[c])} kW where it switches on and "
+                   f"{kw_text(steps.off_kw[c])} kW where it switches off")
             hull.moved.setdefault(c, []).append(why)
             if d > STEP_SENSITIVE * abs(hull.coef[c]):
                 step_moves[c] = why
