@@ -173,7 +173,7 @@ def test_two_credible_forms_that_disagree_widen_the_interval():
     assert hull.widened[0]
     # 2 kW apart is more than FORM_SENSITIVE (10 %) of 10 kW and more than the half-width.
     assert 2.0 > FORM_SENSITIVE * 10.0
-    assert moves == {0: ["12 kW with the hour-of-week+level baseload (weight 0.40)"]}
+    assert moves == {0: ["12.0 kW with the hour-of-week+level baseload (weight 0.40)"]}
     # The load the forms agree on keeps its interval.
     assert (hull.low[1], hull.high[1]) == (pytest.approx(4.7), pytest.approx(5.3))
     assert not hull.widened[1]
