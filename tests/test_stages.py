@@ -194,3 +194,12 @@ def test_an_inseparable_load_without_a_prior_is_said_to_lean_on_its_partners_pri
         "WH-1 cannot be told apart from VF-1 by the data: its estimate leans on its prior",
         "VF-1 cannot be told apart from WH-1 by the data: its estimate leans on the prior of "
         "WH-1"]
+
+
+def test_draws_in_warnings_keep_their_decimals():
+    from disagg.fit.intervals import kw_range_text, kw_text
+
+    assert [kw_text(x) for x in (123.4, 10.0, 10.25, 0.5, 0.05)] == ["123", "10.0", "10.2",
+                                                                      "0.50", "0.050"]
+    assert kw_range_text(9.8, 10.3) == "9.8-10.3"
+    assert kw_range_text(0.95, 1.05) == "0.95-1.05"

@@ -53,6 +53,7 @@ from disagg.fit.intervals import (  # noqa: F401  (re-exported for callers and t
     between_week_variance,
     fitted_of,
     intervals,
+    kw_range_text,
     kw_text,
     level_sum_variance,
     schedule_edge_share,
@@ -290,7 +291,7 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
                 why.append(f"leaving out single time blocks moves it by +-{jk.se_jack[c]:.2g} "
                            "kW (1 sd)")
             warnings.append(f"{t.id} is unstable: {'; '.join(why)}. Its interval{at} "
-                            f"{kw_text(low[c])}-{kw_text(high[c])} kW spans these; check "
+                            f"{kw_range_text(low[c], high[c])} kW spans these; check "
                             "the declared baseload schedule and whether its draw changes over "
                             "the period")
         if c in iv.form_moves:
@@ -306,14 +307,14 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
             warnings.append(f"{t.id}: the meter steps by {iv.step_moves[c]}: something not in "
                             "the run log tends to start or stop with it (or its logged times "
                             "are off at one edge); its interval "
-                            f"{kw_text(low[c])}-{kw_text(high[c])} kW spans both")
+                            f"{kw_range_text(low[c], high[c])} kW spans both")
         if c in iv.edge_moves:
             t.flags.append("schedule-edge")
             warnings.append(f"{t.id} switches near the declared schedule's edges "
                             f"({iv.edge_moves[c]} happens within {SCHEDULE_EDGE_MIN} minutes "
                             "of a start or end of the occupied hours): the data can mix it up "
                             "with the baseload changing at those times; its interval "
-                            f"{kw_text(low[c])}-{kw_text(high[c])} kW includes the estimate "
+                            f"{kw_range_text(low[c], high[c])} kW includes the estimate "
                             "with the "
                             "baseload's own shape around the edges")
         if coef[c] <= 1e-9:

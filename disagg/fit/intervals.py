@@ -85,12 +85,21 @@ class Jackknife:
         return self.n_days >= 4
 
 
-def kw_text(kw: float) -> str:
-    """A draw in words: three significant figures, trailing zeros kept (10.0, not 10, beside
-    10.2)."""
+def _kw_decimals(kw: float) -> int:
     a = abs(kw)
-    return f"{kw:.0f}" if a >= 100 else f"{kw:.1f}" if a >= 10 else f"{kw:.2f}" if a >= 1 \
-        else f"{kw:.3f}"
+    return 0 if a >= 100 else 1 if a >= 1 else 2 if a >= 0.1 else 3
+
+
+def kw_text(kw: float) -> str:
+    """A draw in words: 0 decimals from 100 kW, 1 from 1 kW, else 2 (3 below 0.1 kW);
+    trailing zeros kept (10.0 beside 10.2)."""
+    return f"{kw:.{_kw_decimals(kw)}f}"
+
+
+def kw_range_text(low: float, high: float) -> str:
+    """An interval in words, both ends with the finer of their decimals (9.8-10.3)."""
+    d = max(_kw_decimals(low), _kw_decimals(high))
+    return f"{low:.{d}f}-{high:.{d}f}"
 
 
 def jackknife(s: Solved, rows: Rows, confidence: float) -> Jackknife:
@@ -611,8 +620,11 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
 
     Per week, the draw's own estimate with the other terms held at the whole fit's values
     (b_w = b + sum h u / sum h^2 over the week), its variance from the week's local-day sums
-    of h u (robust to noise that persists within a day); then the random-effects moment
-    estimator over the weeks with at least one run-hour.
+    of h (u - h (b_w - b)) (the residual of the week's own estimate, robust to noise that
+    persists within a day: the whole fit's residual u still holds the week's own departure,
+    which made the within-week variances far too large and tau^2 far too small when the
+    weeks really differ); then the random-effects moment estimator over the weeks with at
+    least one run-hour.
 
     Args:
         H: (n, k) run-hours [h]; u: (n,) residual energy of the whole fit [kWh];
@@ -636,14 +648,16 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
     for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
         h = H[:, j]
         hu = h * u
-        hh = np.add.reduceat(h * h, wfirst)
+        h2 = h * h
+        hh = np.add.reduceat(h2, wfirst)
         run = np.add.reduceat(h, wfirst)
-        var_num = np.bincount(dw, weights=np.add.reduceat(hu, dfirst) ** 2,
-                              minlength=len(wfirst))
+        dep = np.divide(np.add.reduceat(hu, wfirst), hh, out=np.zeros(len(hh)), where=hh > 0)
+        day = np.add.reduceat(hu, dfirst) - dep[dw] * np.add.reduceat(h2, dfirst)
+        var_num = np.bincount(dw, weights=day**2, minlength=len(wfirst))
         ok = (run >= 1.0) & (hh > 0) & (var_num > 0)
         if ok.sum() < 3:
             continue
-        est = b[j] + np.add.reduceat(hu, wfirst)[ok] / hh[ok]
+        est = b[j] + dep[ok]
         var = var_num[ok] / hh[ok] ** 2
         w = 1.0 / var
         mean = np.sum(w * est) / np.sum(w)
