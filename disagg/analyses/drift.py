@@ -241,6 +241,66 @@ def _fit_window(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
                          f"{exc}") from None
 
 
+def _chosen_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
+                window: tuple[dt.date, dt.date], confidence: float) -> Estimates | str:
+    """The reference period fitted as breakdown fits it: the baseload form the data choose
+    (or the one [baseload] form pins), with the wandering level when chosen; or why not."""
+    mask = (aligned.use & (local_day >= np.datetime64(window[0]))
+            & (local_day <= np.datetime64(window[1])))
+    try:
+        return estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+    except ValueError as exc:
+        return str(exc)
+
+
+def reference_form_check(ref: Estimates, chosen: Estimates | str, i: int,
+                         members: list[str]) -> dict:
+    """How a tracked load's reference draw (the declared static profile's fit, the form the
+    tracker's design carries) compares with its draw under the form the data choose for the
+    same period (breakdown's form, disagg.fit.estimate.choose_form).
+
+    The difference is material when either draw lies outside the other's interval; it
+    counts only when the data choose another form. Returns the drift.json entry: both forms
+    and draws [kW] with their intervals, "uncertain" and, when uncertain, "reason" in
+    plain words.
+    """
+    out = {"form_used": _form_name(ref), "kw_reference": float(ref.kw[i]),
+           "kw_reference_low": float(ref.kw_low[i]),
+           "kw_reference_high": float(ref.kw_high[i]), "form_chosen": None,
+           "kw_chosen_form": None, "kw_chosen_form_low": None, "kw_chosen_form_high": None,
+           "uncertain": False}
+    if isinstance(chosen, str):
+        out["detail"] = f"the data-chosen form could not be fitted: {chosen}"
+        return out
+    out["form_chosen"] = chosen.form.form.name
+    if chosen.form.form.name == out["form_used"]:
+        return out
+    j, t = _find_term(chosen, members)
+    if j is None:
+        out["uncertain"] = True
+        out["reason"] = (f"its absolute reference level is uncertain: under the baseload form "
+                         f"the data choose for its reference period ({out['form_chosen']}), "
+                         f"{t.removeprefix('in its reference period ')}; changes are still "
+                         "tracked against its reference draw")
+        return out
+    a, lo_a, hi_a = float(chosen.kw[j]), float(chosen.kw_low[j]), float(chosen.kw_high[j])
+    out.update(kw_chosen_form=a, kw_chosen_form_low=lo_a, kw_chosen_form_high=hi_a)
+    r, lo_r, hi_r = out["kw_reference"], out["kw_reference_low"], out["kw_reference_high"]
+    if not (lo_r <= a <= hi_r and lo_a <= r <= hi_a):
+        out["uncertain"] = True
+        out["reason"] = (f"its absolute reference level is uncertain: the reference fit "
+                         f"(baseload {out['form_used']}) gives {r:.2f} kW ({lo_r:.2f} to "
+                         f"{hi_r:.2f}), the form the data choose for the same period "
+                         f"({out['form_chosen']}) {a:.2f} kW ({lo_a:.2f} to {hi_a:.2f}); "
+                         "changes are still tracked against the reference draw")
+    return out
+
+
+def _form_name(est: Estimates) -> str:
+    """The name of the baseload form a fit used (e.g. occupied, hour-of-week+level)."""
+    return est.form.form.name if est.form is not None else "?"
+
+
 def _find_term(est: Estimates, members: list[str]):
     """(index, term) of the fitted row with exactly these members, or (None, why not)."""
     for i, t in enumerate(est.terms):
@@ -347,6 +407,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                             no_reference[cid] = f"its reference period {w[0]}..{w[1]}: {exc}"
                             del windows[cid]
         main_est = fits[main]
+        # Each reference period fitted again as breakdown fits it (the form the data
+        # choose): the tracker's design cannot carry that form, but its draws show whether
+        # the reference draws lean on the declared profile.
+        chosen = {w: _chosen_fit(gsite, aligned, local_day, w, confidence) for w in fits}
         ids, members, flags, found = [], [], [], []
         for m in candidates:
             cid = group_id(m)
@@ -362,6 +426,14 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             flags.append(list(t.flags))
             found.append((est, i, t))
         k = len(ids)
+        form_check = {cid: reference_form_check(est, chosen[windows[cid]], i, m)
+                      for cid, m, (est, i, _) in zip(ids, members, found)}
+        reference_forms = [
+            {"from": w[0].isoformat(), "to": w[1].isoformat(), "form_used": _form_name(fits[w]),
+             "form_chosen": (None if isinstance(chosen[w], str) else _form_name(chosen[w])),
+             "comparison": (chosen[w] if isinstance(chosen[w], str)
+                            else chosen[w].form.as_json())}
+            for w in sorted(fits) if any(windows.get(c) == w for c in ids)]
         if k == 0:
             why = "; ".join(f"{c}: {r}" for c, r in no_reference.items())
             raise InputError(f"{site.meter.file}: no load has a reference period to track it "
@@ -483,6 +555,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         ls_factor = np.array(state["ls_factor"], dtype=float)
         stats_tail = [_unpack_day(item, k_all=len(state["weights"]))
                       for item in state["day_stats_tail"]]
+        # States saved before the reference forms were recorded have none.
+        reference_forms = state.get("reference_forms", [])
+        form_check = state.get("reference_form_check", {})
         k = len(ids)
         later = (aligned.frame["start_utc"] >= last_end).to_numpy()
         aligned = dataclasses.replace(aligned, use=aligned.use & later)
@@ -593,6 +668,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             if np.isfinite(tau_days[j]) and tau_days[j] > 1.25 * memory_days:
                 notes.append(f"{eq} runs too seldom to follow changes within {memory_days:g} "
                              f"days beside the other loads: its memory is {tau_days[j]:.0f} days")
+    for eq in ids:
+        if form_check.get(eq, {}).get("uncertain"):
+            notes.append(f"{eq}: {form_check[eq]['reason']}")
     for row in status:
         if row["status"] != "tracked":
             notes.append(f"{row['equipment']}: {row['detail']}"
@@ -635,6 +713,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         alarms=alarms,
         notes=notes,
         caution=CAUTION,
+        reference_forms=reference_forms,
+        reference_form_check=form_check,
     )
     new_state = {
         "version": STATE_VERSION, "site": site.name, "timezone": tz,
@@ -654,6 +734,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "min_reference_run_h": min_run_h,
         "day_stats_tail": [_pack_day(*item) for item in (stats_tail + day_stats)[-n_tail:]],
         "last_row": last_row,
+        "reference_forms": reference_forms,
+        "reference_form_check": form_check,
     }
     return DriftResult(table, summary, new_state)
 

@@ -276,6 +276,27 @@ class DriftSummary:
     alarms: list[DriftAlarm]
     notes: list[str]
     caution: str
+    # Per reference period: the baseload form its fit used (the declared profile, what the
+    # tracker's design carries), the form the data choose for it and their comparison.
+    reference_forms: list[dict] = field(default_factory=list)
+    # Per tracked row: its reference draw under both forms [kW] and whether its absolute
+    # reference level is uncertain ("uncertain", "reason"; drift.reference_form_check).
+    reference_form_check: dict[str, dict] = field(default_factory=dict)
+
+    def reference_forms_text(self) -> list[str]:
+        """In words, per reference period, the baseload form its fit used and the one the
+        data choose (for the terminal and the report)."""
+        out = []
+        for f in self.reference_forms:
+            head = (f"reference {f['from']} to {f['to']} fitted with the baseload form "
+                    f"{f['form_used']} (the declared profile, which the tracker carries)")
+            if f["form_chosen"] is None:
+                out.append(f"{head}; the form the data choose could not be fitted")
+            elif f["form_chosen"] == f["form_used"]:
+                out.append(f"{head}, the form the data choose too")
+            else:
+                out.append(f"{head}; the data choose {f['form_chosen']} (as breakdown does)")
+        return out
 
     def as_json(self) -> dict:
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}

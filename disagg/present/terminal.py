@@ -199,6 +199,7 @@ def drift_summary(result: DriftResult) -> str:
                      f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
                      f"{'-' if mem is None else f'{mem:.0f}':>9}  "
                      + (f"since {alarmed[eq].first_alarm_date}" if eq in alarmed else ""))
+    lines += [f"Baseload: {text}" for text in s.reference_forms_text()]
     for a in s.alarms:
         lines.append(f"Alarm: {a.equipment} from {a.first_alarm_date}: draw "
                      f"{100 * a.change:+.1f} % ({100 * a.change_low:+.1f} to "
