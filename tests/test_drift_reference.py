@@ -87,3 +87,16 @@ def test_nothing_is_flagged_when_the_site_pins_the_declared_form():
     assert form["form_used"] == form["form_chosen"] == "occupied"
     assert not any(c["uncertain"] for c in result.summary.reference_form_check.values())
     assert not any("absolute reference level" in n for n in result.summary.notes)
+
+
+def test_the_rule_states_the_false_alarm_rate_it_is_built_for(swing_office):
+    # FALSE_ALARM_PER_LOAD_YEAR = 0.002 once printed as "about 0%" (a whole-percent format).
+    from disagg.analyses.drift import FALSE_ALARM_PER_LOAD_YEAR, chart_limit
+
+    _, result = swing_office
+    assert FALSE_ALARM_PER_LOAD_YEAR == 0.002
+    assert "for about 0.2 % false alarms per load and year" in result.summary.rule
+    assert "0%" not in result.summary.rule
+    # The comment's figure: L at a 30-day memory, Phi^-1(1 - 0.002 / (2 x 365.25 / 30)),
+    # by scipy's normal quantile (3.768...).
+    assert chart_limit(30.0) == pytest.approx(3.7684, abs=1e-4)
