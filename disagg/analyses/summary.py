@@ -347,11 +347,14 @@ class ComparePeriod:
     baseload_row: str
     fit_quality: dict
     warnings: list[str]
+    baseload_form: str = ""  # the form the period's fit used (both periods use one)
+    form_preferred: str = ""  # the form the period's data prefer on their own
 
     def as_json(self) -> dict:
         return {"from": self.date_from, "to": self.date_to,
                 "intervals_used": self.intervals_used, "days": self.days,
                 "critical_value": self.critical_value, "baseload_row": self.baseload_row,
+                "baseload_form": self.baseload_form, "form_preferred": self.form_preferred,
                 "fit_quality": self.fit_quality, "warnings": self.warnings}
 
 
@@ -376,11 +379,16 @@ class CompareReport:
     equipment: list[dict]
     data_notes: list[str]
     caution: str
+    # The one baseload form both periods use, where it was chosen, each period's own
+    # preference and a note when the after period alone would differ
+    # (compare.baseload_form_of).
+    baseload_form: dict = field(default_factory=dict)
 
     def as_json(self) -> dict:
         return {"tool": self.tool, "site": self.site, "timezone": self.timezone,
                 "site_file": self.site_file, "confidence": self.confidence,
                 "min_change": self.min_change, "method": self.method, "groups": self.groups,
+                "baseload_form": self.baseload_form,
                 "periods": {"before": self.before.as_json(), "after": self.after.as_json()},
                 "equipment": self.equipment, "data_notes": self.data_notes,
                 "caution": self.caution}

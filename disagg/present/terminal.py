@@ -239,6 +239,11 @@ def compare_summary(result: CompareResult) -> str:
                  f"least {100 * r.min_change:g} %; steady: two one-sided tests put the change "
                  f"inside +-{100 * r.min_change:g} %; unclear: the data cannot tell (why "
                  "below).")
+    f = r.baseload_form
+    if f:
+        lines.append(f"Baseload form: {f['used']} in both periods, {f['chosen']}")
+        if f["note"]:
+            lines.append(f"Note: {f['note']}")
     for d in r.equipment:
         if d.get("reference_temp_c") is not None:
             lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "
