@@ -54,7 +54,8 @@ from disagg.fit.estimate import (
     estimate_draws,
     weather_specs,
 )
-from disagg.fit.select import Form
+from disagg.fit.design import BaseloadBuilder, rows_of
+from disagg.fit.select import Form, kept_columns
 from disagg.fit.solvers import quantile
 from disagg.inputs.config import SiteConfig
 
@@ -255,29 +256,30 @@ def _chosen_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
 
 def reference_form_check(ref: Estimates, chosen: Estimates | str, i: int,
                          members: list[str]) -> dict:
-    """How a tracked load's reference draw (the declared static profile's fit, the form the
-    tracker's design carries) compares with its draw under the form the data choose for the
-    same period (breakdown's form, disagg.fit.estimate.choose_form).
+    """How a tracked load's draw in the declared profile's fit of its reference period (the
+    static form the tracker's design carries) compares with its draw under the form the
+    data choose for the same period (breakdown's form, disagg.fit.estimate.choose_form).
 
-    The difference is material when either draw lies outside the other's interval; it
-    counts only when the data choose another form. Returns the drift.json entry: both forms
-    and draws [kW] with their intervals, "uncertain" and, when uncertain, "reason" in
-    plain words.
+    They differ materially ("differs") when the data choose another form and either draw
+    lies outside the other's interval, or the chosen form has no row of its own for the
+    load. With the reference from the declared profile ("reference_from"; drift_aligned
+    may switch it to the chosen form) such a load's absolute reference level is
+    "uncertain", said in "reason" in plain words. Draws in kW with their intervals.
     """
-    out = {"form_used": _form_name(ref), "kw_reference": float(ref.kw[i]),
-           "kw_reference_low": float(ref.kw_low[i]),
-           "kw_reference_high": float(ref.kw_high[i]), "form_chosen": None,
+    out = {"form_declared": _form_name(ref), "kw_declared_form": float(ref.kw[i]),
+           "kw_declared_form_low": float(ref.kw_low[i]),
+           "kw_declared_form_high": float(ref.kw_high[i]), "form_chosen": None,
            "kw_chosen_form": None, "kw_chosen_form_low": None, "kw_chosen_form_high": None,
-           "uncertain": False}
+           "differs": False, "reference_from": "form_declared", "uncertain": False}
     if isinstance(chosen, str):
-        out["detail"] = f"the data-chosen form could not be fitted: {chosen}"
+        out["detail"] = f"the form the data choose could not be fitted: {chosen}"
         return out
     out["form_chosen"] = chosen.form.form.name
-    if chosen.form.form.name == out["form_used"]:
+    if chosen.form.form.name == out["form_declared"]:
         return out
     j, t = _find_term(chosen, members)
     if j is None:
-        out["uncertain"] = True
+        out["differs"] = out["uncertain"] = True
         out["reason"] = (f"its absolute reference level is uncertain: under the baseload form "
                          f"the data choose for its reference period ({out['form_chosen']}), "
                          f"{t.removeprefix('in its reference period ')}; changes are still "
@@ -285,14 +287,59 @@ def reference_form_check(ref: Estimates, chosen: Estimates | str, i: int,
         return out
     a, lo_a, hi_a = float(chosen.kw[j]), float(chosen.kw_low[j]), float(chosen.kw_high[j])
     out.update(kw_chosen_form=a, kw_chosen_form_low=lo_a, kw_chosen_form_high=hi_a)
-    r, lo_r, hi_r = out["kw_reference"], out["kw_reference_low"], out["kw_reference_high"]
+    r, lo_r, hi_r = (out["kw_declared_form"], out["kw_declared_form_low"],
+                     out["kw_declared_form_high"])
     if not (lo_r <= a <= hi_r and lo_a <= r <= hi_a):
-        out["uncertain"] = True
+        out["differs"] = out["uncertain"] = True
         out["reason"] = (f"its absolute reference level is uncertain: the reference fit "
-                         f"(baseload {out['form_used']}) gives {r:.2f} kW ({lo_r:.2f} to "
+                         f"(baseload {out['form_declared']}) gives {r:.2f} kW ({lo_r:.2f} to "
                          f"{hi_r:.2f}), the form the data choose for the same period "
                          f"({out['form_chosen']}) {a:.2f} kW ({lo_a:.2f} to {hi_a:.2f}); "
                          "changes are still tracked against the reference draw")
+    return out
+
+
+def _same_split(static: Estimates, chosen: Estimates | str) -> bool:
+    """Whether the chosen form's fit has the same fitted rows (and baseload row) as the
+    declared profile's fit of the same period."""
+    if isinstance(chosen, str):
+        return False
+
+    def split(est):
+        return sorted(sorted(t.members) for t in est.terms
+                      if t.column is not None and "not-run" not in t.flags), est.base_id
+    return split(static) == split(chosen)
+
+
+# Rows per block of the offset's baseload columns (bounds their temporary memory).
+_OFFSET_CHUNK_ROWS = 32768
+
+
+def _offset_kwh(site: SiteConfig, aligned: Aligned, offset: dict | None) -> np.ndarray | None:
+    """The reference fit's baseload profile energy in each used interval [kWh]: the chosen
+    form's profile columns times their reference coefficients (without the wandering level,
+    whose steps stay in the tracked data as they did in the reference period), a block of
+    rows at a time; None without an offset."""
+    if offset is None:
+        return None
+    form = Form.parse(offset["form"])
+    coef = np.asarray(offset["coef_kw"], dtype=float)
+    rows = rows_of(aligned, site.timezone)
+    builder = BaseloadBuilder(site, rows)
+    out = np.zeros(rows.n)
+    if not len(coef):
+        return out
+    for a in range(0, rows.n, _OFFSET_CHUNK_ROWS):
+        sel = np.zeros(rows.n, dtype=bool)
+        sel[a:a + _OFFSET_CHUNK_ROWS] = True
+        B, _ = builder.columns(form.profile, sel)
+        if form.level:
+            B = B[:, kept_columns(form.profile, B.shape[1])]
+        if B.shape[1] != len(coef):
+            raise InputError(f"{site.path}: the reference's baseload offset has {len(coef)} "
+                             f"columns but the form {form.name} gives {B.shape[1]} here; "
+                             "start without --state")
+        out[a:a + _OFFSET_CHUNK_ROWS] = B @ coef
     return out
 
 
@@ -428,8 +475,36 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         k = len(ids)
         form_check = {cid: reference_form_check(est, chosen[windows[cid]], i, m)
                       for cid, m, (est, i, _) in zip(ids, members, found)}
+        used_windows = sorted({windows[c] for c in ids} | {main})
+        # The reference draws come from the form the data choose when every reference
+        # period's chosen fit splits the loads as its declared-profile fit does: its
+        # baseload shape beyond the declared profile is then taken out of the metered
+        # energy as a fixed offset, so that the tracker's equilibrium is those draws.
+        offset = None
+        if (not isinstance(chosen[main], str)
+                and _form_name(chosen[main]) != _form_name(fits[main])
+                and all(_same_split(fits[w], chosen[w]) for w in used_windows)):
+            static_found = found
+            found = [(chosen[windows[cid]], *_find_term(chosen[windows[cid]], m))
+                     for cid, m in zip(ids, members)]
+            flags = [list(t.flags) for _, _, t in found]
+            c_main = chosen[main]
+            m_c = c_main.base.shape[1]
+            offset = {"form": c_main.form.form.name, "q": c_main.form.form.q,
+                      "coef_kw": (np.asarray(c_main.design_coef)[-m_c:].tolist()
+                                  if m_c else [])}
+            for cid in ids:
+                form_check[cid].update(reference_from="form_chosen", uncertain=False)
+                form_check[cid].pop("reason", None)
+        elif any(not isinstance(chosen[w], str) and _form_name(chosen[w]) != _form_name(fits[w])
+                 for w in used_windows):
+            notes.append("the reference draws are from the declared baseload profile: the "
+                         "form the data choose for a reference period splits the loads "
+                         "differently (another combined row, or a load in the baseload row)")
         reference_forms = [
-            {"from": w[0].isoformat(), "to": w[1].isoformat(), "form_used": _form_name(fits[w]),
+            {"from": w[0].isoformat(), "to": w[1].isoformat(),
+             "form_used": (_form_name(chosen[w]) if offset is not None else _form_name(fits[w])),
+             "form_declared": _form_name(fits[w]),
              "form_chosen": (None if isinstance(chosen[w], str) else _form_name(chosen[w])),
              "comparison": (chosen[w] if isinstance(chosen[w], str)
                             else chosen[w].form.as_json())}
@@ -447,6 +522,14 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             [est.design_coef[t.column] for est, _, t in found],
             [found[c][0].weather[found[c][1]]["slope_kw_per_degc"] for c in specs],
             np.asarray(main_est.design_coef)[-m_base:] if m_base else []]).astype(float)
+        offset_kwh = _offset_kwh(site, aligned, offset)
+        w0_static = None
+        if offset is not None:
+            w0_static = np.concatenate([
+                [est.design_coef[t.column] for est, _, t in static_found],
+                [static_found[c][0].weather[static_found[c][1]]["slope_kw_per_degc"]
+                 for c in specs],
+                np.asarray(main_est.design_coef)[-m_base:] if m_base else []]).astype(float)
         # Weather terms are tracked as (draw at balance, slope) and stated at the reference
         # temperature: column c, slope column, degrees beyond balance at that temperature.
         at_ref = [[c, k + s_i,
@@ -460,11 +543,24 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         if X_level.shape[1] != len(w0):
             raise InputError(f"{site.path}: the reference fit has {len(w0)} columns but the "
                              f"tracked design {X_level.shape[1]}")
+        if offset_kwh is not None:
+            y_level -= offset_kwh
         last_row = _last_row(frame, X_level, y_level)
         X, y = differences(frame, X_level, y_level, None, in_place=True)
         del X_level, y_level  # now the differences
         row_day = (frame["start_utc"].dt.convert_time_zone(tz).dt.date().to_numpy()
                    .astype("datetime64[D]"))
+        if offset_kwh is not None and m_base:
+            # The declared profile's weights at the equilibrium of the main reference period
+            # (what the offset leaves of the baseload), the loads' draws held at the reference.
+            rows = np.flatnonzero((row_day >= np.datetime64(main[0]))
+                                  & (row_day <= np.datetime64(main[1])))
+            kb = X.shape[1] - m_base
+            rest = y[rows] - X[rows, :kb] @ w0[:kb]
+            w0[kb:] = np.linalg.lstsq(X[rows, kb:], rest, rcond=None)[0]
+        d_offset = (None if offset_kwh is None else
+                    differences(frame, np.zeros((len(offset_kwh), 0)), offset_kwh, None)[1])
+        del offset_kwh
         memory = np.full(X.shape[1], memory_days * per_day)
         memory[k + len(specs):] = base_memory * per_day
         row_sets = []
@@ -499,7 +595,12 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         # period, with the differenced residual's autocovariance at the reference draws up
         # to BAND_LAGS (differencing makes neighbouring residuals correlated); the coupling
         # with loads that switch together is included.
-        resid = y - X @ w0
+        # With the reference form's offset, the band still counts the baseload's shape
+        # beyond the declared profile as noise (the residuals of the declared profile's
+        # reference fit): the offset is the reference period's shape, and the shape of
+        # later periods may differ from it where the declared columns cannot follow.
+        resid = y - X @ w0 if d_offset is None else (y + d_offset) - X @ w0_static
+        del d_offset
         sd = np.zeros(k)
         ls_factor = np.ones(k)
         for rows, cols in row_sets:
@@ -564,11 +665,16 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         if not aligned.use.any():
             raise InputError(f"{site.meter.file}: no usable interval after the saved state's "
                              f"last one ({state['last_end_utc']})")
+        offset = state.get("baseload_offset")
+        offset_kwh = _offset_kwh(site, aligned, offset)
         frame, X_level, y_level = _design(site, aligned, members)
         if X_level.shape[1] != len(w0):
             raise InputError(f"{site.path}: the saved state has {len(w0)} tracked columns but "
                              f"this site's baseload profile gives {X_level.shape[1]}; start "
                              "without --state")
+        if offset_kwh is not None:
+            y_level -= offset_kwh
+        del offset_kwh
         last_row = _last_row(frame, X_level, y_level)
         X, y = differences(frame, X_level, y_level, state["last_row"], in_place=True)
         del X_level, y_level  # now the differences
@@ -736,6 +842,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "last_row": last_row,
         "reference_forms": reference_forms,
         "reference_form_check": form_check,
+        "baseload_offset": offset,
     }
     return DriftResult(table, summary, new_state)
 

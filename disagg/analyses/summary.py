@@ -276,26 +276,36 @@ class DriftSummary:
     alarms: list[DriftAlarm]
     notes: list[str]
     caution: str
-    # Per reference period: the baseload form its fit used (the declared profile, what the
-    # tracker's design carries), the form the data choose for it and their comparison.
+    # Per reference period: the baseload form its draws come from ("form_used"), the
+    # declared profile (what the tracker's design carries), the form the data choose and
+    # their comparison.
     reference_forms: list[dict] = field(default_factory=list)
-    # Per tracked row: its reference draw under both forms [kW] and whether its absolute
-    # reference level is uncertain ("uncertain", "reason"; drift.reference_form_check).
+    # Per tracked row: its reference-period draw under both forms [kW], which one is its
+    # reference, and whether its absolute reference level is uncertain ("uncertain",
+    # "reason"; drift.reference_form_check).
     reference_form_check: dict[str, dict] = field(default_factory=dict)
 
     def reference_forms_text(self) -> list[str]:
-        """In words, per reference period, the baseload form its fit used and the one the
-        data choose (for the terminal and the report)."""
+        """In words, per reference period, the baseload form its draws come from, the
+        declared one and the one the data choose (for the terminal and the report)."""
         out = []
         for f in self.reference_forms:
-            head = (f"reference {f['from']} to {f['to']} fitted with the baseload form "
-                    f"{f['form_used']} (the declared profile, which the tracker carries)")
-            if f["form_chosen"] is None:
-                out.append(f"{head}; the form the data choose could not be fitted")
-            elif f["form_chosen"] == f["form_used"]:
-                out.append(f"{head}, the form the data choose too")
+            used, chosen = f["form_used"], f["form_chosen"]
+            declared = f.get("form_declared", used)
+            head = f"reference {f['from']} to {f['to']}"
+            if used != declared:
+                out.append(f"{head}: draws from the form the data choose, {used} (as "
+                           f"breakdown); the tracker carries the declared profile {declared} "
+                           "and the rest of that form's shape as a fixed offset")
+            elif chosen is None:
+                out.append(f"{head}: draws from the declared profile {declared} (which the "
+                           "tracker carries); the form the data choose could not be fitted")
+            elif chosen == declared:
+                out.append(f"{head}: draws from the declared profile {declared}, the form the "
+                           "data choose too")
             else:
-                out.append(f"{head}; the data choose {f['form_chosen']} (as breakdown does)")
+                out.append(f"{head}: draws from the declared profile {declared} (which the "
+                           f"tracker carries); the data choose {chosen}")
         return out
 
     def as_json(self) -> dict:
