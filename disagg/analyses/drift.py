@@ -536,6 +536,11 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                    float(degrees(np.array([found[c][0].weather[found[c][1]]["reference_temp_c"]]),
                                  *specs[c])[0])]
                   for s_i, c in enumerate(specs)]
+        main_intervals = int(main_est.frame.height)
+        # The reference fits (and their design arrays) are done with: a long series' tracked
+        # design comes next.
+        del fits, chosen, found, main_est
+        static_found = None
         frame, X_level, y_level = _design(site, aligned, members, consume_hours)
         if consume_hours and aligned.hours.base is not None and np.shares_memory(
                 X_level[:1], aligned.hours[:1]):
@@ -626,10 +631,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                 ls_factor[j] = inflate * (math.sqrt(max(narrow, 0.0) / white)
                                           if white > 0 else 1.0)
         reference_info = {"from": main[0].isoformat(), "to": main[1].isoformat(),
-                          "intervals": int(main_est.frame.height)}
+                          "intervals": main_intervals}
         windows_info = {c: [windows[c][0].isoformat(), windows[c][1].isoformat()] for c in ids}
-        status = _status(site, aligned, ids, members, groups, no_reference, main_est,
-                         run_total, index)
+        status = _status(site, aligned, ids, members, groups, no_reference, run_total, index)
         last_end = None
         first_alarm: dict[str, str] = {}
         tail: list[list[float]] = []
@@ -932,7 +936,7 @@ def _change_interval(level: float, sd_level: float, ref: float, ref_se: float,
     return change - half, change + half
 
 
-def _status(site, aligned, ids, members, groups, no_reference, main_est, run_total,
+def _status(site, aligned, ids, members, groups, no_reference, run_total,
             index) -> list[dict]:
     """One row per configured equipment: tracked, covered by a group, or why not tracked."""
     rows = []
