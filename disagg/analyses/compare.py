@@ -390,13 +390,14 @@ def compare_aligned(site: SiteConfig, aligned: Aligned, before: tuple[dt.date, d
     gsite = grouped_site(site, groups)
     # One baseload form for both periods, as one baseline model serves both periods in
     # measurement and verification: chosen on the before period (or pinned by the site
-    # file) and kept, with its credible rivals and their noise ratios, for the after period
-    # (as a month's fit keeps its range's). The after period is also fitted as its data
-    # would choose on their own, to say when they prefer another form.
+    # file) and kept for the after period. The after period is first fitted as its data
+    # choose on their own; when they choose the same form, that fit serves (its own noise
+    # ratio); else it is fitted again with the before period's form, its credible rivals and
+    # their noise ratios (as a month's fit keeps its range's).
     est_before = _period_fit(gsite, aligned, local_day, before, "--before", confidence)
     after_own = _period_fit(gsite, aligned, local_day, after, "--after", confidence)
     est_after = after_own
-    if not est_before.form.pinned:
+    if not est_before.form.pinned and after_own.form.form.name != est_before.form.form.name:
         est_after = _period_fit(gsite, aligned, local_day, after, "--after", confidence,
                                 form=est_before.form)
     table, details = compare_estimates(est_before, est_after, confidence, min_change)
