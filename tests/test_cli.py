@@ -425,6 +425,11 @@ def test_demo_writes_the_demo_site_and_its_breakdown(tmp_path):
                                                                            "report.html"])
     assert "<svg" in (out / "report.html").read_text(encoding="utf-8")
     assert CAUTION_LINE in result.stdout.splitlines()
+    form = json.loads((out / "fit.json").read_text())["baseload"]["form"]
+    assert (f"Baseload form: {form['used']} (chosen by the data; fit.json baseload.form "
+            "compares the others).") in result.stdout.splitlines()
+    # The unexplained row is a residual of about 1e-10 kWh: no "-0.000000" in the file.
+    assert ",-0.000000" not in (out / "breakdown.csv").read_text()
 
 
 # ---------------------------------------------------------------------------------------

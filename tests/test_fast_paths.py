@@ -41,6 +41,17 @@ T_975_DF9, T_975_DF29, T_995_DF9, Z_975, CHI2_95_DF9 = 2.262, 2.045, 3.250, 1.96
 TABLE_TOL = 0.0005  # half a unit in the tables' last printed digit
 
 
+def test_printed_table_values_agree_with_scipy():
+    # The table values above are from memory: scipy.stats' quantile functions check them.
+    from scipy.stats import chi2, norm, t
+
+    assert t.ppf(0.975, 9) == pytest.approx(T_975_DF9, abs=TABLE_TOL)
+    assert t.ppf(0.975, 29) == pytest.approx(T_975_DF29, abs=TABLE_TOL)
+    assert t.ppf(0.995, 9) == pytest.approx(T_995_DF9, abs=TABLE_TOL)
+    assert norm.ppf(0.975) == pytest.approx(Z_975, abs=TABLE_TOL)
+    assert chi2.ppf(0.95, 9) == pytest.approx(CHI2_95_DF9, abs=TABLE_TOL)
+
+
 def test_critical_values_match_printed_tables():
     assert quantile(0.95, 9) == pytest.approx(T_975_DF9, abs=TABLE_TOL)
     assert quantile(0.95, 29) == pytest.approx(T_975_DF29, abs=TABLE_TOL)

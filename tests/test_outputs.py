@@ -85,3 +85,14 @@ def test_a_folder_in_the_way_of_an_output_is_named_and_nothing_changes(tmp_path)
                               "breakdown.xlsx cannot be written there; move the folder or "
                               "choose another --out")
     assert (tmp_path / "breakdown.csv").read_text() == "previous\n"
+
+
+def test_a_residual_that_would_print_as_minus_zero_is_written_as_zero():
+    from disagg.present.outputs import for_csv
+
+    frame = pl.DataFrame({"equipment": ["=x", "unexplained"], "kwh": [-1e-10, -2.5e-6]})
+    out = for_csv(frame)
+    assert out["kwh"].to_list() == [0.0, -2.5e-6]  # only what prints as -0.000000 changes
+    assert out["equipment"].to_list() == ["'=x", "unexplained"]
+    assert out.write_csv(float_precision=6).splitlines()[1:] == ["'=x,0.000000",
+                                                                 "unexplained,-0.000003"]

@@ -16,12 +16,23 @@ from disagg.fit.solvers import quantile
 from synthetic import TZ, make_building
 
 SEEDS = range(30)
-# Measured on 2026-12-01 over these 30 seeds (5 loads each, 150 intervals per case):
-# well-specified 0.927 (HAC alone 0.920); misspecified 0.993 (HAC alone 0.787). A 95 %
-# interval over 150 independent trials covers 95 % +- 1.8 % (1 sd); the bounds sit about
-# 2.5 sd under the nominal level. bench/coverage.py runs more seeds and prints the detail.
+# Measured on 2026-12-04 over these 30 seeds (5 loads each, 150 intervals per case; the
+# misspecified building now takes the data-chosen hour-of-week+level form, so its plain
+# interval covers too): well-specified 0.933 (HAC alone 0.920); misspecified 0.940 (HAC
+# alone 0.940; F-1 0.933). bench/RESULTS_baseload.md has the same 30 seeds' 0.927 / 0.947.
+# Binomial spread of a true 95 % interval over 150 trials (scipy.stats.binom(150, 0.95)):
+# sd 1.8 %; P(fewer than 135 covered, i.e. under 0.90) = 0.0036; P(148 or more, i.e. above
+# 0.98) = 0.018; its central 95 % range is 137-147 (0.913-0.980). The bounds are that range
+# rounded out: under 0.90 the intervals are too narrow, above 0.98 too wide (the issue's
+# 90-98 % target). The 150 trials are not independent (five loads share a building), so
+# the true spread is somewhat larger. bench/coverage.py runs more seeds and prints detail.
 MIN_COVERAGE_WELL = 0.90
 MIN_COVERAGE_MISSPECIFIED = 0.90
+MAX_COVERAGE = 0.98
+# One load over the 30 seeds: scipy.stats.binom(30, p).cdf(25) (fewer than 0.85 covered) is
+# 0.016 at a true p = 0.95 and 0.18 at p = 0.90: a coarse guard that catches a collapse (the
+# plain HAC interval once covered the scheduled fan in 0 of 30), not a small shortfall.
+MIN_COVERAGE_ONE_LOAD = 0.85
 
 
 def _coverage(misspecified: bool) -> tuple[float, float, dict[str, float]]:
@@ -52,15 +63,16 @@ def test_exact_recovery_without_noise_or_prior():
 def test_coverage_well_specified():
     overall, hac_only, by_id = _coverage(misspecified=False)
     assert overall >= MIN_COVERAGE_WELL, (overall, hac_only, by_id)
-    assert overall <= 0.995, "intervals far wider than needed when the model is right"
+    assert overall <= MAX_COVERAGE, "intervals far wider than needed when the model is right"
 
 
 def test_coverage_misspecified_baseload_and_weather():
     overall, hac_only, by_id = _coverage(misspecified=True)
     assert overall >= MIN_COVERAGE_MISSPECIFIED, (overall, hac_only, by_id)
-    # The scheduled fan absorbs the occupied baseload the engineer did not declare: the
-    # plain robust interval misses it, the widened one must not.
-    assert by_id["F-1"] >= 0.85, by_id
+    assert overall <= MAX_COVERAGE, (overall, hac_only, by_id)
+    # The scheduled fan absorbs the occupied baseload the engineer did not declare when the
+    # baseload form misses it: its interval must still hold the truth.
+    assert by_id["F-1"] >= MIN_COVERAGE_ONE_LOAD, by_id
 
 
 def test_naive_interval_misses_the_scheduled_fan_when_misspecified():

@@ -543,6 +543,16 @@ def test_from_celsius_is_the_inverse_of_the_configs_to_celsius():
     assert from_celsius(0.0, "F") == pytest.approx(FREEZING_F, abs=1e-12)
     assert from_celsius(100.0, "F") == pytest.approx(BOILING_F, abs=1e-12)
     assert from_celsius(-40.0, "F") == pytest.approx(-40.0, abs=1e-12)
+
+
+def test_fahrenheit_values_agree_with_scipy():
+    # The values above are from memory: scipy.constants.convert_temperature checks them.
+    from scipy.constants import convert_temperature
+
+    assert convert_temperature(0.0, "Celsius", "Fahrenheit") == pytest.approx(FREEZING_F,
+                                                                              abs=1e-12)
+    assert convert_temperature(100.0, "Celsius", "Fahrenheit") == pytest.approx(BOILING_F,
+                                                                                abs=1e-12)
     for t in (-12.5, 0.0, 16.7, 62.0, 104.0):
         for unit in ("F", "C"):
             assert from_celsius(to_celsius(t, unit), unit) == pytest.approx(t, abs=1e-12)

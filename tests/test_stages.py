@@ -175,3 +175,31 @@ def test_breakdown_baseload_row_uses_the_level_variance():
     # Without the level the variance is the profile's alone, as before.
     static = estimate_draws(s.site, s.aligned, form=Form("occupied", False))
     assert static.base_var_kwh2 is None
+
+
+def test_an_inseparable_load_without_a_prior_is_said_to_lean_on_its_partners_prior():
+    """Two loads that always run together, one with a nameplate prior (WH-1) and one without
+    (VF-1): each is flagged inseparable from the other, and the warning names whose prior
+    does the splitting (VF-1 has none of its own)."""
+    from disagg.fit.terms import plan_terms
+    from synthetic import make_office
+
+    s = make_office(1, "step", days=14)
+    on = (np.random.default_rng(0).random(14 * 96) < 0.4) * 0.25
+    plan = plan_terms(s.site, ["WH-1", "VF-1"], np.column_stack([on, on]),
+                      np.full((14 * 96, 1), 0.25))
+    assert [(t.id, t.flags[0]) for t in plan.terms] == [("WH-1", "inseparable:VF-1"),
+                                                         ("VF-1", "inseparable:WH-1")]
+    assert plan.warnings == [
+        "WH-1 cannot be told apart from VF-1 by the data: its estimate leans on its prior",
+        "VF-1 cannot be told apart from WH-1 by the data: its estimate leans on the prior of "
+        "WH-1"]
+
+
+def test_draws_in_warnings_keep_their_decimals():
+    from disagg.fit.intervals import kw_range_text, kw_text
+
+    assert [kw_text(x) for x in (123.4, 10.0, 10.25, 0.5, 0.05)] == ["123", "10.0", "10.2",
+                                                                      "0.50", "0.050"]
+    assert kw_range_text(9.8, 10.3) == "9.8-10.3"
+    assert kw_range_text(0.95, 1.05) == "0.95-1.05"

@@ -231,3 +231,39 @@ def test_fit_json_gives_the_baseload_energy_with_the_levels_error():
     month_sd = sum(float(np.sqrt(v)) for v in e.base_var_kwh2.values())
     assert b.se_kwh <= month_sd * (1 + 1e-9)
     assert b.as_json()["se_kwh"] == b.se_kwh
+
+
+def test_a_pinned_form_the_data_reject_is_reported_as_such():
+    """The engineer pins a static constant baseload on a building whose baseload wanders:
+    the report must say which forms the data fit better (differences taken from the form
+    used, not from the best), the warning must not claim the data cannot tell, and fit.json
+    and the terminal must say it was pinned."""
+    from disagg.present.report.sections import form_sentence
+
+    s = make_building(2, misspecified=True)
+    site = dataclasses.replace(s.site, baseload=dataclasses.replace(s.site.baseload,
+                                                                    form="constant"))
+    e = estimate_draws(site, s.aligned)
+    f = e.form.as_json()
+    assert f["used"] == "constant" and f["pinned"] and not f["from_range"]
+    used = next(x for x in f["forms"] if x["form"] == "constant")
+    better = [x["form"] for x in f["forms"] if x["delta"] < used["delta"]]
+    assert better, "the wandering building must fit better with another form"
+    text = form_sentence(f)
+    assert "as the engineer pinned it in the site file" in text
+    assert "The data fit the meter better with" in text
+    assert all(name in text for name in better)
+    assert "the data cannot tell which baseload shape is right" not in " ".join(e.warnings)
+
+
+def test_fit_json_says_a_months_form_comes_from_its_range_and_when_q_is_at_its_bound():
+    from disagg.fit.wander import Q_MAX
+
+    s = make_building(2, misspecified=True)
+    e = estimate_draws(s.site, s.aligned)
+    f = e.form.as_json()
+    assert not f["from_range"] and f["q_max"] == Q_MAX
+    for x in f["forms"]:
+        assert x["q_at_max"] == (x["form"].endswith("+level") and x["q"] >= Q_MAX * (1 - 1e-9))
+    month = estimate_draws(s.site, s.aligned, form=e.form)
+    assert month.form.as_json()["from_range"]

@@ -127,7 +127,20 @@ class BaseloadSummary:
                 "columns": [{"name": c.name, "kw": c.kw, "se_kw": c.se_kw}
                             for c in self.columns],
                 "form": self.form, "level_kwh": self.level_kwh,
-                "energy_kwh": self.energy_kwh, "se_kwh": self.se_kwh}
+                "energy_kwh": self.energy_kwh, "se_kwh": self.se_kwh,
+                "notes": BASELOAD_NOTES}
+
+
+# What fit.json's baseload numbers are (plain words for its readers).
+BASELOAD_NOTES = [
+    "energy_kwh and se_kwh are the whole-range fit's; the breakdown's monthly baseload rows "
+    "come from each month's own fit, so their sum can differ slightly.",
+    "With the wandering level (a form ending in '+level'), each column's kw is relative: "
+    "'occupied' is the occupied hours' kW above the unoccupied level, an hour-of-week column "
+    "is kW above Monday 00:00-01:00; the level itself is in level_kwh.",
+    "A form's q is the level's step variance over the noise's per interval; q_at_max: the "
+    "noise-ratio search stopped at its upper bound q_max, which keeps the level slow.",
+]
 
 
 @dataclass

@@ -53,6 +53,8 @@ from disagg.fit.intervals import (  # noqa: F401  (re-exported for callers and t
     between_week_variance,
     fitted_of,
     intervals,
+    kw_range_text,
+    kw_text,
     level_sum_variance,
     schedule_edge_share,
 )
@@ -283,33 +285,37 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
                 and (high[c] - low[c]) / 2.0 >= UNSTABLE_MIN_HALF_SHARE * abs(coef[c])):
             t.flags.append("unstable")
             at = " at its balance temperature" if c in wspecs else ""
-            why = [f"{coef[c]:.3g} kW{at} with the {s.choice.form.name} baseload"]
+            why = [f"{kw_text(coef[c])} kW{at} with the {s.choice.form.name} baseload"]
             why += iv.moved.get(c, [])
             if jk.use_jack[c]:
                 why.append(f"leaving out single time blocks moves it by +-{jk.se_jack[c]:.2g} "
                            "kW (1 sd)")
             warnings.append(f"{t.id} is unstable: {'; '.join(why)}. Its interval{at} "
-                            f"{low[c]:.3g}-{high[c]:.3g} kW spans these; check the declared "
-                            "baseload schedule and whether its draw changes over the period")
+                            f"{kw_range_text(low[c], high[c])} kW spans these; check "
+                            "the declared baseload schedule and whether its draw changes over "
+                            "the period")
         if c in iv.form_moves:
             t.flags.append("form-sensitive")
-            warnings.append(f"{t.id} depends on the baseload form: {coef[c]:.3g} kW with the "
-                            f"{s.choice.form.name} baseload, {'; '.join(iv.form_moves[c])}; "
-                            "the data cannot tell which baseload shape is right, and the "
-                            "interval includes both")
+            why = ("the baseload form was pinned in the site file" if s.choice.pinned
+                   else "the data cannot tell which baseload shape is right")
+            warnings.append(f"{t.id} depends on the baseload form: {kw_text(coef[c])} kW with "
+                            f"the {s.choice.form.name} baseload, "
+                            f"{'; '.join(iv.form_moves[c])}; {why}, and the interval "
+                            "includes both")
         if c in iv.step_moves:
             t.flags.append("switch-steps")
             warnings.append(f"{t.id}: the meter steps by {iv.step_moves[c]}: something not in "
                             "the run log tends to start or stop with it (or its logged times "
                             "are off at one edge); its interval "
-                            f"{low[c]:.3g}-{high[c]:.3g} kW spans both")
+                            f"{kw_range_text(low[c], high[c])} kW spans both")
         if c in iv.edge_moves:
             t.flags.append("schedule-edge")
             warnings.append(f"{t.id} switches near the declared schedule's edges "
                             f"({iv.edge_moves[c]} happens within {SCHEDULE_EDGE_MIN} minutes "
                             "of a start or end of the occupied hours): the data can mix it up "
                             "with the baseload changing at those times; its interval "
-                            f"{low[c]:.3g}-{high[c]:.3g} kW includes the estimate with the "
+                            f"{kw_range_text(low[c], high[c])} kW includes the estimate "
+                            "with the "
                             "baseload's own shape around the edges")
         if coef[c] <= 1e-9:
             t.flags.append("at-zero")
@@ -395,8 +401,9 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
                 prior: tuple[np.ndarray, np.ndarray], base_for,
                 given: Form | FormChoice | None,
                 when: tuple[np.ndarray, np.ndarray, np.ndarray]) -> FormChoice:
-    """The baseload form: compare the declared profile and the simpler ones it nests, each
-    with and without the wandering level (disagg.fit.select), and take the lowest criterion, or
+    """The baseload form: compare the declared profile, the simpler ones it nests and the
+    richer ones the data can carry, each with the wandering level and the narrow ones also
+    without it (disagg.fit.select.compare_forms), and take the lowest criterion, or
     the form pinned by [baseload] form. given: a Form to use; or a FormChoice (a month's
     fit: the range's chosen form and its credible rivals, at the range's noise ratios).
     when: (start_ns, end_ns, local_date) of the rows.
@@ -472,7 +479,8 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
         low = min(sc.criterion for sc in scores)
         tied = [sc for sc in scores if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
         best = min(tied, key=lambda sc: (sc.form.profile != declared, sc.n_params)).form
-    return FormChoice(form=best, pinned=pinned, scores=scores, overdispersion=c)
+    return FormChoice(form=best, pinned=pinned, scores=scores, overdispersion=c,
+                      from_range=isinstance(given, FormChoice))
 
 
 

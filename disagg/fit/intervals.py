@@ -85,6 +85,23 @@ class Jackknife:
         return self.n_days >= 4
 
 
+def _kw_decimals(kw: float) -> int:
+    a = abs(kw)
+    return 0 if a >= 100 else 1 if a >= 1 else 2 if a >= 0.1 else 3
+
+
+def kw_text(kw: float) -> str:
+    """A draw in words: 0 decimals from 100 kW, 1 from 1 kW, else 2 (3 below 0.1 kW);
+    trailing zeros kept (10.0 beside 10.2)."""
+    return f"{kw:.{_kw_decimals(kw)}f}"
+
+
+def kw_range_text(low: float, high: float) -> str:
+    """An interval in words, both ends with the finer of their decimals (9.8-10.3)."""
+    d = max(_kw_decimals(low), _kw_decimals(high))
+    return f"{low:.{d}f}-{high:.{d}f}"
+
+
 def jackknife(s: Solved, rows: Rows, confidence: float) -> Jackknife:
     """Widen to the jackknife only where it is significantly larger than the HAC standard
     error: (se_J / se_HAC)^2 against the chi-square(K-1)/(K-1) upper quantile."""
@@ -147,7 +164,7 @@ class Hull:
             self.low[c] = min(self.low[c], b_v - self.q_hac * se_v)
             self.high[c] = max(self.high[c], b_v + self.q_hac * se_v)
             self.widened[c] = True
-            self.moved.setdefault(c, []).append(f"{b_v:.3g} kW with {what}")
+            self.moved.setdefault(c, []).append(f"{kw_text(b_v)} kW with {what}")
             return True
         return False
 
@@ -307,9 +324,10 @@ def form_spread(choice: FormChoice, k: int, jk: Jackknife, hull: Hull) -> dict[i
             d = abs(sc.draws_kw[c] - chosen.draws_kw[c])
             if d > FORM_SENSITIVE * max(abs(chosen.draws_kw[c]), 1e-9) and d > jk.half_hac[c]:
                 form_moves.setdefault(c, []).append(
-                    f"{sc.draws_kw[c]:.3g} kW with the {sc.form.name} baseload "
+                    f"{kw_text(sc.draws_kw[c])} kW with the {sc.form.name} baseload "
                     f"(weight {sc.weight:.2f})")
-                hull.moved.setdefault(c, []).append(f"{sc.draws_kw[c]:.3g} kW with {sc.form.name}")
+                hull.moved.setdefault(c, []).append(
+                    f"{kw_text(sc.draws_kw[c])} kW with {sc.form.name}")
     return form_moves
 
 
@@ -336,7 +354,8 @@ def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
                 hull.low[c] = min(hull.low[c], b_e - q_hac * s_e)
                 hull.high[c] = max(hull.high[c], b_e + q_hac * s_e)
                 hull.widened[c] = True
-                hull.moved.setdefault(c, []).append(f"{b_e:.3g} kW with {edge_rival.form.name}")
+                hull.moved.setdefault(c, []).append(
+                    f"{kw_text(b_e)} kW with {edge_rival.form.name}")
     return edge_moves
 
 
@@ -372,8 +391,8 @@ def switch_steps(rows: Rows, s: Solved, priors: Priors, fitted: list[Term], jk: 
                 hull.low[c] = min(hull.low[c], b_s - jk.q_hac * s_s)
                 hull.high[c] = max(hull.high[c], b_s + jk.q_hac * s_s)
             hull.widened[c] = True
-            why = (f"{steps.on_kw[c]:.3g} kW where it switches on and "
-                   f"{steps.off_kw[c]:.3g} kW where it switches off")
+            why = (f"{kw_text(steps.on_kw[c])} kW where it switches on and "
+                   f"{kw_text(steps.off_kw[c])} kW where it switches off")
             hull.moved.setdefault(c, []).append(why)
             if d > STEP_SENSITIVE * abs(hull.coef[c]):
                 step_moves[c] = why
@@ -601,8 +620,11 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
 
     Per week, the draw's own estimate with the other terms held at the whole fit's values
     (b_w = b + sum h u / sum h^2 over the week), its variance from the week's local-day sums
-    of h u (robust to noise that persists within a day); then the random-effects moment
-    estimator over the weeks with at least one run-hour.
+    of h (u - h (b_w - b)) (the residual of the week's own estimate, robust to noise that
+    persists within a day: the whole fit's residual u still holds the week's own departure,
+    which made the within-week variances far too large and tau^2 far too small when the
+    weeks really differ); then the random-effects moment estimator over the weeks with at
+    least one run-hour.
 
     Args:
         H: (n, k) run-hours [h]; u: (n,) residual energy of the whole fit [kWh];
@@ -626,14 +648,16 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
     for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
         h = H[:, j]
         hu = h * u
-        hh = np.add.reduceat(h * h, wfirst)
+        h2 = h * h
+        hh = np.add.reduceat(h2, wfirst)
         run = np.add.reduceat(h, wfirst)
-        var_num = np.bincount(dw, weights=np.add.reduceat(hu, dfirst) ** 2,
-                              minlength=len(wfirst))
+        dep = np.divide(np.add.reduceat(hu, wfirst), hh, out=np.zeros(len(hh)), where=hh > 0)
+        day = np.add.reduceat(hu, dfirst) - dep[dw] * np.add.reduceat(h2, dfirst)
+        var_num = np.bincount(dw, weights=day**2, minlength=len(wfirst))
         ok = (run >= 1.0) & (hh > 0) & (var_num > 0)
         if ok.sum() < 3:
             continue
-        est = b[j] + np.add.reduceat(hu, wfirst)[ok] / hh[ok]
+        est = b[j] + dep[ok]
         var = var_num[ok] / hh[ok] ** 2
         w = 1.0 / var
         mean = np.sum(w * est) / np.sum(w)

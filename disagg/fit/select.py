@@ -40,6 +40,7 @@ import numpy as np
 
 from disagg.fit.solvers import newey_west_lag, solve_regularized
 from disagg.fit.wander import (
+    Q_MAX,
     Spacing,
     band_factor,
     neg2_loglik_n,
@@ -94,6 +95,8 @@ class FormChoice:
     scores: list[FormScore]
     overdispersion: float
     criterion: str = "QAIC on first differences (lower is better)"
+    # A month's fit takes its range's form (and scores only the range's credible rivals).
+    from_range: bool = False
 
     def credible(self) -> list[FormScore]:
         return [s for s in self.scores if s.weight >= CREDIBLE_WEIGHT]
@@ -101,9 +104,12 @@ class FormChoice:
     def as_json(self) -> dict:
         return {
             "used": self.form.name, "q": self.form.q, "pinned": self.pinned,
+            "from_range": self.from_range,
             "criterion": self.criterion, "overdispersion": self.overdispersion,
-            "credible_weight": CREDIBLE_WEIGHT,
-            "forms": [{"form": s.form.name, "q": s.form.q, "neg2_loglik": s.neg2ll,
+            "credible_weight": CREDIBLE_WEIGHT, "q_max": Q_MAX,
+            "forms": [{"form": s.form.name, "q": s.form.q,
+                       "q_at_max": bool(s.form.level and s.form.q >= Q_MAX * (1 - 1e-9)),
+                       "neg2_loglik": s.neg2ll,
                        "parameters": s.n_params, "criterion": s.criterion,
                        "delta": s.delta, "weight": s.weight} for s in self.scores],
         }

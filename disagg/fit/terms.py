@@ -193,9 +193,16 @@ def plan_terms(site: SiteConfig, ids: list[str], H: np.ndarray, B: np.ndarray) -
         if eq.id in base_flagged:
             flags.append("inseparable:baseload")
         if flags:
+            leaning = [ids[i] for i in members if i != j and has_prior[ids[i]]]
+            if has_prior[eq.id]:
+                why = "its estimate leans on its prior"
+            elif leaning:
+                why = f"its estimate leans on the prior of {', '.join(leaning)}"
+            else:
+                why = "its estimate leans on the baseload's declared shape"
             warnings.append(f"{eq.id} cannot be told apart from "
                             f"{', '.join(f.split(':', 1)[1] for f in flags)} by the data: "
-                            "its estimate leans on its prior")
+                            + why)
         if eq.control == "variable":
             flags.append("variable")
         terms.append(Term(eq.id, [eq.id], eq.name, eq.prior.draw_kw, eq.prior.sd_kw,

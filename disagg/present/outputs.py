@@ -50,6 +50,17 @@ def neutralise_csv_text(frame: pl.DataFrame) -> pl.DataFrame:
     return frame.rename(renames) if renames else frame
 
 
+def for_csv(frame: pl.DataFrame) -> pl.DataFrame:
+    """The frame as a CSV file shows it (6 decimals): formula-like text neutralised, and a
+    float that would print as -0.000000 (a residual of -1e-10 kWh) written as 0."""
+    floats = [c for c, t in frame.schema.items() if t in (pl.Float64, pl.Float32)]
+    if floats:
+        frame = frame.with_columns(
+            pl.when(pl.col(c).abs() < 5e-7).then(0.0).otherwise(pl.col(c)).alias(c)
+            for c in floats)
+    return neutralise_csv_text(frame)
+
+
 def write_atomically(out_dir: Path, files: dict[str, Callable[[Path], None]],
                      inputs: list[Path], remove: tuple[str, ...] = ()) -> list[Path]:
     """Write several files into out_dir as one set: all of them, or none.
@@ -202,7 +213,7 @@ def write_breakdown(result: BreakdownResult, out_dir: Path, *, xlsx: bool = Fals
     table = result.breakdown.with_columns(cs.float() + 0.0)
     site = result.site
     files = {
-        "breakdown.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
+        "breakdown.csv": lambda p: for_csv(table).write_csv(p, float_precision=6),
         "breakdown.parquet": lambda p: table.write_parquet(p),
         "fit.json": lambda p: p.write_text(to_json(result.fit.as_json()), encoding="utf-8"),
     }
@@ -317,7 +328,7 @@ def write_drift(result: DriftResult, out_dir: Path, inputs: list[Path],
     """Write drift.csv and drift.json into out_dir, and the tracker state to state_path."""
     table = result.table
     paths = write_atomically(out_dir, {
-        "drift.csv": lambda p: neutralise_csv_text(table).write_csv(p, float_precision=6),
+        "drift.csv": lambda p: for_csv(table).write_csv(p, float_precision=6),
         "drift.json": lambda p: p.write_text(to_json(result.summary.as_json()), encoding="utf-8"),
     }, inputs)
     if state_path is not None:
@@ -339,9 +350,9 @@ def write_portfolio(result, out_dir: Path) -> list[Path]:
     frame = result.frame
     inputs = [result.portfolio.source, *result.portfolio.sites]
     files = {
-        "portfolio.csv": lambda p: neutralise_csv_text(frame).write_csv(p, float_precision=6)}
+        "portfolio.csv": lambda p: for_csv(frame).write_csv(p, float_precision=6)}
     if result.equipment is not None:
-        files["portfolio_equipment.csv"] = lambda p: neutralise_csv_text(
+        files["portfolio_equipment.csv"] = lambda p: for_csv(
             result.equipment).write_csv(p, float_precision=6)
     return write_atomically(out_dir, files, [p for p in inputs if p.is_file()])
 

@@ -106,6 +106,11 @@ def breakdown_summary(result: BreakdownResult) -> str:
                       f" R2 {hq['r2']:.3f} ({meets} the ASHRAE Guideline 14 hourly criteria "
                       "30 % / 10 %)"]
     lines.append(f"Intervals at {100 * result.estimates.confidence:g} % confidence.")
+    form = result.estimates.form
+    if form is not None:
+        how = "pinned in the site file" if form.pinned else "chosen by the data"
+        lines.append(f"Baseload form: {form.form.name} ({how}; fit.json baseload.form "
+                     "compares the others).")
     months = result.fit.months
     if months:
         n_own = sum(1 for m in months.values() if m.own_fit)

@@ -163,12 +163,23 @@ def form_sentence(form: dict) -> str:
     text = (f"The baseload (load no run log explains) was modelled as {words}"
             + (", plus a level that wanders slowly over time" if level else "")
             + f" ({e(used)}, {how}).")
-    others = sorted((f for f in form.get("forms", []) if f.get("form") != used),
-                    key=lambda f: f.get("delta", 0.0))
-    if others:
-        text += (" The other forms fitted the meter worse by "
-                 + ", ".join(f"{_num(f.get('delta'), 0)} ({e(str(f.get('form')))})"
-                             for f in others[:4])
+    forms = form.get("forms", [])
+    base = next((float(f.get("delta") or 0.0) for f in forms if f.get("form") == used), 0.0)
+    others = sorted(((float(f.get("delta") or 0.0) - base, str(f.get("form")))
+                     for f in forms if f.get("form") != used))
+    better = [(d, f) for d, f in others if d < 0]
+    worse = [(d, f) for d, f in others if d >= 0]
+    if better:
+        text += (" The data fit the meter better with "
+                 + ", ".join(f"{e(f)} (by {_num(-d, 0)})" for d, f in better)
+                 + " on the criterion (QAIC; differences above about 10 are clear): the "
+                   "pinned form may shift the draws; see the flags.")
+    if worse:
+        shown = worse[:4]
+        lead = ("The other forms" if len(shown) == len(worse)
+                else f"The next {len(shown)} of {len(worse)} other forms")
+        text += (f" {lead} fitted the meter worse by "
+                 + ", ".join(f"{_num(d, 0)} ({e(f)})" for d, f in shown)
                  + " on the criterion (QAIC; differences above about 10 are clear).")
     return text
 
