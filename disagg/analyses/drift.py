@@ -481,9 +481,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         # baseload shape beyond the declared profile is then taken out of the metered
         # energy as a fixed offset, so that the tracker's equilibrium is those draws.
         offset = None
-        if (not isinstance(chosen[main], str)
-                and _form_name(chosen[main]) != _form_name(fits[main])
-                and all(_same_split(fits[w], chosen[w]) for w in used_windows)):
+        main_differs = (not isinstance(chosen[main], str)
+                        and _form_name(chosen[main]) != _form_name(fits[main]))
+        if main_differs and all(_same_split(fits[w], chosen[w]) for w in used_windows):
             static_found = found
             found = [(chosen[windows[cid]], *_find_term(chosen[windows[cid]], m))
                      for cid, m in zip(ids, members)]
@@ -496,8 +496,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             for cid in ids:
                 form_check[cid].update(reference_from="form_chosen", uncertain=False)
                 form_check[cid].pop("reason", None)
-        elif any(not isinstance(chosen[w], str) and _form_name(chosen[w]) != _form_name(fits[w])
-                 for w in used_windows):
+        elif main_differs:
             notes.append("the reference draws are from the declared baseload profile: the "
                          "form the data choose for a reference period splits the loads "
                          "differently (another combined row, or a load in the baseload row)")
