@@ -33,7 +33,7 @@ from disagg.analyses.compare import (
     parse_period,
 )
 from disagg.errors import ConfigError
-from disagg.fit.estimate import Term, estimate_draws
+from disagg.fit.estimate import Term, WeatherFit, estimate_draws
 from disagg.present.outputs import to_json
 from disagg.present.terminal import compare_summary
 from synthetic import TZ, make_building, make_office
@@ -236,8 +236,9 @@ def test_a_weather_draw_is_compared_at_the_earlier_reference_temperature():
     cov = np.diag([0.04, 0.0001])
 
     def w(ref):
-        return {"mode": "cooling", "balance_temp_c": 18.0, "reference_temp_c": ref,
-                "kw_at_balance": 50.0, "slope_kw_per_degc": 2.0, "cov": cov}
+        return WeatherFit(mode="cooling", balance_temp_c=18.0, reference_temp_c=ref,
+                          kw_at_balance=50.0, slope_kw_per_degc=2.0, slope_se_kw_per_degc=0.01,
+                          cov=cov)
 
     before = _est([("CH-1", 62.0, 0.2, [])], weather={0: w(24.0)})
     after = _est([("CH-1", 70.0, 0.2, [])], weather={0: w(28.0)})

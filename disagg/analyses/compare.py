@@ -26,7 +26,7 @@ from disagg.analyses.verdict import RULE as VERDICT_RULE
 from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: F401 - VERDICTS: API
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
-from disagg.fit.estimate import Estimates, estimate_draws
+from disagg.fit.estimate import Estimates, WeatherFit, estimate_draws
 from disagg.fit.select import FormChoice
 from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 
@@ -96,7 +96,7 @@ def _where(est: Estimates, eq_id: str) -> str:
     return "absent"
 
 
-def _weather(est: Estimates, eq_id: str) -> dict | None:
+def _weather(est: Estimates, eq_id: str) -> WeatherFit | None:
     """The weather term of an id's fitted row, if its draw varies with temperature."""
     info = getattr(est, "weather", None) or {}
     for i, t in enumerate(est.terms):
@@ -125,16 +125,16 @@ def _side(est: Estimates, eq_id: str, temp_c: float | None = None) -> dict:
             "se_kw": se, "se_hac_kw": float(est.se_hac_kw[i]), "flags": list(est.terms[i].flags)}
     w = _weather(est, eq_id)
     if w is not None:
-        side["reference_temp_c"] = float(w["reference_temp_c"])
-        if temp_c is not None and temp_c != w["reference_temp_c"]:
+        side["reference_temp_c"] = float(w.reference_temp_c)
+        if temp_c is not None and temp_c != w.reference_temp_c:
             # draw(T) = draw at balance + slope x degrees beyond balance (change-point form);
             # its variance a' V a with a = (1, degrees) and V the widened (draw, slope)
             # covariance of the fit.
-            d = (temp_c - w["balance_temp_c"] if w["mode"] == "cooling"
-                 else w["balance_temp_c"] - temp_c)
+            d = (temp_c - w.balance_temp_c if w.mode == "cooling"
+                 else w.balance_temp_c - temp_c)
             a = np.array([1.0, max(d, 0.0)])
-            kw = float(w["kw_at_balance"] + w["slope_kw_per_degc"] * a[1])
-            se = float(np.sqrt(max(a @ np.asarray(w["cov"]) @ a, 0.0)))
+            kw = float(w.kw_at_balance + w.slope_kw_per_degc * a[1])
+            se = float(np.sqrt(max(a @ np.asarray(w.cov) @ a, 0.0)))
             side.update(kw=kw, kw_low=max(kw - est.critical * se, 0.0),
                         kw_high=kw + est.critical * se, se_kw=se, reference_temp_c=temp_c)
     return side
@@ -195,7 +195,7 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
         # A draw that varies with outdoor temperature is compared at one temperature: the
         # earlier fit's reference temperature (the site's [weather] reference_temp when set).
         w_before = _weather(before, eq_id)
-        temp_c = float(w_before["reference_temp_c"]) if w_before is not None else None
+        temp_c = float(w_before.reference_temp_c) if w_before is not None else None
         b, a = _side(before, eq_id), _side(after, eq_id, temp_c)
         row = {"equipment": eq_id}
         for name, s in (("before", b), ("after", a)):

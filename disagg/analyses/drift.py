@@ -519,20 +519,20 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         m_base = main_est.base.shape[1]
         w0 = np.concatenate([
             [est.design_coef[t.column] for est, _, t in found],
-            [found[c][0].weather[found[c][1]]["slope_kw_per_degc"] for c in specs],
+            [found[c][0].weather[found[c][1]].slope_kw_per_degc for c in specs],
             np.asarray(main_est.design_coef)[-m_base:] if m_base else []]).astype(float)
         offset_kwh = _offset_kwh(site, aligned, offset)
         w0_static = None
         if offset is not None:
             w0_static = np.concatenate([
                 [est.design_coef[t.column] for est, _, t in static_found],
-                [static_found[c][0].weather[static_found[c][1]]["slope_kw_per_degc"]
+                [static_found[c][0].weather[static_found[c][1]].slope_kw_per_degc
                  for c in specs],
                 np.asarray(main_est.design_coef)[-m_base:] if m_base else []]).astype(float)
         # Weather terms are tracked as (draw at balance, slope) and stated at the reference
         # temperature: column c, slope column, degrees beyond balance at that temperature.
         at_ref = [[c, k + s_i,
-                   float(degrees(np.array([found[c][0].weather[found[c][1]]["reference_temp_c"]]),
+                   float(degrees(np.array([found[c][0].weather[found[c][1]].reference_temp_c]),
                                  *specs[c])[0])]
                   for s_i, c in enumerate(specs)]
         main_intervals = int(main_est.frame.height)
