@@ -52,7 +52,7 @@ def _pack(e, tz: str) -> dict:
         "variants": json.dumps(e.variants, sort_keys=True, default=str),
         "identifiability": json.dumps(e.identifiability, sort_keys=True, default=str),
         "quality": json.dumps(e.quality, sort_keys=True, default=str),
-        "weather": {i: {k: v for k, v in w.items()} for i, w in e.weather.items()},
+        "weather": {i: dataclasses.asdict(w) for i, w in e.weather.items()},
         "table": {c: table[c].to_list() for c in table.columns},
     }
 

@@ -9,6 +9,7 @@ by tests/test_cli.py's `write_site`. All data here is invented.
 from __future__ import annotations
 
 import dataclasses
+import datetime as dt
 import hashlib
 import json
 import math
@@ -24,10 +25,18 @@ from scipy.stats import norm
 from typer.testing import CliRunner
 
 from disagg.cli import app
-from disagg.analyses.compare import COLUMNS, DEFAULT_MIN_CHANGE, compare_estimates, parse_period
+from disagg.analyses.compare import (
+    COLUMNS,
+    DEFAULT_MIN_CHANGE,
+    compare_aligned,
+    compare_estimates,
+    parse_period,
+)
 from disagg.errors import ConfigError
-from disagg.fit.estimate import Term, estimate_draws
-from synthetic import TZ, make_building
+from disagg.fit.estimate import Term, WeatherFit, estimate_draws
+from disagg.present.outputs import to_json
+from disagg.present.terminal import compare_summary
+from synthetic import TZ, make_building, make_office
 from test_cli import CAUTION_LINE, GUIDE, TRUE_DRAW_KW, write_site
 
 runner = CliRunner()
@@ -227,8 +236,9 @@ def test_a_weather_draw_is_compared_at_the_earlier_reference_temperature():
     cov = np.diag([0.04, 0.0001])
 
     def w(ref):
-        return {"mode": "cooling", "balance_temp_c": 18.0, "reference_temp_c": ref,
-                "kw_at_balance": 50.0, "slope_kw_per_degc": 2.0, "cov": cov}
+        return WeatherFit(mode="cooling", balance_temp_c=18.0, reference_temp_c=ref,
+                          kw_at_balance=50.0, slope_kw_per_degc=2.0, slope_se_kw_per_degc=0.01,
+                          cov=cov)
 
     before = _est([("CH-1", 62.0, 0.2, [])], weather={0: w(24.0)})
     after = _est([("CH-1", 70.0, 0.2, [])], weather={0: w(28.0)})
@@ -537,3 +547,56 @@ def test_the_group_is_compared_and_its_members_say_so():
     # The loads that did not change are never called rising or falling.
     for eq in ("AC-1", "FZ-1", "AHU-1"):
         assert rows[eq]["verdict"] in ("steady", "unclear"), rows[eq]
+
+
+# One baseload form for both periods (issue 10). The invented office of tests/synthetic.py
+# (make_office, "swing": the true baseload swings daily, the declared profile is
+# occupied/unoccupied): three weeks before are too few intervals to try the 168-level
+# profile; six weeks after are enough, and their data prefer it.
+OFFICE_BEFORE = (dt.date(2025, 1, 6), dt.date(2025, 1, 26))
+OFFICE_AFTER = (dt.date(2025, 2, 3), dt.date(2025, 3, 16))
+
+
+@pytest.fixture(scope="module")
+def swing_office():
+    return make_office(1, "swing", days=70)
+
+
+def test_both_periods_use_the_before_periods_form_and_the_after_preference_is_said(
+        swing_office):
+    s = swing_office
+    result = compare_aligned(s.site, s.aligned, OFFICE_BEFORE, OFFICE_AFTER)
+    report = json.loads(to_json(result.report.as_json()))
+    form = report["baseload_form"]
+    before, after = report["periods"]["before"], report["periods"]["after"]
+    assert form["pinned"] is False
+    assert before["baseload_form"] == after["baseload_form"] == form["used"]
+    assert form["before_prefers"] == before["form_preferred"] == form["used"]
+    assert not form["used"].startswith("hour-of-week")
+    # On its own the after period takes the 168-level profile (what its fit compared).
+    assert form["after_prefers"] == after["form_preferred"]
+    assert form["after_prefers"].startswith("hour-of-week")
+    assert form["after_forms"]["used"] == form["after_prefers"]
+    assert form["note"] == (
+        f"the after period on its own would have chosen the baseload form "
+        f"{form['after_prefers']}, not {form['used']}; both periods use {form['used']} (the "
+        "before period's choice) so that the draws compare like with like; the before "
+        "period has too few intervals to try that form")
+    text = compare_summary(result)
+    assert (f"Baseload form: {form['used']} in both periods, chosen by the data of the "
+            "before period (the baseline)") in text
+    assert f"Note: {form['note']}" in text
+
+
+def test_a_form_pinned_by_the_site_file_serves_both_periods(swing_office):
+    s = swing_office
+    site = dataclasses.replace(s.site, baseload=dataclasses.replace(s.site.baseload,
+                                                                    form="occupied+level"))
+    result = compare_aligned(site, s.aligned, OFFICE_BEFORE, OFFICE_AFTER)
+    form = result.report.baseload_form
+    assert form["pinned"] is True
+    assert result.report.before.baseload_form == result.report.after.baseload_form \
+        == "occupied+level"
+    assert form["chosen"] == "pinned by the site file's [baseload] form"
+    assert form["after_prefers"].startswith("hour-of-week")
+    assert "(pinned by the site file)" in form["note"]

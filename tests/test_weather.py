@@ -49,12 +49,12 @@ def test_exact_recovery_of_draw_and_slope_without_noise():
     e = estimate_draws(site, aligned)
     i = [t.id for t in e.terms].index("CH-1")
     w = e.weather[i]
-    assert w["kw_at_balance"] == pytest.approx(60.0, rel=1e-7)
-    assert w["slope_kw_per_degc"] == pytest.approx(SLOPE_KW_PER_C, rel=1e-6)
+    assert w.kw_at_balance == pytest.approx(60.0, rel=1e-7)
+    assert w.slope_kw_per_degc == pytest.approx(SLOPE_KW_PER_C, rel=1e-6)
     # Stated at the reference temperature: the run-hour-weighted mean temperature.
     run = aligned.hours[:, aligned.equipment_ids.index("CH-1")]
     t_ref = float(np.sum(run * temp) / run.sum())
-    assert w["reference_temp_c"] == pytest.approx(t_ref)
+    assert w.reference_temp_c == pytest.approx(t_ref)
     assert e.kw[i] == pytest.approx(60.0 + SLOPE_KW_PER_C * max(t_ref - BALANCE_C, 0.0), rel=1e-6)
     # Each month's chiller kWh is the true energy of that month.
     table = monthly_breakdown(e, TZ)

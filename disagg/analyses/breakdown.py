@@ -38,8 +38,8 @@ def interval_parts_kwh(est: Estimates, rows: np.ndarray | slice = slice(None)) -
             continue
         if i in est.weather:
             w = est.weather[i]
-            parts[:, i] = (w["kw_at_balance"] * hours[:, i]
-                           + w["slope_kw_per_degc"] * est.weather_hours[rows][:, i])
+            parts[:, i] = (w.kw_at_balance * hours[:, i]
+                           + w.slope_kw_per_degc * est.weather_hours[rows][:, i])
         else:
             parts[:, i] = est.kw[i] * hours[:, i]
     parts[:, k] = est.base[rows] @ est.base_kw
@@ -99,8 +99,8 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
                 w = est.weather[i]
                 deg_h = float(deg_hs[i])
                 a = np.array([run_h, deg_h])
-                kwh = w["kw_at_balance"] * run_h + w["slope_kw_per_degc"] * deg_h
-                half = est.critical * float(np.sqrt(max(a @ w["cov"] @ a, 0.0)))
+                kwh = w.kw_at_balance * run_h + w.slope_kw_per_degc * deg_h
+                half = est.critical * float(np.sqrt(max(a @ w.cov @ a, 0.0)))
                 kwh_lo, kwh_hi = max(kwh - half, 0.0), kwh + half
                 kw, lo, hi = kwh / run_h, kwh_lo / run_h, kwh_hi / run_h
             else:

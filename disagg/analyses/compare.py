@@ -26,7 +26,8 @@ from disagg.analyses.verdict import RULE as VERDICT_RULE
 from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: F401 - VERDICTS: API
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
-from disagg.fit.estimate import Estimates, estimate_draws
+from disagg.fit.estimate import Estimates, WeatherFit, estimate_draws
+from disagg.fit.select import FormChoice
 from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 
 COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
@@ -58,6 +59,12 @@ METHOD = {
     "weather": ("a draw that varies with outdoor temperature is compared at the earlier "
                 "fit's reference temperature (the site's [weather] reference_temp when set)"),
     "multiple_comparisons": "none: each equipment is tested on its own",
+    "baseload_form": ("one baseload form for both periods (as one baseline model serves both "
+                      "periods in measurement and verification): the form the before "
+                      "period's data choose (breakdown's comparison of forms), kept with its "
+                      "credible rivals for the after period, unless the site file's "
+                      "[baseload] form pins one; baseload_form says which, and which form "
+                      "each period's data prefer on their own"),
 }
 
 
@@ -89,7 +96,7 @@ def _where(est: Estimates, eq_id: str) -> str:
     return "absent"
 
 
-def _weather(est: Estimates, eq_id: str) -> dict | None:
+def _weather(est: Estimates, eq_id: str) -> WeatherFit | None:
     """The weather term of an id's fitted row, if its draw varies with temperature."""
     info = getattr(est, "weather", None) or {}
     for i, t in enumerate(est.terms):
@@ -118,16 +125,16 @@ def _side(est: Estimates, eq_id: str, temp_c: float | None = None) -> dict:
             "se_kw": se, "se_hac_kw": float(est.se_hac_kw[i]), "flags": list(est.terms[i].flags)}
     w = _weather(est, eq_id)
     if w is not None:
-        side["reference_temp_c"] = float(w["reference_temp_c"])
-        if temp_c is not None and temp_c != w["reference_temp_c"]:
+        side["reference_temp_c"] = float(w.reference_temp_c)
+        if temp_c is not None and temp_c != w.reference_temp_c:
             # draw(T) = draw at balance + slope x degrees beyond balance (change-point form);
             # its variance a' V a with a = (1, degrees) and V the widened (draw, slope)
             # covariance of the fit.
-            d = (temp_c - w["balance_temp_c"] if w["mode"] == "cooling"
-                 else w["balance_temp_c"] - temp_c)
+            d = (temp_c - w.balance_temp_c if w.mode == "cooling"
+                 else w.balance_temp_c - temp_c)
             a = np.array([1.0, max(d, 0.0)])
-            kw = float(w["kw_at_balance"] + w["slope_kw_per_degc"] * a[1])
-            se = float(np.sqrt(max(a @ np.asarray(w["cov"]) @ a, 0.0)))
+            kw = float(w.kw_at_balance + w.slope_kw_per_degc * a[1])
+            se = float(np.sqrt(max(a @ np.asarray(w.cov) @ a, 0.0)))
             side.update(kw=kw, kw_low=max(kw - est.critical * se, 0.0),
                         kw_high=kw + est.critical * se, se_kw=se, reference_temp_c=temp_c)
     return side
@@ -188,7 +195,7 @@ def compare_estimates(before: Estimates, after: Estimates, confidence: float = 0
         # A draw that varies with outdoor temperature is compared at one temperature: the
         # earlier fit's reference temperature (the site's [weather] reference_temp when set).
         w_before = _weather(before, eq_id)
-        temp_c = float(w_before["reference_temp_c"]) if w_before is not None else None
+        temp_c = float(w_before.reference_temp_c) if w_before is not None else None
         b, a = _side(before, eq_id), _side(after, eq_id, temp_c)
         row = {"equipment": eq_id}
         for name, s in (("before", b), ("after", a)):
@@ -260,8 +267,12 @@ def add_member_rows(table: pl.DataFrame, details: list[dict],
 
 
 def _period_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
-                period: tuple[dt.date, dt.date], label: str, confidence: float) -> Estimates:
+                period: tuple[dt.date, dt.date], label: str, confidence: float,
+                form: FormChoice | None = None) -> Estimates:
     """Fit the intervals whose start falls on the period's local dates.
+
+    form: the baseload form to use with its credible rivals (the before period's choice);
+    None: the data choose (or the site file pins it), as breakdown does.
 
     Raises:
         InputError: no usable interval, or too few to fit, in the period.
@@ -283,16 +294,57 @@ def _period_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
         raise InputError(f"{site.meter.file}: only {used} usable meter intervals in {where} "
                          f"for {n_unknowns} unknowns; a fit needs at least {n_unknowns + 2}")
     try:
-        return estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+        return estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence,
+                              form=form)
     except ValueError as exc:
         raise InputError(f"{site.meter.file}: {where}: {exc}") from None
 
 
-def _period_report(est: Estimates, period: tuple[dt.date, dt.date]) -> ComparePeriod:
+def preferred_form(choice: FormChoice) -> str:
+    """The form a period's data prefer: the lowest criterion among the forms compared (ties
+    to the form used), even where [baseload] form pins another."""
+    low = min(sc.criterion for sc in choice.scores)
+    tied = [sc.form.name for sc in choice.scores
+            if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
+    return choice.form.name if choice.form.name in tied else tied[0]
+
+
+def baseload_form_of(est_before: Estimates, est_after: Estimates,
+                     after_own: Estimates) -> dict:
+    """compare.json's `baseload_form`: the form both periods use, where it was chosen, each
+    period's own preference, and in words when the after period alone would differ."""
+    used = est_before.form.form.name
+    pinned = est_before.form.pinned
+    before_prefers = preferred_form(est_before.form)
+    after_prefers = preferred_form(after_own.form)
+    where = ("pinned by the site file's [baseload] form" if pinned else
+             "chosen by the data of the before period (the baseline) and kept for the after "
+             "period, so that a change in a draw is not a change of baseload form")
+    out = {"used": used, "q_before": est_before.form.form.q,
+           "q_after": est_after.form.form.q, "pinned": pinned, "chosen": where,
+           "before_prefers": before_prefers, "after_prefers": after_prefers,
+           "before_forms": est_before.form.as_json(), "after_forms": after_own.form.as_json(),
+           "note": None}
+    if after_prefers != used:
+        tried = {sc.form.name for sc in est_before.form.scores}
+        why = ("the before period has too few intervals to try that form" if
+               after_prefers not in tried else
+               "the baseload's shape may itself have changed between the periods")
+        out["note"] = (f"the after period on its own would have chosen the baseload form "
+                       f"{after_prefers}, not {used}; both periods use {used} ("
+                       + ("pinned by the site file" if pinned else "the before period's choice")
+                       + f") so that the draws compare like with like; {why}")
+    return out
+
+
+def _period_report(est: Estimates, period: tuple[dt.date, dt.date],
+                   own: Estimates) -> ComparePeriod:
     return ComparePeriod(date_from=period[0].isoformat(), date_to=period[1].isoformat(),
                          intervals_used=int(est.frame.height), days=int(est.fit.n_blocks),
                          critical_value=est.critical, baseload_row=est.base_id,
-                         fit_quality=est.quality, warnings=est.warnings)
+                         fit_quality=est.quality, warnings=est.warnings,
+                         baseload_form=est.form.form.name,
+                         form_preferred=preferred_form(own.form))
 
 
 def compare_site(site_path: str | Path, before: tuple[dt.date, dt.date],
@@ -336,16 +388,28 @@ def compare_aligned(site: SiteConfig, aligned: Aligned, before: tuple[dt.date, d
             | ((local_day >= after[0]) & (local_day <= after[1])))
     groups = inseparable_groups(site, dataclasses.replace(aligned, use=aligned.use & both))
     gsite = grouped_site(site, groups)
+    # One baseload form for both periods, as one baseline model serves both periods in
+    # measurement and verification: chosen on the before period (or pinned by the site
+    # file) and kept for the after period. The after period is first fitted as its data
+    # choose on their own; when they choose the same form, that fit serves (its own noise
+    # ratio); else it is fitted again with the before period's form, its credible rivals and
+    # their noise ratios (as a month's fit keeps its range's).
     est_before = _period_fit(gsite, aligned, local_day, before, "--before", confidence)
-    est_after = _period_fit(gsite, aligned, local_day, after, "--after", confidence)
+    after_own = _period_fit(gsite, aligned, local_day, after, "--after", confidence)
+    est_after = after_own
+    if not est_before.form.pinned and after_own.form.form.name != est_before.form.form.name:
+        est_after = _period_fit(gsite, aligned, local_day, after, "--after", confidence,
+                                form=est_before.form)
     table, details = compare_estimates(est_before, est_after, confidence, min_change)
     table, details = add_member_rows(table, details, groups)
+    form = baseload_form_of(est_before, est_after, after_own)
     report = CompareReport(
         tool=f"disagg {__version__}", site=site.name, timezone=site.timezone,
         site_file=str(site.path), confidence=confidence, min_change=min_change, method=METHOD,
         groups=[group_id(g) for g in groups],
-        before=_period_report(est_before, before), after=_period_report(est_after, after),
-        equipment=details, data_notes=aligned.notes, caution=CAUTION)
+        before=_period_report(est_before, before, est_before),
+        after=_period_report(est_after, after, after_own),
+        equipment=details, data_notes=aligned.notes, caution=CAUTION, baseload_form=form)
     return CompareResult(site, table, report)
 
 

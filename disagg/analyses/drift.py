@@ -54,7 +54,8 @@ from disagg.fit.estimate import (
     estimate_draws,
     weather_specs,
 )
-from disagg.fit.select import Form
+from disagg.fit.design import BaseloadBuilder, rows_of
+from disagg.fit.select import Form, kept_columns
 from disagg.fit.solvers import quantile
 from disagg.inputs.config import SiteConfig
 
@@ -62,11 +63,11 @@ DEFAULT_REFERENCE_DAYS = 90
 # A load's reference period must hold at least this many run-hours (two full days of
 # running; common practice, no source): fewer pin its draw down too loosely to alarm on.
 MIN_REFERENCE_RUN_H = 48.0
-# Chart limit: the chance of a false alarm per tracked load and year is held near 1 % by a
-# Bonferroni split over the year's independent stretches of one memory length (the tracked
-# value forgets in about tau days): L = Phi^-1(1 - 0.01 / (2 x 365 / tau)), 3.35 at 30 days
-# (common practice in spirit, no source for the 1 %; the measured rate is in
-# bench/RESULTS.md).
+# Chart limit: the chance of a false alarm per tracked load and year is held near 0.2 % by
+# a Bonferroni split over the year's independent stretches of one memory length (the tracked
+# value forgets in about tau days): L = Phi^-1(1 - 0.002 / (2 x 365 / tau)), 3.77 at 30
+# days (common practice in spirit, no source for the 0.2 %, a design choice; the measured
+# rate is in bench/RESULTS.md).
 FALSE_ALARM_PER_LOAD_YEAR = 0.002
 
 
@@ -241,6 +242,112 @@ def _fit_window(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
                          f"{exc}") from None
 
 
+def _chosen_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
+                window: tuple[dt.date, dt.date], confidence: float) -> Estimates | str:
+    """The reference period fitted as breakdown fits it: the baseload form the data choose
+    (or the one [baseload] form pins), with the wandering level when chosen; or why not."""
+    mask = (aligned.use & (local_day >= np.datetime64(window[0]))
+            & (local_day <= np.datetime64(window[1])))
+    try:
+        return estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+    except ValueError as exc:
+        return str(exc)
+
+
+def reference_form_check(ref: Estimates, chosen: Estimates | str, i: int,
+                         members: list[str]) -> dict:
+    """How a tracked load's draw in the declared profile's fit of its reference period (the
+    static form the tracker's design carries) compares with its draw under the form the
+    data choose for the same period (breakdown's form, disagg.fit.estimate.choose_form).
+
+    They differ materially ("differs") when the data choose another form and either draw
+    lies outside the other's interval, or the chosen form has no row of its own for the
+    load. With the reference from the declared profile ("reference_from"; drift_aligned
+    may switch it to the chosen form) such a load's absolute reference level is
+    "uncertain", said in "reason" in plain words. Draws in kW with their intervals.
+    """
+    out = {"form_declared": _form_name(ref), "kw_declared_form": float(ref.kw[i]),
+           "kw_declared_form_low": float(ref.kw_low[i]),
+           "kw_declared_form_high": float(ref.kw_high[i]), "form_chosen": None,
+           "kw_chosen_form": None, "kw_chosen_form_low": None, "kw_chosen_form_high": None,
+           "differs": False, "reference_from": "form_declared", "uncertain": False}
+    if isinstance(chosen, str):
+        out["detail"] = f"the form the data choose could not be fitted: {chosen}"
+        return out
+    out["form_chosen"] = chosen.form.form.name
+    if chosen.form.form.name == out["form_declared"]:
+        return out
+    j, t = _find_term(chosen, members)
+    if j is None:
+        out["differs"] = out["uncertain"] = True
+        out["reason"] = (f"its absolute reference level is uncertain: under the baseload form "
+                         f"the data choose for its reference period ({out['form_chosen']}), "
+                         f"{t.removeprefix('in its reference period ')}; changes are still "
+                         "tracked against its reference draw")
+        return out
+    a, lo_a, hi_a = float(chosen.kw[j]), float(chosen.kw_low[j]), float(chosen.kw_high[j])
+    out.update(kw_chosen_form=a, kw_chosen_form_low=lo_a, kw_chosen_form_high=hi_a)
+    r, lo_r, hi_r = (out["kw_declared_form"], out["kw_declared_form_low"],
+                     out["kw_declared_form_high"])
+    if not (lo_r <= a <= hi_r and lo_a <= r <= hi_a):
+        out["differs"] = out["uncertain"] = True
+        out["reason"] = (f"its absolute reference level is uncertain: the reference fit "
+                         f"(baseload {out['form_declared']}) gives {r:.2f} kW ({lo_r:.2f} to "
+                         f"{hi_r:.2f}), the form the data choose for the same period "
+                         f"({out['form_chosen']}) {a:.2f} kW ({lo_a:.2f} to {hi_a:.2f}); "
+                         "changes are still tracked against the reference draw")
+    return out
+
+
+def _same_split(static: Estimates, chosen: Estimates | str) -> bool:
+    """Whether the chosen form's fit has the same fitted rows (and baseload row) as the
+    declared profile's fit of the same period."""
+    if isinstance(chosen, str):
+        return False
+
+    def split(est):
+        return sorted(sorted(t.members) for t in est.terms
+                      if t.column is not None and "not-run" not in t.flags), est.base_id
+    return split(static) == split(chosen)
+
+
+# Rows per block of the offset's baseload columns (bounds their temporary memory).
+_OFFSET_CHUNK_ROWS = 32768
+
+
+def _offset_kwh(site: SiteConfig, aligned: Aligned, offset: dict | None) -> np.ndarray | None:
+    """The reference fit's baseload profile energy in each used interval [kWh]: the chosen
+    form's profile columns times their reference coefficients (without the wandering level,
+    whose steps stay in the tracked data as they did in the reference period), a block of
+    rows at a time; None without an offset."""
+    if offset is None:
+        return None
+    form = Form.parse(offset["form"])
+    coef = np.asarray(offset["coef_kw"], dtype=float)
+    rows = rows_of(aligned, site.timezone)
+    builder = BaseloadBuilder(site, rows)
+    out = np.zeros(rows.n)
+    if not len(coef):
+        return out
+    for a in range(0, rows.n, _OFFSET_CHUNK_ROWS):
+        sel = np.zeros(rows.n, dtype=bool)
+        sel[a:a + _OFFSET_CHUNK_ROWS] = True
+        B, _ = builder.columns(form.profile, sel)
+        if form.level:
+            B = B[:, kept_columns(form.profile, B.shape[1])]
+        if B.shape[1] != len(coef):
+            raise InputError(f"{site.path}: the reference's baseload offset has {len(coef)} "
+                             f"columns but the form {form.name} gives {B.shape[1]} here; "
+                             "start without --state")
+        out[a:a + _OFFSET_CHUNK_ROWS] = B @ coef
+    return out
+
+
+def _form_name(est: Estimates) -> str:
+    """The name of the baseload form a fit used (e.g. occupied, hour-of-week+level)."""
+    return est.form.form.name if est.form is not None else "?"
+
+
 def _find_term(est: Estimates, members: list[str]):
     """(index, term) of the fitted row with exactly these members, or (None, why not)."""
     for i, t in enumerate(est.terms):
@@ -347,6 +454,10 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                             no_reference[cid] = f"its reference period {w[0]}..{w[1]}: {exc}"
                             del windows[cid]
         main_est = fits[main]
+        # Each reference period fitted again as breakdown fits it (the form the data
+        # choose): the tracker's design cannot carry that form, but its draws show whether
+        # the reference draws lean on the declared profile.
+        chosen = {w: _chosen_fit(gsite, aligned, local_day, w, confidence) for w in fits}
         ids, members, flags, found = [], [], [], []
         for m in candidates:
             cid = group_id(m)
@@ -362,6 +473,41 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             flags.append(list(t.flags))
             found.append((est, i, t))
         k = len(ids)
+        form_check = {cid: reference_form_check(est, chosen[windows[cid]], i, m)
+                      for cid, m, (est, i, _) in zip(ids, members, found)}
+        used_windows = sorted({windows[c] for c in ids} | {main})
+        # The reference draws come from the form the data choose when every reference
+        # period's chosen fit splits the loads as its declared-profile fit does: its
+        # baseload shape beyond the declared profile is then taken out of the metered
+        # energy as a fixed offset, so that the tracker's equilibrium is those draws.
+        offset = None
+        main_differs = (not isinstance(chosen[main], str)
+                        and _form_name(chosen[main]) != _form_name(fits[main]))
+        if main_differs and all(_same_split(fits[w], chosen[w]) for w in used_windows):
+            static_found = found
+            found = [(chosen[windows[cid]], *_find_term(chosen[windows[cid]], m))
+                     for cid, m in zip(ids, members)]
+            flags = [list(t.flags) for _, _, t in found]
+            c_main = chosen[main]
+            m_c = c_main.base.shape[1]
+            offset = {"form": c_main.form.form.name, "q": c_main.form.form.q,
+                      "coef_kw": (np.asarray(c_main.design_coef)[-m_c:].tolist()
+                                  if m_c else [])}
+            for cid in ids:
+                form_check[cid].update(reference_from="form_chosen", uncertain=False)
+                form_check[cid].pop("reason", None)
+        elif main_differs:
+            notes.append("the reference draws are from the declared baseload profile: the "
+                         "form the data choose for a reference period splits the loads "
+                         "differently (another combined row, or a load in the baseload row)")
+        reference_forms = [
+            {"from": w[0].isoformat(), "to": w[1].isoformat(),
+             "form_used": (_form_name(chosen[w]) if offset is not None else _form_name(fits[w])),
+             "form_declared": _form_name(fits[w]),
+             "form_chosen": (None if isinstance(chosen[w], str) else _form_name(chosen[w])),
+             "comparison": (chosen[w] if isinstance(chosen[w], str)
+                            else chosen[w].form.as_json())}
+            for w in sorted(fits) if any(windows.get(c) == w for c in ids)]
         if k == 0:
             why = "; ".join(f"{c}: {r}" for c, r in no_reference.items())
             raise InputError(f"{site.meter.file}: no load has a reference period to track it "
@@ -373,14 +519,27 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         m_base = main_est.base.shape[1]
         w0 = np.concatenate([
             [est.design_coef[t.column] for est, _, t in found],
-            [found[c][0].weather[found[c][1]]["slope_kw_per_degc"] for c in specs],
+            [found[c][0].weather[found[c][1]].slope_kw_per_degc for c in specs],
             np.asarray(main_est.design_coef)[-m_base:] if m_base else []]).astype(float)
+        offset_kwh = _offset_kwh(site, aligned, offset)
+        w0_static = None
+        if offset is not None:
+            w0_static = np.concatenate([
+                [est.design_coef[t.column] for est, _, t in static_found],
+                [static_found[c][0].weather[static_found[c][1]].slope_kw_per_degc
+                 for c in specs],
+                np.asarray(main_est.design_coef)[-m_base:] if m_base else []]).astype(float)
         # Weather terms are tracked as (draw at balance, slope) and stated at the reference
         # temperature: column c, slope column, degrees beyond balance at that temperature.
         at_ref = [[c, k + s_i,
-                   float(degrees(np.array([found[c][0].weather[found[c][1]]["reference_temp_c"]]),
+                   float(degrees(np.array([found[c][0].weather[found[c][1]].reference_temp_c]),
                                  *specs[c])[0])]
                   for s_i, c in enumerate(specs)]
+        main_intervals = int(main_est.frame.height)
+        # The reference fits (and their design arrays) are done with: a long series' tracked
+        # design comes next.
+        del fits, chosen, found, main_est
+        static_found = None
         frame, X_level, y_level = _design(site, aligned, members, consume_hours)
         if consume_hours and aligned.hours.base is not None and np.shares_memory(
                 X_level[:1], aligned.hours[:1]):
@@ -388,11 +547,24 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         if X_level.shape[1] != len(w0):
             raise InputError(f"{site.path}: the reference fit has {len(w0)} columns but the "
                              f"tracked design {X_level.shape[1]}")
+        if offset_kwh is not None:
+            y_level -= offset_kwh
         last_row = _last_row(frame, X_level, y_level)
         X, y = differences(frame, X_level, y_level, None, in_place=True)
         del X_level, y_level  # now the differences
         row_day = (frame["start_utc"].dt.convert_time_zone(tz).dt.date().to_numpy()
                    .astype("datetime64[D]"))
+        if offset_kwh is not None and m_base:
+            # The declared profile's weights at the equilibrium of the main reference period
+            # (what the offset leaves of the baseload), the loads' draws held at the reference.
+            rows = np.flatnonzero((row_day >= np.datetime64(main[0]))
+                                  & (row_day <= np.datetime64(main[1])))
+            kb = X.shape[1] - m_base
+            rest = y[rows] - X[rows, :kb] @ w0[:kb]
+            w0[kb:] = np.linalg.lstsq(X[rows, kb:], rest, rcond=None)[0]
+        d_offset = (None if offset_kwh is None else
+                    differences(frame, np.zeros((len(offset_kwh), 0)), offset_kwh, None)[1])
+        del offset_kwh
         memory = np.full(X.shape[1], memory_days * per_day)
         memory[k + len(specs):] = base_memory * per_day
         row_sets = []
@@ -427,7 +599,12 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         # period, with the differenced residual's autocovariance at the reference draws up
         # to BAND_LAGS (differencing makes neighbouring residuals correlated); the coupling
         # with loads that switch together is included.
-        resid = y - X @ w0
+        # With the reference form's offset, the band still counts the baseload's shape
+        # beyond the declared profile as noise (the residuals of the declared profile's
+        # reference fit): the offset is the reference period's shape, and the shape of
+        # later periods may differ from it where the declared columns cannot follow.
+        resid = y - X @ w0 if d_offset is None else (y + d_offset) - X @ w0_static
+        del d_offset
         sd = np.zeros(k)
         ls_factor = np.ones(k)
         for rows, cols in row_sets:
@@ -453,10 +630,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
                 ls_factor[j] = inflate * (math.sqrt(max(narrow, 0.0) / white)
                                           if white > 0 else 1.0)
         reference_info = {"from": main[0].isoformat(), "to": main[1].isoformat(),
-                          "intervals": int(main_est.frame.height)}
+                          "intervals": main_intervals}
         windows_info = {c: [windows[c][0].isoformat(), windows[c][1].isoformat()] for c in ids}
-        status = _status(site, aligned, ids, members, groups, no_reference, main_est,
-                         run_total, index)
+        status = _status(site, aligned, ids, members, groups, no_reference, run_total, index)
         last_end = None
         first_alarm: dict[str, str] = {}
         tail: list[list[float]] = []
@@ -483,17 +659,25 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         ls_factor = np.array(state["ls_factor"], dtype=float)
         stats_tail = [_unpack_day(item, k_all=len(state["weights"]))
                       for item in state["day_stats_tail"]]
+        # States saved before the reference forms were recorded have none.
+        reference_forms = state.get("reference_forms", [])
+        form_check = state.get("reference_form_check", {})
         k = len(ids)
         later = (aligned.frame["start_utc"] >= last_end).to_numpy()
         aligned = dataclasses.replace(aligned, use=aligned.use & later)
         if not aligned.use.any():
             raise InputError(f"{site.meter.file}: no usable interval after the saved state's "
                              f"last one ({state['last_end_utc']})")
+        offset = state.get("baseload_offset")
+        offset_kwh = _offset_kwh(site, aligned, offset)
         frame, X_level, y_level = _design(site, aligned, members)
         if X_level.shape[1] != len(w0):
             raise InputError(f"{site.path}: the saved state has {len(w0)} tracked columns but "
                              f"this site's baseload profile gives {X_level.shape[1]}; start "
                              "without --state")
+        if offset_kwh is not None:
+            y_level -= offset_kwh
+        del offset_kwh
         last_row = _last_row(frame, X_level, y_level)
         X, y = differences(frame, X_level, y_level, state["last_row"], in_place=True)
         del X_level, y_level  # now the differences
@@ -593,6 +777,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
             if np.isfinite(tau_days[j]) and tau_days[j] > 1.25 * memory_days:
                 notes.append(f"{eq} runs too seldom to follow changes within {memory_days:g} "
                              f"days beside the other loads: its memory is {tau_days[j]:.0f} days")
+    for eq in ids:
+        if form_check.get(eq, {}).get("uncertain"):
+            notes.append(f"{eq}: {form_check[eq]['reason']}")
     for row in status:
         if row["status"] != "tracked":
             notes.append(f"{row['equipment']}: {row['detail']}"
@@ -624,7 +811,7 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
               "tracker's lag taken out, and of the reference together; an EWMA control "
               "chart, Roberts 1959, read without its lag; "
               f"L = Phi^-1(1 - {FALSE_ALARM_PER_LOAD_YEAR:g} / (2 x 365 / memory)), at least "
-              f"{EWMA_L:g}, for about {FALSE_ALARM_PER_LOAD_YEAR:.0%} false alarms per load "
+              f"{EWMA_L:g}, for about {100 * FALSE_ALARM_PER_LOAD_YEAR:g} % false alarms per load "
               "and year) and threshold x reference"),
         chart_limit_L={eq: chart_limit(tau_days[j]) for j, eq in enumerate(ids)},
         change_interval=("change: the mean draw of the last recent_days days (the tracker's "
@@ -635,6 +822,8 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         alarms=alarms,
         notes=notes,
         caution=CAUTION,
+        reference_forms=reference_forms,
+        reference_form_check=form_check,
     )
     new_state = {
         "version": STATE_VERSION, "site": site.name, "timezone": tz,
@@ -654,6 +843,9 @@ def drift_aligned(site: SiteConfig, aligned: Aligned, memory_days: float = 30.0,
         "min_reference_run_h": min_run_h,
         "day_stats_tail": [_pack_day(*item) for item in (stats_tail + day_stats)[-n_tail:]],
         "last_row": last_row,
+        "reference_forms": reference_forms,
+        "reference_form_check": form_check,
+        "baseload_offset": offset,
     }
     return DriftResult(table, summary, new_state)
 
@@ -743,7 +935,7 @@ def _change_interval(level: float, sd_level: float, ref: float, ref_se: float,
     return change - half, change + half
 
 
-def _status(site, aligned, ids, members, groups, no_reference, main_est, run_total,
+def _status(site, aligned, ids, members, groups, no_reference, run_total,
             index) -> list[dict]:
     """One row per configured equipment: tracked, covered by a group, or why not tracked."""
     rows = []

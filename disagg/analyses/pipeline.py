@@ -392,10 +392,10 @@ def draw_list(est: Estimates) -> list[Draw]:
             run_hours=float(est.hours[:, i].sum()),
             flags=t.flags,
             weather=None if w is None else WeatherDraw(
-                mode=w["mode"], balance_temp_c=w["balance_temp_c"],
-                reference_temp_c=w["reference_temp_c"], kw_at_balance=w["kw_at_balance"],
-                slope_kw_per_degc=w["slope_kw_per_degc"],
-                slope_se_kw_per_degc=w["slope_se_kw_per_degc"])))
+                mode=w.mode, balance_temp_c=w.balance_temp_c,
+                reference_temp_c=w.reference_temp_c, kw_at_balance=w.kw_at_balance,
+                slope_kw_per_degc=w.slope_kw_per_degc,
+                slope_se_kw_per_degc=w.slope_se_kw_per_degc)))
     return draws
 
 

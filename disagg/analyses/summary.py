@@ -289,6 +289,37 @@ class DriftSummary:
     alarms: list[DriftAlarm]
     notes: list[str]
     caution: str
+    # Per reference period: the baseload form its draws come from ("form_used"), the
+    # declared profile (what the tracker's design carries), the form the data choose and
+    # their comparison.
+    reference_forms: list[dict] = field(default_factory=list)
+    # Per tracked row: its reference-period draw under both forms [kW], which one is its
+    # reference, and whether its absolute reference level is uncertain ("uncertain",
+    # "reason"; drift.reference_form_check).
+    reference_form_check: dict[str, dict] = field(default_factory=dict)
+
+    def reference_forms_text(self) -> list[str]:
+        """In words, per reference period, the baseload form its draws come from, the
+        declared one and the one the data choose (for the terminal and the report)."""
+        out = []
+        for f in self.reference_forms:
+            used, chosen = f["form_used"], f["form_chosen"]
+            declared = f.get("form_declared", used)
+            head = f"reference {f['from']} to {f['to']}"
+            if used != declared:
+                out.append(f"{head}: draws from the form the data choose, {used} (as "
+                           f"breakdown); the tracker carries the declared profile {declared} "
+                           "and the rest of that form's shape as a fixed offset")
+            elif chosen is None:
+                out.append(f"{head}: draws from the declared profile {declared} (which the "
+                           "tracker carries); the form the data choose could not be fitted")
+            elif chosen == declared:
+                out.append(f"{head}: draws from the declared profile {declared}, the form the "
+                           "data choose too")
+            else:
+                out.append(f"{head}: draws from the declared profile {declared} (which the "
+                           f"tracker carries); the data choose {chosen}")
+        return out
 
     def as_json(self) -> dict:
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
@@ -339,11 +370,14 @@ class ComparePeriod:
     baseload_row: str
     fit_quality: dict
     warnings: list[str]
+    baseload_form: str = ""  # the form the period's fit used (both periods use one)
+    form_preferred: str = ""  # the form the period's data prefer on their own
 
     def as_json(self) -> dict:
         return {"from": self.date_from, "to": self.date_to,
                 "intervals_used": self.intervals_used, "days": self.days,
                 "critical_value": self.critical_value, "baseload_row": self.baseload_row,
+                "baseload_form": self.baseload_form, "form_preferred": self.form_preferred,
                 "fit_quality": self.fit_quality, "warnings": self.warnings}
 
 
@@ -368,11 +402,16 @@ class CompareReport:
     equipment: list[dict]
     data_notes: list[str]
     caution: str
+    # The one baseload form both periods use, where it was chosen, each period's own
+    # preference and a note when the after period alone would differ
+    # (compare.baseload_form_of).
+    baseload_form: dict = field(default_factory=dict)
 
     def as_json(self) -> dict:
         return {"tool": self.tool, "site": self.site, "timezone": self.timezone,
                 "site_file": self.site_file, "confidence": self.confidence,
                 "min_change": self.min_change, "method": self.method, "groups": self.groups,
+                "baseload_form": self.baseload_form,
                 "periods": {"before": self.before.as_json(), "after": self.after.as_json()},
                 "equipment": self.equipment, "data_notes": self.data_notes,
                 "caution": self.caution}

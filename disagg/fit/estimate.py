@@ -98,6 +98,22 @@ COMPARE_MAX_ROWS = 6000
 
 
 @dataclass
+class WeatherFit:
+    """A draw that varies with outdoor temperature: draw at balance + slope x degrees beyond
+    balance (the three-parameter change-point form; ASHRAE Guideline 14 inverse models)."""
+
+    mode: str  # "cooling" (degrees above balance) or "heating" (below)
+    balance_temp_c: float
+    reference_temp_c: float  # where the term's kw is stated [degC]
+    kw_at_balance: float
+    slope_kw_per_degc: float
+    slope_se_kw_per_degc: float
+    # (2, 2) covariance of (draw at balance [kW], slope [kW/degC]), widened as much as the
+    # stability checks widened the draw's own interval.
+    cov: np.ndarray
+
+
+@dataclass
 class Estimates:
     """Fitted draws and everything the breakdown and fit.json need.
 
@@ -131,10 +147,9 @@ class Estimates:
     variants: dict
     warnings: list[str]
     # Weather terms: weather_hours (n_used, n_terms) hours x degrees beyond balance [h degC];
-    # weather: term index -> mode, balance and reference temperature [degC], draw at the
-    # balance point [kW], slope [kW/degC] and the (draw, slope) covariance "cov".
+    # weather: term index -> its WeatherFit.
     weather_hours: np.ndarray | None = None
-    weather: dict = field(default_factory=dict)
+    weather: dict[int, WeatherFit] = field(default_factory=dict)
     design_coef: np.ndarray | None = None  # the full coefficient vector [kW, kW/degC, kW]
     # The baseload form used and how the others compared (disagg.fit.select).
     form: FormChoice | None = None
@@ -232,7 +247,7 @@ class TermResults:
     se_jack: np.ndarray
     hours: np.ndarray
     weather_hours: np.ndarray
-    weather: dict[int, dict]
+    weather: dict[int, WeatherFit]
     warnings: list[str] = field(default_factory=list)
 
 
@@ -263,7 +278,7 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
     as_design = [t.column for t in terms] == list(range(k))
     hours = Hf if as_design else np.zeros((n, nt))
     weather_hours = np.zeros((n, nt))
-    weather_info: dict[int, dict] = {}
+    weather_info: dict[int, WeatherFit] = {}
     for i, t in enumerate(terms):
         if t.column is None:
             if t.prior_kw is not None:
@@ -338,11 +353,10 @@ def term_results(site: SiteConfig, rows: Rows, plan: TermPlan, s: Solved, iv: In
             kw[i] = coef[c] + coef[s_col] * d_ref
             kw_low[i], kw_high[i] = max(kw[i] - half_ref, 0.0), kw[i] + half_ref
             se_kw[i] = half_ref / q_hac
-            weather_info[i] = {"mode": mode, "balance_temp_c": balance_c,
-                               "reference_temp_c": t_ref, "kw_at_balance": float(coef[c]),
-                               "slope_kw_per_degc": float(coef[s_col]),
-                               "slope_se_kw_per_degc": float(np.sqrt(max(V2[1, 1], 0.0))),
-                               "cov": V2}
+            weather_info[i] = WeatherFit(
+                mode=mode, balance_temp_c=balance_c, reference_temp_c=t_ref,
+                kw_at_balance=float(coef[c]), slope_kw_per_degc=float(coef[s_col]),
+                slope_se_kw_per_degc=float(np.sqrt(max(V2[1, 1], 0.0))), cov=V2)
     return TermResults(kw=kw, kw_low=kw_low, kw_high=kw_high, se_kw=se_kw, se_hac=se_h,
                        se_jack=se_j, hours=hours, weather_hours=weather_hours,
                        weather=weather_info, warnings=warnings)

@@ -204,6 +204,7 @@ def drift_summary(result: DriftResult) -> str:
                      f"{'-' if change is None else f'{100 * change:+.1f} %':>8} "
                      f"{'-' if mem is None else f'{mem:.0f}':>9}  "
                      + (f"since {alarmed[eq].first_alarm_date}" if eq in alarmed else ""))
+    lines += [f"Baseload: {text}" for text in s.reference_forms_text()]
     for a in s.alarms:
         lines.append(f"Alarm: {a.equipment} from {a.first_alarm_date}: draw "
                      f"{100 * a.change:+.1f} % ({100 * a.change_low:+.1f} to "
@@ -243,6 +244,11 @@ def compare_summary(result: CompareResult) -> str:
                  f"least {100 * r.min_change:g} %; steady: two one-sided tests put the change "
                  f"inside +-{100 * r.min_change:g} %; unclear: the data cannot tell (why "
                  "below).")
+    f = r.baseload_form
+    if f:
+        lines.append(f"Baseload form: {f['used']} in both periods, {f['chosen']}")
+        if f["note"]:
+            lines.append(f"Note: {f['note']}")
     for d in r.equipment:
         if d.get("reference_temp_c") is not None:
             lines.append(f"{d['equipment']}: both draws at {d['reference_temp_c']:.1f} degC "

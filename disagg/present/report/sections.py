@@ -597,6 +597,12 @@ def _drift_section(drift: DriftResult | None, ch: _Charts, names: list[str],
               "together and cannot be told apart are tracked as their group A+B). "
               f"Rule: {e(s.rule)}; threshold "
               f"{_num(100 * s.threshold, 0)} %.</p>")]
+    forms = s.reference_forms_text()
+    if forms:
+        parts.append("<p>Baseload: " + e("; ".join(forms)) + ". Where the draws come from "
+                     "the declared profile and a load's draw differs under the form the data "
+                     "choose, a note below says so: its absolute level is uncertain, its "
+                     "changes are still tracked.</p>")
     alarms = s.alarms
     if alarms:
         parts.append(_list([f'<span class="alarm">Alarm: {e(a.equipment)}</span> from '
