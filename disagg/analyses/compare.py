@@ -27,7 +27,7 @@ from disagg.analyses.verdict import VERDICTS, change_verdict  # noqa: F401 - VER
 from disagg.errors import ConfigError, InputError
 from disagg.fit.align import BASELOAD_COLUMN_COUNT, Aligned
 from disagg.fit.estimate import Estimates, WeatherFit, estimate_draws
-from disagg.fit.select import FormChoice
+from disagg.fit.select import FormChoice, lowest
 from disagg.inputs.config import SiteConfig, parse_period  # noqa: F401 - part of this module's API
 
 COLUMNS = ["equipment", "kw_before", "kw_before_low", "kw_before_high", "kw_after",
@@ -303,9 +303,7 @@ def _period_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
 def preferred_form(choice: FormChoice) -> str:
     """The form a period's data prefer: the lowest criterion among the forms compared (ties
     to the form used), even where [baseload] form pins another."""
-    low = min(sc.criterion for sc in choice.scores)
-    tied = [sc.form.name for sc in choice.scores
-            if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
+    tied = [sc.form.name for sc in lowest(choice.scores)]
     return choice.form.name if choice.form.name in tied else tied[0]
 
 

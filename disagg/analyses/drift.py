@@ -228,9 +228,7 @@ def _fit_window(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
     Raises:
         InputError: too little usable data in the period.
     """
-    mask = (aligned.use & (local_day >= np.datetime64(window[0]))
-            & (local_day <= np.datetime64(window[1])))
-    ref_aligned = dataclasses.replace(aligned, use=mask)
+    ref_aligned = _window_aligned(aligned, local_day, window)
     require_usable(site, ref_aligned)
     try:
         # The tracker's design carries the declared profile's columns (no wandering level):
@@ -246,12 +244,18 @@ def _chosen_fit(site: SiteConfig, aligned: Aligned, local_day: np.ndarray,
                 window: tuple[dt.date, dt.date], confidence: float) -> Estimates | str:
     """The reference period fitted as breakdown fits it: the baseload form the data choose
     (or the one [baseload] form pins), with the wandering level when chosen; or why not."""
-    mask = (aligned.use & (local_day >= np.datetime64(window[0]))
-            & (local_day <= np.datetime64(window[1])))
     try:
-        return estimate_draws(site, dataclasses.replace(aligned, use=mask), confidence)
+        return estimate_draws(site, _window_aligned(aligned, local_day, window), confidence)
     except ValueError as exc:
         return str(exc)
+
+
+def _window_aligned(aligned: Aligned, local_day: np.ndarray,
+                    window: tuple[dt.date, dt.date]) -> Aligned:
+    """The aligned data with only the usable intervals on the window's local dates."""
+    return dataclasses.replace(aligned, use=aligned.use
+                               & (local_day >= np.datetime64(window[0]))
+                               & (local_day <= np.datetime64(window[1])))
 
 
 def reference_form_check(ref: Estimates, chosen: Estimates | str, i: int,

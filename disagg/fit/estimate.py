@@ -63,6 +63,7 @@ from disagg.fit.select import (
     Form,
     FormChoice,
     compare_forms,
+    lowest,
     overdispersion,
     score,
 )
@@ -494,9 +495,7 @@ def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, da
         best = match[0].form
     else:
         # Ties (to rounding) go to the declared profile, then to the simpler form.
-        low = min(sc.criterion for sc in scores)
-        tied = [sc for sc in scores if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
-        best = min(tied, key=lambda sc: (sc.form.profile != declared, sc.n_params)).form
+        best = min(lowest(scores), key=lambda sc: (sc.form.profile != declared, sc.n_params)).form
     return FormChoice(form=best, pinned=pinned, scores=scores, overdispersion=c,
                       from_range=isinstance(given, FormChoice))
 

@@ -360,3 +360,9 @@ def score(scores: list[FormScore], c: float, n: int) -> None:
     w /= w.sum()
     for s, cr, d, wt in zip(scores, crit, delta, w):
         s.criterion, s.delta, s.weight = float(cr), float(d), float(wt)
+
+
+def lowest(scores: list[FormScore]) -> list[FormScore]:
+    """The scored forms tied (to rounding) at the lowest criterion."""
+    low = min(sc.criterion for sc in scores)
+    return [sc for sc in scores if sc.criterion - low <= 1e-9 * max(abs(low), 1.0)]
