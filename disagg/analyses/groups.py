@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import dataclasses
 
-from disagg.fit.align import Aligned, frame_baseload
+from disagg.fit.align import Aligned
+from disagg.fit.design import BaseloadBuilder, rows_of
 from disagg.fit.estimate import inseparable
 from disagg.inputs.config import Prior, SiteConfig
 
@@ -24,10 +25,9 @@ def inseparable_groups(site: SiteConfig, aligned: Aligned) -> list[list[str]]:
     if not use.any():
         return []
     ids = aligned.equipment_ids
-    everything = bool(use.all())  # then no copy of a long series' hours
-    H = aligned.hours if everything else aligned.hours[use]
-    B, _ = frame_baseload(aligned, site.baseload, site.timezone)
-    sep = inseparable(H, B if everything else B[use])
+    rows = rows_of(aligned, site.timezone)  # every row used: no copy of a long series' hours
+    B, _ = BaseloadBuilder(site, rows).declared_columns()
+    sep = inseparable(rows.hours, B)
     parent = list(range(len(ids)))
 
     def find(i: int) -> int:

@@ -1,6 +1,8 @@
 """The one design builder: the intervals used, their baseload columns for any form, weather
 columns and the full design rows (term hours [h], weather slope columns [h degC], baseload
-columns [h]). estimate_draws (breakdown and compare) and drift build their designs here.
+columns [h]). estimate_draws (breakdown and compare) and drift build their designs here;
+the clock test, the inseparable groups and check take the declared profile's columns from
+BaseloadBuilder.declared_columns: every baseload column is made here.
 """
 
 from __future__ import annotations
@@ -149,6 +151,15 @@ class BaseloadBuilder:
         cols, names = frame_baseload(r.aligned, settings, r.tz)
         cols = cols if r.everything else cols[r.aligned.use]
         return (cols if sel is None else cols[sel]), names
+
+    def declared_columns(self, sel: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """The declared profile's own columns [h] and their names: its levels with its
+        closures (hour-of-week: 168 levels, and 24 for closed days when closures are declared),
+        no within-hour slopes and no edges. What the clock test, the inseparable groups and
+        check's inseparability use (columns(profile) adds the within-hour slopes for the
+        fits). Constant and occupied columns are the frame's, computed once per frame
+        (align.frame_baseload) and read only."""
+        return self._settings_cols(self.site.baseload, sel)
 
     def closure_column(self, sel: np.ndarray | None = None) -> np.ndarray:
         """The spell hours that the declared closure calendar removes [h]."""
