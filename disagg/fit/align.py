@@ -286,7 +286,9 @@ class _Shifted:
         self.exponent = exponent
         self.dur_ns = seg.end_ns - seg.start_ns
         self.weight = np.power(seg.value, exponent) if exponent != 1.0 else seg.value
-        self.cum_val = np.concatenate(([0.0], np.cumsum(self.weight * (self.dur_ns / NS_PER_H))))
+        dur_h = self.dur_ns / NS_PER_H
+        self.cum_val = np.concatenate(([0.0], np.cumsum(self.weight * dur_h)))
+        self.cum_cov = np.concatenate(([0.0], np.cumsum(dur_h)))
         n = len(seg.start_ns)
         # Without gaps between segments the log covers [first start, last end) exactly:
         # only intervals reaching outside it have unknown time.
@@ -304,6 +306,20 @@ class _Shifted:
         part_h = np.clip(t_ns - seg.start_ns[j], 0, self.dur_ns[j]) / NS_PER_H
         return np.where(inside, self.cum_val[j] + self.weight[j] * part_h, 0.0)
 
+    def _unknown(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """overlap_hours' unknown_h of intervals [a, b) > _UNKNOWN_TOL_H (its float sums)."""
+        seg = self.seg
+
+        def covered(t_ns: np.ndarray) -> np.ndarray:  # _cumulative's second result
+            idx = np.searchsorted(seg.start_ns, t_ns, side="right") - 1
+            inside = idx >= 0
+            j = np.where(inside, idx, 0)
+            part_h = np.clip(t_ns - seg.start_ns[j], 0, self.dur_ns[j]) / NS_PER_H
+            return np.where(inside, self.cum_cov[j] + part_h, 0.0)
+
+        unknown_h = np.maximum((b - a) / NS_PER_H - (covered(b) - covered(a)), 0.0)
+        return unknown_h > _UNKNOWN_TOL_H
+
     def hours(self, start_ns: np.ndarray, end_ns: np.ndarray,
               offset_ns: int) -> tuple[np.ndarray, np.ndarray]:
         """(run_h [h], unknown) of overlap_hours(moved segments, start_ns, end_ns,
@@ -319,16 +335,14 @@ class _Shifted:
         else:
             run_h = self._values(b) - self._values(a)
         if not self.gapless:
-            _, unknown_h = overlap_hours(seg, a, b, self.exponent)
-            return run_h, unknown_h > _UNKNOWN_TOL_H
+            return run_h, self._unknown(a, b)
         # Gapless: the unknown time is the part outside [first start, last end); it is zero
         # inside (overlap_hours' float sums are then below _UNKNOWN_TOL_H by orders of
-        # magnitude), and overlap_hours decides the few intervals that reach outside.
+        # magnitude); overlap_hours' sums (_unknown) decide the few that reach outside.
         out = (a < seg.start_ns[0]) | (b > seg.end_ns[-1])
         unknown = np.zeros(len(a), dtype=bool)
         if out.any():
-            _, unknown_h = overlap_hours(seg, a[out], b[out], self.exponent)
-            unknown[out] = unknown_h > _UNKNOWN_TOL_H
+            unknown[out] = self._unknown(a[out], b[out])
         return run_h, unknown
 
 
@@ -396,14 +410,18 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlog: RunLog, offsets_min: l
         covered += n_keep
         if wide:
             continue
-        rows = slice(lo, hi) if n_keep == hi - lo else lo + np.flatnonzero(keep)
+        kept = np.flatnonzero(keep)
+        # One run of rows (the usual: a moved log loses only the ends): slices, no copies.
+        run = n_keep == 0 or kept[-1] - kept[0] + 1 == n_keep
+        first = int(kept[0]) if n_keep else 0
+        rows = slice(lo + first, lo + first + n_keep) if run else lo + kept
         if everything:
             base_rows = base[rows]
         else:
             base_rows = base[at[rows]]
         Z0 = np.empty((n_keep, p + 1))
         Z0[:, :k] = aligned.hours[rows]
-        Zs = [Z0] + [Z if n_keep == hi - lo else Z[keep] for Z in moved]
+        Zs = [Z0] + [Z[first:first + n_keep] if run else Z[keep] for Z in moved]
         del moved
         for i, Z in enumerate(Zs):
             Z[:, k:p] = base_rows
