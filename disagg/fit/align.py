@@ -398,8 +398,10 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlog: RunLog, offsets_min: l
         hi = min(lo + CHUNK_ROWS, len(start_ns))
         keep = use[lo:hi].copy()
         moved = []
+        # Column-major rows: each load's hours written as one contiguous column (LAPACK
+        # factorises a column-major copy either way: the same R).
         for off in offsets_ns:
-            Z = None if wide else np.empty((hi - lo, p + 1))
+            Z = None if wide else np.empty((hi - lo, p + 1), order="F")
             for j, log in enumerate(logs):
                 run_h, unknown = log.hours(start_ns[lo:hi], end_ns[lo:hi], off)
                 keep &= ~unknown
@@ -419,7 +421,7 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlog: RunLog, offsets_min: l
             base_rows = base[rows]
         else:
             base_rows = base[at[rows]]
-        Z0 = np.empty((n_keep, p + 1))
+        Z0 = np.empty((n_keep, p + 1), order="F")
         Z0[:, :k] = aligned.hours[rows]
         Zs = [Z0] + [Z[first:first + n_keep] if run else Z[keep] for Z in moved]
         del moved
