@@ -64,6 +64,33 @@ def test_probe_rss_is_the_fit_of_each_aligned_log(site_file, monkeypatch, small_
     np.testing.assert_allclose(rss, expected, rtol=1e-9)
 
 
+@pytest.mark.parametrize("profile", ["constant", "occupied", "hour-of-week"])
+@pytest.mark.parametrize("closed", [False, True])
+@pytest.mark.parametrize("some_unused", [False, True])
+def test_declared_columns_without_rows_equal_the_builders(site_file, profile, closed,
+                                                           some_unused):
+    """BaseloadBuilder.declared (the clock test's, groups' and check's columns, made without
+    the fits' Rows) gives the builder's declared_columns bit for bit."""
+    import dataclasses
+
+    from disagg.inputs.config import BaseloadSettings, parse_spell
+
+    site, meter, log = _read(site_file)
+    spells = ("Mon-Fri 07:00-19:00",)
+    shut = (dt.date(2025, 5, 7),) if closed else ()
+    site = dataclasses.replace(site, baseload=BaseloadSettings(
+        profile, tuple(parse_spell(t) for t in spells), spells, shut))
+    aligned = align(site, meter, log)
+    if some_unused:
+        aligned.use = aligned.use & (np.arange(len(aligned.use)) % 5 != 1)
+    B, names = BaseloadBuilder.declared(site, aligned)
+    want, want_names = BaseloadBuilder(site, rows_of(aligned, site.timezone)).declared_columns()
+    assert names == want_names
+    np.testing.assert_array_equal(B, want)
+    assert B.shape == (int(aligned.use.sum()), {"constant": 1, "occupied": 2}.get(
+        profile, 168 + 24 * closed))
+
+
 @pytest.mark.parametrize("offset_min", [-3.0, 0.0, 3.0, 150.0, -150.0, 0.25])
 @pytest.mark.parametrize("gaps", [False, True])
 def test_moved_edges_give_the_hours_of_the_moved_log(site_file, offset_min, gaps):

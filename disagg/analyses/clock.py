@@ -23,7 +23,7 @@ import polars as pl
 
 from disagg.errors import InputError
 from disagg.fit.align import Aligned, align, probe_rss
-from disagg.fit.design import BaseloadBuilder, rows_of
+from disagg.fit.design import BaseloadBuilder
 from disagg.fit.solvers import solve_regularized
 from disagg.inputs.config import SiteConfig
 from disagg.inputs.readers import MeterData, RunLog, Segments
@@ -186,7 +186,7 @@ def estimate_log_offset(site: SiteConfig, meter: MeterData, runlog: RunLog,
     # every scored interval is one of them, offset 0 being on the grid. at[i]: interval i's
     # row among them.
     if first.use.any():
-        base, _ = BaseloadBuilder(site, rows_of(first, site.timezone)).declared_columns()
+        base, _ = BaseloadBuilder.declared(site, first)
     else:
         base = np.empty((0, 1))
     at = np.cumsum(first.use) - 1
@@ -351,7 +351,7 @@ def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
     Cheap in the usual case (clocks agree): the run's own alignment and the logs moved
     +-QUICK_PROBE_MIN (align.probe_rss: each load's hours at the moved interval edges) are
     scored on the intervals all three cover, with the declared profile's baseload columns
-    (design.BaseloadBuilder.declared_columns): three small NNLS fits. Only when a moved log
+    (design.BaseloadBuilder.declared): three small NNLS fits. Only when a moved log
     fits better does estimate_log_offset search +-QUICK_WINDOW_MIN.
 
     Args:
@@ -364,7 +364,7 @@ def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
     if not aligned.use.any():
         return None
     # The declared profile's columns of the intervals used, from the one design builder.
-    base, _ = BaseloadBuilder(site, rows_of(aligned, site.timezone)).declared_columns()
+    base, _ = BaseloadBuilder.declared(site, aligned)
     probes_min = [-QUICK_PROBE_MIN, QUICK_PROBE_MIN]
     # A chunk of rows at a time (no moved log's hours held whole: long 1-minute series).
     covered, rss = probe_rss(site, aligned, runlog, probes_min, base)

@@ -13,7 +13,7 @@ from __future__ import annotations
 import dataclasses
 
 from disagg.fit.align import Aligned
-from disagg.fit.design import BaseloadBuilder, rows_of
+from disagg.fit.design import BaseloadBuilder
 from disagg.fit.estimate import inseparable
 from disagg.inputs.config import Prior, SiteConfig
 
@@ -25,9 +25,10 @@ def inseparable_groups(site: SiteConfig, aligned: Aligned) -> list[list[str]]:
     if not use.any():
         return []
     ids = aligned.equipment_ids
-    rows = rows_of(aligned, site.timezone)  # every row used: no copy of a long series' hours
-    B, _ = BaseloadBuilder(site, rows).declared_columns()
-    sep = inseparable(rows.hours, B)
+    everything = bool(use.all())  # then no copy of a long series' hours
+    H = aligned.hours if everything else aligned.hours[use]
+    B, _ = BaseloadBuilder.declared(site, aligned)
+    sep = inseparable(H, B)
     parent = list(range(len(ids)))
 
     def find(i: int) -> int:

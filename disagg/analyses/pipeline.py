@@ -37,7 +37,7 @@ from disagg.fit.align import (
     align,
     frame_arrays,
 )
-from disagg.fit.design import BaseloadBuilder, rows_of
+from disagg.fit.design import BaseloadBuilder
 from disagg.fit.estimate import Estimates, estimate_draws, inseparable
 from disagg.fit.intervals import response_moved
 from disagg.inputs.config import SiteConfig, load_site
@@ -506,9 +506,8 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
                                              on_duplicate=on_duplicate)
     frame = aligned.frame
     require_usable(site, aligned)
-    rows = rows_of(aligned, site.timezone)
-    B, _ = BaseloadBuilder(site, rows).declared_columns()
-    H = rows.hours
+    B, _ = BaseloadBuilder.declared(site, aligned)
+    H = aligned.hours[aligned.use]
     run = H.sum(axis=0)
     ids = aligned.equipment_ids
     sep = inseparable(H, B)
