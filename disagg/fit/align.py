@@ -367,7 +367,8 @@ def frame_arrays(aligned: Aligned, tz: str) -> dict[str, np.ndarray]:
 
     start_ns, end_ns: interval edges [ns since epoch, UTC]; length_h: interval length [h];
     local_date: local calendar date of the start (days since 1970-01-01); hour_of_week: see
-    hour_of_week(); month: local year x 100 + month of the start.
+    hour_of_week(); minute_of_day: local hour x 60 + minute of the start; month: local year x
+    100 + month of the start.
     """
     key = ("arrays", tz)
     hit = aligned.cache.get(key)
@@ -382,6 +383,8 @@ def frame_arrays(aligned: Aligned, tz: str) -> dict[str, np.ndarray]:
         "local_date": local.dt.date().cast(pl.Int32).to_numpy(),
         "hour_of_week": ((local.dt.weekday().cast(pl.Int64) - 1) * 24
                          + local.dt.hour().cast(pl.Int64)).to_numpy(),
+        "minute_of_day": (local.dt.hour().cast(pl.Int64) * 60
+                          + local.dt.minute().cast(pl.Int64)).to_numpy(),
         "month": (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy(),
     }
     for v in arrays.values():

@@ -13,7 +13,6 @@ from collections.abc import Collection
 from dataclasses import dataclass, field
 
 import numpy as np
-import polars as pl
 from scipy.linalg import solveh_banded
 
 from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows, signed_columns
@@ -339,8 +338,8 @@ def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
     share of its switching there, in words."""
     coef, q_hac = hull.coef, jk.q_hac
     choice = s.choice
-    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.tz,
-                                     rows.frame["start_utc"])
+    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.minute_of_day,
+                                     rows.hour_of_week // 24)
     edge_rival = min((sc for sc in choice.scores if sc.form.profile.endswith("-edges")),
                      key=lambda sc: sc.criterion, default=None)
     edge_moves: dict[int, str] = {}
@@ -883,17 +882,17 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
                           np.sqrt(np.maximum(f.cov[k + idx, k + idx], 0.0)), z)
 
 
-def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
-                        start_utc: pl.Series) -> np.ndarray:
+def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings,
+                        minute: np.ndarray, weekday: np.ndarray) -> np.ndarray:
     """Share of each load's switching (its on-fraction changing by at least half an interval
     from one interval to the next) that happens within SCHEDULE_EDGE_MIN minutes of a
-    declared spell's start or end, on the days the spell applies; 0 without spells."""
+    declared spell's start or end, on the days the spell applies; 0 without spells.
+    minute, weekday: each interval's local start, hour x 60 + minute and day of the week
+    (0 = Monday), as align.frame_arrays makes them once per frame (the time zone's rules are
+    not applied again for every fit)."""
     k = H.shape[1]
     if not base.spells or len(interval_h) < 2 or k == 0:
         return np.zeros(k)
-    local = start_utc.dt.convert_time_zone(tz)
-    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
-    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
     near = np.zeros(len(minute), dtype=bool)
     for spell in base.spells:
         on_day = np.isin(weekday, spell.days)
