@@ -182,7 +182,9 @@ def _parse_offset_times(text: pl.Series) -> pl.Series | None:
     if not (text.str.len_bytes() == 25).all():
         return None
     fmt = f"%Y-%m-%d{first[10]}%H:%M:%S"
-    wall = text.str.slice(0, 19).str.to_datetime(fmt, strict=False, time_unit="us")
+    # Without polars' cache of parsed strings: a log's times are nearly all distinct, and
+    # hashing each one costs as much as parsing it (22 -> 12 ms on 320,000 rows).
+    wall = text.str.slice(0, 19).str.to_datetime(fmt, strict=False, time_unit="us", cache=False)
     if wall.null_count():
         return None
     offsets = text.str.slice(19)
