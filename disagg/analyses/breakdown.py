@@ -61,8 +61,12 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     at each interval's price plus the demand price x peak_kw; null without a tariff; see
     disagg.analyses.tariff).
     """
-    local = est.frame["start_utc"].dt.convert_time_zone(tz)
-    month = (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy()
+    if est.local_month is not None and est.local_month[0] == tz:
+        month = est.local_month[1]
+    else:
+        local = est.frame["start_utc"].dt.convert_time_zone(tz)
+        month = (local.dt.year().cast(pl.Int32) * 100
+                 + local.dt.month().cast(pl.Int32)).to_numpy()
     interval_h = est.frame["interval_h"].to_numpy()
     price = None
     if tariff is not None:
@@ -75,8 +79,10 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     weeks, week_of = (np.unique(est.week, return_inverse=True) if est.week is not None
                       else (np.zeros(1), np.zeros(len(month), dtype=np.int64)))
     week_of = week_of.reshape(-1)
+    # Each column summed in row order from zero, as np.add.at does (the same numbers).
     run_w = np.zeros((len(weeks), est.hours.shape[1]))
-    np.add.at(run_w, week_of, est.hours)
+    for j in range(est.hours.shape[1]):
+        run_w[:, j] = np.bincount(week_of, weights=est.hours[:, j], minlength=len(weeks))
     run_w2 = np.sum(run_w**2, axis=0)
     for code in np.unique(month):
         period = f"{code // 100:04d}-{code % 100:02d}"
