@@ -313,11 +313,18 @@ def installed_copy(folder: Path) -> Install | None:
     the module's docstring); None when pip cannot make it."""
     import sysconfig
 
-    target, venv = folder / "site", folder / "venv"
+    target, venv, src = folder / "site", folder / "venv", folder / "src"
+    # pip builds from a copy of what the package is made of, so the working tree gets no
+    # build/ folder (whose stale files a later build could pick up).
+    src.mkdir(parents=True)
+    for name in ("pyproject.toml", "README.md"):
+        shutil.copy2(HERE.parent / name, src / name)
+    shutil.copytree(HERE.parent / "disagg", src / "disagg",
+                    ignore=shutil.ignore_patterns("__pycache__"))
     try:
         subprocess.run([sys.executable, "-m", "pip", "install", "--quiet", "--no-deps",
-                        "--disable-pip-version-check", "--target", str(target),
-                        str(HERE.parent)], check=True, capture_output=True, timeout=600)
+                        "--disable-pip-version-check", "--target", str(target), str(src)],
+                       check=True, capture_output=True, timeout=600)
         subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(venv)], check=True,
                        capture_output=True, timeout=120)
     except (OSError, subprocess.SubprocessError):
@@ -333,8 +340,10 @@ def installed_copy(folder: Path) -> Install | None:
     exe.write_text(f"#!{python}\nimport sys\nfrom disagg.cli import main\n"
                    "if __name__ == '__main__':\n    sys.exit(main())\n")
     exe.chmod(0o755)
+    # From the install folder: `python -c` puts the working folder first on the path, and a
+    # checkout's own disagg there would be found instead.
     check = subprocess.run([str(python), "-c", "import disagg; print(disagg.__file__)"],
-                           capture_output=True, text=True)
+                           capture_output=True, text=True, cwd=folder)
     if check.returncode != 0 or not check.stdout.strip().startswith(str(target)):
         return None
     return Install(str(python), str(exe), "installed")
