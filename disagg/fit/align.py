@@ -267,7 +267,11 @@ def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]])
     parent = Hf if Hf.base is None else Hf.base
     if parent.size > SHARE_MAX_WIDENING * Hf.size:
         return False
-    if not all(np.array_equal(Hf[:, j], H[:, j]) for j in range(H.shape[1])):
+    # Hf laid over H's own memory (a design written into hours_buffer) holds its numbers.
+    same_memory = (Hf.__array_interface__["data"][0] == H.__array_interface__["data"][0]
+                   and Hf.strides == H.strides)
+    if not same_memory and not all(np.array_equal(Hf[:, j], H[:, j])
+                                   for j in range(H.shape[1])):
         return False
     view = Hf.view()
     view.flags.writeable = False
