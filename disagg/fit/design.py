@@ -205,7 +205,7 @@ class BaseloadBuilder:
             return np.zeros((ih.size, 0)), []
         starts = r.frame["start_utc"] if sel is None else r.frame["start_utc"].filter(
             pl.Series(sel))
-        local = starts.dt.convert_time_zone(r.tz)
+        local = starts.dt.convert_time_zone(r.tz).dt.replace_time_zone(None)  # wall clock
         hour = local.dt.hour().to_numpy().astype(np.int64)
         offset = (local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5
         cols = np.zeros((ih.size, 24))
@@ -240,7 +240,7 @@ class BaseloadBuilder:
             [f"{SLOPE_PREFIX}{h:02d}_kw_per_h" for h in range(24)] if slopes else [])
         hour = value = None
         if slopes:  # within_hour_slopes' one nonzero of each row
-            local = r.frame["start_utc"].dt.convert_time_zone(r.tz)
+            local = r.frame["start_utc"].dt.convert_time_zone(r.tz).dt.replace_time_zone(None)
             hour = local.dt.hour().to_numpy().astype(np.int64)
             value = ((local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5) * ih
         width = len(names)
