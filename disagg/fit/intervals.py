@@ -480,7 +480,8 @@ def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term]
         # The solver's rows are the whitened differences (s.Xs): whitening is column by
         # column, so only the new columns are whitened, with the same factor.
         band, _ = band_factor(rows.sp, s.choice.form.q)
-        R = whiten_columns(R / ih[:, None], band)
+        R /= ih[:, None]  # in place: R is not used in kWh again (no second n x 3k array)
+        R = whiten_columns(R, band)
     Xa = np.column_stack([s.Xs, R])
     del R
     mean = np.r_[s.p_mean, np.zeros(m)]
