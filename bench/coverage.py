@@ -14,7 +14,9 @@ Prints, for the well-specified and the misspecified building, how often each loa
 ramping around the schedule's edges, slow wander, a fan locked to the schedule), per
 scenario: the baseload forms chosen, each load's error over the whole range, the share of
 equipment-months whose 95 % kWh interval holds the true kWh and the intervals' median width
-relative to the true kWh. "Identifiable" rows are those without prior-driven or inseparable
+relative to the true kWh, overall and per load. SCENARIOS may also name "wander-weekly"
+(synthetic.WEEKLY_SCENARIO: the wander plus a chiller whose draw changes from week to week;
+not in the default five). "Identifiable" rows are those without prior-driven or inseparable
 flags (the locked fan LF-1 is neither identifiable nor meant to be).
 """
 
@@ -80,6 +82,7 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
     for scenario in scenarios:
         errs: dict[str, list[float]] = {}
         hits, hits_ident, widths, forms, secs = [], [], [], Counter(), []
+        by_load: dict[str, list[tuple[bool, float]]] = {}
         for seed in seeds:
             s = make_office(seed, scenario, days=days)
             t0 = time.perf_counter()
@@ -98,6 +101,7 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
                 ok = r["kwh_low"] <= truth <= r["kwh_high"]
                 hits.append(ok)
                 widths.append((r["kwh_high"] - r["kwh_low"]) / truth)
+                by_load.setdefault(r["equipment"], []).append((ok, widths[-1]))
                 ident = not any(f == "prior-driven" or f.startswith("inseparable")
                                 for f in flags.get(r["equipment"], []))
                 if ident:
@@ -112,6 +116,9 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
         print(f"  equipment-months covered: {np.mean(hits):.3f} of {len(hits)} "
               f"(identifiable rows {np.mean(hits_ident):.3f} of {len(hits_ident)}); "
               f"median relative width {np.median(widths):.3f}")
+        print("  per load, covered / median relative width: " + "; ".join(
+            f"{k} {np.mean([o for o, _ in v]):.3f} / {np.median([w for _, w in v]):.3f}"
+            for k, v in by_load.items()))
 
 
 if __name__ == "__main__":
