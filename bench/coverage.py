@@ -39,14 +39,20 @@ def main(n_seeds: int) -> None:
         rows: dict[str, list[tuple[bool, bool, float]]] = {}
         unstable = 0
         month_hits: list[bool] = []
+        month_widths: list[float] = []
+        forms: dict[str, int] = {}
         for seed in range(n_seeds):
             s = make_building(seed, misspecified=mis)
             e = estimate_draws(s.site, s.aligned)
+            forms[e.form.form.name] = forms.get(e.form.form.name, 0) + 1
             table, _ = monthly_fits(s.site, s.aligned, e, 0.95)
             for r in table.iter_rows(named=True):
                 key = (r["period"], r["equipment"])
                 if key in s.true_kwh_month and r["run_hours"] > 0:
-                    month_hits.append(r["kwh_low"] <= s.true_kwh_month[key] <= r["kwh_high"])
+                    truth = s.true_kwh_month[key]
+                    month_hits.append(r["kwh_low"] <= truth <= r["kwh_high"])
+                    if truth > 0:
+                        month_widths.append((r["kwh_high"] - r["kwh_low"]) / truth)
             for i, t in enumerate(e.terms):
                 truth = s.true_kw[t.id]
                 rows.setdefault(t.id, []).append(
@@ -55,7 +61,7 @@ def main(n_seeds: int) -> None:
                      float(e.kw_high[i] - e.kw_low[i])))
                 unstable += "unstable" in t.flags
         name = "misspecified" if mis else "well-specified"
-        print(f"\n{name}, {n_seeds} seeds")
+        print(f"\n{name}, {n_seeds} seeds; forms chosen {forms}")
         print(f"{'load':<6} {'coverage':>9} {'HAC only':>9} {'mean width kW':>14}")
         every = []
         for k, v in rows.items():
@@ -66,7 +72,8 @@ def main(n_seeds: int) -> None:
         print(f"{'all':<6} {a[:, 0].mean():>9.3f} {a[:, 1].mean():>9.3f}   unstable flags: "
               f"{unstable} of {len(every)}")
         print(f"monthly kWh rows (each month's own fit): {np.mean(month_hits):.3f} of "
-              f"{len(month_hits)} intervals hold the true monthly kWh")
+              f"{len(month_hits)} intervals hold the true monthly kWh; median relative width "
+              f"{np.median(month_widths):.3f}")
 
 
 def seed_range(text: str) -> range:
