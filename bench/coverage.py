@@ -14,7 +14,8 @@ Prints, for the well-specified and the misspecified building, how often each loa
 ramping around the schedule's edges, slow wander, a fan locked to the schedule), per
 scenario: the baseload forms chosen, each load's error over the whole range, the share of
 equipment-months whose 95 % kWh interval holds the true kWh and the intervals' median width
-relative to the true kWh, overall and per load. SCENARIOS may also name "wander-weekly"
+relative to the true kWh, overall and per load, and the same for every month taken from the
+whole range's draws (what a month too short for its own fit gets). SCENARIOS may also name "wander-weekly"
 (synthetic.WEEKLY_SCENARIO: the wander plus a chiller whose draw changes from week to week;
 not in the default five). "Identifiable" rows are those without prior-driven or inseparable
 flags (the locked fan LF-1 is neither identifiable nor meant to be).
@@ -29,6 +30,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 import numpy as np  # noqa: E402
 
+from disagg.analyses.breakdown import monthly_breakdown  # noqa: E402
 from disagg.fit.estimate import estimate_draws  # noqa: E402
 from disagg.analyses.pipeline import monthly_fits  # noqa: E402
 from synthetic import SCENARIOS, make_building, make_office  # noqa: E402
@@ -90,6 +92,7 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
         errs: dict[str, list[float]] = {}
         hits, hits_ident, widths, forms, secs = [], [], [], Counter(), []
         by_load: dict[str, list[tuple[bool, float]]] = {}
+        range_load: dict[str, list[tuple[bool, float]]] = {}
         for seed in seeds:
             s = make_office(seed, scenario, days=days)
             t0 = time.perf_counter()
@@ -98,6 +101,14 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
             secs.append(time.perf_counter() - t0)
             forms[e.form.form.name] += 1
             flags = {t.id: t.flags for t in e.terms}
+            # Every month from the whole range's draws (as a month too short for a fit of
+            # its own, or a one-month range): the case the between-week variance is for.
+            for r in monthly_breakdown(e, s.site.timezone).iter_rows(named=True):
+                truth = s.true_kwh_month.get((r["period"], r["equipment"]))
+                if truth and r["run_hours"]:
+                    range_load.setdefault(r["equipment"], []).append(
+                        (r["kwh_low"] <= truth <= r["kwh_high"],
+                         (r["kwh_high"] - r["kwh_low"]) / truth))
             for i, t in enumerate(e.terms):
                 errs.setdefault(t.id, []).append(e.kw[i] / s.true_kw[t.id] - 1.0)
             for r in table.iter_rows(named=True):
@@ -126,6 +137,11 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
         print("  per load, covered / median relative width: " + "; ".join(
             f"{k} {np.mean([o for o, _ in v]):.3f} / {np.median([w for _, w in v]):.3f}"
             for k, v in by_load.items()))
+        every = [x for v in range_load.values() for x in v]
+        print(f"  months from the range's draws: covered {np.mean([o for o, _ in every]):.3f}, "
+              f"median relative width {np.median([w for _, w in every]):.3f}; per load: "
+              + "; ".join(f"{k} {np.mean([o for o, _ in v]):.3f} / "
+                          f"{np.median([w for _, w in v]):.3f}" for k, v in range_load.items()))
 
 
 if __name__ == "__main__":
