@@ -15,9 +15,9 @@ ramping around the schedule's edges, slow wander, a fan locked to the schedule),
 scenario: the baseload forms chosen, each load's error over the whole range, the share of
 equipment-months whose 95 % kWh interval holds the true kWh and the intervals' median width
 relative to the true kWh, overall and per load, and the same for every month taken from the
-whole range's draws (what a month too short for its own fit gets). SCENARIOS may also name "wander-weekly"
-(synthetic.WEEKLY_SCENARIO: the wander plus a chiller whose draw changes from week to week;
-not in the default five). "Identifiable" rows are those without prior-driven or inseparable
+whole range's draws (what a month too short for its own fit gets). SCENARIOS may also
+name "wander-weekly" (synthetic.WEEKLY_SCENARIO: the wander plus a chiller whose draw
+changes from week to week; not in the default five). "Identifiable" rows are those without prior-driven or inseparable
 flags (the locked fan LF-1 is neither identifiable nor meant to be).
 """
 

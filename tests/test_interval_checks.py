@@ -18,7 +18,14 @@ from synthetic import TZ, aligned_15min, make_building, make_office
 
 from disagg.analyses.breakdown import monthly_breakdown
 from disagg.fit.estimate import estimate_draws
-from disagg.fit.intervals import FORM_SENSITIVE, Hull, Jackknife, between_week_variance, form_spread
+from disagg.fit.intervals import (
+    FORM_SENSITIVE,
+    Hull,
+    Jackknife,
+    between_week_variance,
+    form_spread,
+    level_smoother,
+)
 from disagg.fit.select import CREDIBLE_WEIGHT, Form, FormChoice, FormScore
 from disagg.fit.wander import Spacing, smooth_level
 
@@ -63,6 +70,18 @@ def _level_taken(n: int):
     q = 0.05): run-hours [h] -> the part of them such a level takes [h]."""
     sp = Spacing(h=np.full(n, 3.0), dt=np.full(n - 1, 3.0), h0=3.0)
     return lambda h: smooth_level(h / 3.0, sp, 0.05) * 3.0
+
+
+@pytest.mark.parametrize("q", [0.0, 1e-4, 0.01])
+def test_level_smoother_is_the_levels_smoother(q):
+    # intervals.level_smoother (factored once, for many columns) gives wander.smooth_level's
+    # numbers on irregular rows (intervals of 1 to 30 minutes, gaps).
+    rng = np.random.default_rng(3)
+    h = rng.choice([1 / 60, 0.25, 0.5], 3000)
+    sp = Spacing(h=h, dt=h[:-1] + rng.choice([0.0, 0.0, 2.0], 2999), h0=0.25)
+    for r in (rng.normal(0.0, 1.0, 3000), rng.uniform(0.0, 5.0, 3000)):
+        ref = smooth_level(r, sp, q)
+        assert np.max(np.abs(level_smoother(sp, q)(r) - ref)) <= 1e-9 * np.max(np.abs(ref))
 
 
 @pytest.mark.parametrize("level", [False, True])
