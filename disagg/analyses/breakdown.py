@@ -79,11 +79,12 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     weeks, week_of = (np.unique(est.week, return_inverse=True) if est.week is not None
                       else (np.zeros(1), np.zeros(len(month), dtype=np.int64)))
     week_of = week_of.reshape(-1)
-    # Each column summed in row order from zero, as np.add.at does (the same numbers).
-    run_w = np.zeros((len(weeks), est.hours.shape[1]))
-    for j in range(est.hours.shape[1]):
-        run_w[:, j] = np.bincount(week_of, weights=est.hours[:, j], minlength=len(weeks))
-    run_w2 = np.sum(run_w**2, axis=0)
+    # sq_w: each week's sum of squared run-hours [h^2], the weight the fitted draw gives the
+    # week's own draw (least squares: b = sum h y / sum h^2).
+    sq_w = np.column_stack([np.bincount(week_of, weights=est.hours[:, i] ** 2,
+                                        minlength=len(weeks))
+                            for i in range(est.hours.shape[1])]).reshape(len(weeks), -1)
+    sq = sq_w.sum(axis=0)
     for code in np.unique(month):
         period = f"{code // 100:04d}-{code % 100:02d}"
         rows: list[dict] = []
@@ -115,12 +116,14 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
                 kwh_lo, kwh_hi = lo * run_h, hi * run_h
                 tau2 = float(est.tau2_kw2[i]) if est.tau2_kw2 is not None else 0.0
                 if tau2 > 0 and run_h > 0:
-                    # The month's energy is sum_w draw_w x run_w; the fitted draw averages the
-                    # weeks about in proportion to run_w^2, so each week's own deviation
-                    # (variance tau^2) enters with c_w = run_mw - run_m run_w^2 / sum run_v^2.
+                    # The month's energy is sum_w draw_w x run_mw; the fitted draw averages the
+                    # weeks in proportion to sq_w, so each week's own deviation (variance
+                    # tau^2) enters with c_w = run_mw - run_m sq_w / sum sq_v (about 0 for a
+                    # month's own fit of an on-off load: it already weighs its weeks by
+                    # their run-hours).
                     run_mw = np.bincount(week_of[m], weights=est.hours[m, i],
                                          minlength=len(weeks))
-                    cw = run_mw - run_h * run_w[:, i] ** 2 / run_w2[i]
+                    cw = run_mw - run_h * sq_w[:, i] / sq[i]
                     extra = est.critical * float(np.sqrt(tau2 * np.sum(cw**2)))
                     kwh_lo = max(kwh - float(np.hypot(kwh - kwh_lo, extra)), 0.0)
                     kwh_hi = kwh + float(np.hypot(kwh_hi - kwh, extra))
