@@ -61,8 +61,12 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     at each interval's price plus the demand price x peak_kw; null without a tariff; see
     disagg.analyses.tariff).
     """
-    local = est.frame["start_utc"].dt.convert_time_zone(tz)
-    month = (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy()
+    if est.local_month is not None and est.local_month[0] == tz:
+        month = est.local_month[1]
+    else:
+        local = est.frame["start_utc"].dt.convert_time_zone(tz)
+        month = (local.dt.year().cast(pl.Int32) * 100
+                 + local.dt.month().cast(pl.Int32)).to_numpy()
     interval_h = est.frame["interval_h"].to_numpy()
     price = None
     if tariff is not None:

@@ -13,7 +13,6 @@ from collections.abc import Callable, Collection
 from dataclasses import dataclass, field
 
 import numpy as np
-import polars as pl
 from scipy.linalg import cho_solve_banded, cholesky_banded, solveh_banded
 
 from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows, signed_columns
@@ -339,8 +338,8 @@ def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
     share of its switching there, in words."""
     coef, q_hac = hull.coef, jk.q_hac
     choice = s.choice
-    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.tz,
-                                     rows.frame["start_utc"])
+    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.minute_of_day,
+                                     rows.hour_of_week // 24)
     edge_rival = min((sc for sc in choice.scores if sc.form.profile.endswith("-edges")),
                      key=lambda sc: sc.criterion, default=None)
     edge_moves: dict[int, str] = {}
@@ -481,7 +480,8 @@ def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term]
         # The solver's rows are the whitened differences (s.Xs): whitening is column by
         # column, so only the new columns are whitened, with the same factor.
         band, _ = band_factor(rows.sp, s.choice.form.q)
-        R = whiten_columns(R / ih[:, None], band)
+        R /= ih[:, None]  # in place: R is not used in kWh again (no second n x 3k array)
+        R = whiten_columns(R, band)
     Xa = np.column_stack([s.Xs, R])
     del R
     mean = np.r_[s.p_mean, np.zeros(m)]
@@ -625,6 +625,12 @@ def level_sum_variances(sp: Spacing, q: float, sigma2: float, X: np.ndarray, bas
             np.copyto(A[:, i], np.where(m, h, 0.0))
         if band is not None:
             xs = solveh_banded(band, A, check_finite=False)
+            # A month's x decays geometrically away from its rows and ends in subnormal
+            # numbers (a quarter of a 15-minute year's entries), on which every product below
+            # runs many times slower. Set to zero, they change no sum they enter: each term
+            # they give is under 1e-300, far below half a unit in the last place of the
+            # month's own terms (same bits on the golden cases, demo and bench sites).
+            xs[np.abs(xs) < _TINY] = 0.0
         for i, m in enumerate(group):
             a = A[:, i]
             if band is None:  # a constant level: the weighted mean of the residual kW
@@ -642,6 +648,8 @@ def level_sum_variances(sp: Spacing, q: float, sigma2: float, X: np.ndarray, bas
 
 # Numbers per block of right-hand sides of level_sum_variances (16 MB).
 _LEVEL_RHS_VALUES = 2**21
+# The smallest normal float64: below it, numbers are subnormal (see level_sum_variances).
+_TINY = float(np.finfo(np.float64).tiny)
 
 
 def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndarray:
@@ -918,17 +926,17 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
                           np.sqrt(np.maximum(f.cov[k + idx, k + idx], 0.0)), z)
 
 
-def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
-                        start_utc: pl.Series) -> np.ndarray:
+def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings,
+                        minute: np.ndarray, weekday: np.ndarray) -> np.ndarray:
     """Share of each load's switching (its on-fraction changing by at least half an interval
     from one interval to the next) that happens within SCHEDULE_EDGE_MIN minutes of a
-    declared spell's start or end, on the days the spell applies; 0 without spells."""
+    declared spell's start or end, on the days the spell applies; 0 without spells.
+    minute, weekday: each interval's local start, hour x 60 + minute and day of the week
+    (0 = Monday), as align.frame_arrays makes them once per frame (the time zone's rules are
+    not applied again for every fit)."""
     k = H.shape[1]
     if not base.spells or len(interval_h) < 2 or k == 0:
         return np.zeros(k)
-    local = start_utc.dt.convert_time_zone(tz)
-    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
-    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
     near = np.zeros(len(minute), dtype=bool)
     for spell in base.spells:
         on_day = np.isin(weekday, spell.days)
