@@ -81,9 +81,9 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     week_of = week_of.reshape(-1)
     # sq_w: each week's sum of squared run-hours [h^2], the weight the fitted draw gives the
     # week's own draw (least squares: b = sum h y / sum h^2).
-    sq_w = np.column_stack([np.bincount(week_of, weights=est.hours[:, i] ** 2,
-                                        minlength=len(weeks))
-                            for i in range(est.hours.shape[1])]).reshape(len(weeks), -1)
+    sq_w = np.zeros((len(weeks), est.hours.shape[1]))  # (no column: a fit without loads)
+    for i in range(est.hours.shape[1]):
+        sq_w[:, i] = np.bincount(week_of, weights=est.hours[:, i] ** 2, minlength=len(weeks))
     sq = sq_w.sum(axis=0)
     for code in np.unique(month):
         period = f"{code // 100:04d}-{code % 100:02d}"
