@@ -14,7 +14,10 @@ Prints, for the well-specified and the misspecified building, how often each loa
 ramping around the schedule's edges, slow wander, a fan locked to the schedule), per
 scenario: the baseload forms chosen, each load's error over the whole range, the share of
 equipment-months whose 95 % kWh interval holds the true kWh and the intervals' median width
-relative to the true kWh. "Identifiable" rows are those without prior-driven or inseparable
+relative to the true kWh, overall and per load, and the same for every month taken from the
+whole range's draws (what a month too short for its own fit gets). SCENARIOS may also
+name "wander-weekly" (synthetic.WEEKLY_SCENARIO: the wander plus a chiller whose draw
+changes from week to week; not in the default five). "Identifiable" rows are those without prior-driven or inseparable
 flags (the locked fan LF-1 is neither identifiable nor meant to be).
 """
 
@@ -27,6 +30,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 import numpy as np  # noqa: E402
 
+from disagg.analyses.breakdown import monthly_breakdown  # noqa: E402
 from disagg.fit.estimate import estimate_draws  # noqa: E402
 from disagg.analyses.pipeline import monthly_fits  # noqa: E402
 from synthetic import SCENARIOS, make_building, make_office  # noqa: E402
@@ -37,14 +41,20 @@ def main(n_seeds: int) -> None:
         rows: dict[str, list[tuple[bool, bool, float]]] = {}
         unstable = 0
         month_hits: list[bool] = []
+        month_widths: list[float] = []
+        forms: dict[str, int] = {}
         for seed in range(n_seeds):
             s = make_building(seed, misspecified=mis)
             e = estimate_draws(s.site, s.aligned)
+            forms[e.form.form.name] = forms.get(e.form.form.name, 0) + 1
             table, _ = monthly_fits(s.site, s.aligned, e, 0.95)
             for r in table.iter_rows(named=True):
                 key = (r["period"], r["equipment"])
                 if key in s.true_kwh_month and r["run_hours"] > 0:
-                    month_hits.append(r["kwh_low"] <= s.true_kwh_month[key] <= r["kwh_high"])
+                    truth = s.true_kwh_month[key]
+                    month_hits.append(r["kwh_low"] <= truth <= r["kwh_high"])
+                    if truth > 0:
+                        month_widths.append((r["kwh_high"] - r["kwh_low"]) / truth)
             for i, t in enumerate(e.terms):
                 truth = s.true_kw[t.id]
                 rows.setdefault(t.id, []).append(
@@ -53,7 +63,7 @@ def main(n_seeds: int) -> None:
                      float(e.kw_high[i] - e.kw_low[i])))
                 unstable += "unstable" in t.flags
         name = "misspecified" if mis else "well-specified"
-        print(f"\n{name}, {n_seeds} seeds")
+        print(f"\n{name}, {n_seeds} seeds; forms chosen {forms}")
         print(f"{'load':<6} {'coverage':>9} {'HAC only':>9} {'mean width kW':>14}")
         every = []
         for k, v in rows.items():
@@ -64,7 +74,8 @@ def main(n_seeds: int) -> None:
         print(f"{'all':<6} {a[:, 0].mean():>9.3f} {a[:, 1].mean():>9.3f}   unstable flags: "
               f"{unstable} of {len(every)}")
         print(f"monthly kWh rows (each month's own fit): {np.mean(month_hits):.3f} of "
-              f"{len(month_hits)} intervals hold the true monthly kWh")
+              f"{len(month_hits)} intervals hold the true monthly kWh; median relative width "
+              f"{np.median(month_widths):.3f}")
 
 
 def seed_range(text: str) -> range:
@@ -80,6 +91,8 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
     for scenario in scenarios:
         errs: dict[str, list[float]] = {}
         hits, hits_ident, widths, forms, secs = [], [], [], Counter(), []
+        by_load: dict[str, list[tuple[bool, float]]] = {}
+        range_load: dict[str, list[tuple[bool, float]]] = {}
         for seed in seeds:
             s = make_office(seed, scenario, days=days)
             t0 = time.perf_counter()
@@ -88,6 +101,14 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
             secs.append(time.perf_counter() - t0)
             forms[e.form.form.name] += 1
             flags = {t.id: t.flags for t in e.terms}
+            # Every month from the whole range's draws (as a month too short for a fit of
+            # its own, or a one-month range): the case the between-week variance is for.
+            for r in monthly_breakdown(e, s.site.timezone).iter_rows(named=True):
+                truth = s.true_kwh_month.get((r["period"], r["equipment"]))
+                if truth and r["run_hours"]:
+                    range_load.setdefault(r["equipment"], []).append(
+                        (r["kwh_low"] <= truth <= r["kwh_high"],
+                         (r["kwh_high"] - r["kwh_low"]) / truth))
             for i, t in enumerate(e.terms):
                 errs.setdefault(t.id, []).append(e.kw[i] / s.true_kw[t.id] - 1.0)
             for r in table.iter_rows(named=True):
@@ -98,6 +119,7 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
                 ok = r["kwh_low"] <= truth <= r["kwh_high"]
                 hits.append(ok)
                 widths.append((r["kwh_high"] - r["kwh_low"]) / truth)
+                by_load.setdefault(r["equipment"], []).append((ok, widths[-1]))
                 ident = not any(f == "prior-driven" or f.startswith("inseparable")
                                 for f in flags.get(r["equipment"], []))
                 if ident:
@@ -112,6 +134,14 @@ def office(seeds: range, days: int, scenarios: tuple[str, ...]) -> None:
         print(f"  equipment-months covered: {np.mean(hits):.3f} of {len(hits)} "
               f"(identifiable rows {np.mean(hits_ident):.3f} of {len(hits_ident)}); "
               f"median relative width {np.median(widths):.3f}")
+        print("  per load, covered / median relative width: " + "; ".join(
+            f"{k} {np.mean([o for o, _ in v]):.3f} / {np.median([w for _, w in v]):.3f}"
+            for k, v in by_load.items()))
+        every = [x for v in range_load.values() for x in v]
+        print(f"  months from the range's draws: covered {np.mean([o for o, _ in every]):.3f}, "
+              f"median relative width {np.median([w for _, w in every]):.3f}; per load: "
+              + "; ".join(f"{k} {np.mean([o for o, _ in v]):.3f} / "
+                          f"{np.median([w for _, w in v]):.3f}" for k, v in range_load.items()))
 
 
 if __name__ == "__main__":

@@ -29,12 +29,23 @@ loads, then measures, and writes the table to bench/RESULTS.md (replaced on ever
 Every wall time is next to the 1-minute load average when it was taken: the machine may be
 shared, and other work inflates wall times but hardly CPU times.
 
+Installed copy: the README installs disagg with `pip install .`, so the timed `disagg` is a
+normal (non-editable) install of the working tree: `pip install --no-deps --target` into a
+temporary folder (pip builds the wheel and compiles the modules, as for a user), run by a
+temporary venv (`python -m venv --without-pip`) whose one .pth file puts that folder and then
+this environment's site-packages on the path (for numpy, polars, scipy, typer; their own .pth
+files, such as an editable install's finder, are not run). The editable install of the source
+tree this script runs from pays its import finder on every start (about 0.025 s): its
+breakdown is timed too, taken in turn with the installed copy's, and reported beside it. When
+the copy cannot be made (pip fails, say without the build backend), everything is timed on
+the editable install and the results say so.
+
 Bytecode: `pip install .` compiles a package's modules when it installs them, so an installed
 disagg (like pandas and statsmodels beside it) starts from compiled bytecode. From a source
 tree (an editable install) with PYTHONDONTWRITEBYTECODE=1 set, every process would compile
-disagg's modules again (about 0.1 s, not what a user's install does): the benchmark compiles
-them first (compileall, as pip does; the __pycache__ folders it made are removed at the end)
-and reports start-up both ways.
+disagg's modules again (about 0.1 s, not what a user's install does): for the editable runs
+the benchmark compiles them first (compileall, as pip does; the __pycache__ folders it made
+are removed at the end) and reports start-up both ways.
 
 --quick: 3 sites (the default is 8). --keep DIR: generate into DIR and keep the files.
 """
@@ -56,6 +67,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -259,29 +271,82 @@ def compile_disagg() -> list[Path]:
     return sorted(set(package.rglob("__pycache__")) - before)
 
 
-def startups(n: int = 5) -> tuple[tuple[float, float], tuple[float, float]]:
-    """Median wall and CPU time [s] of a process that imports what a breakdown imports:
-    with disagg's bytecode, and without it (a copy of the package without __pycache__
-    first on the path, PYTHONDONTWRITEBYTECODE=1: every process compiles disagg's modules);
-    the two kinds taken in turn, so both see the same load."""
-    runs: dict[bool, list[dict]] = {True: [], False: []}
+def startups(installed: Install | None, n: int = 5) -> dict[str, tuple[float, float]]:
+    """Median wall and CPU time [s] of a process that imports what a breakdown imports, by
+    kind: "installed" (the installed copy, when made), "editable" (this environment, with
+    disagg's bytecode) and "source" (a copy of the package without __pycache__ first on the
+    path, PYTHONDONTWRITEBYTECODE=1: every process compiles disagg's modules); the kinds
+    taken in turn, so all see the same load."""
     # Run from an empty folder: `python -c` puts the working folder first on the path, and
     # a checkout's own disagg there would be imported instead of the one meant.
     with tempfile.TemporaryDirectory() as src, tempfile.TemporaryDirectory() as here:
         shutil.copytree(disagg_package(), Path(src) / "disagg",
                         ignore=shutil.ignore_patterns("__pycache__"))
+        kinds = {"editable": (sys.executable, None),
+                 "source": (sys.executable, {"PYTHONPATH": src, "PYTHONDONTWRITEBYTECODE": "1"})}
+        if installed is not None:
+            kinds = {"installed": (installed.python, None), **kinds}
+        runs: dict[str, list[dict]] = {k: [] for k in kinds}
         for _ in range(n):
-            for compiled in (True, False):
-                env = None if compiled else {"PYTHONPATH": src, "PYTHONDONTWRITEBYTECODE": "1"}
-                runs[compiled].append(run([sys.executable, "-c", STARTUP_IMPORTS], env, here))
+            for kind, (python, env) in kinds.items():
+                runs[kind].append(run([python, "-c", STARTUP_IMPORTS], env, here))
     med = statistics.median
-    return tuple((med(r["wall_s"] for r in runs[c]), med(r["cpu_s"] for r in runs[c]))
-                 for c in (True, False))  # type: ignore[return-value]
+    return {k: (med(r["wall_s"] for r in v), med(r["cpu_s"] for r in v)) for k, v in runs.items()}
 
 
 def disagg_exe() -> str:
     exe = Path(sys.executable).with_name("disagg")
     return str(exe) if exe.exists() else (shutil.which("disagg") or "disagg")
+
+
+@dataclass
+class Install:
+    """A way to run disagg: its interpreter and its `disagg` command, and what it is."""
+
+    python: str
+    exe: str
+    kind: str
+
+
+def installed_copy(folder: Path) -> Install | None:
+    """A normal (non-editable) install of the working tree, as `pip install .` makes it (see
+    the module's docstring); None when pip cannot make it."""
+    import sysconfig
+
+    target, venv, src = folder / "site", folder / "venv", folder / "src"
+    # pip builds from a copy of what the package is made of, so the working tree gets no
+    # build/ folder (whose stale files a later build could pick up).
+    src.mkdir(parents=True)
+    for name in ("pyproject.toml", "README.md"):
+        shutil.copy2(HERE.parent / name, src / name)
+    shutil.copytree(HERE.parent / "disagg", src / "disagg",
+                    ignore=shutil.ignore_patterns("__pycache__"))
+    try:
+        subprocess.run([sys.executable, "-m", "pip", "install", "--quiet", "--no-deps",
+                        "--disable-pip-version-check", "--target", str(target), str(src)],
+                       check=True, capture_output=True, timeout=600)
+        subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(venv)], check=True,
+                       capture_output=True, timeout=120)
+    except (OSError, subprocess.SubprocessError):
+        return None
+    python = venv / "bin" / "python"
+    purelib = subprocess.run([str(python), "-c", "import sysconfig; "
+                              "print(sysconfig.get_paths()['purelib'])"], check=True,
+                             capture_output=True, text=True).stdout.strip()
+    here = dict.fromkeys([sysconfig.get_paths()["purelib"], sysconfig.get_paths()["platlib"]])
+    Path(purelib, "disagg_bench.pth").write_text("\n".join([str(target), *here]) + "\n")
+    # The console script pip writes for [project.scripts] disagg = "disagg.cli:main".
+    exe = venv / "bin" / "disagg"
+    exe.write_text(f"#!{python}\nimport sys\nfrom disagg.cli import main\n"
+                   "if __name__ == '__main__':\n    sys.exit(main())\n")
+    exe.chmod(0o755)
+    # From the install folder: `python -c` puts the working folder first on the path, and a
+    # checkout's own disagg there would be found instead.
+    check = subprocess.run([str(python), "-c", "import disagg; print(disagg.__file__)"],
+                           capture_output=True, text=True, cwd=folder)
+    if check.returncode != 0 or not check.stdout.strip().startswith(str(target)):
+        return None
+    return Install(str(python), str(exe), "installed")
 
 
 def child_json(args: list[str]) -> tuple[dict, dict]:
@@ -380,10 +445,18 @@ def main() -> None:
     portfolio = work / "portfolio"
     sites = [make_site(portfolio, i) for i in range(n_sites)]
     big = make_site(work / "one_minute", 0, interval_min=1, n_equipment=50)
-    exe = disagg_exe()
-    print("disagg compiled to bytecode (compileall), as pip install does", flush=True)
+    print("disagg installed from the working tree (pip install --no-deps --target, a "
+          "temporary venv)", flush=True)
+    installed = installed_copy(work / "install")
+    editable = Install(sys.executable, disagg_exe(), "editable")
+    if installed is None:
+        print("  could not install a copy: every figure is the editable install's", flush=True)
+    main_install = installed or editable
+    exe = main_install.exe
+    print("the editable install's disagg compiled to bytecode (compileall), as pip install does",
+          flush=True)
     made = compile_disagg()
-    R: dict = {"info": info, "sites": n_sites,
+    R: dict = {"info": info, "sites": n_sites, "install": main_install.kind,
                "event_rows": statistics.median(s.event_rows for s in sites),
                "big_event_rows": big.event_rows, "big_intervals": big.intervals}
 
@@ -391,15 +464,20 @@ def main() -> None:
     # kernel's write-back of them would otherwise land in the first timed runs. One
     # untimed run of each program first (as for the steps, which are the better of two).
     os.sync()
-    print("disagg breakdown, one fresh process per site (after one untimed run)", flush=True)
-    run([exe, "breakdown", str(sites[0].toml), "--out", str(work / "out_warm")])
-    e2e, d_err, d_err_month = [], [], []
-    for s in sites:
+    print("disagg breakdown, one fresh process per site (after one untimed run), the "
+          "installed copy and the editable install in turn", flush=True)
+    both = [main_install] + ([editable] if installed is not None else [])
+    for inst in both:
+        run([inst.exe, "breakdown", str(sites[0].toml), "--out", str(work / "out_warm")])
+    e2e, e2e_editable, d_err, d_err_month = [], [], [], []
+    for i, s in enumerate(sites):
         out = work / "out" / s.toml.stem
-        r = run([exe, "breakdown", str(s.toml), "--out", str(out)])
-        if not r["ok"]:
-            raise RuntimeError(f"breakdown {s.toml}: {r['stderr']}")
-        e2e.append(r)
+        for inst in (both if i % 2 == 0 else both[::-1]):
+            r = run([inst.exe, "breakdown", str(s.toml), "--out",
+                     str(out if inst is main_install else work / "out_editable" / s.toml.stem)])
+            if not r["ok"]:
+                raise RuntimeError(f"breakdown {s.toml} ({inst.kind}): {r['stderr']}")
+            (e2e if inst is main_install else e2e_editable).append(r)
         whole, months = disagg_draws(out / "fit.json")
         d_err += draw_errors(whole, s.draw_kw)
         for m in months.values():
@@ -408,6 +486,8 @@ def main() -> None:
     R["e2e_cpu"] = [r["cpu_s"] for r in e2e]
     R["e2e_load"] = os.getloadavg()[0]
     R["e2e_rss"] = [r["rss_mb"] for r in e2e]
+    R["e2e_editable_wall"] = [r["wall_s"] for r in e2e_editable]
+    R["e2e_editable_cpu"] = [r["cpu_s"] for r in e2e_editable]
 
     print("steps alone, one fresh process per site", flush=True)
     st = [child_json(["--stages", str(s.toml)])[0] for s in sites]
@@ -441,7 +521,9 @@ def main() -> None:
     R["big_load"] = os.getloadavg()[0]
 
     print("start-up: a process that only imports what a breakdown imports", flush=True)
-    (R["startup"], R["startup_cpu"]), R["startup_src"] = startups()
+    ups = startups(installed)
+    R["startup"], R["startup_cpu"] = ups[main_install.kind]
+    R["startup_editable"], R["startup_src"] = ups["editable"], ups["source"]
     R["startup_load"] = os.getloadavg()[0]
 
     def batch(folder: Path, workers: int, name: str) -> dict:
@@ -509,14 +591,32 @@ def write_results(R: dict) -> None:
             return "-"
         return f"mean {100 * statistics.fmean(errs):.2f} %, max {100 * max(errs):.2f} %"
 
+    how = ("installed copy: pip install of the working tree" if R["install"] == "installed"
+           else "editable install: no installed copy could be made")
+    editable_rows = []
+    if R.get("e2e_editable_wall"):
+        ew, ec = R["e2e_editable_wall"], R["e2e_editable_cpu"]
+        editable_rows = [
+            ("the same from the editable install (`pip install -e`; its import finder runs at "
+             "every start), taken in turn with the row above [s per site-year]",
+             (f"{fmt(med(ew))} (median of {len(ew)}; min {fmt(min(ew))}); CPU "
+              f"{fmt(med(ec))}"), "", "")]
+    startup_rows = []
+    if R["install"] == "installed":
+        startup_rows = [
+            ("process start-up and imports, editable install (disagg's bytecode compiled) [s]",
+             (f"{fmt(R['startup_editable'][0], 3)}; CPU "
+              f"{fmt(R['startup_editable'][1], 3)}"), "", "")]
     rows = [
-        ("`disagg breakdown` end-to-end, fresh process [s per site-year]",
+        (f"`disagg breakdown` end-to-end, fresh process ({how}) [s per site-year]",
          (f"{fmt(e2e)} (median of {n}; min {fmt(min(R['e2e_wall']))}, max "
          f"{fmt(max(R['e2e_wall']))}; load {R['e2e_load']:.2f}); CPU {fmt(e2e_cpu)}"),
          f"< {TARGET_SITE_S}", verdict(e2e < TARGET_SITE_S)),
-        ("process start-up and imports (median of 5) [s]",
+        *editable_rows,
+        (f"process start-up and imports ({R['install']}; median of 5) [s]",
          (f"{fmt(R['startup'], 3)} (load {R['startup_load']:.2f}); CPU "
           f"{fmt(R['startup_cpu'], 3)}"), "", ""),
+        *startup_rows,
         ("process start-up and imports without disagg's bytecode (each process compiles "
          "disagg's modules: a source tree under PYTHONDONTWRITEBYTECODE=1; taken in turn "
          "with the row above) [s]",
@@ -618,9 +718,14 @@ def write_results(R: dict) -> None:
          "and on each month (13 fits; a month reuses the range's choice and noise ratio), "
          "each with a Newey-West covariance and a 10-block jackknife; a static form also gets "
          "the hour-of-week and per-day baseload refits. CPU times are the process's user + "
-         "system time: on a shared machine they change much less than wall times. Every "
-         "process starts from compiled bytecode, as after `pip install` (disagg's modules "
-         "compiled first with compileall; pandas and statsmodels came compiled)."),
+         "system time: on a shared machine they change much less than wall times. The timed "
+         "`disagg` is, unless the first row says otherwise, a normal install of the working "
+         "tree as the README's `pip install .` makes it (`pip install --no-deps --target` into "
+         "a temporary folder, run by a temporary venv that finds the dependencies in the "
+         "benchmark's environment); the editable install's figures are beside it. Every "
+         "process starts from compiled bytecode, as after `pip install` (pip compiles the "
+         "installed copy; the editable install's modules are compiled first with compileall; "
+         "pandas and statsmodels came compiled)."),
         "",
         (f"Slowest step of a breakdown: {slowest} ({fmt(steps[slowest], 3)} s of "
          f"{fmt(e2e)} s). Batch figures are the better of two runs (load average "

@@ -171,6 +171,10 @@ OFFICE_DRAWS = {"CH-1": 55.0, "WH-1": 12.0, "VF-1": 15.0, "AHU-1": 22.0, "AP-1":
                 "LF-1": 6.0}
 # Scenarios: what the unlogged baseload does besides its declared occupied step.
 SCENARIOS = ("step", "swing", "ramps", "wander", "all")
+# Not among SCENARIOS (an extra case for the between-week variance, issue 10 item 3):
+# "wander" plus a chiller whose draw differs from one local week to the next.
+WEEKLY_SCENARIO = "wander-weekly"
+WEEKLY_LOAD, WEEKLY_SD_SHARE = "CH-1", 0.15
 
 
 def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: float = 0.6,
@@ -189,7 +193,10 @@ def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: fl
     at 15:00; "ramps" lights (+12 kW) ramping up linearly 06:00-08:00 and down 17:00-19:00 on
     working days instead of stepping with the schedule; "wander" a slow random walk (sd
     0.8 kW per day, smooth within the day); "all" all three; "step" none (the declared
-    profile is exactly right). Meter noise: AR(1), rho 0.6, sd noise_kwh per interval.
+    profile is exactly right); "wander-weekly" (WEEKLY_SCENARIO) the wander, and CH-1's draw
+    times (1 + N(0, 0.15)) drawn afresh for each local Monday-start week (a draw that
+    really varies from week to week while the wandering level is chosen). Meter noise:
+    AR(1), rho 0.6, sd noise_kwh per interval.
     """
     rng = np.random.default_rng(seed)
     n = days * 96
@@ -228,12 +235,19 @@ def make_office(seed: int, scenario: str = "all", days: int = 364, noise_kwh: fl
         up = np.clip((mid - 6) / 2, 0, 1)
         down = np.clip((19 - mid) / 2, 0, 1)
         base = base + 12.0 * work * np.minimum(up, down)
-    if scenario in ("wander", "all"):
+    if scenario in ("wander", "all", WEEKLY_SCENARIO):
         daily = np.cumsum(rng.normal(0, 0.8, day.max() + 2))
         pos = day + mid / 24
         walk = np.interp(pos, np.arange(len(daily)), daily)
         base = base + walk - walk.mean()
     energy = {k: OFFICE_DRAWS[k] * s * 0.25 for k, s in status.items()}
+    if scenario == WEEKLY_SCENARIO:
+        # Its own generator, so the other scenarios' draws are unchanged.
+        local_day = local.dt.date().to_numpy().astype("datetime64[D]").astype(np.int64)
+        _, week = np.unique((local_day + 3) // 7, return_inverse=True)  # Monday-start
+        factor = 1.0 + np.random.default_rng(10_000 + seed).normal(
+            0.0, WEEKLY_SD_SHARE, week.max() + 1)
+        energy[WEEKLY_LOAD] = energy[WEEKLY_LOAD] * factor[week]
     shocks = rng.normal(0, noise_kwh * np.sqrt(1 - 0.36), n)
     e = np.zeros(n)
     for i in range(1, n):

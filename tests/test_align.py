@@ -364,3 +364,28 @@ def test_baseload_hour_of_week_on_dst_sundays(monday, hour_of_week, hours):
     assert totals[hour_of_week] == pytest.approx(hours, abs=TOL_H)
     others = np.delete(totals, hour_of_week)
     np.testing.assert_allclose(others, 1.0, atol=TOL_H)
+
+
+@pytest.mark.parametrize("tz", ["America/Chicago", "Asia/Kolkata", "Australia/Lord_Howe"])
+def test_frame_arrays_local_fields_match_the_standard_library(tz):
+    """frame_arrays' local date, hour of the week, minute of the day and month of each
+    interval start, against Python's zoneinfo (the IANA rules, standard library) over a year
+    of 15-minute intervals: the clock changes of Chicago (1 h), Lord Howe (30 min) and a
+    half-hour offset without any (Kolkata)."""
+    from disagg.fit.align import Aligned, frame_arrays
+
+    starts = pl.datetime_range(dt.datetime(2025, 1, 1, tzinfo=dt.UTC),
+                               dt.datetime(2025, 12, 31, 23, 45, tzinfo=dt.UTC), "15m",
+                               time_unit="us", eager=True)
+    frame = pl.DataFrame({"start_utc": starts,
+                          "end_utc": starts + dt.timedelta(minutes=15),
+                          "energy_kwh": np.ones(len(starts)), "interval_h": 0.25})
+    aligned = Aligned(frame=frame, equipment_ids=[], hours=np.zeros((len(starts), 0)),
+                      use=np.ones(len(starts), dtype=bool), interval_min=15)
+    a = frame_arrays(aligned, tz)
+    zone = ZoneInfo(tz)
+    local = [t.astimezone(zone) for t in starts.to_list()]
+    assert a["local_date"].tolist() == [(t.date() - dt.date(1970, 1, 1)).days for t in local]
+    assert a["hour_of_week"].tolist() == [t.weekday() * 24 + t.hour for t in local]
+    assert a["minute_of_day"].tolist() == [t.hour * 60 + t.minute for t in local]
+    assert a["month"].tolist() == [t.year * 100 + t.month for t in local]

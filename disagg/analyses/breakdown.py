@@ -61,8 +61,12 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     at each interval's price plus the demand price x peak_kw; null without a tariff; see
     disagg.analyses.tariff).
     """
-    local = est.frame["start_utc"].dt.convert_time_zone(tz)
-    month = (local.dt.year().cast(pl.Int32) * 100 + local.dt.month().cast(pl.Int32)).to_numpy()
+    if est.local_month is not None and est.local_month[0] == tz:
+        month = est.local_month[1]
+    else:
+        local = est.frame["start_utc"].dt.convert_time_zone(tz)
+        month = (local.dt.year().cast(pl.Int32) * 100
+                 + local.dt.month().cast(pl.Int32)).to_numpy()
     interval_h = est.frame["interval_h"].to_numpy()
     price = None
     if tariff is not None:
@@ -75,9 +79,12 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     weeks, week_of = (np.unique(est.week, return_inverse=True) if est.week is not None
                       else (np.zeros(1), np.zeros(len(month), dtype=np.int64)))
     week_of = week_of.reshape(-1)
-    run_w = np.zeros((len(weeks), est.hours.shape[1]))
-    np.add.at(run_w, week_of, est.hours)
-    run_w2 = np.sum(run_w**2, axis=0)
+    # sq_w: each week's sum of squared run-hours [h^2], the weight the fitted draw gives the
+    # week's own draw (least squares: b = sum h y / sum h^2).
+    sq_w = np.zeros((len(weeks), est.hours.shape[1]))  # (no column: a fit without loads)
+    for i in range(est.hours.shape[1]):
+        sq_w[:, i] = np.bincount(week_of, weights=est.hours[:, i] ** 2, minlength=len(weeks))
+    sq = sq_w.sum(axis=0)
     for code in np.unique(month):
         period = f"{code // 100:04d}-{code % 100:02d}"
         rows: list[dict] = []
@@ -109,12 +116,14 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
                 kwh_lo, kwh_hi = lo * run_h, hi * run_h
                 tau2 = float(est.tau2_kw2[i]) if est.tau2_kw2 is not None else 0.0
                 if tau2 > 0 and run_h > 0:
-                    # The month's energy is sum_w draw_w x run_w; the fitted draw averages the
-                    # weeks about in proportion to run_w^2, so each week's own deviation
-                    # (variance tau^2) enters with c_w = run_mw - run_m run_w^2 / sum run_v^2.
+                    # The month's energy is sum_w draw_w x run_mw; the fitted draw averages the
+                    # weeks in proportion to sq_w, so each week's own deviation (variance
+                    # tau^2) enters with c_w = run_mw - run_m sq_w / sum sq_v (about 0 for a
+                    # month's own fit of an on-off load: it already weighs its weeks by
+                    # their run-hours).
                     run_mw = np.bincount(week_of[m], weights=est.hours[m, i],
                                          minlength=len(weeks))
-                    cw = run_mw - run_h * run_w[:, i] ** 2 / run_w2[i]
+                    cw = run_mw - run_h * sq_w[:, i] / sq[i]
                     extra = est.critical * float(np.sqrt(tau2 * np.sum(cw**2)))
                     kwh_lo = max(kwh - float(np.hypot(kwh - kwh_lo, extra)), 0.0)
                     kwh_hi = kwh + float(np.hypot(kwh_hi - kwh, extra))

@@ -77,7 +77,8 @@ class Rows:
     """The intervals used (aligned.use) and their arrays.
 
     y: metered energy [kWh]; interval_h: interval length [h]; start_ns, end_ns: edges [ns,
-    UTC]; local_date: local date (days since 1970-01-01); hour_of_week, month: as in
+    UTC]; local_date: local date (days since 1970-01-01); hour_of_week, minute_of_day, month:
+    as in
     align.frame_arrays; days: consecutive local-day labels 1, 2, ...; sp: the time spacing of
     the rows (disagg.fit.wander).
     """
@@ -92,6 +93,7 @@ class Rows:
     end_ns: np.ndarray
     local_date: np.ndarray
     hour_of_week: np.ndarray
+    minute_of_day: np.ndarray
     month: np.ndarray
     days: np.ndarray
     sp: Spacing
@@ -125,6 +127,7 @@ def rows_of(aligned: Aligned, tz: str) -> Rows:
                 y=frame["energy_kwh"].to_numpy().astype(float),
                 interval_h=frame["interval_h"].to_numpy(), start_ns=start_ns, end_ns=end_ns,
                 local_date=arrays["local_date"], hour_of_week=arrays["hour_of_week"],
+                minute_of_day=arrays["minute_of_day"],
                 month=arrays["month"], days=_local_days(arrays["local_date"]),
                 sp=Spacing.from_ns(start_ns, end_ns))
 
@@ -239,7 +242,7 @@ class BaseloadBuilder:
             return np.zeros((ih.size, 0)), []
         starts = r.frame["start_utc"] if sel is None else r.frame["start_utc"].filter(
             pl.Series(sel))
-        local = starts.dt.convert_time_zone(r.tz)
+        local = starts.dt.convert_time_zone(r.tz).dt.replace_time_zone(None)  # wall clock
         hour = local.dt.hour().to_numpy().astype(np.int64)
         offset = (local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5
         cols = np.zeros((ih.size, 24))
@@ -274,7 +277,7 @@ class BaseloadBuilder:
             [f"{SLOPE_PREFIX}{h:02d}_kw_per_h" for h in range(24)] if slopes else [])
         hour = value = None
         if slopes:  # within_hour_slopes' one nonzero of each row
-            local = r.frame["start_utc"].dt.convert_time_zone(r.tz)
+            local = r.frame["start_utc"].dt.convert_time_zone(r.tz).dt.replace_time_zone(None)
             hour = local.dt.hour().to_numpy().astype(np.int64)
             value = ((local.dt.minute().to_numpy() / 60.0 + ih / 2.0) - 0.5) * ih
         width = len(names)

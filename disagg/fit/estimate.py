@@ -167,6 +167,9 @@ class Estimates:
     base_var_kwh2: dict[int, float] | None = None
     # The same for the whole range's baseload energy [kWh^2] (None without the level).
     base_range_var_kwh2: float | None = None
+    # (time zone, (n_used,) local year x 100 + month of each interval in that zone), as
+    # align.frame_arrays made them: the monthly table need not convert the times again.
+    local_month: tuple[str, np.ndarray] | None = None
 
 
 
@@ -413,7 +416,8 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
         warnings=warnings, form=s.choice, level_kwh=s.level_kwh,
         tau2_kw2=np.array([iv.tau2[t.column] if t.column is not None and t.column < k else 0.0
                            for t in plan.terms]),
-        week=iv.week, base_var_kwh2=base_var, base_range_var_kwh2=base_range_var)
+        week=iv.week, base_var_kwh2=base_var, base_range_var_kwh2=base_range_var,
+        local_month=(rows.tz, rows.month))
 
 
 def choose_form(site: SiteConfig, Hx: np.ndarray, y: np.ndarray, sp: Spacing, days: np.ndarray,

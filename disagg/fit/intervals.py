@@ -9,12 +9,11 @@ variation (DerSimonian-Laird tau^2) for the monthly kWh.
 
 from __future__ import annotations
 
-from collections.abc import Collection
+from collections.abc import Callable, Collection
 from dataclasses import dataclass, field
 
 import numpy as np
-import polars as pl
-from scipy.linalg import solveh_banded
+from scipy.linalg import cho_solve_banded, cholesky_banded, solveh_banded
 
 from disagg.fit.design import SLOPE_PREFIX, BaseloadBuilder, Rows, signed_columns
 from disagg.fit.select import FormChoice
@@ -339,8 +338,8 @@ def schedule_edge(site: SiteConfig, rows: Rows, s: Solved, jk: Jackknife,
     share of its switching there, in words."""
     coef, q_hac = hull.coef, jk.q_hac
     choice = s.choice
-    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.tz,
-                                     rows.frame["start_utc"])
+    edge_share = schedule_edge_share(s.Hf, rows.interval_h, site.baseload, rows.minute_of_day,
+                                     rows.hour_of_week // 24)
     edge_rival = min((sc for sc in choice.scores if sc.form.profile.endswith("-edges")),
                      key=lambda sc: sc.criterion, default=None)
     edge_moves: dict[int, str] = {}
@@ -481,7 +480,8 @@ def switch_on_response(rows: Rows, s: Solved, priors: Priors, fitted: list[Term]
         # The solver's rows are the whitened differences (s.Xs): whitening is column by
         # column, so only the new columns are whitened, with the same factor.
         band, _ = band_factor(rows.sp, s.choice.form.q)
-        R = whiten_columns(R / ih[:, None], band)
+        R /= ih[:, None]  # in place: R is not used in kWh again (no second n x 3k array)
+        R = whiten_columns(R, band)
     Xa = np.column_stack([s.Xs, R])
     del R
     mean = np.r_[s.p_mean, np.zeros(m)]
@@ -554,7 +554,13 @@ def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
     # Real week-to-week variation of each draw (DerSimonian-Laird between-week variance).
     week = (rows.local_date.astype(np.int64) + 3) // 7  # Monday-start local weeks
     resid = rows.y - fitted_of(s.X, s.coef, s.level_kwh)
-    tau2 = between_week_variance(s.Hf, resid, s.coef[:s.k], week, rows.days)
+    # With the level, each week's departure is regressed on the part of the run-hours the
+    # level's smoother leaves (between_week_variance's `taken`).
+    taken = None
+    if s.choice.form.level:
+        ih, smooth = rows.interval_h, level_smoother(rows.sp, s.choice.form.q)
+        taken = lambda h: smooth(h / ih) * ih  # noqa: E731
+    tau2 = between_week_variance(s.Hf, resid, s.coef[:s.k], week, rows.days, taken)
     coef, half_hac = s.coef, jk.half_hac
     return Intervals(jk=jk, low=np.maximum(hull.low, 0.0), high=hull.high,
                      widened=hull.widened, moved=hull.moved, form_moves=form_moves,
@@ -619,6 +625,12 @@ def level_sum_variances(sp: Spacing, q: float, sigma2: float, X: np.ndarray, bas
             np.copyto(A[:, i], np.where(m, h, 0.0))
         if band is not None:
             xs = solveh_banded(band, A, check_finite=False)
+            # A month's x decays geometrically away from its rows and ends in subnormal
+            # numbers (a quarter of a 15-minute year's entries), on which every product below
+            # runs many times slower. Set to zero, they change no sum they enter: each term
+            # they give is under 1e-300, far below half a unit in the last place of the
+            # month's own terms (same bits on the golden cases, demo and bench sites).
+            xs[np.abs(xs) < _TINY] = 0.0
         for i, m in enumerate(group):
             a = A[:, i]
             if band is None:  # a constant level: the weighted mean of the residual kW
@@ -636,6 +648,8 @@ def level_sum_variances(sp: Spacing, q: float, sigma2: float, X: np.ndarray, bas
 
 # Numbers per block of right-hand sides of level_sum_variances (16 MB).
 _LEVEL_RHS_VALUES = 2**21
+# The smallest normal float64: below it, numbers are subnormal (see level_sum_variances).
+_TINY = float(np.finfo(np.float64).tiny)
 
 
 def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndarray:
@@ -643,21 +657,49 @@ def fitted_of(X: np.ndarray, coef: np.ndarray, level_kwh: np.ndarray) -> np.ndar
     return X @ coef + level_kwh
 
 
+def level_smoother(sp: Spacing, q: float) -> Callable[[np.ndarray], np.ndarray]:
+    """wander.smooth_level as a function of the residual kW with the tridiagonal system
+    factored once (banded Cholesky), for many columns on the same rows: the same numbers,
+    a factor's storage (2 n) instead of a fresh band and factor per column."""
+    iv = 1.0 / sp.v
+    if q <= 0.0 or len(iv) < 2:
+        return lambda r: np.full(len(r), float(np.sum(iv * r) / np.sum(iv)))
+    w = sp.h0 / (q * sp.dt)
+    band = np.empty((2, len(iv)))
+    band[0, 0] = 0.0
+    np.negative(w, out=band[0, 1:])
+    band[1] = iv
+    band[1, :-1] += w
+    band[1, 1:] += w
+    del w
+    factor = cholesky_banded(band, overwrite_ab=True, check_finite=False)
+    return lambda r: cho_solve_banded((factor, False), iv * r, check_finite=False)
+
+
 def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.ndarray,
-                          days: np.ndarray) -> np.ndarray:
+                          days: np.ndarray,
+                          taken: Callable[[np.ndarray], np.ndarray] | None = None) -> np.ndarray:
     """Each draw's real variation from week to week: the DerSimonian-Laird tau^2 [kW^2].
 
     Per week, the draw's own estimate with the other terms held at the whole fit's values
-    (b_w = b + sum h u / sum h^2 over the week), its variance from the week's local-day sums
-    of h (u - h (b_w - b)) (the residual of the week's own estimate, robust to noise that
+    (b_w = b + sum g u / sum g^2 over the week), its variance from the week's local-day sums
+    of g (u - g (b_w - b)) (the residual of the week's own estimate, robust to noise that
     persists within a day: the whole fit's residual u still holds the week's own departure,
     which made the within-week variances far too large and tau^2 far too small when the
     weeks really differ); then the random-effects moment estimator over the weeks with at
     least one run-hour.
 
+    g is the run-hours column h itself, or, with the wandering level, the part of h the
+    level does not take: h - taken(h). The level is a linear smoother of the fit's residual,
+    so a week's departure d in the draw leaves d (h - taken(h)) in u, not d h (the level
+    takes about d x the week's mean run-hours as a shift); regressing u on h recovered only
+    part of d (tau^2 0.3-0.8 kW^2 for a true 4.6-14.4 on tests/synthetic.make_building).
+
     Args:
         H: (n, k) run-hours [h]; u: (n,) residual energy of the whole fit [kWh];
-        b: (k,) draws [kW]; week, days: (n,) non-decreasing week and local-day labels.
+        b: (k,) draws [kW]; week, days: (n,) non-decreasing week and local-day labels;
+        taken: run-hours column [h] -> the part of it the fit's level takes [h] (None: no
+            level).
 
     References:
         DerSimonian, R. & Laird, N. (1986). Meta-analysis in clinical trials. Controlled
@@ -676,18 +718,19 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
     dw = dw.reshape(-1)
     for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
         h = H[:, j]
-        hu = h * u
-        h2 = h * h
-        hh = np.add.reduceat(h2, wfirst)
         run = np.add.reduceat(h, wfirst)
-        dep = np.divide(np.add.reduceat(hu, wfirst), hh, out=np.zeros(len(hh)), where=hh > 0)
-        day = np.add.reduceat(hu, dfirst) - dep[dw] * np.add.reduceat(h2, dfirst)
+        g = h if taken is None else h - taken(h)
+        gu = g * u
+        g2 = g * g
+        gg = np.add.reduceat(g2, wfirst)
+        dep = np.divide(np.add.reduceat(gu, wfirst), gg, out=np.zeros(len(gg)), where=gg > 0)
+        day = np.add.reduceat(gu, dfirst) - dep[dw] * np.add.reduceat(g2, dfirst)
         var_num = np.bincount(dw, weights=day**2, minlength=len(wfirst))
-        ok = (run >= 1.0) & (hh > 0) & (var_num > 0)
+        ok = (run >= 1.0) & (gg > 0) & (var_num > 0)
         if ok.sum() < 3:
             continue
         est = b[j] + dep[ok]
-        var = var_num[ok] / hh[ok] ** 2
+        var = var_num[ok] / gg[ok] ** 2
         w = 1.0 / var
         mean = np.sum(w * est) / np.sum(w)
         Q = float(np.sum(w * (est - mean) ** 2))
@@ -883,17 +926,17 @@ def switching_steps(X: np.ndarray, y: np.ndarray, k: int, kx: int, interval_h: n
                           np.sqrt(np.maximum(f.cov[k + idx, k + idx], 0.0)), z)
 
 
-def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings, tz: str,
-                        start_utc: pl.Series) -> np.ndarray:
+def schedule_edge_share(H: np.ndarray, interval_h: np.ndarray, base: BaseloadSettings,
+                        minute: np.ndarray, weekday: np.ndarray) -> np.ndarray:
     """Share of each load's switching (its on-fraction changing by at least half an interval
     from one interval to the next) that happens within SCHEDULE_EDGE_MIN minutes of a
-    declared spell's start or end, on the days the spell applies; 0 without spells."""
+    declared spell's start or end, on the days the spell applies; 0 without spells.
+    minute, weekday: each interval's local start, hour x 60 + minute and day of the week
+    (0 = Monday), as align.frame_arrays makes them once per frame (the time zone's rules are
+    not applied again for every fit)."""
     k = H.shape[1]
     if not base.spells or len(interval_h) < 2 or k == 0:
         return np.zeros(k)
-    local = start_utc.dt.convert_time_zone(tz)
-    minute = (local.dt.hour().cast(pl.Int64) * 60 + local.dt.minute().cast(pl.Int64)).to_numpy()
-    weekday = (local.dt.weekday().cast(pl.Int64) - 1).to_numpy()
     near = np.zeros(len(minute), dtype=bool)
     for spell in base.spells:
         on_day = np.isin(weekday, spell.days)

