@@ -21,6 +21,7 @@ from disagg.analyses.track import nlms
 from disagg.fit import align as align_mod
 from disagg.fit import solvers
 from disagg.fit.align import align, frame_baseload, probe_rss
+from disagg.fit.design import BaseloadBuilder, rows_of
 from disagg.fit.estimate import design, weather_columns, weather_specs
 from test_clock import LOADS, Building, _read
 
@@ -34,28 +35,86 @@ def site_file(tmp_path_factory):
 
 @pytest.mark.parametrize("small_chunks", [False, True])
 @pytest.mark.parametrize("shift_min", [2.0, 150.0])
+@pytest.mark.parametrize("some_unused", [False, True])
 def test_probe_rss_is_the_fit_of_each_aligned_log(site_file, monkeypatch, small_chunks,
-                                                   shift_min):
+                                                   shift_min, some_unused):
     """The chunked probe equals aligning each moved log and solving on the stacked columns
     (the 150-minute shift moves the log past its 2-hour margin: some intervals are unknown
-    to a moved log and left out of all three fits)."""
+    to a moved log and left out of all three fits; some_unused: every 7th interval is not
+    used by the run, so the baseload columns, of the used intervals, are not the frame's)."""
     if small_chunks:  # chunk edges inside the 1,344 intervals, the QR's chunks too
         monkeypatch.setattr(align_mod, "CHUNK_ROWS", 200)
         monkeypatch.setattr(solvers, "_QR_CHUNK_ROWS", 64)
         monkeypatch.setattr(solvers, "QR_CHUNK_ROWS", 64)
     site, meter, log = _read(site_file)
     aligned = align(site, meter, log)
-    base, _ = frame_baseload(aligned, site.baseload, site.timezone)
+    if some_unused:
+        aligned.use = aligned.use & (np.arange(len(aligned.use)) % 7 != 3)
+    base, _ = BaseloadBuilder(site, rows_of(aligned, site.timezone)).declared_columns()
+    covered, rss = probe_rss(site, aligned, log, [-shift_min, shift_min], base)
     moved = [clock.shift_runlog(log, p) for p in (-shift_min, shift_min)]
-    covered, rss = probe_rss(site, aligned, moved, base)
     probes = [aligned] + [align(site, meter, m) for m in moved]
     mask = probes[0].use & probes[1].use & probes[2].use
     y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
-    expected = [clock._rss_quick(np.column_stack([a.hours[mask], base[mask]]), y)
+    full, _ = frame_baseload(aligned, site.baseload, site.timezone)  # every interval's
+    expected = [clock._rss_quick(np.column_stack([a.hours[mask], full[mask]]), y)
                 for a in probes]
     assert covered == int(mask.sum())
-    assert (covered < len(mask)) == (shift_min > 120)
+    assert (covered < len(mask)) == (shift_min > 120 or some_unused)
     np.testing.assert_allclose(rss, expected, rtol=1e-9)
+
+
+@pytest.mark.parametrize("profile", ["constant", "occupied", "hour-of-week"])
+@pytest.mark.parametrize("closed", [False, True])
+@pytest.mark.parametrize("some_unused", [False, True])
+def test_declared_columns_without_rows_equal_the_builders(site_file, profile, closed,
+                                                           some_unused):
+    """BaseloadBuilder.declared (the clock test's, groups' and check's columns, made without
+    the fits' Rows) gives the builder's declared_columns bit for bit."""
+    import dataclasses
+
+    from disagg.inputs.config import BaseloadSettings, parse_spell
+
+    site, meter, log = _read(site_file)
+    spells = ("Mon-Fri 07:00-19:00",)
+    shut = (dt.date(2025, 5, 7),) if closed else ()
+    site = dataclasses.replace(site, baseload=BaseloadSettings(
+        profile, tuple(parse_spell(t) for t in spells), spells, shut))
+    aligned = align(site, meter, log)
+    if some_unused:
+        aligned.use = aligned.use & (np.arange(len(aligned.use)) % 5 != 1)
+    B, names = BaseloadBuilder.declared(site, aligned)
+    want, want_names = BaseloadBuilder(site, rows_of(aligned, site.timezone)).declared_columns()
+    assert names == want_names
+    np.testing.assert_array_equal(B, want)
+    assert B.shape == (int(aligned.use.sum()), {"constant": 1, "occupied": 2}.get(
+        profile, 168 + 24 * closed))
+
+
+@pytest.mark.parametrize("offset_min", [-3.0, 0.0, 3.0, 150.0, -150.0, 0.25])
+@pytest.mark.parametrize("gaps", [False, True])
+def test_moved_edges_give_the_hours_of_the_moved_log(site_file, offset_min, gaps):
+    """align._Shifted (probe_rss's hours of a moved log) gives overlap_hours of the moved
+    segments bit for bit, and the same intervals with unknown time, with the log's first
+    and last segments inside the meter period (150 min) and with gaps between segments."""
+    site, meter, log = _read(site_file)
+    f = meter.frame
+    s_ns = f["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+    e_ns = f["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
+    moved = clock.shift_runlog(log, offset_min)
+    for eq in site.equipment:
+        seg, mseg = log.segments[eq.id], moved.segments[eq.id]
+        if gaps:  # every 5th segment dropped: unknown time inside the log
+            keep = np.arange(len(seg.start_ns)) % 5 != 2
+            seg = type(seg)(seg.start_ns[keep], seg.end_ns[keep], seg.value[keep])
+            mseg = type(mseg)(mseg.start_ns[keep], mseg.end_ns[keep], mseg.value[keep])
+        for exponent in (1.0, 2.5):
+            run_h, unknown = align_mod._Shifted(seg, exponent).hours(
+                s_ns, e_ns, int(np.int64(round(offset_min * clock.NS_PER_MIN))))
+            want_h, want_unknown = align_mod.overlap_hours(mseg, s_ns, e_ns, exponent)
+            np.testing.assert_array_equal(run_h, want_h)
+            np.testing.assert_array_equal(unknown, want_unknown > align_mod._UNKNOWN_TOL_H)
+            assert unknown.any() == (gaps or abs(offset_min) > 120)
 
 
 def test_design_matches_the_whole_array_construction(site_file):

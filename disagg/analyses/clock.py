@@ -22,7 +22,8 @@ import numpy as np
 import polars as pl
 
 from disagg.errors import InputError
-from disagg.fit.align import Aligned, align, baseload_columns, frame_baseload, probe_rss
+from disagg.fit.align import Aligned, align, probe_rss
+from disagg.fit.design import BaseloadBuilder
 from disagg.fit.solvers import solve_regularized
 from disagg.inputs.config import SiteConfig
 from disagg.inputs.readers import MeterData, RunLog, Segments
@@ -180,14 +181,15 @@ def estimate_log_offset(site: SiteConfig, meter: MeterData, runlog: RunLog,
 
     first = align(site, meter, runlog)
     frame = first.frame
-    start_ns = frame["start_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
-    end_ns = frame["end_utc"].dt.epoch("ns").to_numpy().astype(np.int64)
     y_all = frame["energy_kwh"].to_numpy().astype(float)
-    if frame.height:
-        base, _ = baseload_columns(site.baseload, site.timezone, frame["start_utc"],
-                                   start_ns, end_ns)
+    # The declared profile's columns of the intervals the unmoved log covers (the builder's):
+    # every scored interval is one of them, offset 0 being on the grid. at[i]: interval i's
+    # row among them.
+    if first.use.any():
+        base, _ = BaseloadBuilder.declared(site, first)
     else:
         base = np.empty((0, 1))
+    at = np.cumsum(first.use) - 1
 
     hours: dict[float, np.ndarray] = {}
     use: dict[float, np.ndarray] = {}
@@ -203,8 +205,8 @@ def estimate_log_offset(site: SiteConfig, meter: MeterData, runlog: RunLog,
 
     def score(offsets: list[float], mask: np.ndarray) -> np.ndarray:
         y = y_all[mask]
-        return np.array([_rss(np.column_stack([hours[o][mask], base[mask]]), y)
-                         for o in offsets])
+        b = base[at[mask]]
+        return np.array([_rss(np.column_stack([hours[o][mask], b]), y) for o in offsets])
 
     def common(offsets) -> np.ndarray:
         mask = np.ones(frame.height, dtype=bool)
@@ -346,9 +348,11 @@ def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
                    date_to: dt.date | None = None) -> str | None:
     """A warning with the --log-offset to try when the run-log clock is materially off, else None.
 
-    Cheap in the usual case (clocks agree): the logs as read and moved +-QUICK_PROBE_MIN are
-    aligned and scored on the intervals all three cover (three alignments and three small NNLS
-    fits). Only when a moved log fits better does estimate_log_offset search +-QUICK_WINDOW_MIN.
+    Cheap in the usual case (clocks agree): the run's own alignment and the logs moved
+    +-QUICK_PROBE_MIN (align.probe_rss: each load's hours at the moved interval edges) are
+    scored on the intervals all three cover, with the declared profile's baseload columns
+    (design.BaseloadBuilder.declared): three small NNLS fits. Only when a moved log
+    fits better does estimate_log_offset search +-QUICK_WINDOW_MIN.
 
     Args:
         runlog: as read, with applied_min [min] already added to its times.
@@ -357,17 +361,22 @@ def offset_warning(site: SiteConfig, meter: MeterData, runlog: RunLog,
     """
     if aligned is None:
         aligned = align(site, meter, runlog, date_from, date_to)
-    base, _ = frame_baseload(aligned, site.baseload, site.timezone)
-    moved = [shift_runlog(runlog, p) for p in (-QUICK_PROBE_MIN, QUICK_PROBE_MIN)]
+    if not aligned.use.any():
+        return None
+    # The declared profile's columns of the intervals used, from the one design builder.
+    base, _ = BaseloadBuilder.declared(site, aligned)
+    probes_min = [-QUICK_PROBE_MIN, QUICK_PROBE_MIN]
     # A chunk of rows at a time (no moved log's hours held whole: long 1-minute series).
-    covered, rss = probe_rss(site, aligned, moved, base)
+    covered, rss = probe_rss(site, aligned, runlog, probes_min, base)
     if covered < MIN_INTERVALS:
         return None
     if rss is None:
-        probes = [aligned] + [align(site, meter, m, date_from, date_to) for m in moved]
+        probes = [aligned] + [align(site, meter, shift_runlog(runlog, m), date_from, date_to)
+                              for m in probes_min]
         mask = probes[0].use & probes[1].use & probes[2].use
         y = aligned.frame["energy_kwh"].to_numpy().astype(float)[mask]
-        rss = [_rss_quick(np.column_stack([a.hours[mask], base[mask]]), y) for a in probes]
+        b = base[(np.cumsum(aligned.use) - 1)[mask]]
+        rss = [_rss_quick(np.column_stack([a.hours[mask], b]), y) for a in probes]
     if rss[0] <= min(rss[1], rss[2]):
         return None
     try:

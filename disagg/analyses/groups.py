@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import dataclasses
 
-from disagg.fit.align import Aligned, frame_baseload
+from disagg.fit.align import Aligned
+from disagg.fit.design import BaseloadBuilder
 from disagg.fit.estimate import inseparable
 from disagg.inputs.config import Prior, SiteConfig
 
@@ -26,8 +27,8 @@ def inseparable_groups(site: SiteConfig, aligned: Aligned) -> list[list[str]]:
     ids = aligned.equipment_ids
     everything = bool(use.all())  # then no copy of a long series' hours
     H = aligned.hours if everything else aligned.hours[use]
-    B, _ = frame_baseload(aligned, site.baseload, site.timezone)
-    sep = inseparable(H, B if everything else B[use])
+    B, _ = BaseloadBuilder.declared(site, aligned)
+    sep = inseparable(H, B)
     parent = list(range(len(ids)))
 
     def find(i: int) -> int:

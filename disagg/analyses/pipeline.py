@@ -35,9 +35,9 @@ from disagg.fit.align import (
     BASELOAD_COLUMN_COUNT,
     Aligned,
     align,
-    baseload_columns,
     frame_arrays,
 )
+from disagg.fit.design import BaseloadBuilder
 from disagg.fit.estimate import Estimates, estimate_draws, inseparable
 from disagg.fit.intervals import response_moved
 from disagg.inputs.config import SiteConfig, load_site
@@ -505,13 +505,9 @@ def check_site(site_path: str | Path, date_from: dt.date | None = None,
     site, aligned, findings = load_validated(site_path, date_from, date_to, log_offset_min,
                                              on_duplicate=on_duplicate)
     frame = aligned.frame
-    used = aligned.use
     require_usable(site, aligned)
-    f = frame.filter(pl.Series(used))
-    B, _ = baseload_columns(site.baseload, site.timezone, f["start_utc"],
-                            f["start_utc"].dt.epoch("ns").to_numpy(),
-                            f["end_utc"].dt.epoch("ns").to_numpy())
-    H = aligned.hours[used]
+    B, _ = BaseloadBuilder.declared(site, aligned)
+    H = aligned.hours[aligned.use]
     run = H.sum(axis=0)
     ids = aligned.equipment_ids
     sep = inseparable(H, B)

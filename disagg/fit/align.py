@@ -279,37 +279,119 @@ def share_hours(aligned: Aligned, Hf: np.ndarray, term_members: list[list[str]])
     return True
 
 
-def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
+class _Shifted:
+    """One equipment's run log, evaluated at interval edges moved by an offset: the
+    _cumulative sums of its segments made once (for every offset and chunk of rows), the
+    same numbers as overlap_hours of the moved log (shift the edges back instead of the
+    segments forward: the same integers)."""
+
+    def __init__(self, seg: Segments, exponent: float):
+        self.seg = seg
+        self.exponent = exponent
+        self.dur_ns = seg.end_ns - seg.start_ns
+        self.weight = np.power(seg.value, exponent) if exponent != 1.0 else seg.value
+        dur_h = self.dur_ns / NS_PER_H
+        self.cum_val = np.concatenate(([0.0], np.cumsum(self.weight * dur_h)))
+        self.cum_cov = np.concatenate(([0.0], np.cumsum(dur_h)))
+        n = len(seg.start_ns)
+        # Without gaps between segments the log covers [first start, last end) exactly:
+        # only intervals reaching outside it have unknown time.
+        self.gapless = n > 0 and bool(np.array_equal(seg.start_ns[1:], seg.end_ns[:-1]))
+
+    def _values(self, t_ns: np.ndarray) -> np.ndarray:
+        """_cumulative's first result (the integral of status**exponent up to each time)."""
+        seg = self.seg
+        idx = np.searchsorted(seg.start_ns, t_ns, side="right") - 1
+        if idx.size and idx.min() >= 0:  # every time after the first segment's start
+            part_h = np.clip(t_ns - seg.start_ns[idx], 0, self.dur_ns[idx]) / NS_PER_H
+            return self.cum_val[idx] + self.weight[idx] * part_h
+        inside = idx >= 0
+        j = np.where(inside, idx, 0)
+        part_h = np.clip(t_ns - seg.start_ns[j], 0, self.dur_ns[j]) / NS_PER_H
+        return np.where(inside, self.cum_val[j] + self.weight[j] * part_h, 0.0)
+
+    def _unknown(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """overlap_hours' unknown_h of intervals [a, b) > _UNKNOWN_TOL_H (its float sums)."""
+        seg = self.seg
+
+        def covered(t_ns: np.ndarray) -> np.ndarray:  # _cumulative's second result
+            idx = np.searchsorted(seg.start_ns, t_ns, side="right") - 1
+            inside = idx >= 0
+            j = np.where(inside, idx, 0)
+            part_h = np.clip(t_ns - seg.start_ns[j], 0, self.dur_ns[j]) / NS_PER_H
+            return np.where(inside, self.cum_cov[j] + part_h, 0.0)
+
+        unknown_h = np.maximum((b - a) / NS_PER_H - (covered(b) - covered(a)), 0.0)
+        return unknown_h > _UNKNOWN_TOL_H
+
+    def hours(self, start_ns: np.ndarray, end_ns: np.ndarray,
+              offset_ns: int) -> tuple[np.ndarray, np.ndarray]:
+        """(run_h [h], unknown) of overlap_hours(moved segments, start_ns, end_ns,
+        exponent), the log moved later by offset_ns; unknown: unknown_h > _UNKNOWN_TOL_H."""
+        seg = self.seg
+        a, b = start_ns - offset_ns, end_ns - offset_ns
+        if len(seg.start_ns) == 0:
+            return np.zeros(len(a)), (b - a) / NS_PER_H > _UNKNOWN_TOL_H
+        back_to_back = len(a) > 1 and np.array_equal(a[1:], b[:-1])
+        if back_to_back:
+            v = self._values(np.concatenate([a, b[-1:]]))
+            run_h = v[1:] - v[:-1]
+        else:
+            run_h = self._values(b) - self._values(a)
+        if not self.gapless:
+            return run_h, self._unknown(a, b)
+        # Gapless: the unknown time is the part outside [first start, last end); it is zero
+        # inside (overlap_hours' float sums are then below _UNKNOWN_TOL_H by orders of
+        # magnitude); overlap_hours' sums (_unknown) decide the few that reach outside.
+        out = (a < seg.start_ns[0]) | (b > seg.end_ns[-1])
+        unknown = np.zeros(len(a), dtype=bool)
+        if out.any():
+            unknown[out] = self._unknown(a[out], b[out])
+        return run_h, unknown
+
+
+def probe_rss(site: SiteConfig, aligned: Aligned, runlog: RunLog, offsets_min: list[float],
               base: np.ndarray) -> tuple[int, list[float] | None]:
     """Residual sum of squares of the non-negative least-squares fit of the meter on the
-    equipment-hours and baseload columns, for aligned's own run log and for each of
-    `runlogs` (the same log moved in time), on the intervals all of them cover [kWh^2].
+    equipment-hours and baseload columns, for aligned's own hours and for runlog moved later
+    by each of offsets_min [min] (as clock.shift_runlog moves it), on the intervals all of
+    them cover [kWh^2].
 
-    The same fits as aligning each run log (align) and solving on the stacked columns
+    runlog: the log aligned was made from. base: the baseload columns of the intervals
+    aligned.use (design.BaseloadBuilder.declared_columns).
+
+    The same fits as aligning each moved log (align) and solving on the stacked columns
     (solvers.solve_regularized without penalty, bounds at 0), but a chunk of rows at a time,
-    in one pass (each moved log's hours and unknown time from one overlap_hours call): the
-    moved logs' hours are never held whole, so a long 1-minute series holds no second
-    (n, k) array. The rows are factorised in the same chunks as solvers.compress (the same
-    R factor); the residual sum of squares is read off R (||[X y] [b; -1]||^2, equal up to
-    rounding).
+    in one pass: the moved logs' hours are never held whole, so a long 1-minute series holds
+    no second (n, k) array. Each load's cumulative sums are made once (_Shifted) and
+    evaluated at the interval edges moved back by each offset (the same numbers as
+    overlap_hours of the moved log). The rows are factorised in the same chunks as
+    solvers.compress (the same R factor); the residual sum of squares is read off R
+    (||[X y] [b; -1]||^2, equal up to rounding).
 
     Returns:
-        (intervals covered by all, [rss of aligned, rss of each of runlogs]); the list is
-        None when the solver would not compress this design (at most 2 x columns intervals,
-        or a design wide enough for solvers.compress's indicator path): the caller then
-        aligns and solves as usual.
+        (intervals covered by all, [rss of aligned, rss of each offset]); the list is None
+        when the solver would not compress this design (at most 2 x columns intervals, or a
+        design wide enough for solvers.compress's indicator path): the caller then aligns
+        and solves as usual.
     """
     from disagg.fit.solvers import DISJOINT_MIN_COLS, QR_CHUNK_ROWS, solve_compressed
 
     a = frame_arrays(aligned, site.timezone)
     start_ns, end_ns = a["start_ns"], a["end_ns"]
     eqs = site.equipment
-    p = len(eqs) + base.shape[1]
+    k = len(eqs)
+    p = k + base.shape[1]
     wide = p >= DISJOINT_MIN_COLS  # the solver would not compress: count the rows only
     y_all = aligned.frame["energy_kwh"].to_numpy().astype(float)
-    n_probes = len(runlogs) + 1
+    use = aligned.use
+    everything = bool(use.all())
+    at = None if everything else np.cumsum(use) - 1  # a used interval's row of base
+    offsets_ns = [int(np.int64(round(o * 60_000_000_000))) for o in offsets_min]
+    logs = [_Shifted(runlog.segments[eq.id], eq.exponent) for eq in eqs]
+    n_probes = len(offsets_ns) + 1
     # One pass, CHUNK_ROWS intervals at a time: each moved log's hours and unknown time
-    # together; the rows every log knows join each probe's [hours, baseload, meter] rows,
+    # together; the rows every log knows make each probe's [hours, baseload, meter] rows,
     # factorised QR_CHUNK_ROWS kept rows at a time in the order of the rows kept (the
     # chunks of solvers.compress: the same R as factorising all the kept rows).
     pending: list[list[np.ndarray]] = [[] for _ in range(n_probes)]
@@ -318,30 +400,45 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
     chunked = False  # more than 2 x QR_CHUNK_ROWS rows kept: factorised in chunks
     for lo in range(0, len(start_ns), CHUNK_ROWS):
         hi = min(lo + CHUNK_ROWS, len(start_ns))
-        keep = aligned.use[lo:hi].copy()
+        keep = use[lo:hi].copy()
         moved = []
-        for log in runlogs:
-            H = None if wide else np.empty((hi - lo, len(eqs)))
-            for j, eq in enumerate(eqs):
-                run_h, unknown_h = overlap_hours(log.segments[eq.id], start_ns[lo:hi],
-                                                 end_ns[lo:hi], eq.exponent)
-                keep &= ~(unknown_h > _UNKNOWN_TOL_H)
-                if H is not None:
-                    H[:, j] = run_h
-            moved.append(H)
-        covered += int(keep.sum())
+        # Column-major rows: each load's hours written as one contiguous column (LAPACK
+        # factorises a column-major copy either way: the same R).
+        for off in offsets_ns:
+            Z = None if wide else np.empty((hi - lo, p + 1), order="F")
+            for j, log in enumerate(logs):
+                run_h, unknown = log.hours(start_ns[lo:hi], end_ns[lo:hi], off)
+                keep &= ~unknown
+                if Z is not None:
+                    Z[:, j] = run_h
+            moved.append(Z)
+        n_keep = int(keep.sum())
+        covered += n_keep
         if wide:
             continue
-        r = lo + np.flatnonzero(keep)
-        tail = np.column_stack([base[r], y_all[r]])
-        for i, H in enumerate([aligned.hours[r]] + [H[keep] for H in moved]):
-            pending[i].append(np.column_stack([H, tail]))
+        kept = np.flatnonzero(keep)
+        # One run of rows (the usual: a moved log loses only the ends): slices, no copies.
+        run = n_keep == 0 or kept[-1] - kept[0] + 1 == n_keep
+        first = int(kept[0]) if n_keep else 0
+        rows = slice(lo + first, lo + first + n_keep) if run else lo + kept
+        if everything:
+            base_rows = base[rows]
+        else:
+            base_rows = base[at[rows]]
+        Z0 = np.empty((n_keep, p + 1), order="F")
+        Z0[:, :k] = aligned.hours[rows]
+        Zs = [Z0] + [Z[first:first + n_keep] if run else Z[keep] for Z in moved]
         del moved
-        n_pending += len(r)
+        for i, Z in enumerate(Zs):
+            Z[:, k:p] = base_rows
+            Z[:, p] = y_all[rows]
+            pending[i].append(Z)
+        del Zs
+        n_pending += n_keep
         chunked = chunked or covered > 2 * QR_CHUNK_ROWS
         if chunked and n_pending >= QR_CHUNK_ROWS:
             for i in range(n_probes):
-                Z = np.vstack(pending[i])
+                Z = pending[i][0] if len(pending[i]) == 1 else np.vstack(pending[i])
                 full = len(Z) - len(Z) % QR_CHUNK_ROWS
                 parts[i] += [np.linalg.qr(Z[c:c + QR_CHUNK_ROWS], mode="r")
                              for c in range(0, full, QR_CHUNK_ROWS)]
@@ -350,7 +447,7 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
     if covered <= 2 * p or wide:
         return covered, None
     for i in range(n_probes):
-        Z = np.vstack(pending[i])
+        Z = pending[i][0] if len(pending[i]) == 1 else np.vstack(pending[i])
         pending[i] = []
         if chunked:
             parts[i] += [np.linalg.qr(Z[c:c + QR_CHUNK_ROWS], mode="r")
@@ -358,7 +455,7 @@ def probe_rss(site: SiteConfig, aligned: Aligned, runlogs: list[RunLog],
         else:
             parts[i].append(Z)
     out = []
-    for i in range(len(runlogs) + 1):
+    for i in range(n_probes):
         R = np.linalg.qr(np.vstack(parts[i]), mode="r")
         parts[i] = []
         b = solve_compressed(R[:p, :p], R[:p, p], np.zeros(p), np.zeros(p), np.zeros(p))

@@ -1,6 +1,8 @@
 """The one design builder: the intervals used, their baseload columns for any form, weather
 columns and the full design rows (term hours [h], weather slope columns [h degC], baseload
-columns [h]). estimate_draws (breakdown and compare) and drift build their designs here.
+columns [h]). estimate_draws (breakdown and compare) and drift build their designs here;
+the clock test, the inseparable groups and check take the declared profile's columns from
+BaseloadBuilder.declared: every baseload column is made here.
 """
 
 from __future__ import annotations
@@ -130,6 +132,22 @@ def rows_of(aligned: Aligned, tz: str) -> Rows:
                 sp=Spacing.from_ns(start_ns, end_ns))
 
 
+def _profile_columns(settings: BaseloadSettings, aligned: Aligned, tz: str, everything: bool,
+                     frame: pl.DataFrame | None = None, start_ns: np.ndarray | None = None,
+                     end_ns: np.ndarray | None = None, how: np.ndarray | None = None,
+                     sel: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+    """A profile's own columns [h] over the used rows (frame, start_ns, end_ns, how: theirs;
+    needed for hour-of-week only), or a boolean selection of them."""
+    if settings.profile == "hour-of-week":
+        if sel is None:
+            return baseload_columns(settings, tz, frame["start_utc"], start_ns, end_ns, how=how)
+        return baseload_columns(settings, tz, frame["start_utc"].filter(pl.Series(sel)),
+                                start_ns[sel], end_ns[sel], how=how[sel])
+    cols, names = frame_baseload(aligned, settings, tz)
+    cols = cols if everything else cols[aligned.use]
+    return (cols if sel is None else cols[sel]), names
+
+
 @dataclass
 class BaseloadBuilder:
     """The baseload columns [h] of any profile over the rows used (or a boolean selection of
@@ -143,15 +161,34 @@ class BaseloadBuilder:
     def _settings_cols(self, settings: BaseloadSettings,
                        sel: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
         r = self.rows
-        if settings.profile == "hour-of-week":
-            if sel is None:
-                return baseload_columns(settings, r.tz, r.frame["start_utc"], r.start_ns,
-                                        r.end_ns, how=r.hour_of_week)
-            return baseload_columns(settings, r.tz, r.frame["start_utc"].filter(pl.Series(sel)),
-                                    r.start_ns[sel], r.end_ns[sel], how=r.hour_of_week[sel])
-        cols, names = frame_baseload(r.aligned, settings, r.tz)
-        cols = cols if r.everything else cols[r.aligned.use]
-        return (cols if sel is None else cols[sel]), names
+        return _profile_columns(settings, r.aligned, r.tz, r.everything, r.frame, r.start_ns,
+                                r.end_ns, r.hour_of_week, sel)
+
+    def declared_columns(self, sel: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+        """The declared profile's own columns [h] and their names: its levels with its
+        closures (hour-of-week: 168 levels, and 24 for closed days when closures are declared),
+        no within-hour slopes and no edges. What the clock test, the inseparable groups and
+        check's inseparability use (columns(profile) adds the within-hour slopes for the
+        fits). Constant and occupied columns are the frame's, computed once per frame
+        (align.frame_baseload) and read only."""
+        return self._settings_cols(self.site.baseload, sel)
+
+    @staticmethod
+    def declared(site: SiteConfig, aligned: Aligned) -> tuple[np.ndarray, list[str]]:
+        """BaseloadBuilder(site, rows_of(aligned, tz)).declared_columns(), the same numbers,
+        without making the rest of Rows (the energy, day labels and time spacing that the
+        fits need: on a long 1-minute series tens of MB that raised drift's peak memory)."""
+        tz = site.timezone
+        use = aligned.use
+        everything = bool(use.all())
+        if site.baseload.profile != "hour-of-week":
+            return _profile_columns(site.baseload, aligned, tz, everything)
+        a = frame_arrays(aligned, tz)
+        frame = aligned.frame if everything else aligned.frame.filter(pl.Series(use))
+        start_ns, end_ns, how = ((a[k] if everything else a[k][use])
+                                 for k in ("start_ns", "end_ns", "hour_of_week"))
+        return _profile_columns(site.baseload, aligned, tz, everything, frame, start_ns, end_ns,
+                                how)
 
     def closure_column(self, sel: np.ndarray | None = None) -> np.ndarray:
         """The spell hours that the declared closure calendar removes [h]."""
