@@ -8,6 +8,7 @@ import signal
 import subprocess
 import sys
 import textwrap
+import threading
 from pathlib import Path
 
 import pytest
@@ -73,7 +74,12 @@ def test_a_real_sigint_during_the_renames_is_held_until_the_set_is_in_place(tmp_
     def hook(name: str) -> None:
         seen.append((name, sorted(p.name for p in tmp_path.iterdir())))
         if name == "placed breakdown.csv":
-            os.kill(os.getpid(), signal.SIGINT)
+            # To the main thread itself: its C-level handler runs before pthread_kill
+            # returns. os.kill on the process lets the kernel pick any thread (one of the
+            # numeric libraries' workers, say), which on a busy machine may run the handler
+            # only after the block has ended: the likely reason a full run on a loaded
+            # machine once saw no KeyboardInterrupt here (2026-12-05).
+            signal.pthread_kill(threading.main_thread().ident, signal.SIGINT)
 
     monkeypatch.setattr(commit, "after_step", hook)
     with pytest.raises(KeyboardInterrupt):
