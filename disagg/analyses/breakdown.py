@@ -79,11 +79,16 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
     weeks, week_of = (np.unique(est.week, return_inverse=True) if est.week is not None
                       else (np.zeros(1), np.zeros(len(month), dtype=np.int64)))
     week_of = week_of.reshape(-1)
-    # sq_w: each week's sum of squared run-hours [h^2], the weight the fitted draw gives the
-    # week's own draw (least squares: b = sum h y / sum h^2).
-    sq_w = np.zeros((len(weeks), est.hours.shape[1]))  # (no column: a fit without loads)
-    for i in range(est.hours.shape[1]):
-        sq_w[:, i] = np.bincount(week_of, weights=est.hours[:, i] ** 2, minlength=len(weeks))
+    # sq_w: each week's weight in the fitted draw [h^2]: its sum of squared run-hours
+    # (least squares: b = sum h y / sum h^2), or with the wandering level its sum of g x h,
+    # g the part of the run-hours the level leaves (intervals.between_week_variance).
+    if est.week_gh_h2 is not None and est.week_gh_h2.shape == (len(weeks), est.hours.shape[1]):
+        sq_w = est.week_gh_h2
+    else:
+        sq_w = np.zeros((len(weeks), est.hours.shape[1]))  # (no column: a fit without loads)
+        for i in range(est.hours.shape[1]):
+            sq_w[:, i] = np.bincount(week_of, weights=est.hours[:, i] ** 2,
+                                     minlength=len(weeks))
     sq = sq_w.sum(axis=0)
     for code in np.unique(month):
         period = f"{code // 100:04d}-{code % 100:02d}"
@@ -118,12 +123,13 @@ def monthly_breakdown(est: Estimates, tz: str, tariff: TariffSettings | None = N
                 if tau2 > 0 and run_h > 0:
                     # The month's energy is sum_w draw_w x run_mw; the fitted draw averages the
                     # weeks in proportion to sq_w, so each week's own deviation (variance
-                    # tau^2) enters with c_w = run_mw - run_m sq_w / sum sq_v (about 0 for a
-                    # month's own fit of an on-off load: it already weighs its weeks by
-                    # their run-hours).
+                    # tau^2) enters with c_w = run_mw - run_m sq_w / sum sq_v (0 for a
+                    # month's own static fit of an on-off load: it already weighs its weeks
+                    # by their run-hours; not so with the level).
                     run_mw = np.bincount(week_of[m], weights=est.hours[m, i],
                                          minlength=len(weeks))
-                    cw = run_mw - run_h * sq_w[:, i] / sq[i]
+                    cw = (run_mw - run_h * sq_w[:, i] / sq[i] if sq[i] > 0
+                          else np.zeros(len(weeks)))
                     extra = est.critical * float(np.sqrt(tau2 * np.sum(cw**2)))
                     kwh_lo = max(kwh - float(np.hypot(kwh - kwh_lo, extra)), 0.0)
                     kwh_hi = kwh + float(np.hypot(kwh_hi - kwh, extra))

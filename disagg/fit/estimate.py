@@ -161,6 +161,9 @@ class Estimates:
     # (n_used,) each interval's local week label: the monthly kWh intervals use them.
     tau2_kw2: np.ndarray | None = None
     week: np.ndarray | None = None
+    # (n_weeks, n_terms) each week's weight in the fitted draw [h^2] (weeks in increasing
+    # order; intervals.BetweenWeeks.gh_h2); None: each week's sum of squared run-hours.
+    week_gh_h2: np.ndarray | None = None
     # With the wandering level: local month (year x 100 + month) -> variance of the month's
     # baseload energy, the profile's and the level's together [kWh^2]
     # (intervals.level_sum_variance); None without the level (cov_base then suffices).
@@ -416,7 +419,11 @@ def assemble(rows: Rows, plan: TermPlan, s: Solved, iv: Intervals, res: TermResu
         warnings=warnings, form=s.choice, level_kwh=s.level_kwh,
         tau2_kw2=np.array([iv.tau2[t.column] if t.column is not None and t.column < k else 0.0
                            for t in plan.terms]),
-        week=iv.week, base_var_kwh2=base_var, base_range_var_kwh2=base_range_var,
+        week=iv.week,
+        week_gh_h2=np.column_stack([iv.week_gh[:, t.column] if t.column is not None
+                                    and t.column < k else np.zeros(len(iv.week_gh))
+                                    for t in plan.terms]) if plan.terms else None,
+        base_var_kwh2=base_var, base_range_var_kwh2=base_range_var,
         local_month=(rows.tz, rows.month))
 
 

@@ -511,7 +511,9 @@ class Intervals:
     form_moves, edge_moves, step_moves: how the estimate moved (phrases for the flags);
     schedule_bound: draws the by-day projection leaves to their prior; width_hac: the HAC
     interval's width (clipped at 0) [kW]; tau2: (k,) between-week variance of the draws
-    [kW^2]; week: (n,) local Monday-start week of each row; variants: fit.json's "variants".
+    [kW^2]; week: (n,) local Monday-start week of each row; week_gh: (n_weeks, k) each
+    week's weight in the fitted draws [h^2] (BetweenWeeks.gh_h2); variants: fit.json's
+    "variants".
     """
 
     jk: Jackknife
@@ -525,6 +527,7 @@ class Intervals:
     width_hac: np.ndarray
     tau2: np.ndarray
     week: np.ndarray
+    week_gh: np.ndarray
     variants: dict[str, dict]
     step_moves: dict[int, str] = field(default_factory=dict)
 
@@ -557,16 +560,19 @@ def intervals(site: SiteConfig, rows: Rows, s: Solved, builder: BaseloadBuilder,
     # With the level, each week's departure is regressed on the part of the run-hours the
     # level's smoother leaves (between_week_variance's `taken`).
     taken = None
-    if s.choice.form.level:
+    if s.choice.form.level and s.choice.form.q > 0:
+        # (At q = 0 the level is one constant: a week's change hardly moves it, and g =
+        # h - mean would bring every off-hours row into the week's regression.)
         ih, smooth = rows.interval_h, level_smoother(rows.sp, s.choice.form.q)
         taken = lambda h: smooth(h / ih) * ih  # noqa: E731
-    tau2 = between_week_variance(s.Hf, resid, s.coef[:s.k], week, rows.days, taken)
+    weeks = between_week_variance(s.Hf, resid, s.coef[:s.k], week, rows.days, taken)
     coef, half_hac = s.coef, jk.half_hac
     return Intervals(jk=jk, low=np.maximum(hull.low, 0.0), high=hull.high,
                      widened=hull.widened, moved=hull.moved, form_moves=form_moves,
                      edge_moves=edge_moves, schedule_bound=bound,
                      width_hac=(coef + half_hac) - np.maximum(coef - half_hac, 0.0),
-                     tau2=tau2, week=week, variants=variants, step_moves=step_moves)
+                     tau2=weeks.tau2_kw2, week=week, week_gh=weeks.gh_h2, variants=variants,
+                     step_moves=step_moves)
 
 
 def level_sum_variance(sp: Spacing, q: float, sigma2: float, X: np.ndarray, base: slice,
@@ -676,18 +682,45 @@ def level_smoother(sp: Spacing, q: float) -> Callable[[np.ndarray], np.ndarray]:
     return lambda r: cho_solve_banded((factor, False), iv * r, check_finite=False)
 
 
+# Consecutive weeks whose within-week noise is pooled (between_week_variance): about a
+# month, so a season's larger noise stays with its own weeks. Project choice, no outside
+# source. A block with fewer degrees of freedom than POOL_MIN_DOF takes the whole fit's.
+POOL_WEEKS = 4
+POOL_MIN_DOF = 8.0
+
+
+@dataclass
+class BetweenWeeks:
+    """between_week_variance's result.
+
+    tau2_kw2: (k,) each draw's between-week variance [kW^2]; gh_h2: (n_weeks, k) each week's
+    sum of g x h (g: the run-hours column, or the part of it the wandering level leaves) [h^2],
+    the weight the fitted draw gives the week's own draw (weeks in increasing order).
+    """
+
+    tau2_kw2: np.ndarray
+    gh_h2: np.ndarray
+
+
 def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.ndarray,
                           days: np.ndarray,
-                          taken: Callable[[np.ndarray], np.ndarray] | None = None) -> np.ndarray:
+                          taken: Callable[[np.ndarray], np.ndarray] | None = None
+                          ) -> BetweenWeeks:
     """Each draw's real variation from week to week: the DerSimonian-Laird tau^2 [kW^2].
 
     Per week, the draw's own estimate with the other terms held at the whole fit's values
-    (b_w = b + sum g u / sum g^2 over the week), its variance from the week's local-day sums
-    of g (u - g (b_w - b)) (the residual of the week's own estimate, robust to noise that
-    persists within a day: the whole fit's residual u still holds the week's own departure,
-    which made the within-week variances far too large and tau^2 far too small when the
-    weeks really differ); then the random-effects moment estimator over the weeks with at
-    least one run-hour.
+    (b_w = b + sum g u / sum g^2 over the week). Its variance is phi / sum g^2, where phi,
+    the noise scale of a local day's sum of g x residual, is pooled over POOL_WEEKS
+    consecutive weeks from the day sums of g (u - g (b_w - b)) (the residual of each week's
+    own estimate: the whole fit's residual u still holds the week's own departure, which
+    made the within-week variances far too large and tau^2 far too small when the weeks
+    really differ). A day sum's expected square is phi (gg_d - gg_d^2 / gg_w) (gg: sum of
+    g^2 over the day d and its week w), so phi = sum of squared day sums / sum of
+    (gg_w - sum_d gg_d^2 / gg_w); the weights use (nu - 2) / (nu phi), the unbiased estimate
+    of 1 / phi for nu degrees of freedom. A week's own 2-7 day sums alone made its variance
+    so noisy that the moment estimator's Q came out 1.6-2.7 times its expected K - 1 when
+    the weeks did not differ at all (DerSimonian & Laird take the variances as known). Then
+    the random-effects moment estimator over the weeks with at least one run-hour.
 
     g is the run-hours column h itself, or, with the wandering level, the part of h the
     level does not take: h - taken(h). The level is a linear smoother of the fit's residual,
@@ -707,15 +740,17 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
     """
     k = H.shape[1]
     tau2 = np.zeros(k)
-    if k == 0 or len(u) == 0:
-        return tau2
     _, wfirst = np.unique(week, return_index=True)
     wfirst = np.sort(wfirst)
+    gh_all = np.zeros((len(wfirst), k))
+    if k == 0 or len(u) == 0:
+        return BetweenWeeks(tau2, gh_all)
     _, dfirst = np.unique(days, return_index=True)
     dfirst = np.sort(dfirst)
     day_week = week[dfirst]
     _, dw = np.unique(day_week, return_inverse=True)
     dw = dw.reshape(-1)
+    block = np.arange(len(wfirst)) // POOL_WEEKS
     for j in range(k):  # one column at a time: no n x k temporaries on 1-minute data
         h = H[:, j]
         run = np.add.reduceat(h, wfirst)
@@ -723,21 +758,40 @@ def between_week_variance(H: np.ndarray, u: np.ndarray, b: np.ndarray, week: np.
         gu = g * u
         g2 = g * g
         gg = np.add.reduceat(g2, wfirst)
+        gh_all[:, j] = gg if taken is None else np.add.reduceat(g * h, wfirst)
         dep = np.divide(np.add.reduceat(gu, wfirst), gg, out=np.zeros(len(gg)), where=gg > 0)
-        day = np.add.reduceat(gu, dfirst) - dep[dw] * np.add.reduceat(g2, dfirst)
-        var_num = np.bincount(dw, weights=day**2, minlength=len(wfirst))
-        ok = (run >= 1.0) & (gg > 0) & (var_num > 0)
+        gg_day = np.add.reduceat(g2, dfirst)
+        day = np.add.reduceat(gu, dfirst) - dep[dw] * gg_day
+        ok = (run >= 1.0) & (gg > 0)
         if ok.sum() < 3:
             continue
+        sq_num = np.bincount(dw, weights=day**2, minlength=len(wfirst))
+        # expected sum of squared day sums of each week / phi [h^2], and its degrees of
+        # freedom (the week's days with run-hours, minus its own estimate)
+        scale = gg - np.divide(np.bincount(dw, weights=gg_day**2, minlength=len(gg)), gg,
+                               out=np.zeros(len(gg)), where=gg > 0)
+        nu = np.bincount(dw, weights=(gg_day > 0).astype(float), minlength=len(gg)) - 1.0
+        bk, nb = block[ok], block[-1] + 1
+        num_b = np.bincount(bk, weights=sq_num[ok], minlength=nb)
+        scale_b = np.bincount(bk, weights=scale[ok], minlength=nb)
+        nu_b = np.bincount(bk, weights=np.maximum(nu[ok], 0.0), minlength=nb)
+        nu_all, num_all = float(nu_b.sum()), float(num_b.sum())
+        if nu_all <= 2.0 or num_all <= 0.0:
+            continue
+        # Each block's inverse scale (nu - 2) / (nu phi); the whole fit's where a block has
+        # too few degrees of freedom.
+        inv_phi = np.full(nb, (nu_all - 2.0) / nu_all * scale_b.sum() / num_all)
+        pooled = (nu_b >= POOL_MIN_DOF) & (num_b > 0)
+        inv_phi[pooled] = ((nu_b[pooled] - 2.0) / nu_b[pooled] * scale_b[pooled]
+                           / num_b[pooled])
         est = b[j] + dep[ok]
-        var = var_num[ok] / gg[ok] ** 2
-        w = 1.0 / var
+        w = gg[ok] * inv_phi[block[ok]]
         mean = np.sum(w * est) / np.sum(w)
         Q = float(np.sum(w * (est - mean) ** 2))
         denom = float(np.sum(w) - np.sum(w**2) / np.sum(w))
         if denom > 0:
             tau2[j] = max(0.0, (Q - (ok.sum() - 1)) / denom)
-    return tau2
+    return BetweenWeeks(tau2, gh_all)
 
 
 @dataclass
