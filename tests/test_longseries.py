@@ -89,6 +89,18 @@ def test_declared_columns_without_rows_equal_the_builders(site_file, profile, cl
     np.testing.assert_array_equal(B, want)
     assert B.shape == (int(aligned.use.sum()), {"constant": 1, "occupied": 2}.get(
         profile, 168 + 24 * closed))
+    # And against align.baseload_columns on the used rows' own times, a path that shares
+    # neither design._profile_columns nor the row filtering with the two above.
+    import polars as pl
+
+    from disagg.fit.align import baseload_columns
+
+    used = aligned.frame.filter(pl.Series(aligned.use))
+    ref, ref_names = baseload_columns(site.baseload, site.timezone, used["start_utc"],
+                                      used["start_utc"].dt.epoch("ns").to_numpy(),
+                                      used["end_utc"].dt.epoch("ns").to_numpy())
+    assert names == ref_names
+    np.testing.assert_array_equal(B, ref)
 
 
 @pytest.mark.parametrize("offset_min", [-3.0, 0.0, 3.0, 150.0, -150.0, 0.25])
