@@ -143,7 +143,10 @@ def signals_deferred() -> Iterator[None]:
         for sig, old in previous.items():
             signal.signal(sig, old)
         for sig in dict.fromkeys(pending):
-            os.kill(os.getpid(), sig)
+            # To this (the main) thread: its handler runs now. os.kill on the process let
+            # the kernel pick any thread, whose handling a busy machine could delay until
+            # the caller had moved on (a KeyboardInterrupt raised somewhere later).
+            signal.raise_signal(sig)
 
 
 def _backup(target: Path, copy: Path) -> None:
